@@ -1,0 +1,50 @@
+"""A tiny graph builder used by the function emitters and the rewriter.
+
+Everything it creates is named ``swapper/<site-id>/...`` so added nodes and
+initializers never collide with the model's own names.
+"""
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import onnx
+from onnx import helper, numpy_helper
+
+
+class Emitter:
+    """Collects nodes and float32 initializers for one site, at one opset."""
+
+    def __init__(self, prefix: str, opset: int, taken: set[str] | None = None):
+        self.prefix = prefix.rstrip("/")
+        self.opset = opset
+        self.nodes: list[onnx.NodeProto] = []
+        self.initializers: list[onnx.TensorProto] = []
+        self._taken = taken if taken is not None else set()
+
+    def fresh(self, hint: str) -> str:
+        """A new unique tensor or node name under this emitter's prefix."""
+        base = f"{self.prefix}/{hint}"
+        name, k = base, 0
+        while name in self._taken:
+            k += 1
+            name = f"{base}_{k}"
+        self._taken.add(name)
+        return name
+
+    def const(self, value: Any, hint: str, dtype=np.float32) -> str:
+        """Add an initializer holding ``value`` and return its name."""
+        name = self.fresh(hint)
+        self.initializers.append(numpy_helper.from_array(np.asarray(value, dtype=dtype), name))
+        return name
+
+    def node(self, op_type: str, inputs: list[str], output: str | None = None, **attrs: Any) -> str:
+        """Add one node; return its (single) output name, fresh unless ``output`` is given."""
+        out = output if output is not None else self.fresh(op_type)
+        self.nodes.append(
+            helper.make_node(op_type, inputs, [out], name=self.fresh(f"{op_type}_node"), **attrs)
+        )
+        return out
+
+    def identity(self, x: str, y: str) -> str:
+        return self.node("Identity", [x], y)

@@ -1,0 +1,199 @@
+"""Load, validate and save ONNX models safely.
+
+``load_model`` turns every way a model file can be broken into a one-line
+:class:`BadModelError` naming the file; ``save_model`` writes atomically
+(temporary file in the target folder, then rename) and refuses to overwrite
+the model it was given.
+"""
+from __future__ import annotations
+
+import logging
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import onnx
+from google.protobuf.message import DecodeError
+
+from .errors import BadModelError, BadOutputError
+
+logger = logging.getLogger(__name__)
+
+# The default-domain opsets we read and write. 11 is the oldest opset that
+# current exporters still emit; the top is the newest our onnx package knows
+# and onnxruntime 1.18+ runs (checked against onnxruntime's operator docs).
+MIN_OPSET = 11
+MAX_OPSET = 22
+# protobuf cannot serialise a single message above 2 GiB; bigger models keep
+# their weights as external data and are checked by path.
+PROTOBUF_LIMIT = 2**31 - 1
+
+
+@dataclass
+class LoadedModel:
+    """A validated model with shapes inferred, plus where it came from."""
+
+    model: onnx.ModelProto
+    path: Path
+    opset: int
+    file_bytes: int  # the .onnx file plus any external data files
+
+
+def _default_opset(model: onnx.ModelProto) -> int | None:
+    for entry in model.opset_import:
+        if entry.domain in ("", "ai.onnx"):
+            return entry.version
+    return None
+
+
+def _external_locations(model: onnx.ModelProto) -> list[str]:
+    locations = []
+    for tensor in onnx.external_data_helper._get_all_tensors(model):
+        if tensor.data_location == onnx.TensorProto.EXTERNAL:
+            for entry in tensor.external_data:
+                if entry.key == "location":
+                    locations.append(entry.value)
+    return locations
+
+
+def _check_external_paths(model: onnx.ModelProto, path: Path) -> int:
+    """Refuse external-data locations outside the model's folder; return their total size."""
+    base = path.parent.resolve()
+    total = 0
+    for location in sorted(set(_external_locations(model))):
+        target = (base / location).resolve()
+        if os.path.isabs(location) or not target.is_relative_to(base):
+            raise BadModelError(
+                f"external data location {location!r} points outside the model's folder (refused)", path
+            )
+        if not target.is_file():
+            raise BadModelError(f"external data file {location!r} is missing", path)
+        total += target.stat().st_size
+    return total
+
+
+def name_unnamed_nodes(model: onnx.ModelProto) -> None:
+    """Give every node a unique name so sites can refer to nodes by name."""
+    seen: set[str] = set()
+    for i, node in enumerate(model.graph.node):
+        if not node.name or node.name in seen:
+            base = node.name or f"{node.op_type}_{i}"
+            name, k = base, 0
+            while name in seen:
+                k += 1
+                name = f"{base}_{k}"
+            node.name = name
+        seen.add(node.name)
+
+
+def load_model(path: str | Path, *, infer_shapes: bool = True) -> LoadedModel:
+    """Read, check and shape-infer a model. Raises BadModelError with a one-line cause."""
+    path = Path(path)
+    if not path.exists():
+        raise BadModelError("no such file", path)
+    if path.is_dir():
+        raise BadModelError("is a directory, expected an .onnx file", path)
+    try:
+        raw_size = path.stat().st_size
+        with open(path, "rb") as fh:
+            data = fh.read()
+    except OSError as exc:
+        raise BadModelError(f"cannot read: {exc.strerror or exc}", path) from None
+    if raw_size == 0:
+        raise BadModelError("file is empty", path)
+    model = onnx.ModelProto()
+    try:
+        model.ParseFromString(data)
+    except (DecodeError, RuntimeError, ValueError) as exc:
+        raise BadModelError(f"not an ONNX protobuf or truncated ({type(exc).__name__})", path) from None
+    if not model.HasField("graph") or len(model.graph.node) == 0 and len(model.graph.output) == 0:
+        raise BadModelError("not an ONNX model (no graph inside)", path)
+
+    opset = _default_opset(model)
+    if opset is None:
+        raise BadModelError("model imports no default-domain (ai.onnx) opset", path)
+    if not MIN_OPSET <= opset <= MAX_OPSET:
+        raise BadModelError(
+            f"opset {opset} is outside the supported range {MIN_OPSET}..{MAX_OPSET}", path
+        )
+
+    external_bytes = _check_external_paths(model, path)
+    is_large = raw_size + external_bytes > PROTOBUF_LIMIT
+    try:
+        if is_large:
+            # Too big for one protobuf message: let onnx check it from disk.
+            onnx.checker.check_model(str(path), full_check=True)
+        else:
+            if external_bytes:
+                onnx.load_external_data_for_model(model, str(path.parent))
+            onnx.checker.check_model(model, full_check=True)
+    except onnx.checker.ValidationError as exc:
+        raise BadModelError(f"invalid graph: {_first_line(exc)}", path) from None
+    except onnx.shape_inference.InferenceError as exc:
+        raise BadModelError(f"shape inference failed: {_first_line(exc)}", path) from None
+    except (OSError, ValueError) as exc:
+        raise BadModelError(f"cannot load: {_first_line(exc)}", path) from None
+
+    if infer_shapes and not is_large:
+        try:
+            model = onnx.shape_inference.infer_shapes(model, check_type=True, data_prop=True)
+        except onnx.shape_inference.InferenceError as exc:
+            raise BadModelError(f"shape inference failed: {_first_line(exc)}", path) from None
+    elif is_large:
+        # Large model: keep weights on disk; shapes come from the inferred copy.
+        with tempfile.TemporaryDirectory() as tmp:
+            inferred = Path(tmp) / "inferred.onnx"
+            onnx.shape_inference.infer_shapes_path(str(path), str(inferred))
+            model = onnx.load(str(inferred), load_external_data=False)
+    name_unnamed_nodes(model)
+    logger.debug("loaded %s: opset %d, %d nodes", path, opset, len(model.graph.node))
+    return LoadedModel(model=model, path=path, opset=opset, file_bytes=raw_size + external_bytes)
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def check_output_path(out: str | Path, *, inputs: tuple[str | Path, ...] = ()) -> Path:
+    """Fail early (one line) if ``out`` cannot be written or would overwrite an input."""
+    out = Path(out)
+    for given in inputs:
+        if given is not None and Path(given).exists() and out.resolve() == Path(given).resolve():
+            raise BadOutputError("refusing to overwrite the input model; choose another output path", out)
+    parent = out.resolve().parent
+    if not parent.is_dir():
+        raise BadOutputError(f"folder {str(parent)!r} does not exist", out)
+    if out.is_dir():
+        raise BadOutputError("is a directory, expected a file path", out)
+    if not os.access(parent, os.W_OK):
+        raise BadOutputError(f"folder {str(parent)!r} is not writable", out)
+    return out
+
+
+def atomic_write_bytes(data: bytes, out: str | Path) -> Path:
+    """Write ``data`` to ``out`` via a temporary file in the same folder and a rename."""
+    out = Path(out)
+    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".tmp", dir=out.resolve().parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, out)
+    except OSError as exc:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise BadOutputError(f"cannot write: {exc.strerror or exc}", out) from None
+    return out
+
+
+def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | Path, ...] = ()) -> Path:
+    """Serialise ``model`` to ``out`` atomically; never overwrite any path in ``inputs``."""
+    out = check_output_path(out, inputs=inputs)
+    if model.ByteSize() > PROTOBUF_LIMIT:
+        raise BadOutputError("model exceeds 2 GiB; saving with external data is not supported yet", out)
+    return atomic_write_bytes(model.SerializeToString(deterministic=True), out)
