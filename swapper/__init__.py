@@ -1,0 +1,25 @@
+"""swapper: replace costly activations in ONNX models with cheap, calibrated surrogates.
+
+    import swapper
+    found = swapper.scan("model.onnx")                       # where are the activations?
+    result = swapper.swap("model.onnx", calib="calib.npz")   # plan, calibrate, rewrite
+    verdict = swapper.check(result.loaded.model, result.candidate,
+                            swapper.load_data("val.npz", result.loaded)).verdict
+"""
+__version__ = "0.1.0"
+
+__all__ = ["__version__", "scan", "swap", "check", "load_data", "ScanResult", "SwapResult", "CheckResult",
+           "SwapperError"]
+
+
+def __getattr__(name):
+    # Imported lazily so `import swapper.functions` stays light (no onnxruntime session code).
+    if name == "SwapperError":
+        from .errors import SwapperError
+
+        return SwapperError
+    if name in __all__:
+        from . import api
+
+        return getattr(api, name)
+    raise AttributeError(f"module 'swapper' has no attribute {name!r}")

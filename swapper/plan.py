@@ -106,3 +106,120 @@ class Plan:
     @classmethod
     def from_json(cls, text: str) -> "Plan":
         return cls.from_dict(json.loads(text))
+
+
+def _starting_params(source: str, source_params: dict, target: str, target_params: dict,
+                     free: str, positive_a: bool, _cache: dict = {}) -> tuple[float, float, float, float]:
+    """Least-squares best a, b, c, d of the surrogate to the source over a standard input range."""
+    from . import functions
+    from .fit import starting_params
+
+    key = (source, tuple(sorted(source_params.items())), target,
+           json.dumps(target_params, sort_keys=True), free, positive_a)
+    if key not in _cache:
+        f, g = functions.get(source), functions.get(target)
+        _cache[key] = starting_params(
+            lambda x: f.ref(x, **source_params),
+            lambda z: g.ref(z, **target_params),
+            free=free,
+            positive_a=positive_a,
+            dg=(lambda z: g.grad(z, **target_params)) if g.grad is not None else None,
+        )
+    return _cache[key]
+
+
+def make_plan(
+    model,
+    sites: list,
+    *,
+    to: str | None = None,
+    site_ids: list[str] | None = None,
+    only: str | None = None,
+    include_gates: bool = False,
+    include_outputs: bool = False,
+    fold: str = "exact",
+) -> Plan:
+    """Choose sites and surrogates; set each swap's starting parameters and placement.
+
+    Default: every supported *pointwise* site whose function is costly; gates only
+    with ``include_gates``; graph outputs only with ``include_outputs``.
+    ``site_ids`` and ``only`` (a source function name) narrow the choice.
+    """
+    from . import functions
+    from .errors import UsageError
+    from .fold import decide_placement
+    from .graph import GraphIndex
+
+    if fold not in FOLD_POLICIES:
+        raise UsageError(f"unknown fold policy {fold!r}; valid: {', '.join(FOLD_POLICIES)}")
+    if to is not None:
+        functions.get(to)  # raises with the valid names
+    if only is not None:
+        functions.get(only)
+    known = {s.id for s in sites}
+    if site_ids:
+        unknown = [i for i in site_ids if i not in known]
+        if unknown:
+            raise UsageError(
+                f"no site with id {', '.join(unknown)}; valid ids: {', '.join(s.id for s in sites) or 'none'}"
+            )
+    index = GraphIndex.of(model)
+    swaps, skipped = [], []
+    for site in sites:
+        if site_ids and site.id not in site_ids:
+            continue
+        if only and site.function != only:
+            continue
+        explicit = bool(site_ids)
+
+        def skip(reason: str) -> None:
+            skipped.append(Skipped(site.id, site.function, reason))
+
+        if not site.supported:
+            skip(site.reason or "not supported")
+            continue
+        fn = functions.REGISTRY.get(site.function)
+        if fn is None:
+            skip(f"no registry entry for {site.function}")
+            continue
+        if fn.is_cheap and not explicit:
+            skip(f"{site.function} is already cheap")
+            continue
+        if site.role == "gate" and not (include_gates or explicit):
+            skip("gate (its output multiplies another tensor); use --include-gates")
+            continue
+        if site.role == "output" and not (include_outputs or explicit):
+            skip("graph output; use --include-outputs")
+            continue
+        target = to or functions.DEFAULT_TARGET.get(site.function)
+        if target is None:
+            skip(f"no default surrogate for {site.function}; name one with --to")
+            continue
+        if target == site.function and to is None:
+            skip("already its own surrogate")
+            continue
+        target_fn = functions.get(target)
+        tparams = functions.target_params(site.function, site.params, target)
+        placement, notes = decide_placement(index, site, target_fn, fold)
+        free = "".join(p for p in PARAMS if placement.get(p) != "held")
+        a, b, c, d = _starting_params(site.function, site.params, target, tparams, free,
+                                      placement.get("a") == "inner")
+        channels = site.channels or 1
+        swaps.append(
+            SiteSwap(
+                site_id=site.id,
+                source=site.function,
+                source_params=dict(site.params),
+                target=target,
+                target_params=tparams,
+                channel_axis=site.channel_axis if site.channels else None,
+                channels=channels,
+                a=np.full(channels, a),
+                b=np.full(channels, b),
+                c=np.full(channels, c),
+                d=np.full(channels, d),
+                placement=placement,
+                notes=list(notes),
+            )
+        )
+    return Plan(fold=fold, swaps=swaps, skipped=skipped)

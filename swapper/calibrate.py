@@ -1,0 +1,327 @@
+"""Calibration: refit every swapped site so the candidate reproduces the original.
+
+A post-training, layer-wise distillation on unlabelled samples:
+
+    for each depth level L of swapped sites (sites at one level are independent):
+        x' = the level's site inputs, computed by the *partially swapped* model
+             (sequential mode) or by the original model (local mode)
+        y  = the original model's site outputs on the same samples
+        fit a, b, c, d per channel so that a·g(b·x' + c) + d ≈ y
+        optionally correct the mean shift at the site's linear consumers
+
+Sequential mode never reruns the whole network per site: level L runs only the
+segment of the original graph between the graph inputs / earlier swapped-site
+outputs and the level's site inputs; swapped outputs are computed in numpy from
+the cached inputs and fitted parameters and kept in an on-disk cache.
+"""
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+import onnx
+from onnx import helper, numpy_helper
+from onnx.utils import Extractor
+
+from . import functions
+from .data import Dataset, batches
+from .fit import fit_channels
+from .observe import ChannelObserver
+from .graph import GraphIndex
+from .plan import Plan, SiteSwap
+from .progress import Silent
+from .record import TensorCache, expose, open_session
+from .sites import Site
+
+logger = logging.getLogger(__name__)
+
+MODES = ("sequential", "local")
+LINEAR_CONSUMERS = ("Conv", "Gemm", "MatMul")
+
+
+@dataclass
+class SiteCalibration:
+    site_id: str
+    level: int
+    mse_start: float  # starting parameters on the recorded data
+    mse_fit: float  # fitted parameters on the same data
+    x_min: list[float] = field(default_factory=list)  # per channel, the recorded input range
+    x_max: list[float] = field(default_factory=list)
+    bias_corrected: list[str] = field(default_factory=list)  # consumer node names
+    notes: list[str] = field(default_factory=list)
+
+
+@dataclass
+class CalibrationResult:
+    plan: Plan
+    model: onnx.ModelProto  # the original with consumer corrections; rewrite(plan) gives the candidate
+    sites: list[SiteCalibration]
+    timings: dict[str, float]  # seconds per phase
+    samples: int
+
+    def to_dict(self) -> dict:
+        return {
+            "samples": self.samples,
+            "timings_s": {k: round(v, 4) for k, v in self.timings.items()},
+            "sites": [s.__dict__ for s in self.sites],
+        }
+
+
+def site_levels(index: GraphIndex, sites: list[Site], swapped: set[str]) -> dict[str, int]:
+    """Depth of each swapped site: 1 + the deepest swapped site upstream of its input."""
+    by_output = {s.output: s for s in sites if s.id in swapped}
+    depth: dict[str, int] = {}
+    level: dict[str, int] = {}
+    for node in index.graph.node:  # ONNX graphs are topologically sorted
+        d = max((depth.get(t, 0) for t in node.input if t), default=0)
+        for out in node.output:
+            depth[out] = d
+            site = by_output.get(out)
+            if site is not None:
+                level[site.id] = depth.get(site.input, 0) + 1
+                depth[out] = level[site.id]
+    return level
+
+
+def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
+    """a·g(b·x + c) + d per channel, in float64, returned in x's dtype."""
+    fn = functions.get(swap.target)
+    shape = [1] * x.ndim
+    axis = swap.channel_axis if swap.channel_axis is not None and swap.channels > 1 else None
+    if axis is not None:
+        shape[axis] = swap.channels
+
+    def per_channel(v):
+        return np.asarray(v, dtype=np.float64).reshape(shape if axis is not None else [1] * x.ndim)
+
+    z = per_channel(swap.b) * x.astype(np.float64) + per_channel(swap.c)
+    y = per_channel(swap.a) * fn.ref(z, **swap.target_params) + per_channel(swap.d)
+    return y.astype(x.dtype)
+
+
+def _observer(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
+    axis = swap.channel_axis if swap.channels > 1 else None
+    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
+
+
+def _fit(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
+    fn = functions.get(swap.target)
+    params = swap.target_params
+
+    def g(z):
+        return fn.ref(z, **params)
+
+    dg = (lambda z: fn.grad(z, **params)) if fn.grad is not None else None
+    fitted = fit_channels(
+        observer,
+        g,
+        init=swap.params(),
+        free="".join(swap.free()),
+        positive_a=swap.placement.get("a") == "inner",
+        dg=dg,
+    )
+    swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
+    return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
+
+
+def _feeds_for(session, batch, cache: TensorCache) -> dict[str, np.ndarray]:
+    feeds = {}
+    for inp in session.get_inputs():
+        if inp.name in batch.feeds:
+            feeds[inp.name] = batch.feeds[inp.name]
+        else:
+            feeds[inp.name] = cache.read(inp.name, batch.start, batch.stop)
+    return feeds
+
+
+def _segment(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> onnx.ModelProto:
+    """The part of ``model`` that computes ``outputs`` from ``inputs`` (graph inputs always allowed)."""
+    extractor = Extractor(model)
+    seg = extractor.extract_model(inputs, outputs)
+    # keep only the inputs the segment really reads, so we feed no more than needed
+    used = {t for n in seg.graph.node for t in n.input} | set(outputs)
+    kept = [v for v in seg.graph.input if v.name in used]
+    del seg.graph.input[:]
+    seg.graph.input.extend(kept)
+    return seg
+
+
+def _consumer_bias_slot(index: GraphIndex, node: onnx.NodeProto) -> tuple[str | None, int | None]:
+    """Where a linear consumer's per-output-channel bias lives: (initializer name, output channel axis)."""
+    if node.op_type == "Conv" and len(node.input) > 2 and node.input[2] in index.initializers:
+        return node.input[2], 1
+    if node.op_type == "Gemm" and len(node.input) > 2 and node.input[2] in index.initializers:
+        return node.input[2], -1
+    if node.op_type == "MatMul":
+        users = index.users(node.output[0])
+        if len(users) == 1 and users[0].op_type == "Add":
+            other = [t for t in users[0].input if t != node.output[0]]
+            if other and other[0] in index.initializers:
+                return other[0], -1
+    return None, None
+
+
+def _single_node_model(model: onnx.ModelProto, node: onnx.NodeProto, index: GraphIndex) -> onnx.ModelProto:
+    """A model running one consumer node on a fed input (its constants copied in)."""
+    dyn = [t for t in node.input if t and t not in index.initializers]
+    consts = [index.initializers[t] for t in node.input if t in index.initializers]
+    elem = index.dtypes.get(dyn[0], onnx.TensorProto.FLOAT)
+    graph = helper.make_graph(
+        [node],
+        "consumer",
+        [helper.make_tensor_value_info(dyn[0], elem, None)],
+        [helper.make_tensor_value_info(node.output[0], elem, None)],
+        initializer=consts,
+    )
+    return helper.make_model(graph, opset_imports=model.opset_import, ir_version=model.ir_version)
+
+
+def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, teacher: str, ds: Dataset,
+                  batch_size: int) -> tuple[list[str], list[str]]:
+    """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019)."""
+    index = GraphIndex.of(work)
+    corrected, notes = [], []
+    for node in index.users(site.output):
+        if node.op_type not in LINEAR_CONSUMERS:
+            notes.append(f"no bias correction through {node.op_type} {node.name}")
+            continue
+        if node.input[0] != site.output or not all(t in index.initializers for t in node.input[1:] if t):
+            notes.append(f"no bias correction: {node.name} does not read the site as its data input")
+            continue
+        bias_name, axis = _consumer_bias_slot(index, node)
+        if bias_name is None:
+            notes.append(f"no bias correction: {node.name} has no constant bias")
+            continue
+        sess = open_session(_single_node_model(work, node, index))
+        in_name = sess.get_inputs()[0].name
+        shift_sum, count = None, 0
+        for start in range(0, ds.n, batch_size):
+            stop = min(start + batch_size, ds.n)
+            cand = sess.run(None, {in_name: cache.read(site.output, start, stop)})[0].astype(np.float64)
+            orig = sess.run(None, {in_name: cache.read(teacher, start, stop)})[0].astype(np.float64)
+            diff = np.moveaxis(cand - orig, axis, 0).reshape(cand.shape[axis], -1)
+            shift_sum = diff.sum(axis=1) if shift_sum is None else shift_sum + diff.sum(axis=1)
+            count += diff.shape[1]
+        shift = shift_sum / max(count, 1)
+        init = index.initializers[bias_name]
+        bias = numpy_helper.to_array(init).astype(np.float64)
+        if bias.size not in (1, shift.size):
+            notes.append(f"no bias correction: bias of {node.name} has unexpected size {bias.size}")
+            continue
+        users = sum(1 for n in work.graph.node for t in n.input if t == bias_name)
+        new = numpy_helper.from_array((bias - shift).astype(numpy_helper.to_array(init).dtype).reshape(
+            np.broadcast_shapes(bias.shape, shift.shape) if bias.size == 1 else bias.shape), bias_name)
+        if users > 1:  # shared bias: give this consumer its own copy
+            new.name = f"swapper/{site.id}/bias_correction/{node.name}"
+            work.graph.initializer.append(new)
+            for n in work.graph.node:
+                if n.name == node.name or (node.op_type == "MatMul" and bias_name in n.input and
+                                           node.output[0] in n.input):
+                    n.input[:] = [new.name if t == bias_name else t for t in n.input]
+        else:
+            init.CopyFrom(new)
+        corrected.append(node.name)
+    return corrected, notes
+
+
+def calibrate(
+    original: onnx.ModelProto,
+    sites: list[Site],
+    plan: Plan,
+    dataset: Dataset,
+    *,
+    mode: str = "sequential",
+    bias_correction: bool = True,
+    batch_size: int = 64,
+    seed: int = 0,
+    reservoir: int = 4096,
+    threads: int = 1,
+    progress=None,
+) -> CalibrationResult:
+    """Fit every swap in ``plan`` (updated in place) on ``dataset``; never mutates ``original``."""
+    if mode not in MODES:
+        raise ValueError(f"mode must be one of {MODES}")
+    progress = progress or Silent()
+    timings = {"record_s": 0.0, "segments_s": 0.0, "fit_s": 0.0, "bias_correction_s": 0.0}
+    swaps = plan.by_site()
+    by_id = {s.id: s for s in sites}
+    work = onnx.ModelProto()
+    work.CopyFrom(original)
+    index = GraphIndex.of(work)
+    levels = site_levels(index, sites, set(swaps))
+    if mode == "local":
+        levels = {k: 1 for k in levels}
+    results: dict[str, SiteCalibration] = {}
+    teacher = {sid: f"teacher::{by_id[sid].output}" for sid in swaps}  # cache keys of original outputs
+    n_batches = -(-dataset.n // batch_size)
+
+    with TensorCache() as cache:
+        # 1. one pass of the original: every swapped site's output (the targets), level-1 inputs
+        first = [sid for sid, lv in levels.items() if lv == 1]
+        graph_inputs = set(index.graph_inputs)
+        names = [by_id[s].output for s in swaps] + [by_id[s].input for s in first if by_id[s].input not in graph_inputs]
+        t0 = time.perf_counter()
+        session = open_session(expose(original, names), threads=threads)
+        out_names = [o.name for o in session.get_outputs()]
+        with progress.task("recording original", n_batches) as advance:
+            for batch in batches(dataset, batch_size):
+                values = dict(zip(out_names, session.run(None, batch.feeds)))
+                for sid in swaps:
+                    cache.append(teacher[sid], values[by_id[sid].output])
+                for sid in first:
+                    name = by_id[sid].input
+                    if name not in cache or cache.rows(name) < batch.stop:  # two sites may share an input
+                        cache.append(name, batch.feeds[name] if name in graph_inputs else values[name])
+                advance(1)
+        timings["record_s"] += time.perf_counter() - t0
+
+        for level in sorted(set(levels.values())):
+            group = sorted((sid for sid, lv in levels.items() if lv == level), key=lambda s: int(s[1:]) if s[1:].isdigit() else 0)
+            needed = list(dict.fromkeys(by_id[s].input for s in group if by_id[s].input not in cache))
+            if level > 1 and needed:
+                # 2. inputs of this level from the partially swapped model, segment only
+                t0 = time.perf_counter()
+                earlier = [by_id[s].output for s, lv in levels.items() if lv < level]
+                seg = _segment(work, list(GraphIndex.of(work).graph_inputs) + earlier, needed)
+                seg_session = open_session(seg, threads=threads)
+                seg_outs = [o.name for o in seg_session.get_outputs()]
+                with progress.task(f"level {level}: running segment", n_batches) as advance:
+                    for batch in batches(dataset, batch_size):
+                        values = seg_session.run(None, _feeds_for(seg_session, batch, cache))
+                        for name, value in zip(seg_outs, values):
+                            cache.append(name, value)
+                        advance(1)
+                timings["segments_s"] += time.perf_counter() - t0
+
+            # 3. observe (x', y) pairs and fit
+            t0 = time.perf_counter()
+            with progress.task(f"level {level}: fitting {len(group)} site(s)", len(group)) as advance:
+                for sid in group:
+                    site, swap = by_id[sid], swaps[sid]
+                    observer = _observer(swap, seed, reservoir)
+                    for start in range(0, dataset.n, batch_size):
+                        stop = min(start + batch_size, dataset.n)
+                        observer.update(cache.read(site.input, start, stop), cache.read(teacher[sid], start, stop))
+                    mse_start, mse_fit = _fit(swap, observer)
+                    seen = observer.compute()
+                    results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
+                                                   x_min=[float(v) for v in seen.min_x],
+                                                   x_max=[float(v) for v in seen.max_x])
+                    # the swapped output feeds the next levels' segments
+                    for start in range(0, dataset.n, batch_size):
+                        stop = min(start + batch_size, dataset.n)
+                        cache.append(site.output, surrogate_output(swap, cache.read(site.input, start, stop)))
+                    advance(1)
+            timings["fit_s"] += time.perf_counter() - t0
+
+            if bias_correction:
+                t0 = time.perf_counter()
+                for sid in group:
+                    done, notes = _correct_bias(work, by_id[sid], cache, teacher[sid], dataset, batch_size)
+                    results[sid].bias_corrected, results[sid].notes = done, notes
+                timings["bias_correction_s"] += time.perf_counter() - t0
+
+    ordered = [results[sid] for sid in sorted(results, key=lambda s: list(swaps).index(s))]
+    return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n)

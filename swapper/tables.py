@@ -1,0 +1,44 @@
+"""Rich tables for the terminal: what scan found, what swap did."""
+from __future__ import annotations
+
+from rich.table import Table
+
+from .plan import Plan
+from .sites import Site
+
+
+def sites_table(sites: list[Site], title: str) -> Table:
+    table = Table(title=title, title_justify="left")
+    for col in ("id", "function", "form", "role", "channels", "shape", "producer → consumers", "cost share"):
+        table.add_column(col, justify="right" if col in ("channels", "cost share") else "left")
+    for s in sites:
+        shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
+        flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
+        role = s.role if s.supported else f"unsupported: {s.reason}"
+        table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
+                      shape or "?", flow, f"{100 * s.cost_share:.1f}%")
+    return table
+
+
+def swap_table(plan: Plan, rewrite_records=None, calibration=None) -> Table:
+    fits = {c.site_id: c for c in calibration.sites} if calibration is not None else {}
+    records = {r.site_id: r for r in rewrite_records or []}
+    table = Table(title="swapped sites", title_justify="left")
+    for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted"):
+        table.add_column(col)
+    for s in plan.swaps:
+        rec = records.get(s.site_id)
+        fit = fits.get(s.site_id)
+        table.add_row(
+            s.site_id,
+            f"{s.source} → {s.target}",
+            *(s.placement.get(p, "-") for p in "abcd"),
+            str(rec.nodes_added) if rec is not None else "-",
+            f"{fit.mse_start:.3g}" if fit else "-",
+            f"{fit.mse_fit:.3g}" if fit else "-",
+        )
+    return table
+
+
+def skipped_lines(plan: Plan) -> list[str]:
+    return [f"left {s.site_id} ({s.function}): {s.reason}" for s in plan.skipped]
