@@ -24,6 +24,8 @@ app = typer.Typer(
 )
 out = Console(soft_wrap=True)
 err = Console(stderr=True, soft_wrap=True)
+if not out.is_terminal:  # pipes and CI logs: wide enough that tables keep one row per line
+    out.width = max(out.width, 160)
 
 
 def _fail(exc: SwapperError) -> None:

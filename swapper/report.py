@@ -83,7 +83,8 @@ def _file_entry(path) -> dict | None:
     return {"path": str(p), "sha256": sha256_file(p), "bytes": p.stat().st_size}
 
 
-def build_report(*, original, candidate_path=None, check=None, swap=None, val_path=None, calib_path=None) -> dict:
+def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
+                 calib_path=None) -> dict:
     """Assemble the report.json payload (see the module docstring for its schema)."""
     from .stats import json_safe
 
@@ -252,7 +253,7 @@ def render_html(payload: dict) -> str:
             iv = c.get("interval") or {}
             extra.append(["accuracy delta", f"{c['delta_pp']:+.2f} pp"])
             if iv:
-                extra.append([f"95% interval ({iv.get('method')})", f"[{iv.get('lo'):+.2f}, {iv.get('hi'):+.2f}] pp"])
+                extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
             extra.append(["McNemar exact p", f"{_num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
         if c.get("agreement") is not None:
             extra.append(["top-1 agreement", _pct(c["agreement"])])

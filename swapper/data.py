@@ -1,0 +1,504 @@
+"""Calibration and validation data: open, validate against the model, batch.
+
+Transformation: a ``.npz`` archive, a folder of ``.npy`` files (or one ``.npy``
+for a single-input model) becomes a :class:`Dataset` whose arrays line up with
+the model's inputs, then a stream of :class:`Batch` feeds in the model's dtypes.
+
+Arrays are never unpickled (``allow_pickle=False`` and an explicit header check
+first). Folder ``.npy`` files and uncompressed ``.npz`` members (``np.savez``'s
+default) are memory-mapped, so sets larger than memory stream; compressed
+members are read whole. Dtype casts happen per batch, so validating or batching
+never holds more than one chunk/batch in memory.
+"""
+from __future__ import annotations
+
+import logging
+import math
+import struct
+import zipfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import onnx
+from numpy.lib import format as npy_format
+
+from .errors import BadDataError, BadModelError
+
+logger = logging.getLogger(__name__)
+
+RESERVED = ("labels", "targets")
+# Validation scans arrays in chunks of about this many bytes so a memmap is never read whole.
+CHUNK_BYTES = 32 * 2**20
+_ZIP_LOCAL_MAGIC = b"PK\x03\x04"
+_ZIP_EMPTY_MAGIC = b"PK\x05\x06"
+_NPY_MAGIC = b"\x93NUMPY"
+
+
+@dataclass
+class InputSpec:
+    """A model input: name, numpy dtype, shape (int, or None/str for dynamic; None = unknown rank)."""
+
+    name: str
+    dtype: np.dtype
+    shape: tuple | None
+
+
+def input_specs(model: onnx.ModelProto) -> list[InputSpec]:
+    """The graph inputs a caller must feed (initializers excluded), in graph order."""
+    initializers = {t.name for t in model.graph.initializer}
+    specs = []
+    for vi in model.graph.input:
+        if vi.name in initializers:
+            continue
+        kind = vi.type.WhichOneof("value")
+        if kind != "tensor_type":
+            raise BadModelError(f"input {vi.name!r} is a {kind}, only tensor inputs can be fed")
+        tt = vi.type.tensor_type
+        if tt.elem_type == onnx.TensorProto.UNDEFINED:
+            raise BadModelError(f"input {vi.name!r} has no element type")
+        dtype = np.dtype(onnx.helper.tensor_dtype_to_np_dtype(tt.elem_type))
+        shape = None
+        if tt.HasField("shape"):
+            shape = tuple(
+                d.dim_value if d.HasField("dim_value") else (d.dim_param or None) for d in tt.shape.dim
+            )
+        specs.append(InputSpec(vi.name, dtype, shape))
+    return specs
+
+
+def fixed_batch_size(specs: list[InputSpec]) -> int | None:
+    """The static batch dimension the model insists on (e.g. 1), or None when it is dynamic."""
+    sizes = {s.shape[0] for s in specs if s.shape and isinstance(s.shape[0], int) and s.shape[0] > 0}
+    return min(sizes) if sizes else None
+
+
+class CycledArray:
+    """A read-only, lazy array whose sample i is ``base[i % len(base)]``; nothing is copied up front.
+
+    Supports what :func:`batches` and :func:`subset` need: ``len``, ``shape``,
+    ``dtype`` and indexing on the first axis by int, slice or integer array.
+    """
+
+    def __init__(self, base: np.ndarray, length: int):
+        if len(base) == 0:
+            raise ValueError("cannot cycle an empty array")
+        self.base = base
+        self.length = int(length)
+
+    shape = property(lambda self: (self.length,) + tuple(self.base.shape[1:]))
+    dtype = property(lambda self: self.base.dtype)
+    ndim = property(lambda self: self.base.ndim)
+    size = property(lambda self: math.prod(self.shape))
+    nbytes = property(lambda self: self.size * self.dtype.itemsize)
+
+    def __len__(self) -> int:
+        return self.length
+
+    def __repr__(self) -> str:
+        return f"CycledArray(shape={self.shape}, dtype={self.dtype}, base_samples={len(self.base)})"
+
+    def __getitem__(self, key):
+        if isinstance(key, tuple):
+            head, rest = (key[0], key[1:]) if key else (slice(None), ())
+            part = self[head]
+            return part[rest] if isinstance(head, (int, np.integer)) else part[(slice(None),) + rest]
+        m = len(self.base)
+        if isinstance(key, (int, np.integer)):
+            i = int(key) + self.length if key < 0 else int(key)
+            if not 0 <= i < self.length:
+                raise IndexError(f"index {key} out of range for {self.length} samples")
+            return self.base[i % m]
+        if isinstance(key, slice):
+            start, stop, step = key.indices(self.length)
+            if step != 1:
+                return self.base[np.arange(start, stop, step) % m]
+            pieces, pos = [], start
+            while pos < stop:  # contiguous runs of base, at most one copy of the requested rows
+                b = pos % m
+                take = min(m - b, stop - pos)
+                pieces.append(self.base[b : b + take])
+                pos += take
+            if len(pieces) == 1:
+                return pieces[0]
+            return np.concatenate(pieces) if pieces else self.base[:0]
+        idx = np.asarray(key)
+        if idx.dtype.kind not in "iu":
+            raise IndexError("CycledArray supports int, slice and integer-array indices only")
+        idx = np.where(idx < 0, idx + self.length, idx)
+        if idx.size and (idx.min() < 0 or idx.max() >= self.length):
+            raise IndexError(f"index out of range for {self.length} samples")
+        return self.base[idx % m]
+
+    def __array__(self, dtype=None, copy=None):
+        logger.debug("materialising a CycledArray of %d samples", self.length)
+        out = self[:]
+        return out.astype(dtype) if dtype is not None else np.array(out)
+
+
+@dataclass
+class Dataset:
+    """Validated samples. ``arrays`` keyed by model input name; may be memmaps or CycledArrays."""
+
+    path: Path
+    arrays: dict[str, np.ndarray]
+    labels: np.ndarray | None
+    targets: np.ndarray | None
+    n: int
+    dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
+
+
+@dataclass
+class Batch:
+    """Samples ``start:stop``: contiguous feeds in the model's dtypes, plus their labels/targets."""
+
+    start: int
+    stop: int
+    feeds: dict[str, np.ndarray]
+    labels: np.ndarray | None
+    targets: np.ndarray | None
+
+
+# ---------------------------------------------------------------- reading files
+
+
+def _read_header(fh, where: str, path: Path) -> tuple[tuple, bool, np.dtype]:
+    """Parse an .npy header (shape, fortran_order, dtype); refuse object dtypes before any data is read."""
+    try:
+        version = npy_format.read_magic(fh)
+        reader = npy_format.read_array_header_1_0 if version == (1, 0) else npy_format.read_array_header_2_0
+        shape, fortran, dtype = reader(fh)
+    except (ValueError, EOFError, OSError, SyntaxError) as exc:
+        raise BadDataError(f"{where} is not a valid .npy array ({_first_line(exc)})", path) from None
+    if dtype.hasobject:
+        raise BadDataError(f"{where} contains pickled objects (refused)", path)
+    return tuple(shape), bool(fortran), dtype
+
+
+def _check_size(shape, dtype, where: str, available: int, path: Path) -> None:
+    if math.prod(shape) == 0:
+        raise BadDataError(f"{where} is empty (shape {tuple(shape)})", path)
+    if math.prod(shape) * dtype.itemsize > available:
+        raise BadDataError(f"{where} is truncated (shorter than its header says)", path)
+
+
+def _open_npy(path: Path, where: str) -> np.ndarray:
+    """Memory-map one .npy file read-only after checking its header."""
+    try:
+        with open(path, "rb") as fh:
+            shape, _, dtype = _read_header(fh, where, path)
+            offset = fh.tell()
+        _check_size(shape, dtype, where, path.stat().st_size - offset, path)
+        return np.load(path, mmap_mode="r", allow_pickle=False)
+    except OSError as exc:
+        raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
+    except ValueError as exc:
+        raise BadDataError(f"{where} cannot be loaded ({_first_line(exc)})", path) from None
+
+
+def _zip_member(path: Path, zf: zipfile.ZipFile, info: zipfile.ZipInfo, where: str) -> np.ndarray:
+    """Memory-map a stored (uncompressed) .npz member; read a compressed one into memory."""
+    stored = info.compress_type == zipfile.ZIP_STORED and not info.flag_bits & 0x1
+    if stored:
+        with open(path, "rb") as fh:
+            fh.seek(info.header_offset)
+            local = fh.read(30)
+            if len(local) < 30 or local[:4] != _ZIP_LOCAL_MAGIC:
+                raise BadDataError(f"not a valid .npz (corrupt entry for {info.filename!r})", path)
+            name_len, extra_len = struct.unpack("<HH", local[26:30])
+            start = info.header_offset + 30 + name_len + extra_len
+            fh.seek(start)
+            shape, fortran, dtype = _read_header(fh, where, path)
+            offset = fh.tell()
+        _check_size(shape, dtype, where, min(start + info.file_size, path.stat().st_size) - offset, path)
+        return np.memmap(path, dtype=dtype, mode="r", offset=offset, shape=shape, order="F" if fortran else "C")
+    with zf.open(info) as fh:
+        shape, fortran, dtype = _read_header(fh, where, path)
+        count = math.prod(shape)
+        raw = fh.read(count * dtype.itemsize)
+    _check_size(shape, dtype, where, len(raw), path)
+    return np.frombuffer(raw, dtype=dtype, count=count).reshape(shape, order="F" if fortran else "C")
+
+
+def _read_npz(path: Path) -> dict[str, np.ndarray]:
+    try:
+        with open(path, "rb") as fh:
+            magic = fh.read(6)
+    except OSError as exc:
+        raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
+    if not magic:
+        raise BadDataError("file is empty", path)
+    if magic == _NPY_MAGIC:
+        return {path.stem: _open_npy(path, f"array {path.stem!r}")}
+    if magic[:4] not in (_ZIP_LOCAL_MAGIC, _ZIP_EMPTY_MAGIC):
+        raise BadDataError("not an .npz archive or .npy file (expected a zip of .npy arrays)", path)
+    arrays: dict[str, np.ndarray] = {}
+    try:
+        with zipfile.ZipFile(path) as zf:
+            for info in sorted(zf.infolist(), key=lambda i: i.filename):
+                if info.is_dir():
+                    continue
+                if not info.filename.endswith(".npy"):
+                    raise BadDataError(f"unexpected member {info.filename!r} in the archive (not an .npy)", path)
+                key = info.filename[: -len(".npy")]
+                arrays[key] = _zip_member(path, zf, info, f"array {key!r}")
+    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, OSError, ValueError, struct.error) as exc:
+        raise BadDataError(f"not a valid .npz (truncated or corrupt zip: {_first_line(exc)})", path) from None
+    if not arrays:
+        raise BadDataError("the archive holds no arrays", path)
+    return arrays
+
+
+def _read_folder(path: Path) -> dict[str, np.ndarray]:
+    files = sorted(p for p in path.glob("*.npy") if p.is_file() and not p.name.startswith("."))
+    if not files:
+        raise BadDataError("folder contains no .npy files", path)
+    return {f.stem: _open_npy(f, f"array {f.stem!r}") for f in files}
+
+
+# ---------------------------------------------------------------- validation
+
+
+def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path) -> tuple[dict, dict]:
+    """Map model inputs to arrays; also return input name -> the array's name in the file (for messages)."""
+    data = {k: v for k, v in raw.items() if k not in RESERVED}
+    wanted = [s.name for s in specs]
+    if len(specs) == 1 and len(data) == 1:
+        # One input, one array: the array's name does not matter.
+        key, arr = next(iter(data.items()))
+        if key != wanted[0]:
+            logger.debug("%s: using array %r for the only model input %r", path, key, wanted[0])
+        return {wanted[0]: arr}, {wanted[0]: key}
+    missing = sorted(set(wanted) - set(data))
+    unexpected = sorted(set(data) - set(wanted))
+    if missing or unexpected:
+        parts = []
+        if missing:
+            parts.append(f"missing arrays for model inputs {missing}")
+        if unexpected:
+            parts.append(f"unexpected arrays {unexpected}")
+        raise BadDataError("; ".join(parts) + f" (model inputs: {', '.join(wanted)})", path)
+    return {name: data[name] for name in wanted}, {name: name for name in wanted}
+
+
+def _target_dtype(name: str, arr: np.ndarray, spec: InputSpec, path: Path) -> np.dtype:
+    """Decide the per-batch cast: float<-float/int, int<-int, bool<-bool; anything else is refused."""
+    src, dst = arr.dtype, spec.dtype
+    if src == dst:
+        return dst
+    ok = (dst.kind == "f" and src.kind in "fiu") or (dst.kind in "iu" and src.kind in "iu")
+    if not ok:
+        raise BadDataError(f"array {name!r} has dtype {src}, but model input {spec.name!r} takes {dst}", path)
+    logger.debug("%s: array %r is %s, cast to %s per batch", path, name, src, dst)
+    return dst
+
+
+def _fmt_shape(shape) -> str:
+    return "(" + ", ".join("?" if d is None else str(d) for d in shape) + ")"
+
+
+def _check_shapes(arrays: dict, specs: list[InputSpec], names: dict[str, str], path: Path) -> None:
+    symbols: dict[str, tuple[str, int]] = {}
+    for spec in specs:
+        arr, name = arrays[spec.name], names[spec.name]
+        if spec.shape is None:
+            continue
+        if arr.ndim != len(spec.shape) or arr.ndim == 0:
+            raise BadDataError(
+                f"array {name!r} has shape {tuple(arr.shape)}, model input expects {_fmt_shape(spec.shape)}"
+                " (first axis = samples)",
+                path,
+            )
+        for axis in range(1, arr.ndim):  # axis 0 is the sample axis, whatever the model says
+            want, got = spec.shape[axis], arr.shape[axis]
+            if isinstance(want, int) and want > 0 and want != got:
+                raise BadDataError(
+                    f"array {name!r} has shape {tuple(arr.shape)}, model input expects"
+                    f" {_fmt_shape(spec.shape)} (axis {axis}: {got} != {want})",
+                    path,
+                )
+            if isinstance(want, str):  # the same symbolic dim must have one size across inputs
+                seen = symbols.setdefault(want, (name, got))
+                if seen[1] != got:
+                    raise BadDataError(
+                        f"dimension {want!r} is {seen[1]} in array {seen[0]!r} but {got} in array {name!r}", path
+                    )
+
+
+def _chunks(arr, rows_hint: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
+    row_bytes = max(1, math.prod(arr.shape[1:]) * arr.dtype.itemsize)
+    step = rows_hint or max(1, CHUNK_BYTES // row_bytes)
+    for start in range(0, len(arr), step):
+        yield start, np.asarray(arr[start : start + step])
+
+
+def _scan_values(name: str, arr: np.ndarray, target: np.dtype, path: Path) -> None:
+    """Reject NaN/Inf (first bad sample) and values the per-batch cast would not keep."""
+    src = arr.dtype
+    float_limit = None
+    if target.kind == "f" and src.kind == "f" and target.itemsize < src.itemsize:
+        float_limit = np.finfo(target).max  # e.g. float64 -> float32 would turn 1e300 into inf
+    int_range = None
+    if target.kind in "iu" and src.kind in "iu" and not np.can_cast(src, target, "safe"):
+        int_range = (np.iinfo(target).min, np.iinfo(target).max)
+    if src.kind != "f" and int_range is None:
+        return
+    for start, chunk in _chunks(arr):
+        flat = chunk.reshape(len(chunk), -1)
+        if src.kind == "f":
+            bad = ~np.isfinite(flat).all(axis=1)
+            if bad.any():
+                i = int(np.argmax(bad))
+                what = "NaN" if np.isnan(flat[i]).any() else "Inf"
+                raise BadDataError(f"array {name!r} contains {what} at sample {start + i}", path)
+            if float_limit is not None:
+                over = (np.abs(flat) > float_limit).any(axis=1)
+                if over.any():
+                    raise BadDataError(
+                        f"array {name!r} sample {start + int(np.argmax(over))} overflows {target}", path
+                    )
+        elif int_range is not None and flat.size:
+            over = ((flat < int_range[0]) | (flat > int_range[1])).any(axis=1)
+            if over.any():
+                raise BadDataError(f"array {name!r} sample {start + int(np.argmax(over))} does not fit {target}", path)
+
+
+def _check_labels(labels: np.ndarray, n: int, path: Path) -> None:
+    if labels.dtype.kind not in "iu":
+        raise BadDataError(f"'labels' must be integer class ids, got dtype {labels.dtype}", path)
+    if labels.ndim != 1 or len(labels) != n:
+        raise BadDataError(f"'labels' must be 1-D with {n} entries, got shape {tuple(labels.shape)}", path)
+    if labels.dtype.kind == "i":
+        for start, chunk in _chunks(labels, rows_hint=1 << 20):
+            neg = chunk < 0
+            if neg.any():
+                raise BadDataError(f"'labels' has a negative class id at sample {start + int(np.argmax(neg))}", path)
+
+
+def _check_targets(targets: np.ndarray, n: int, path: Path) -> None:
+    if targets.dtype.kind not in "fiu":
+        raise BadDataError(f"'targets' must be numeric, got dtype {targets.dtype}", path)
+    if targets.ndim == 0 or len(targets) != n:
+        raise BadDataError(f"'targets' must have {n} rows, got shape {tuple(targets.shape)}", path)
+    _scan_values("targets", targets, targets.dtype, path)
+
+
+def load_dataset(
+    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False, check_values: bool = True
+) -> Dataset:
+    """Open an .npz / .npy-folder data set and validate it against the model inputs ``specs``.
+
+    ``require_labels`` demands a ``labels`` array. ``check_values=False`` skips the
+    NaN/Inf/overflow scan (one streaming pass over the data). Raises BadDataError.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise BadDataError("no such file or folder", path)
+    if not specs:
+        raise BadDataError("the model has no inputs to feed", path)
+    raw = _read_folder(path) if path.is_dir() else _read_npz(path)
+    labels, targets = raw.get("labels"), raw.get("targets")
+    if require_labels and labels is None:
+        raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
+    arrays, names = _match_names(raw, specs, path)
+    dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in specs}
+    for name, arr in arrays.items():
+        if arr.ndim == 0:
+            raise BadDataError(f"array {names[name]!r} is a scalar; expected a first axis of samples", path)
+    counts = {names[name]: arr.shape[0] for name, arr in arrays.items()}
+    for extra_name, extra in (("labels", labels), ("targets", targets)):
+        if extra is not None and extra.ndim:
+            counts[extra_name] = extra.shape[0]
+    if len(set(counts.values())) > 1:
+        listed = ", ".join(f"{k}={v}" for k, v in counts.items())
+        raise BadDataError(f"sample counts differ across arrays ({listed})", path)
+    _check_shapes(arrays, specs, names, path)
+    n = next(iter(counts.values()))
+    if n < 1:
+        raise BadDataError("no samples", path)
+    if labels is not None:
+        _check_labels(labels, n, path)
+    if targets is not None:
+        _check_targets(targets, n, path)
+    if check_values:
+        for s in specs:
+            _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
+    logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
+    return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes)
+
+
+# ---------------------------------------------------------------- iteration and views
+
+
+def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterator[Batch]:
+    """Yield samples in order, ``batch_size`` at a time (the last may be short), up to ``limit``.
+
+    Each batch owns fresh contiguous copies in the model's dtypes; nothing else is held.
+    """
+    if batch_size < 1:
+        raise ValueError("batch_size must be >= 1")
+    total = ds.n if limit is None else max(0, min(int(limit), ds.n))
+    for start in range(0, total, batch_size):
+        stop = min(start + batch_size, total)
+        feeds = {
+            name: np.array(arr[start:stop], dtype=ds.dtypes.get(name, arr.dtype), order="C", copy=True)
+            for name, arr in ds.arrays.items()
+        }
+        labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
+        targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
+        yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
+
+
+def _cycle(arr, length: int):
+    if arr is None:
+        return None
+    if isinstance(arr, CycledArray) and len(arr) % len(arr.base) == 0:
+        arr = arr.base  # whole cycles: index the original directly instead of nesting views
+    return CycledArray(arr, length)
+
+
+def replicate(ds: Dataset, times: int) -> Dataset:
+    """A lazy view of ``ds`` repeated ``times`` times (sample i = original i % n); no data is copied."""
+    if times < 1:
+        raise ValueError("times must be >= 1")
+    n = ds.n * int(times)
+    return Dataset(
+        path=ds.path,
+        arrays={k: _cycle(v, n) for k, v in ds.arrays.items()},
+        labels=_cycle(ds.labels, n),
+        targets=_cycle(ds.targets, n),
+        n=n,
+        dtypes=dict(ds.dtypes),
+    )
+
+
+def _head(arr, n: int):
+    if arr is None:
+        return None
+    return CycledArray(arr.base, n) if isinstance(arr, CycledArray) else arr[:n]
+
+
+def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
+    """The first ``n`` samples (a view), or with ``seed`` a random ``n`` kept in original order (a copy)."""
+    if n < 1:
+        raise ValueError("n must be >= 1")
+    n = min(int(n), ds.n)
+    if seed is None:
+        take = lambda a: _head(a, n)  # noqa: E731 - views, nothing copied
+    else:
+        idx = np.sort(np.random.default_rng(seed).choice(ds.n, size=n, replace=False))
+        take = lambda a: None if a is None else np.asarray(a[idx])  # noqa: E731
+    return Dataset(
+        path=ds.path,
+        arrays={k: take(v) for k, v in ds.arrays.items()},
+        labels=take(ds.labels),
+        targets=take(ds.targets),
+        n=n,
+        dtypes=dict(ds.dtypes),
+    )
+
+
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__

@@ -1,0 +1,378 @@
+"""Compare a candidate model with the original on a validation set, then judge it.
+
+Transformation: (original model, candidate model, dataset) -> :class:`Comparison`
+(accuracy, paired test, interval, agreement, output errors, signature check),
+and (Comparison, :class:`Budget`) -> :class:`Verdict` (approve / reject, with
+the rule in plain words and the figure that decided).
+
+Both models run batch by batch in onnxruntime on the CPU with fixed threading.
+Only per-sample vectors (predictions, correctness) are kept; output tensors are
+folded into streaming accumulators and dropped.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+import numpy as np
+import onnx
+from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
+
+from . import stats
+from .data import Dataset, batches
+from .errors import BadDataError, BadModelError, UsageError
+from .progress import Silent
+from .record import open_session
+
+logger = logging.getLogger(__name__)
+
+# onnxruntime raises its own exception classes (not RuntimeError subclasses).
+_ORT_ERRORS = tuple(
+    getattr(_ort_state, name)
+    for name in ("Fail", "InvalidArgument", "InvalidGraph", "InvalidProtobuf", "NoSuchFile",
+                 "NotImplemented", "RuntimeException")
+    if hasattr(_ort_state, name)
+)
+TOPK_MIN_CLASSES = 10  # top-5 is only informative with clearly more than 5 classes (common practice, no source)
+
+
+@dataclass
+class Comparison:
+    """Everything measured when running both models on the same samples.
+
+    Accuracies and agreement are fractions in [0, 1]; ``delta_pp`` and the
+    interval are in percentage points (candidate − original).
+    """
+
+    n: int
+    task: str  # "classification" (labels), "agreement" (class scores, no labels), "regression" (targets), "outputs"
+    top1_original: float | None = None
+    top1_candidate: float | None = None
+    top5_original: float | None = None
+    top5_candidate: float | None = None
+    delta_pp: float | None = None
+    n01: int | None = None  # original wrong, candidate right
+    n10: int | None = None  # original right, candidate wrong
+    mcnemar_p: float | None = None
+    interval: stats.Interval | None = None
+    agreement: float | None = None  # fraction of samples with the same top-1 class
+    regression: dict | None = None  # {"original": {mae, rmse}, "candidate": {mae, rmse}}
+    output_errors: dict = field(default_factory=dict)  # output name -> {max_abs, rmse, cosine, sqnr_db}
+    has_nonfinite: bool = False
+    signature_changed: bool = False
+    signature_reason: str = ""
+    notes: list[str] = field(default_factory=list)
+    # per-sample vectors (kept for reports / re-analysis; not written by to_dict)
+    pred_original: np.ndarray | None = field(default=None, repr=False)
+    pred_candidate: np.ndarray | None = field(default=None, repr=False)
+    correct_original: np.ndarray | None = field(default=None, repr=False)
+    correct_candidate: np.ndarray | None = field(default=None, repr=False)
+
+    @property
+    def has_labels(self) -> bool:
+        return self.task == "classification"
+
+    def to_dict(self) -> dict:
+        """Plain-JSON view: no numpy types; non-finite floats become null with a note."""
+        notes = list(self.notes)
+        raw = {
+            "n": self.n,
+            "task": self.task,
+            "top1_original": self.top1_original,
+            "top1_candidate": self.top1_candidate,
+            "top5_original": self.top5_original,
+            "top5_candidate": self.top5_candidate,
+            "delta_pp": self.delta_pp,
+            "n01": self.n01,
+            "n10": self.n10,
+            "mcnemar_p": self.mcnemar_p,
+            "interval": self.interval.to_dict() if self.interval else None,
+            "agreement": self.agreement,
+            "regression": self.regression,
+            "output_errors": self.output_errors,
+            "has_nonfinite": self.has_nonfinite,
+            "signature_changed": self.signature_changed,
+            "signature_reason": self.signature_reason,
+        }
+        out = stats.json_safe(raw, notes, "comparison")
+        out["notes"] = notes
+        return out
+
+
+# --------------------------------------------------------------------------- running
+
+
+def _session(model: onnx.ModelProto | bytes, role: str, threads: int):
+    if not isinstance(model, (bytes, onnx.ModelProto)):
+        raise TypeError(f"{role} model must be an onnx.ModelProto or serialized bytes, got {type(model).__name__}")
+    try:
+        return open_session(model, threads=threads)
+    except _ORT_ERRORS as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise BadModelError(f"onnxruntime cannot load the {role} model: {first}") from None
+
+
+def _signature(sess) -> list[tuple[str, str, list]]:
+    return [(o.name, o.type, list(o.shape)) for o in sess.get_outputs()]
+
+
+def signature_difference(sess_orig, sess_cand) -> str:
+    """Empty string when outputs agree in count, names, dtypes and static dims; else the first difference."""
+    a, b = _signature(sess_orig), _signature(sess_cand)
+    if len(a) != len(b):
+        return f"the original has {len(a)} outputs, the candidate {len(b)}"
+    for (na, ta, sa), (nb, tb, sb) in zip(a, b):
+        if na != nb:
+            return f"output name {na!r} became {nb!r}"
+        if ta != tb:
+            return f"output {na!r} dtype {ta} became {tb}"
+        if len(sa) != len(sb):
+            return f"output {na!r} rank {len(sa)} became {len(sb)}"
+        # only dims static (int) on both sides are compared; symbolic dims (batch) may be renamed
+        for i, (da, db) in enumerate(zip(sa, sb)):
+            if isinstance(da, int) and isinstance(db, int) and da != db:
+                return f"output {na!r} dim {i} was {da}, is {db}"
+    return ""
+
+
+def _run(sess, feeds: dict[str, np.ndarray], role: str) -> list[np.ndarray]:
+    names = [i.name for i in sess.get_inputs()]
+    missing = [n for n in names if n not in feeds]
+    if missing:
+        raise BadDataError(f"the dataset has no array for {role} model input {missing[0]!r}")
+    try:
+        return sess.run(None, {n: feeds[n] for n in names})
+    except _ORT_ERRORS as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise BadDataError(f"onnxruntime failed running the {role} model on the data: {first}") from None
+
+
+def _as_scores(out: np.ndarray) -> np.ndarray | None:
+    """(batch, classes) view of a class-score output, or None if it is not one."""
+    if out.ndim < 2 or not np.issubdtype(out.dtype, np.floating):
+        return None
+    if int(np.prod(out.shape[1:-1], dtype=np.int64)) != 1:
+        return None  # e.g. (batch, H, W, C): per-pixel scores, not one class per sample
+    return out.reshape(out.shape[0], out.shape[-1])
+
+
+def _nonfinite(outputs: list[np.ndarray]) -> bool:
+    return any(np.issubdtype(o.dtype, np.floating) and not np.isfinite(o).all() for o in outputs)
+
+
+def compare(
+    original: onnx.ModelProto | bytes,
+    candidate: onnx.ModelProto | bytes,
+    dataset: Dataset,
+    *,
+    batch_size: int = 64,
+    threads: int = 1,
+    progress=None,
+    level: float = 0.95,
+    interval_method: str = "newcombe",
+    seed: int = 0,
+) -> Comparison:
+    """Run both models over ``dataset`` (a ``swapper.data.Dataset``) and measure the difference.
+
+    ``progress`` is a reporter with ``task(description, total)`` (see
+    ``swapper.progress``); silent by default. ``level``/``interval_method``/``seed``
+    configure the accuracy-difference interval (see ``stats.paired_accuracy_difference``).
+    """
+    if batch_size < 1:
+        raise UsageError(f"batch size must be >= 1, got {batch_size}")
+    sess_o = _session(original, "original", threads)
+    sess_c = _session(candidate, "candidate", threads)
+    reason = signature_difference(sess_o, sess_c)
+    out_names = [o.name for o in sess_o.get_outputs()]
+    labels_given = dataset.labels is not None
+    targets_given = dataset.targets is not None
+
+    acc = {name: stats.OutputErrorAccumulator() for name in out_names}
+    reg = {"original": stats.RegressionAccumulator(), "candidate": stats.RegressionAccumulator()}
+    preds: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
+    top5: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
+    labels_seen: list[np.ndarray] = []
+    task = None
+    n = 0
+    has_nonfinite = False
+    orig_nonfinite = False
+    reporter = progress or Silent()
+
+    with reporter.task("comparing models", dataset.n) as advance:
+        for batch in batches(dataset, batch_size):
+            outs_o = _run(sess_o, batch.feeds, "original")
+            outs_c = _run(sess_c, batch.feeds, "candidate")
+            has_nonfinite |= _nonfinite(outs_c)
+            orig_nonfinite |= _nonfinite(outs_o)
+            for name, ro, rc in zip(out_names, outs_o, outs_c):
+                if ro.shape != rc.shape:
+                    if not reason:
+                        reason = f"output {name!r} has shape {ro.shape} in the original, {rc.shape} in the candidate"
+                    acc.pop(name, None)
+                elif name in acc:
+                    acc[name].update(ro, rc)
+            so, sc = _as_scores(outs_o[0]), _as_scores(outs_c[0])
+            if task is None:
+                task = _pick_task(so, outs_o[0], labels_given, targets_given)
+            if task in ("classification", "agreement") and sc is not None and so is not None \
+                    and sc.shape == so.shape:
+                preds["original"].append(np.argmax(so, axis=1))
+                preds["candidate"].append(np.argmax(sc, axis=1))
+                if task == "classification":
+                    lab = np.asarray(batch.labels).reshape(-1).astype(np.int64)
+                    if lab.size != so.shape[0] or lab.min() < 0 or lab.max() >= so.shape[1]:
+                        raise BadDataError(
+                            f"labels of samples {batch.start}..{batch.stop - 1} do not fit "
+                            f"{so.shape[1]} classes (need integers in [0, {so.shape[1]}))")
+                    labels_seen.append(lab)
+                    if so.shape[1] >= TOPK_MIN_CLASSES:
+                        top5["original"].append(stats.topk_correct(so, lab, 5))
+                        top5["candidate"].append(stats.topk_correct(sc, lab, 5))
+            elif task == "regression":
+                reg["original"].update(outs_o[0], batch.targets)
+                reg["candidate"].update(outs_c[0], batch.targets)
+            n += batch.stop - batch.start
+            advance(batch.stop - batch.start)
+
+    if n == 0:
+        raise BadDataError("the validation set has no samples")
+    comp = Comparison(n=n, task=task or "outputs", has_nonfinite=bool(has_nonfinite),
+                      signature_changed=bool(reason), signature_reason=reason)
+    comp.output_errors = {name: a.compute() for name, a in sorted(acc.items())}
+    if orig_nonfinite:
+        comp.notes.append("the original model itself produced NaN/Inf on some samples")
+    if task == "regression":
+        comp.regression = {role: r.compute() for role, r in sorted(reg.items())}
+    if preds["original"] and sum(p.size for p in preds["original"]) == n:
+        _fill_classification(comp, preds, labels_seen, top5, level, interval_method, seed)
+    elif task in ("classification", "agreement"):
+        comp.notes.append("class scores changed shape in the candidate; no accuracy computed")
+    logger.info("compared %d samples (%s): %s", n, comp.task,
+                f"delta {comp.delta_pp:+.2f} pp" if comp.delta_pp is not None else "no labels")
+    return comp
+
+
+def _pick_task(scores: np.ndarray | None, first: np.ndarray, labels: bool, targets: bool) -> str:
+    if labels:
+        if scores is None or scores.shape[1] < 2:
+            raise BadDataError(
+                f"labels were given but the first output has shape {tuple(first.shape)}; "
+                "need class scores shaped (batch, classes)")
+        return "classification"
+    if targets:
+        return "regression"
+    if scores is not None and scores.shape[1] > 1:
+        return "agreement"
+    return "outputs"
+
+
+def _fill_classification(comp: Comparison, preds, labels_seen, top5, level, method, seed) -> None:
+    po = np.concatenate(preds["original"])
+    pc = np.concatenate(preds["candidate"])
+    comp.pred_original, comp.pred_candidate = po, pc
+    comp.agreement = stats.accuracy(po == pc)
+    if comp.task != "classification":
+        return
+    labels = np.concatenate(labels_seen)
+    co, cc = po == labels, pc == labels
+    comp.correct_original, comp.correct_candidate = co, cc
+    comp.top1_original, comp.top1_candidate = stats.accuracy(co), stats.accuracy(cc)
+    if top5["original"]:
+        comp.top5_original = stats.accuracy(np.concatenate(top5["original"]))
+        comp.top5_candidate = stats.accuracy(np.concatenate(top5["candidate"]))
+    comp.n01, comp.n10 = stats.discordant_counts(co, cc)
+    comp.mcnemar_p = stats.mcnemar_exact(comp.n01, comp.n10)
+    comp.interval = stats.paired_accuracy_difference(co, cc, level=level, method=method, seed=seed)
+    comp.delta_pp = comp.interval.delta
+
+
+# --------------------------------------------------------------------------- verdict
+
+
+@dataclass
+class Budget:
+    """How much accuracy the candidate may lose.
+
+    ``max_drop_pp``: allowed top-1 drop in percentage points. ``strict``: judge
+    the upper end of the interval for the drop instead of the measured drop.
+    ``min_agreement``: minimum top-1 agreement with the original (fraction).
+    """
+
+    max_drop_pp: float = 1.0
+    strict: bool = False
+    min_agreement: float | None = None
+
+    def __post_init__(self) -> None:
+        if not np.isfinite(self.max_drop_pp) or self.max_drop_pp < 0:
+            raise UsageError(f"the accuracy budget must be a number >= 0 (points), got {self.max_drop_pp}")
+        if self.min_agreement is not None and not 0.0 <= self.min_agreement <= 1.0:
+            raise UsageError(f"minimum agreement must be a fraction in [0, 1], got {self.min_agreement}")
+
+
+@dataclass
+class Verdict:
+    approved: bool
+    reason: str  # the figure that decided
+    rule: str  # the rule applied, in plain words with its numbers
+
+    def to_dict(self) -> dict:
+        return {"approved": bool(self.approved), "reason": self.reason, "rule": self.rule}
+
+
+def _pct(x: float) -> str:
+    return f"{100.0 * x:.2f}%"
+
+
+def decide(comparison: Comparison, budget: Budget) -> Verdict:
+    """Approve or reject ``comparison`` against ``budget``; see the module docstring for the rules."""
+    c, b = comparison, budget
+    if c.has_nonfinite:
+        return Verdict(False, "the candidate produced NaN or Inf outputs",
+                       "always reject a candidate whose outputs contain NaN or Inf")
+    if c.signature_changed:
+        return Verdict(False, f"output signature changed: {c.signature_reason}",
+                       "always reject a candidate whose output names, dtypes or static shapes differ")
+
+    if c.task == "classification" and c.top1_original is not None:
+        drop = -float(c.delta_pp)
+        if b.strict:
+            upper = -float(c.interval.lo)
+            level = f"{100 * c.interval.level:g}%"
+            rule = (f"approve when the upper end of the {level} {c.interval.method} interval for the "
+                    f"top-1 drop is at most {b.max_drop_pp:.2f} pp (non-inferiority)")
+            ok = upper <= b.max_drop_pp
+            reason = (f"drop upper bound {upper:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp "
+                      f"(measured drop {drop:.2f} pp)")
+        else:
+            rule = f"approve when the measured top-1 drop (original - candidate) is at most {b.max_drop_pp:.2f} pp"
+            ok = drop <= b.max_drop_pp
+            reason = f"top-1 drop {drop:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp budget"
+        if b.min_agreement is not None and c.agreement is not None:
+            rule += f", and top-1 agreement with the original is at least {_pct(b.min_agreement)}"
+            if ok and c.agreement < b.min_agreement:
+                ok = False
+                reason = f"top-1 agreement {_pct(c.agreement)} < {_pct(b.min_agreement)}"
+        return Verdict(ok, reason, rule)
+
+    if c.agreement is not None:
+        if b.min_agreement is not None:
+            need = b.min_agreement
+            rule = f"no labels: approve when top-1 agreement with the original is at least {_pct(need)}"
+        else:
+            need = 1.0 - b.max_drop_pp / 100.0
+            rule = (f"no labels: approve when top-1 agreement with the original is at least {_pct(need)} "
+                    f"(100% minus the {b.max_drop_pp:.2f} pp budget)")
+        ok = c.agreement >= need
+        return Verdict(ok, f"top-1 agreement {_pct(c.agreement)} {'>=' if ok else '<'} {_pct(need)}", rule)
+
+    if c.regression is not None:
+        # budget read as an allowed relative RMSE increase in percent (common practice, no source)
+        r_o, r_c = c.regression["original"]["rmse"], c.regression["candidate"]["rmse"]
+        limit = r_o * (1.0 + b.max_drop_pp / 100.0)
+        rule = (f"targets, no labels: approve when the candidate's RMSE is at most the original's "
+                f"plus {b.max_drop_pp:.2f}%")
+        ok = r_c <= limit
+        return Verdict(ok, f"candidate RMSE {r_c:.6g} {'<=' if ok else '>'} {limit:.6g} "
+                           f"(original {r_o:.6g})", rule)
+
+    return Verdict(False, "nothing to judge: no labels or targets, and the first output is not class scores",
+                   "reject when no accuracy, agreement or regression figure can be measured")

@@ -1,0 +1,409 @@
+"""Fit the per-channel surrogate y ≈ a·g(b·x + c) + d to recorded site data.
+
+For one channel with samples (x, y), optional weights w (normalised to sum 1)
+and a cheap function g, we minimise the weighted mean squared error
+
+    mse(a, b, c, d) = Σ w·(y − a·g(b·x + c) − d)²
+
+over the *free* parameters; held ones keep their initial value exactly.
+
+- (a, d) enter linearly: for fixed (b, c) they are a weighted least-squares
+  regression of y on [z, 1] with z = g(b·x + c) (:func:`outer_fit`).
+- (b, c) are found by variable projection (Golub & Pereyra 1973): a, d are
+  eliminated in closed form and ``scipy.optimize.least_squares`` minimises the
+  projected residual over (b, c) alone, with Kaufman's (1975) Jacobian when
+  the derivative ``dg`` is given, finite differences otherwise. (b, c) are
+  optimised in standardised form β = b·std(x), γ = c + b·mean(x), so the
+  search is scale-free, and are boxed to |β|, |γ| ≤ 1e3 (or twice the start)
+  so degenerate channels cannot run off to huge values.
+- ``positive_a``: a is moved inside g later, so it must stay > 0. Once d is
+  eliminated the mse is a convex quadratic in a, so the constrained optimum
+  is the unconstrained one clamped to a small positive floor; we clamp (and
+  log nothing: the fit simply reports the clamped a and its true mse).
+- Never worse than the start: the initial parameters, the closed-form refit
+  of (a, d) at the initial (b, c), and the projected optimum are all scored
+  on the given data and the lowest mse wins (the start on ties).
+
+Degenerate data never yields NaN: when z (or x) is constant to within 1e-6 of
+its RMS, the slope a is not identified and keeps its start value while d
+absorbs the mean (d = mean(y) − a·mean(z)); when x is constant, (b, c) keep
+their start values. z also counts as constant when its spread is below 1e-12
+of g's own output scale (a start with b ≈ 0 would otherwise ask for a ≈ 1e100).
+Nothing is clipped silently besides the documented box on
+(β, γ) and the positive floor on a.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from typing import Callable
+
+import numpy as np
+from scipy.optimize import least_squares
+
+from .errors import BadDataError
+from .observe import ChannelObserver
+from .plan import NEUTRAL, PARAMS
+
+logger = logging.getLogger(__name__)
+
+Func = Callable[[np.ndarray], np.ndarray]
+
+BOX = 1e3  # bound on |β| and |γ| (units of g's argument), widened to 2x the start if needed
+DEGENERATE = 1e-6  # std below this fraction of the RMS = constant (float32 resolves ~1e-7)
+Z_FLOOR = 1e-12  # z with std below this fraction of g's own output scale = constant too
+A_FLOOR = 1e-6  # with positive_a: a >= A_FLOOR x the natural slope scale sqrt(var y / var z)
+MAX_NFEV = 200  # per channel; converged fits take far fewer
+_BAD = 1e100  # residual returned where g overflows, so the optimiser backs off
+
+
+@dataclass
+class ChannelFit:
+    """Fitted parameters of one channel and the weighted mse before and after."""
+
+    a: float
+    b: float
+    c: float
+    d: float
+    mse_init: float
+    mse: float
+    note: str = ""  # "init kept", "outer only", "constant x", "projected" ...
+
+
+@dataclass
+class SiteFit:
+    """Per-channel results of one site, arrays of shape (channels,)."""
+
+    a: np.ndarray
+    b: np.ndarray
+    c: np.ndarray
+    d: np.ndarray
+    mse_init: np.ndarray
+    mse: np.ndarray
+    notes: list[str] = field(default_factory=list)
+
+    def params(self) -> dict[str, np.ndarray]:
+        return {p: getattr(self, p) for p in PARAMS}
+
+
+def _check_free(free: str) -> None:
+    if not set(free) <= set(PARAMS):
+        raise ValueError(f"free must be made of the letters {''.join(PARAMS)}, got {free!r}")
+
+
+def _weights(weights, n: int) -> np.ndarray:
+    """Weights normalised to sum 1 (uniform when None)."""
+    if weights is None:
+        return np.full(n, 1.0 / n)
+    w = np.asarray(weights, dtype=np.float64).reshape(-1)
+    if w.shape[0] != n or not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
+        raise ValueError("weights must be n finite non-negative numbers with a positive sum")
+    return w / w.sum()
+
+
+def _apply(g: Func, u: np.ndarray) -> np.ndarray:
+    with np.errstate(all="ignore"):  # overflow is caught by the callers' finiteness checks
+        return np.asarray(g(u), dtype=np.float64)
+
+
+def _g_scale(g: Func) -> float:
+    """Spread of g's output over arguments in [-4, 4], the unit z is measured against."""
+    s = float(np.std(_apply(g, np.linspace(-4.0, 4.0, 257))))
+    return s if np.isfinite(s) and s > 0 else 1.0
+
+
+def _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0):
+    """Weighted LS of y on [z, 1] over the free ones of (a, d). Returns (a, d, a_solved).
+
+    z counts as constant (a not identified) when its spread is below 1e-6 of
+    its RMS or below ``z_floor``: a tiny-but-varying z (e.g. b ≈ 0) would
+    otherwise need an astronomically large a.
+    """
+    if not fa:
+        d = float(w @ (y - a0 * z)) if fd else d0
+        return a0, d, False
+    if fd:
+        mz, my = float(w @ z), float(w @ y)
+        dz, dy = z - mz, y - my
+        szz, syy = float(w @ (dz * dz)), float(w @ (dy * dy))
+        szy = float(w @ (dz * dy))
+    else:  # regression through the held offset d0
+        mz = my = 0.0
+        szz, syy = float(w @ (z * z)), float(w @ ((y - d0) ** 2))
+        szy = float(w @ (z * (y - d0)))
+    rms2 = float(w @ (z * z))
+    solved = szz > (DEGENERATE**2) * rms2 and szz > z_floor**2 and szz > 0
+    a = szy / szz if solved else a0
+    if positive_a:
+        floor = A_FLOOR * (np.sqrt(syy / szz) if solved and syy > 0 else abs(a0))
+        if a < floor:
+            a, solved = floor, False  # active bound: a no longer moves with (b, c)
+    d = my - a * mz if fd else d0
+    return float(a), float(d), solved
+
+
+def outer_fit(
+    z: np.ndarray,
+    y: np.ndarray,
+    *,
+    init: tuple[float, float] = (1.0, 0.0),
+    free: str = "ad",
+    weights: np.ndarray | None = None,
+    positive_a: bool = False,
+) -> tuple[float, float]:
+    """Closed-form (a, d) minimising Σ w·(y − a·z − d)² over the free ones of a, d.
+
+    ``init`` = (a0, d0) are the values of held parameters and the fallback
+    slope when z is constant (then d = mean(y) − a0·mean(z)). With
+    ``positive_a`` the slope is clamped to a small positive floor (exact
+    constrained optimum, the problem being a convex quadratic in a).
+    """
+    z = np.asarray(z, dtype=np.float64).reshape(-1)
+    y = np.asarray(y, dtype=np.float64).reshape(-1)
+    if z.shape != y.shape or z.size == 0:
+        raise ValueError(f"z and y must be non-empty and the same size, got {z.size}, {y.size}")
+    a0, d0 = float(init[0]), float(init[1])
+    a, d, _ = _outer(z, y, _weights(weights, z.size), a0, d0, "a" in free, "d" in free, positive_a)
+    return a, d
+
+
+class _Projected:
+    """The variable-projection problem of one channel over its free (b, c)."""
+
+    def __init__(self, x, y, w, g, dg, init, free, positive_a, mx, sx, z_floor):
+        self.y, self.w, self.sw, self.g, self.dg = y, w, np.sqrt(w), g, dg
+        self.z_floor = z_floor
+        self.a0, self.b0, self.c0, self.d0 = init
+        self.fa, self.fd, self.positive_a = "a" in free, "d" in free, positive_a
+        b0, c0 = self.b0, self.c0
+        # standardised parameters: the argument u = b·x + c written as p·v + offset
+        if "b" in free and "c" in free:
+            xs = (x - mx) / sx
+            self.p0 = np.array([b0 * sx, c0 + b0 * mx])
+            self.dirs = [xs, np.ones_like(x)]
+            self._u = lambda p: p[0] * xs + p[1]
+            self.to_bc = lambda p: (p[0] / sx, p[1] - p[0] * mx / sx)
+        elif "b" in free:
+            xr = x / sx
+            self.p0 = np.array([b0 * sx])
+            self.dirs = [xr]
+            self._u = lambda p: p[0] * xr + c0
+            self.to_bc = lambda p: (p[0] / sx, c0)
+        else:
+            self.p0 = np.array([c0 + b0 * mx])
+            self.dirs = [np.ones_like(x)]
+            self._u = lambda p: b0 * x + (p[0] - b0 * mx)
+            self.to_bc = lambda p: (b0, p[0] - b0 * mx)
+        # second start: the initial shape applied to the standardised data (the
+        # start values are fitted for roughly unit-scale inputs, see starting_params)
+        self.p1 = {2: np.array([b0, c0]), 1: np.array([b0])}.get(self.p0.size) if "b" in free else None
+        if self.p1 is not None and np.allclose(self.p1, self.p0, rtol=0.5, atol=0.5):
+            self.p1 = None  # data already about unit scale: one start is enough
+        half = np.maximum(BOX, 2 * np.abs(self.p0))
+        if self.p1 is not None:
+            half = np.maximum(half, 2 * np.abs(self.p1))
+        self.bounds = (-half, half)
+        self._key, self._val = None, None
+        self.nfev = 0
+
+    def _eval(self, p):
+        key = p.tobytes()
+        if key != self._key:
+            u = self._u(p)
+            z = _apply(self.g, u)
+            if not np.isfinite(z).all():
+                self._val = (u, None, 0.0, 0.0, False)
+            else:
+                a, d, solved = _outer(
+                    z, self.y, self.w, self.a0, self.d0, self.fa, self.fd, self.positive_a, self.z_floor
+                )
+                self._val = (u, z, a, d, solved)
+            self._key = key
+        return self._val
+
+    def residual(self, p):
+        u, z, a, d, _ = self._eval(p)
+        if z is None:
+            return np.full(u.size, _BAD)
+        return self.sw * (self.y - a * z - d)
+
+    def jacobian(self, p):
+        # Kaufman's simplification of the Golub–Pereyra derivative: −P⊥·∂(Φα)/∂p,
+        # with P⊥ projecting out the columns of Φ = [z, 1] that were solved for
+        u, z, a, d, solved = self._eval(p)
+        J = np.zeros((u.size, len(self.dirs)))
+        if z is None:
+            return J
+        gp = _apply(self.dg, u)
+        if not np.isfinite(gp).all():
+            return J
+        for i, v in enumerate(self.dirs):
+            J[:, i] = -self.sw * a * gp * v
+        cols = ([self.sw * z] if solved else []) + ([self.sw] if self.fd else [])
+        if cols:
+            Q = np.linalg.qr(np.stack(cols, axis=1))[0]
+            J -= Q @ (Q.T @ J)
+        return J
+
+    def solve(self) -> list[tuple[float, float]]:
+        """Optimised (b, c) from each start."""
+        found = []
+        for p0 in [self.p0] + ([self.p1] if self.p1 is not None else []):
+            res = least_squares(
+                self.residual,
+                p0,
+                jac=self.jacobian if self.dg is not None else "2-point",
+                bounds=self.bounds,
+                method="trf",
+                max_nfev=MAX_NFEV,
+            )
+            found.append(self.to_bc(res.x))
+            self.nfev += res.nfev
+        return found
+
+
+def fit_channel(
+    x: np.ndarray,
+    y: np.ndarray,
+    g: Func,
+    *,
+    init: tuple[float, float, float, float] = (1.0, 1.0, 0.0, 0.0),
+    free: str = "abcd",
+    positive_a: bool = False,
+    dg: Func | None = None,
+    weights: np.ndarray | None = None,
+) -> ChannelFit:
+    """Fit y ≈ a·g(b·x + c) + d on one channel; never worse than ``init`` on this data.
+
+    ``free`` lists the parameters the fit may move (others keep their ``init``
+    value exactly). ``dg`` is g's derivative (faster, exact Jacobian
+    direction); without it the Jacobian is finite-differenced. ``weights`` are
+    per-sample, non-negative. Raises ``ValueError`` on empty or non-finite
+    data, or a non-positive initial a with ``positive_a``.
+    """
+    _check_free(free)
+    x = np.asarray(x, dtype=np.float64).reshape(-1)
+    y = np.asarray(y, dtype=np.float64).reshape(-1)
+    if x.shape != y.shape or x.size == 0:
+        raise ValueError(f"x and y must be non-empty and the same size, got {x.size}, {y.size}")
+    if not (np.isfinite(x).all() and np.isfinite(y).all()):
+        raise ValueError("x and y must be finite")
+    a0, b0, c0, d0 = (float(v) for v in init)
+    if not np.isfinite([a0, b0, c0, d0]).all():
+        raise ValueError(f"initial parameters must be finite, got {init}")
+    if positive_a and a0 <= 0:
+        raise ValueError(f"positive_a needs a positive initial a, got {a0}")
+    w = _weights(weights, x.size)
+    fa, fd = "a" in free, "d" in free
+    z_floor = Z_FLOOR * _g_scale(g)
+
+    def score(a, b, c, d):
+        z = _apply(g, b * x + c)
+        m = float(w @ (y - a * z - d) ** 2)
+        return m if np.isfinite(m) else np.inf
+
+    mse_init = score(a0, b0, c0, d0)
+    best = (mse_init, (a0, b0, c0, d0), "init kept")
+
+    def consider(b, c, note):
+        nonlocal best
+        z = _apply(g, b * x + c)
+        if not np.isfinite(z).all():
+            return
+        a, d, _ = _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor)
+        m = score(a, b, c, d)
+        if m < best[0]:
+            best = (m, (a, b, c, d), note)
+
+    if fa or fd:
+        consider(b0, c0, "outer only")
+    if "b" in free or "c" in free:
+        mx = float(w @ x)
+        sx = float(np.sqrt(w @ (x - mx) ** 2))
+        if sx > DEGENERATE * np.hypot(mx, sx):
+            problem = _Projected(x, y, w, g, dg, (a0, b0, c0, d0), free, positive_a, mx, sx, z_floor)
+            for b, c in problem.solve():
+                consider(float(b), float(c), f"projected ({problem.nfev} evaluations)")
+        elif best[2] == "init kept":
+            best = (best[0], best[1], "constant x, init kept")
+        else:
+            best = (best[0], best[1], "constant x, outer only")
+    m, (a, b, c, d), note = best
+    return ChannelFit(a=a, b=b, c=c, d=d, mse_init=mse_init, mse=m, note=note)
+
+
+def fit_channels(
+    observer: ChannelObserver,
+    g: Func,
+    *,
+    init: dict[str, np.ndarray] | None = None,
+    free: str = "abcd",
+    positive_a: bool = False,
+    dg: Func | None = None,
+) -> SiteFit:
+    """Fit every channel of ``observer`` on its reservoir sample.
+
+    ``init`` maps "a".."d" to per-channel arrays (or scalars); missing keys
+    start neutral (a = b = 1, c = d = 0). Raises ``BadDataError`` when the
+    observer has seen no data.
+    """
+    _check_free(free)
+    C = observer.channels
+    if observer.n == 0:
+        raise BadDataError("no calibration data reached this site; nothing to fit")
+    init = init or {}
+    start = {}
+    for p in PARAMS:
+        v = np.asarray(init.get(p, NEUTRAL[p]), dtype=np.float64).reshape(-1)
+        if v.size not in (1, C):
+            raise ValueError(f"init[{p!r}] must be a scalar or have {C} values, got {v.size}")
+        start[p] = np.broadcast_to(v, (C,))
+    out = {k: np.empty(C) for k in ("a", "b", "c", "d", "mse_init", "mse")}
+    notes = []
+    for ch in range(C):
+        x, y = observer.samples(ch)
+        r = fit_channel(
+            x, y, g,
+            init=tuple(float(start[p][ch]) for p in PARAMS),
+            free=free, positive_a=positive_a, dg=dg,
+        )
+        for k in out:
+            out[k][ch] = getattr(r, k)
+        notes.append(r.note)
+    logger.debug(
+        "fitted %d channels on %d samples each: mse %.3g -> %.3g",
+        C, observer.held, float(out["mse_init"].mean()), float(out["mse"].mean()),
+    )
+    return SiteFit(notes=notes, **out)
+
+
+def starting_params(
+    f: Func,
+    g: Func,
+    *,
+    free: str = "abcd",
+    positive_a: bool = False,
+    dg: Func | None = None,
+    lo: float = -6.0,
+    hi: float = 6.0,
+    n: int = 2001,
+) -> tuple[float, float, float, float]:
+    """Best (a, b, c, d) for a·g(b·x + c) + d ≈ f(x) before any calibration data.
+
+    Least squares over ``n`` grid points on [lo, hi] weighted by the standard
+    normal density (activations of normalised layers are roughly standard
+    normal: common practice, no source), starting from identity (1, 1, 0, 0).
+    Never worse than identity under that weighting.
+    """
+    if not (hi > lo and n >= 2):
+        raise ValueError(f"need lo < hi and n >= 2, got {lo}, {hi}, {n}")
+    x = np.linspace(lo, hi, n)
+    y = _apply(f, x)
+    if not np.isfinite(y).all():
+        raise ValueError("f is not finite on the grid")
+    r = fit_channel(
+        x, y, g, init=(1.0, 1.0, 0.0, 0.0), free=free, positive_a=positive_a, dg=dg,
+        weights=np.exp(-0.5 * x * x),
+    )
+    logger.debug("starting params %s: weighted mse %.3g -> %.3g", r.note, r.mse_init, r.mse)
+    return r.a, r.b, r.c, r.d

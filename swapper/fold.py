@@ -1,0 +1,377 @@
+"""Where each surrogate parameter can live without adding nodes.
+
+Transformation: a swapped site computes ``y = a·g(b·x + c) + d`` per channel.
+``b`` and ``c`` are an affine map of ``x``, so they fold exactly into the
+layer that produces ``x`` (scale its output channel, shift its bias);
+``a`` and ``d`` are an affine map of ``y``, so they fold exactly into linear
+layers that read ``y`` (scale their input-channel weights, add ``W·d`` to
+their bias). This module decides, per site and fold policy, which of these
+folds are exact (``decide_placement``) and holds the numpy arithmetic of each
+fold; :mod:`swapper.rewrite` applies them to a graph copy.
+
+Weight layouts (ONNX operator spec): Conv W is [M, C/group, k...];
+ConvTranspose W is [C, M/group, k...]; Gemm computes alpha·A'·B' + beta·C with
+B' = B or Bᵀ (transB); MatMul B is [..., K, N]; BatchNormalization computes
+scale·(x − mean)/sqrt(var + eps) + B.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+import onnx
+
+from .errors import UsageError
+from .functions import Function
+from .graph import GraphIndex, attr
+from .plan import FOLD_POLICIES, PARAMS
+from .sites import Site
+
+logger = logging.getLogger(__name__)
+
+_DEFAULT = ("", "ai.onnx")
+
+
+# ------------------------------------------------------------------ analysis
+@dataclass
+class ProducerFold:
+    """The layer that produces a site's input, and how b, c fold into it."""
+
+    kind: str  # "conv" | "convtranspose" | "gemm" | "matmul_add" | "matmul" | "batchnorm"
+    node: onnx.NodeProto  # the layer holding the weights
+    add: onnx.NodeProto | None  # the bias Add of a MatMul+Add
+    can_shift: bool  # c folds without a node
+    reason: str = ""  # why c cannot fold, when it cannot
+
+
+@dataclass
+class ConsumerFold:
+    """One linear layer reading a site's output, and how a, d fold into it."""
+
+    kind: str  # "conv" | "convtranspose" | "gemm" | "matmul"
+    node: onnx.NodeProto
+    add: onnx.NodeProto | None  # the bias Add after a MatMul (d folds there)
+    d_exact: bool
+    d_approx: bool  # a zero-padded Conv: d folds into its bias, inexact at borders
+
+
+def _is(node: onnx.NodeProto, op: str) -> bool:
+    return node.op_type == op and node.domain in _DEFAULT
+
+
+def _float_const(index: GraphIndex, name: str) -> np.ndarray | None:
+    if not name:
+        return None
+    value = index.const(name)
+    if value is None or value.dtype.kind != "f":
+        return None
+    return value
+
+
+def _rank(index: GraphIndex, site: Site) -> int | None:
+    if site.shape is not None:
+        return len(site.shape)
+    shape = index.shape(site.input) or index.shape(site.output)
+    return len(shape) if shape is not None else None
+
+
+def per_channel(site: Site) -> bool:
+    """True when the site has one parameter set per channel (not one scalar set)."""
+    return site.channel_axis is not None and site.channels is not None and site.channels > 1
+
+
+def _axis_is(index: GraphIndex, site: Site, want: str) -> bool:
+    """Is the site's channel axis the layer's channel axis ("first" = axis 1, "last")?"""
+    axis, rank = site.channel_axis, _rank(index, site)
+    if want == "last" and axis == -1:
+        return True
+    if rank is None:
+        return want == "first" and axis == 1
+    axis = axis + rank if axis < 0 else axis
+    return axis == (1 if want == "first" else rank - 1)
+
+
+def _check_layer(index: GraphIndex, site: Site, axis: str, width: int) -> str:
+    """Empty string if per-channel parameters line up with a layer's ``width`` channels."""
+    if not per_channel(site):
+        return ""
+    if not _axis_is(index, site, axis):
+        return f"channel axis {site.channel_axis} is not the layer's {axis} axis"
+    if width != site.channels:
+        return f"layer has {width} channels, site has {site.channels}"
+    return ""
+
+
+def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, str]:
+    """The exact b/c fold target for ``site``, or None and the reason there is none."""
+    x = site.input
+    node = index.producer.get(x)
+    if node is None:
+        return None, f"{x!r} is a graph input"
+    if index.is_graph_output(x):
+        return None, f"{x!r} is also a graph output"
+    inside = set(site.nodes)
+    if any(u.name not in inside for u in index.users(x)):
+        return None, f"{x!r} also feeds nodes outside the site"
+    if any(out and out != x for out in node.output):
+        return None, f"{node.op_type} {node.name!r} has more than one output"
+    if _is(node, "Conv") or _is(node, "ConvTranspose"):
+        w = _float_const(index, node.input[1])
+        has_bias = len(node.input) > 2 and node.input[2]
+        if w is None or (has_bias and _float_const(index, node.input[2]) is None):
+            return None, f"{node.op_type} {node.name!r} weights are not constant"
+        width = w.shape[0] if _is(node, "Conv") else w.shape[1] * int(attr(node, "group", 1))
+        why = _check_layer(index, site, "first", width)
+        kind = "conv" if _is(node, "Conv") else "convtranspose"
+        return (None, why) if why else (ProducerFold(kind, node, None, True), "")
+    if _is(node, "Gemm"):
+        w = _float_const(index, node.input[1])
+        has_c = len(node.input) > 2 and node.input[2]
+        if w is None or (has_c and _float_const(index, node.input[2]) is None):
+            return None, f"Gemm {node.name!r} weights are not constant"
+        width = w.shape[0] if attr(node, "transB", 0) else w.shape[1]
+        why = _check_layer(index, site, "last", width)
+        if why:
+            return None, why
+        beta = float(attr(node, "beta", 1.0))
+        return ProducerFold("gemm", node, None, beta != 0.0, "Gemm beta is 0" if beta == 0.0 else ""), ""
+    if _is(node, "BatchNormalization"):
+        if int(attr(node, "training_mode", 0)):
+            return None, f"BatchNormalization {node.name!r} is in training mode"
+        scale, shift = _float_const(index, node.input[1]), _float_const(index, node.input[2])
+        if scale is None or shift is None:
+            return None, f"BatchNormalization {node.name!r} scale/bias are not constant"
+        why = _check_layer(index, site, "first", scale.shape[0])
+        return (None, why) if why else (ProducerFold("batchnorm", node, None, True), "")
+    if _is(node, "Add"):
+        return _matmul_add(index, site, node)
+    if _is(node, "MatMul"):
+        w = _float_const(index, node.input[1])
+        if w is None or w.ndim < 2:
+            return None, f"MatMul {node.name!r} has no constant 2-D weight"
+        why = _check_layer(index, site, "last", w.shape[-1])
+        if why:
+            return None, why
+        return ProducerFold("matmul", node, None, False, "MatMul has no bias; c needs an Add node"), ""
+    return None, f"producer {node.op_type} {node.name!r} is not a foldable linear layer"
+
+
+def _matmul_add(index: GraphIndex, site: Site, add: onnx.NodeProto) -> tuple[ProducerFold | None, str]:
+    """An Add that is a MatMul's bias: one operand a MatMul output used only here, the other constant."""
+    for slot in (0, 1):
+        mm = index.producer.get(add.input[slot])
+        bias = _float_const(index, add.input[1 - slot])
+        if mm is None or not _is(mm, "MatMul") or bias is None:
+            continue
+        if index.is_graph_output(mm.output[0]) or len(index.users(mm.output[0])) != 1:
+            return None, f"MatMul {mm.name!r} output is used outside its bias Add"
+        w = _float_const(index, mm.input[1])
+        if w is None or w.ndim < 2:
+            return None, f"MatMul {mm.name!r} has no constant 2-D weight"
+        if bias.ndim and bias.shape[-1] not in (1, w.shape[-1]):
+            return None, f"bias of Add {add.name!r} does not run along the MatMul output axis"
+        why = _check_layer(index, site, "last", w.shape[-1])
+        return (None, why) if why else (ProducerFold("matmul_add", mm, add, True), "")
+    return None, f"Add {add.name!r} is not a MatMul followed by a constant bias"
+
+
+def consumer_folds(index: GraphIndex, site: Site) -> tuple[list[ConsumerFold] | None, str]:
+    """Every linear layer reading ``site.output`` (all of them must fold), or None and why not."""
+    y = site.output
+    if index.is_graph_output(y):
+        return None, f"{y!r} is a graph output"
+    users = sorted(index.users(y), key=lambda n: index.node_position.get(n.name, 0))
+    if not users:
+        return None, f"{y!r} has no consumers"
+    folds, seen = [], set()
+    for node in users:
+        if node.name in seen:
+            continue
+        seen.add(node.name)
+        fold, why = _consumer(index, site, node)
+        if fold is None:
+            return None, why
+        folds.append(fold)
+    return folds, ""
+
+
+def _consumer(index: GraphIndex, site: Site, node: onnx.NodeProto) -> tuple[ConsumerFold | None, str]:
+    y = site.output
+    slots = [i for i, t in enumerate(node.input) if t == y]
+    label = f"consumer {node.op_type} {node.name!r}"
+    if not any(_is(node, op) for op in ("Conv", "ConvTranspose", "Gemm", "MatMul")):
+        return None, f"{label} is not a linear layer with constant weights"
+    if slots != [0]:
+        return None, f"{label} does not read {y!r} as its data input only"
+    w = _float_const(index, node.input[1]) if len(node.input) > 1 else None
+    bias_name = node.input[2] if len(node.input) > 2 else ""
+    if w is None or (bias_name and _float_const(index, bias_name) is None):
+        return None, f"{label} has non-constant weights"
+    if _is(node, "Conv"):
+        width = w.shape[1] * int(attr(node, "group", 1))
+        why = _check_layer(index, site, "first", width)
+        pads = attr(node, "pads", None) or []
+        auto_pad = attr(node, "auto_pad", b"NOTSET")
+        auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
+        unpadded = all(p == 0 for p in pads) and auto_pad in ("NOTSET", "VALID")
+        return (None, f"{label}: {why}") if why else (ConsumerFold("conv", node, None, unpadded, not unpadded), "")
+    if _is(node, "ConvTranspose"):
+        why = _check_layer(index, site, "first", w.shape[0])
+        # A constant input overlaps unevenly at the output borders: d never folds exactly.
+        return (None, f"{label}: {why}") if why else (ConsumerFold("convtranspose", node, None, False, False), "")
+    if _is(node, "Gemm"):
+        if int(attr(node, "transA", 0)) and per_channel(site):
+            return None, f"{label} has transA=1"
+        width = w.shape[1] if attr(node, "transB", 0) else w.shape[0]
+        why = _check_layer(index, site, "last", width)
+        beta = float(attr(node, "beta", 1.0))
+        return (None, f"{label}: {why}") if why else (ConsumerFold("gemm", node, None, beta != 0.0, False), "")
+    if _is(node, "MatMul"):
+        why = _check_layer(index, site, "last", w.shape[-2] if w.ndim >= 2 else w.shape[0])
+        if why:
+            return None, f"{label}: {why}"
+        add = _bias_add(index, node) if w.ndim == 2 else None
+        return ConsumerFold("matmul", node, add, add is not None, False), ""
+    raise AssertionError(node.op_type)  # unreachable: op types checked above
+
+
+def _bias_add(index: GraphIndex, mm: onnx.NodeProto) -> onnx.NodeProto | None:
+    """The constant-bias Add that alone reads a MatMul's output, if any."""
+    out = mm.output[0]
+    users = index.users(out)
+    if index.is_graph_output(out) or len(users) != 1 or not _is(users[0], "Add"):
+        return None
+    add = users[0]
+    if list(add.input).count(out) != 1:
+        return None
+    other = add.input[1] if add.input[0] == out else add.input[0]
+    return add if _float_const(index, other) is not None else None
+
+
+# ----------------------------------------------------------------- placement
+def decide_placement(index: GraphIndex, site: Site, target: Function, policy: str) -> tuple[dict[str, str], list[str]]:
+    """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes)."""
+    if policy not in FOLD_POLICIES:
+        raise UsageError(f"unknown fold policy {policy!r}; valid: {', '.join(FOLD_POLICIES)}")
+    if policy == "off":
+        return {p: "nodes" for p in PARAMS}, ["fold off: every parameter is an explicit Mul/Add node"]
+    rest = "nodes" if policy == "nodes" else "held"
+    placement: dict[str, str] = {}
+    notes: list[str] = []
+
+    prod, why = producer_fold(index, site)
+    if prod is not None:
+        placement["b"] = "producer"
+        placement["c"] = "producer" if prod.can_shift else rest
+        if not prod.can_shift:
+            notes.append(f"c {rest}: {prod.reason}")
+    else:
+        placement["b"] = placement["c"] = rest
+        notes.append(f"b, c {rest}: {why}")
+
+    cons, cons_why = consumer_folds(index, site)
+    if target.homogeneous and placement["b"] in ("producer", "nodes"):
+        placement["a"] = "inner"
+        notes.append(f"a moved inside {target.name} (needs a > 0)")
+    elif cons is not None:
+        placement["a"] = "consumers"
+    else:
+        placement["a"] = rest
+        notes.append(f"a {rest}: {cons_why}")
+
+    if cons is not None and all(f.d_exact for f in cons):
+        placement["d"] = "consumers"
+    elif policy == "approximate" and cons is not None and all(f.d_exact or f.d_approx for f in cons):
+        placement["d"] = "approx"
+        padded = ", ".join(f.node.name for f in cons if not f.d_exact)
+        notes.append(f"d approx: folded into zero-padded Conv bias ({padded}); inexact at the borders")
+    else:
+        placement["d"] = rest
+        if cons is None:
+            notes.append(f"d {rest}: {cons_why}")
+        else:
+            blocked = ", ".join(f"{f.node.op_type} {f.node.name!r}" for f in cons if not f.d_exact)
+            notes.append(f"d {rest}: no exact bias fold into {blocked}")
+    logger.debug("site %s placement %s", site.id, placement)
+    return {p: placement[p] for p in PARAMS}, notes
+
+
+# ----------------------------------------------------------- fold arithmetic
+def _along(v: np.ndarray, axis: int, ndim: int) -> np.ndarray:
+    """``v`` (length C or 1) shaped to broadcast along ``axis`` of an ``ndim`` array."""
+    shape = [1] * ndim
+    shape[axis] = v.size
+    return v.reshape(shape)
+
+
+def _grouped(v: np.ndarray, out_ch: int, in_per_group: int, group: int) -> np.ndarray:
+    """[out_ch, in_per_group]: v of the input channel each (output row, in-group column) reads."""
+    if v.size == 1:
+        return np.full((out_ch, in_per_group), float(v[0]))
+    g = np.arange(out_ch) // (out_ch // group)
+    return v[g[:, None] * in_per_group + np.arange(in_per_group)[None, :]]
+
+
+def scale_shift_output(kind: str, node: onnx.NodeProto, w: np.ndarray, bias: np.ndarray | None,
+                       b: np.ndarray, c: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """New (weight, bias) so the layer outputs b·out + c per output channel.
+
+    For batchnorm ``w`` is its scale; for gemm ``bias`` is C (divided by beta
+    on the way in, so beta·C_new = b·beta·C + c); a missing bias counts as 0.
+    """
+    width = None  # channel-first layers: the bias must have one entry per output channel
+    if kind == "conv":
+        w, width = w * _along(b, 0, w.ndim), w.shape[0]
+    elif kind == "convtranspose":
+        group, m = int(attr(node, "group", 1)), w.shape[1]
+        grouped = w.reshape((group, w.shape[0] // group) + w.shape[1:])
+        bg = np.broadcast_to(b, (group * m,)).reshape(group, 1, m, *([1] * (w.ndim - 2)))
+        w, width = (grouped * bg).reshape(w.shape), group * m
+    elif kind == "gemm":
+        w = w * (_along(b, 0, 2) if attr(node, "transB", 0) else _along(b, 1, 2))
+    elif kind in ("matmul", "matmul_add"):
+        w = w * _along(b, w.ndim - 1, w.ndim)
+    elif kind == "batchnorm":
+        w, width = w * b, w.shape[0]
+    else:
+        raise ValueError(f"unknown producer kind {kind}")
+    base = np.zeros(1) if bias is None else bias
+    if width is not None:
+        base = np.broadcast_to(base, (width,))
+    if kind == "gemm":
+        return w, base * b + c / float(attr(node, "beta", 1.0))
+    return w, base * b + c
+
+
+def input_scale(kind: str, node: onnx.NodeProto, w: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """New weight of a consumer layer that reads a·y instead of y (per input channel)."""
+    if kind == "conv":
+        group = int(attr(node, "group", 1))
+        s = _grouped(a, w.shape[0], w.shape[1], group)
+        return w * s.reshape(s.shape + (1,) * (w.ndim - 2))
+    if kind == "convtranspose":
+        return w * _along(a, 0, w.ndim)
+    if kind == "gemm":
+        return w * (_along(a, 1, 2) if attr(node, "transB", 0) else _along(a, 0, 2))
+    if kind == "matmul":
+        return w * (a if w.ndim == 1 else _along(a, w.ndim - 2, w.ndim))
+    raise ValueError(f"unknown consumer kind {kind}")
+
+
+def input_offset(kind: str, node: onnx.NodeProto, w: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """What a consumer adds to its output when it reads y + d: W·d per output channel.
+
+    Conv: Σ_{j,k} W[o, j, k]·d[group(o)·C/g + j]; Gemm: alpha·(d·B'); MatMul: d·B.
+    """
+    if kind == "conv":
+        group = int(attr(node, "group", 1))
+        dd = _grouped(d, w.shape[0], w.shape[1], group)
+        return (w.reshape(w.shape[0], w.shape[1], -1).sum(axis=2) * dd).sum(axis=1)
+    if kind == "gemm":
+        bt = w.T if attr(node, "transB", 0) else w
+        row = np.broadcast_to(d, (bt.shape[0],))
+        return float(attr(node, "alpha", 1.0)) * (row @ bt)
+    if kind == "matmul":
+        return np.broadcast_to(d, (w.shape[0],)) @ w
+    raise ValueError(f"no offset fold for consumer kind {kind}")

@@ -1,0 +1,229 @@
+"""Wall-clock latency of ONNX models on onnxruntime's CPU provider, plus size summaries.
+
+The transformation: a set of named models and one input feed become one
+:class:`LatencyStats` per model (median, 10th and 90th percentile of per-call
+latency in milliseconds). Every model gets its own CPU session with the same
+thread settings; after a warm-up, the timed calls are *interleaved*: each
+repeat runs every model once, in the same (sorted-name) order, so a burst of
+machine noise lands on all models alike instead of on whichever model
+happened to be timed during it.
+
+``model_summary`` and ``serialized_size`` describe what a rewrite did to the
+graph (node and op counts, weight bytes, file size) without running it.
+"""
+from __future__ import annotations
+
+import logging
+import math
+import time
+from collections import Counter
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+
+from .errors import BadDataError, BadModelError, UsageError
+
+logger = logging.getLogger(__name__)
+
+# Names a user can give for onnxruntime's graph optimisation levels.
+OPTIMIZATION_LEVELS: dict[str, ort.GraphOptimizationLevel] = {
+    "all": ort.GraphOptimizationLevel.ORT_ENABLE_ALL,
+    "extended": ort.GraphOptimizationLevel.ORT_ENABLE_EXTENDED,
+    "basic": ort.GraphOptimizationLevel.ORT_ENABLE_BASIC,
+    "disabled": ort.GraphOptimizationLevel.ORT_DISABLE_ALL,
+}
+
+
+@dataclass(frozen=True)
+class LatencyStats:
+    """Per-call latency of one model, in milliseconds, over ``runs`` timed calls."""
+
+    median_ms: float
+    p10_ms: float
+    p90_ms: float
+    runs: int
+
+
+def stats_from_ns(durations_ns: list[int] | np.ndarray) -> LatencyStats:
+    """Summarise per-call durations (nanoseconds) as median / p10 / p90 milliseconds.
+
+    Percentiles use numpy's default linear interpolation, so p10 <= median <= p90.
+    """
+    ms = np.asarray(durations_ns, dtype=np.float64) / 1e6
+    if ms.size == 0:
+        raise UsageError("no timed runs to summarise (repeats must be >= 1)")
+    p10, median, p90 = np.percentile(ms, [10.0, 50.0, 90.0])
+    return LatencyStats(median_ms=float(median), p10_ms=float(p10), p90_ms=float(p90), runs=int(ms.size))
+
+
+def time_interleaved(
+    runners: Mapping[str, Callable[[], object]],
+    *,
+    warmup: int = 5,
+    repeats: int = 30,
+    clock: Callable[[], int] = time.perf_counter_ns,
+) -> dict[str, list[int]]:
+    """Call each runner ``warmup`` times, then ``repeats`` rounds of one call per runner.
+
+    Runners are visited in sorted-name order in every round (round-robin), and
+    each call is timed alone with ``clock`` (integer nanoseconds). Returns the
+    timed durations per runner name, in call order. ``clock`` is injectable so
+    the schedule can be checked without real timing.
+    """
+    if warmup < 0:
+        raise UsageError(f"warmup must be >= 0, got {warmup}")
+    if repeats < 1:
+        raise UsageError(f"repeats must be >= 1, got {repeats}")
+    names = sorted(runners)
+    # Warm-up is per model and untimed: first calls pay for allocation and caches.
+    for name in names:
+        for _ in range(warmup):
+            runners[name]()
+    durations: dict[str, list[int]] = {name: [] for name in names}
+    for _ in range(repeats):
+        for name in names:
+            start = clock()
+            runners[name]()
+            durations[name].append(clock() - start)
+    return durations
+
+
+def _session_options(threads: int, graph_optimization: str) -> ort.SessionOptions:
+    if graph_optimization not in OPTIMIZATION_LEVELS:
+        known = ", ".join(OPTIMIZATION_LEVELS)
+        raise UsageError(f"unknown graph optimisation level {graph_optimization!r} (known: {known})")
+    if threads < 1:
+        raise UsageError(f"threads must be >= 1, got {threads}")
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = threads
+    # One inter-op thread: the graphs we time are chains, and parallel branches
+    # would make the numbers depend on scheduling luck.
+    options.inter_op_num_threads = 1
+    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    options.graph_optimization_level = OPTIMIZATION_LEVELS[graph_optimization]
+    options.log_severity_level = 3  # errors only; warnings would flood benchmark logs
+    return options
+
+
+def _model_bytes(name: str, model: onnx.ModelProto | bytes) -> bytes:
+    if isinstance(model, (bytes, bytearray)):
+        return bytes(model)
+    if isinstance(model, onnx.ModelProto):
+        return model.SerializeToString()
+    raise BadModelError(f"model {name!r} is a {type(model).__name__}, expected onnx.ModelProto or bytes")
+
+
+def _feeds_for(name: str, session: ort.InferenceSession, feeds: Mapping[str, np.ndarray]) -> dict:
+    wanted = [i.name for i in session.get_inputs()]
+    missing = [i for i in wanted if i not in feeds]
+    if missing:
+        raise BadDataError(f"model {name!r} needs input(s) {missing} that the feeds do not provide")
+    return {i: feeds[i] for i in wanted}
+
+
+def measure_latency(
+    models: Mapping[str, onnx.ModelProto | bytes],
+    feeds: Mapping[str, np.ndarray],
+    *,
+    threads: int = 1,
+    warmup: int = 5,
+    repeats: int = 30,
+    graph_optimization: str = "all",
+    clock: Callable[[], int] = time.perf_counter_ns,
+) -> dict[str, LatencyStats]:
+    """Time every model on the same ``feeds`` with interleaved runs; stats per model name.
+
+    One onnxruntime CPU session per model (``intra_op_num_threads=threads``,
+    one inter-op thread, ``graph_optimization`` in all|extended|basic|disabled).
+    Feeds a model does not declare as inputs are ignored. The result is keyed
+    in sorted-name order. Raises UsageError for bad settings, BadModelError if
+    onnxruntime cannot load a model, BadDataError if the feeds do not fit it.
+    """
+    if not models:
+        raise UsageError("no models given to time")
+    options = _session_options(threads, graph_optimization)
+    runners: dict[str, Callable[[], object]] = {}
+    for name in sorted(models):
+        data = _model_bytes(name, models[name])
+        try:
+            session = ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
+        except Exception as exc:  # onnxruntime raises several private exception types
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise BadModelError(f"onnxruntime cannot load model {name!r}: {first}") from None
+        model_feeds = _feeds_for(name, session, feeds)
+        try:
+            session.run(None, model_feeds)  # fail on bad data here, not mid-benchmark
+        except Exception as exc:
+            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            raise BadDataError(f"model {name!r} cannot run on the feeds: {first}") from None
+        runners[name] = _bind(session, model_feeds)
+    logger.info(
+        "timing %d model(s): %d warm-up + %d interleaved runs each, %d thread(s), optimisation %s",
+        len(runners), warmup, repeats, threads, graph_optimization,
+    )
+    durations = time_interleaved(runners, warmup=warmup, repeats=repeats, clock=clock)
+    return {name: stats_from_ns(durations[name]) for name in sorted(durations)}
+
+
+def _bind(session: ort.InferenceSession, model_feeds: dict) -> Callable[[], object]:
+    """A zero-argument call of ``session`` on fixed feeds (closure per session)."""
+    return lambda: session.run(None, model_feeds)
+
+
+def _tensor_bytes(tensor: onnx.TensorProto) -> int:
+    """Bytes the tensor's values take in memory, however the protobuf stores them."""
+    count = math.prod(tensor.dims)
+    if tensor.data_type == onnx.TensorProto.STRING:
+        return sum(len(s) for s in tensor.string_data)
+    # 4-bit types are stored two per byte (ONNX IR spec, INT4/UINT4 packing).
+    if tensor.data_type in _PACKED_4BIT:
+        return (count + 1) // 2
+    return count * np.dtype(onnx.helper.tensor_dtype_to_np_dtype(tensor.data_type)).itemsize
+
+
+_PACKED_4BIT = {
+    getattr(onnx.TensorProto, n) for n in ("INT4", "UINT4", "FLOAT4E2M1") if hasattr(onnx.TensorProto, n)
+}
+
+
+def _graphs(graph: onnx.GraphProto):
+    """The graph and, depth first, every subgraph held in node attributes (If/Loop/Scan bodies)."""
+    yield graph
+    for node in graph.node:
+        for a in node.attribute:
+            if a.type == onnx.AttributeProto.GRAPH:
+                yield from _graphs(a.g)
+            elif a.type == onnx.AttributeProto.GRAPHS:
+                for sub in a.graphs:
+                    yield from _graphs(sub)
+
+
+def model_summary(model: onnx.ModelProto) -> dict:
+    """Node count, op counts (sorted by op name) and initializer bytes, subgraphs included.
+
+    Ops outside the default ONNX domain are keyed ``domain.OpType`` so a
+    contrib op never merges with a standard op of the same name.
+    """
+    counts: Counter[str] = Counter()
+    init_bytes = 0
+    for graph in _graphs(model.graph):
+        for node in graph.node:
+            key = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
+            counts[key] += 1
+        init_bytes += sum(_tensor_bytes(t) for t in graph.initializer)
+        init_bytes += sum(_tensor_bytes(s.values) + _tensor_bytes(s.indices) for s in graph.sparse_initializer)
+    return {
+        "nodes": int(sum(counts.values())),
+        "op_counts": dict(sorted(counts.items())),
+        "initializer_bytes": int(init_bytes),
+    }
+
+
+def serialized_size(model: onnx.ModelProto | bytes) -> int:
+    """Size in bytes of the model as written to an .onnx file (external data not included)."""
+    if isinstance(model, (bytes, bytearray)):
+        return len(model)
+    return int(model.ByteSize())

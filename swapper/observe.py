@@ -1,0 +1,314 @@
+"""Streaming statistics of one activation site, batch by batch, in bounded memory.
+
+Calibration runs the original model over a few hundred samples and hands each
+site's input x and original output y to an observer, one batch at a time. The
+observer never keeps the whole stream:
+
+- :class:`ChannelObserver` moves the channel axis first, flattens the rest and
+  keeps, per channel, the count, the mean/variance of x and y and their
+  covariance (merged batch by batch with the parallel update of Chan, Golub &
+  LeVeque 1979), min/max of x, and a uniform reservoir sample of (x, y) pairs
+  (Vitter 1985, Algorithm R) of at most ``reservoir`` pairs, which the fitters
+  in :mod:`swapper.fit` work on.
+- :class:`GramAccumulator` keeps XᵀX, Xᵀy, yᵀy and n of a design matrix fed in
+  batches, enough to solve (ridge) least squares without the rows.
+
+Both start from neutral values, and offer ``update``/``reset``/``merge``.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+
+from .errors import BadDataError
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass
+class ChannelStats:
+    """Per-channel moments (population variances, ddof=0) and x range; arrays of shape (channels,)."""
+
+    count: np.ndarray
+    mean_x: np.ndarray
+    var_x: np.ndarray
+    mean_y: np.ndarray
+    var_y: np.ndarray
+    cov_xy: np.ndarray
+    min_x: np.ndarray
+    max_x: np.ndarray
+
+
+class ChannelObserver:
+    """Per-channel moments and a bounded reservoir of (x, y) pairs of one site.
+
+    ``channel_axis`` is the axis of x/y holding the channels (negative counts
+    from the end); ``None`` treats the whole tensor as one channel. Pairs are
+    stored as ``dtype`` (float32 by default: ONNX Runtime hands float32
+    activations, so nothing is lost, and memory halves); moments are float64.
+    """
+
+    def __init__(
+        self,
+        channels: int,
+        channel_axis: int | None,
+        reservoir: int = 4096,
+        seed: int = 0,
+        dtype=np.float32,
+    ):
+        if channels < 1 or reservoir < 1:
+            raise ValueError(f"channels and reservoir must be >= 1, got {channels}, {reservoir}")
+        if channel_axis is None and channels != 1:
+            raise ValueError("channel_axis None means one channel")
+        self.channels = int(channels)
+        self.channel_axis = channel_axis
+        self.reservoir = int(reservoir)
+        self.seed = seed
+        self.dtype = np.dtype(dtype)
+        self.reset()
+
+    # -- state -------------------------------------------------------------
+    def reset(self) -> None:
+        """Forget everything: neutral moments, empty reservoir, RNG back to the seed."""
+        C = self.channels
+        self.n = 0  # pairs seen per channel (every batch feeds every channel equally)
+        self._mean = np.zeros((2, C))  # rows: x, y
+        self._m2 = np.zeros((2, C))  # sums of squared deviations
+        self._cxy = np.zeros(C)  # sum of co-deviations of x and y
+        self._min = np.full(C, np.inf)
+        self._max = np.full(C, -np.inf)
+        # grown on demand up to `reservoir` columns so small streams stay small
+        self._res = np.empty((2, C, 0), dtype=self.dtype)
+        self._rng = np.random.default_rng(self.seed)
+
+    @property
+    def held(self) -> int:
+        """Number of pairs currently in each channel's reservoir."""
+        return self._res.shape[2]
+
+    def _flatten(self, t: np.ndarray, name: str) -> np.ndarray:
+        t = np.asarray(t)
+        if self.channel_axis is None:
+            return t.reshape(1, -1)
+        if t.ndim == 0:
+            raise BadDataError(f"site {name} is a scalar, expected a channel axis {self.channel_axis}")
+        try:
+            t = np.moveaxis(t, self.channel_axis, 0)
+        except ValueError:  # numpy AxisError subclasses ValueError in every version
+            raise BadDataError(
+                f"site {name} has shape {t.shape}, no channel axis {self.channel_axis}"
+            ) from None
+        if t.shape[0] != self.channels:
+            raise BadDataError(f"site {name} has {t.shape[0]} channels, expected {self.channels}")
+        return t.reshape(self.channels, -1)
+
+    def update(self, x: np.ndarray, y: np.ndarray) -> None:
+        """Add one batch: ``x`` the site input, ``y`` the original output, same shape."""
+        x = np.asarray(x)
+        y = np.asarray(y)
+        if x.shape != y.shape:
+            raise BadDataError(f"site input shape {x.shape} differs from output shape {y.shape}")
+        xf = self._flatten(x, "input")
+        yf = self._flatten(y, "output")
+        m = xf.shape[1]
+        if m == 0:
+            return
+        if not (np.isfinite(xf).all() and np.isfinite(yf).all()):
+            raise BadDataError("site data holds NaN or infinite values")
+        self._update_moments(xf, yf)
+        self._update_reservoir(xf, yf)
+        self.n += m
+
+    def _update_moments(self, xf: np.ndarray, yf: np.ndarray) -> None:
+        # batch moments in float64, then Chan et al.'s pairwise merge: stable
+        # because only deviations from each part's own mean are ever squared
+        xy = np.stack([xf, yf]).astype(np.float64)  # (2, C, m)
+        m = xy.shape[2]
+        mean_b = xy.mean(axis=2)
+        dev = xy - mean_b[:, :, None]
+        m2_b = np.einsum("kcm,kcm->kc", dev, dev)
+        cxy_b = np.einsum("cm,cm->c", dev[0], dev[1])
+        self._merge_moments(m, mean_b, m2_b, cxy_b)
+        self._min = np.minimum(self._min, xy[0].min(axis=1))
+        self._max = np.maximum(self._max, xy[0].max(axis=1))
+
+    def _merge_moments(self, n_b: int, mean_b, m2_b, cxy_b) -> None:
+        n_a = self.n
+        n = n_a + n_b
+        delta = mean_b - self._mean  # (2, C)
+        self._mean = self._mean + delta * (n_b / n)
+        self._m2 = self._m2 + m2_b + delta**2 * (n_a * n_b / n)
+        self._cxy = self._cxy + cxy_b + delta[0] * delta[1] * (n_a * n_b / n)
+
+    def _update_reservoir(self, xf: np.ndarray, yf: np.ndarray) -> None:
+        # Algorithm R, vectorised over the batch: item t (0-based stream index)
+        # fills slot t while t < R, else replaces slot j ~ U{0..t} when j < R.
+        # All channels share the draws (same positions), which keeps it one
+        # draw per position and the (x, y) pairs of a position together.
+        R, m, n0 = self.reservoir, xf.shape[1], self.n
+        fill = max(0, min(m, R - n0))
+        if fill:
+            new = np.stack([xf[:, :fill], yf[:, :fill]]).astype(self.dtype)
+            self._res = np.concatenate([self._res, new], axis=2)
+        if fill == m:
+            return
+        t = np.arange(n0 + fill, n0 + m, dtype=np.int64)
+        j = self._rng.integers(0, t + 1)
+        hit = np.nonzero(j < R)[0]
+        if hit.size == 0:
+            return
+        # sequential semantics: the last item that picked a slot wins
+        slots, first_rev = np.unique(j[hit][::-1], return_index=True)
+        src = fill + hit[::-1][first_rev]
+        self._res[0][:, slots] = xf[:, src]
+        self._res[1][:, slots] = yf[:, src]
+
+    # -- read-out ----------------------------------------------------------
+    def compute(self) -> ChannelStats:
+        """Current per-channel statistics (NaN moments while nothing has been seen)."""
+        n = self.n
+        with np.errstate(invalid="ignore", divide="ignore"):
+            var = self._m2 / n if n else np.full_like(self._m2, np.nan)
+            cov = self._cxy / n if n else np.full_like(self._cxy, np.nan)
+        mean = self._mean if n else np.full_like(self._mean, np.nan)
+        return ChannelStats(
+            count=np.full(self.channels, n, dtype=np.int64),
+            mean_x=mean[0].copy(),
+            var_x=var[0].copy(),
+            mean_y=mean[1].copy(),
+            var_y=var[1].copy(),
+            cov_xy=cov.copy(),
+            min_x=self._min.copy(),
+            max_x=self._max.copy(),
+        )
+
+    def samples(self, channel: int) -> tuple[np.ndarray, np.ndarray]:
+        """The reservoir of ``channel`` as float64 ``(x, y)`` copies, at most ``reservoir`` long."""
+        if not 0 <= channel < self.channels:
+            raise IndexError(f"channel {channel} out of range 0..{self.channels - 1}")
+        return (
+            self._res[0, channel].astype(np.float64),
+            self._res[1, channel].astype(np.float64),
+        )
+
+    def merge(self, other: "ChannelObserver") -> None:
+        """Fold ``other`` (same channels and reservoir size) into this observer.
+
+        Moments merge exactly (Chan et al.). The reservoirs merge into a uniform
+        sample of the union: the number k taken from this stream is
+        hypergeometric(n_self, n_other, size), then k pairs are drawn without
+        replacement from this reservoir and size − k from the other's (a
+        uniform subsample of a uniform sample is uniform).
+        """
+        if (other.channels, other.reservoir) != (self.channels, self.reservoir):
+            raise ValueError("can only merge observers with equal channels and reservoir size")
+        if other.n == 0:
+            return
+        if self.n == 0:
+            self._mean, self._m2, self._cxy = other._mean.copy(), other._m2.copy(), other._cxy.copy()
+            self._min, self._max = other._min.copy(), other._max.copy()
+            self._res = other._res.astype(self.dtype)
+            self.n = other.n
+            return
+        size = min(self.reservoir, self.n + other.n)
+        k = int(self._rng.hypergeometric(self.n, other.n, size))
+        mine = np.sort(self._rng.choice(self.held, size=k, replace=False))
+        theirs = np.sort(self._rng.choice(other.held, size=size - k, replace=False))
+        res = np.concatenate([self._res[:, :, mine], other._res[:, :, theirs].astype(self.dtype)], axis=2)
+        self._merge_moments(other.n, other._mean, other._m2, other._cxy)
+        self._min = np.minimum(self._min, other._min)
+        self._max = np.maximum(self._max, other._max)
+        self._res = res
+        self.n += other.n
+
+
+class GramAccumulator:
+    """Running XᵀX, Xᵀy, yᵀy and n of rows (X, y) fed in batches.
+
+    ``y`` may be a vector or an (n, k) matrix (k right-hand sides); the first
+    update fixes which.
+    """
+
+    def __init__(self, dim: int):
+        if dim < 1:
+            raise ValueError(f"dim must be >= 1, got {dim}")
+        self.dim = int(dim)
+        self.reset()
+
+    def reset(self) -> None:
+        """Back to no rows."""
+        self.xtx = np.zeros((self.dim, self.dim))
+        self.xty: np.ndarray | None = None
+        self.yty: np.ndarray | float = 0.0
+        self.n = 0
+
+    def update(self, X: np.ndarray, y: np.ndarray, weights: np.ndarray | None = None) -> None:
+        """Add rows ``X`` (n, dim) with targets ``y`` (n,) or (n, k), optionally weighted per row."""
+        X = np.asarray(X, dtype=np.float64)
+        y = np.asarray(y, dtype=np.float64)
+        if X.ndim != 2 or X.shape[1] != self.dim:
+            raise ValueError(f"X must be (n, {self.dim}), got {X.shape}")
+        if y.shape[0] != X.shape[0] or y.ndim not in (1, 2):
+            raise ValueError(f"y must be (n,) or (n, k) with n = {X.shape[0]}, got {y.shape}")
+        if self.xty is not None and self.xty.shape[1:] != y.shape[1:]:
+            raise ValueError(f"y shape {y.shape[1:]} differs from earlier batches {self.xty.shape[1:]}")
+        if weights is not None:
+            w = np.asarray(weights, dtype=np.float64).reshape(-1)
+            Xw = X * w[:, None]
+            yw = y * (w[:, None] if y.ndim == 2 else w)
+        else:
+            Xw, yw = X, y
+        self.xtx += Xw.T @ X
+        xty = Xw.T @ y
+        self.xty = xty if self.xty is None else self.xty + xty
+        self.yty = self.yty + np.einsum("n...,n...->...", yw, y)
+        self.n += X.shape[0]
+
+    def merge(self, other: "GramAccumulator") -> None:
+        """Add the rows ``other`` has seen."""
+        if other.dim != self.dim:
+            raise ValueError("can only merge accumulators of the same dim")
+        if other.xty is None:
+            return
+        if self.xty is not None and self.xty.shape != other.xty.shape:
+            raise ValueError("accumulators disagree on the shape of y")
+        self.xtx = self.xtx + other.xtx
+        self.xty = other.xty.copy() if self.xty is None else self.xty + other.xty
+        self.yty = self.yty + other.yty
+        self.n += other.n
+
+    def solve(self, ridge: float = 0.0, prior: np.ndarray | None = None) -> np.ndarray:
+        """β = argmin ‖Xβ − y‖² + ridge·‖β − prior‖² (prior defaults to 0).
+
+        With ridge = 0 this is the minimum-norm least-squares solution (via
+        lstsq on the normal equations: pinv(XᵀX)·Xᵀy = pinv(X)·y), so a
+        rank-deficient X gives a finite answer. Note the normal equations square
+        the condition number of X; fine for the small, standardised designs
+        swapper builds.
+        """
+        if self.xty is None:
+            raise ValueError("no rows accumulated")
+        if ridge < 0:
+            raise ValueError(f"ridge must be >= 0, got {ridge}")
+        p = np.zeros(self.xty.shape) if prior is None else np.asarray(prior, dtype=np.float64)
+        if p.ndim == 1 and self.xty.ndim == 2:
+            p = p[:, None]  # one prior shared by every right-hand side
+        p = np.broadcast_to(p, self.xty.shape)
+        A = self.xtx + ridge * np.eye(self.dim)
+        rhs = self.xty + ridge * p
+        if ridge > 0:
+            try:
+                return np.linalg.solve(A, rhs)
+            except np.linalg.LinAlgError:
+                pass  # numerically singular despite the ridge: fall through to lstsq
+        return np.linalg.lstsq(A, rhs, rcond=None)[0]
+
+    def sse(self, beta: np.ndarray) -> np.ndarray | float:
+        """Sum of squared residuals ‖Xβ − y‖² of ``beta``, from the accumulated sums."""
+        if self.xty is None:
+            raise ValueError("no rows accumulated")
+        beta = np.asarray(beta, dtype=np.float64)
+        quad = np.einsum("i...,ij,j...->...", beta, self.xtx, beta)
+        return self.yty - 2 * np.einsum("i...,i...->...", beta, self.xty) + quad
