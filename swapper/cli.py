@@ -164,5 +164,27 @@ def demo(
     raise typer.Exit(code)
 
 
+@app.command()
+def bench(
+    models: Annotated[Optional[list[Path]], typer.Argument(help="Models to benchmark (default with --demo: the demo models).")] = None,
+    demo_models: Annotated[bool, typer.Option("--demo", help="Benchmark the bundled demo models.")] = False,
+    calib: Annotated[Optional[Path], typer.Option(help="Calibration set for the given models.")] = None,
+    val: Annotated[Optional[Path], typer.Option(help="Validation set for the given models.")] = None,
+    out_root: Annotated[Path, typer.Option("--out", help="Results go to OUT/<UTC time>/.")] = Path("reports/bench"),
+    scale: Annotated[bool, typer.Option("--scale/--no-scale", help="Include the synthetic 16-block scale model.")] = True,
+    quick: Annotated[bool, typer.Option("--quick", help="Few repeats, small data: a smoke run, not a measurement.")] = False,
+    repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model for latency.")] = 50,
+) -> None:
+    """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
+    from .bench import run_bench
+
+    try:
+        folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
+                           quick=quick, repeats=repeats, console=out)
+    except SwapperError as exc:
+        _fail(exc)
+    out.print(f"results: {folder}", highlight=False)
+
+
 if __name__ == "__main__":  # pragma: no cover
     app()
