@@ -29,7 +29,7 @@ from . import functions
 from .data import Dataset, batches
 from .fit import fit_channels
 from .observe import ChannelObserver
-from .graph import GraphIndex
+from .graph import GraphIndex, attr
 from .plan import Plan, SiteSwap
 from .progress import Silent
 from .record import TensorCache, expose, open_session
@@ -178,7 +178,7 @@ def _single_node_model(model: onnx.ModelProto, node: onnx.NodeProto, index: Grap
     return helper.make_model(graph, opset_imports=model.opset_import, ir_version=model.ir_version)
 
 
-def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, teacher: str, ds: Dataset,
+def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student: str, teacher: str, ds: Dataset,
                   batch_size: int) -> tuple[list[str], list[str]]:
     """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019)."""
     index = GraphIndex.of(work)
@@ -199,12 +199,18 @@ def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, teacher
         shift_sum, count = None, 0
         for start in range(0, ds.n, batch_size):
             stop = min(start + batch_size, ds.n)
-            cand = sess.run(None, {in_name: cache.read(site.output, start, stop)})[0].astype(np.float64)
+            cand = sess.run(None, {in_name: cache.read(student, start, stop)})[0].astype(np.float64)
             orig = sess.run(None, {in_name: cache.read(teacher, start, stop)})[0].astype(np.float64)
             diff = np.moveaxis(cand - orig, axis, 0).reshape(cand.shape[axis], -1)
             shift_sum = diff.sum(axis=1) if shift_sum is None else shift_sum + diff.sum(axis=1)
             count += diff.shape[1]
         shift = shift_sum / max(count, 1)
+        if node.op_type == "Gemm":  # Y = alpha·A·B + beta·C: the bias enters scaled by beta
+            beta = float(attr(node, "beta", 1.0))
+            if beta == 0.0:
+                notes.append(f"no bias correction: {node.name} has beta = 0")
+                continue
+            shift = shift / beta
         init = index.initializers[bias_name]
         bias = numpy_helper.to_array(init).astype(np.float64)
         if bias.size not in (1, shift.size):
@@ -255,6 +261,7 @@ def calibrate(
         levels = {k: 1 for k in levels}
     results: dict[str, SiteCalibration] = {}
     teacher = {sid: f"teacher::{by_id[sid].output}" for sid in swaps}  # cache keys of original outputs
+    student: dict[str, str] = {}  # cache keys of swapped outputs
     n_batches = -(-dataset.n // batch_size)
 
     with TensorCache() as cache:
@@ -309,17 +316,20 @@ def calibrate(
                     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
                                                    x_min=[float(v) for v in seen.min_x],
                                                    x_max=[float(v) for v in seen.max_x])
-                    # the swapped output feeds the next levels' segments
+                    # the swapped output feeds the next levels' segments; in local mode the
+                    # original value of this tensor may already be cached as another site's
+                    # input, so the swapped one goes under its own key (no duplicated rows)
+                    student[sid] = site.output if site.output not in cache else f"student::{site.output}"
                     for start in range(0, dataset.n, batch_size):
                         stop = min(start + batch_size, dataset.n)
-                        cache.append(site.output, surrogate_output(swap, cache.read(site.input, start, stop)))
+                        cache.append(student[sid], surrogate_output(swap, cache.read(site.input, start, stop)))
                     advance(1)
             timings["fit_s"] += time.perf_counter() - t0
 
             if bias_correction:
                 t0 = time.perf_counter()
                 for sid in group:
-                    done, notes = _correct_bias(work, by_id[sid], cache, teacher[sid], dataset, batch_size)
+                    done, notes = _correct_bias(work, by_id[sid], cache, student[sid], teacher[sid], dataset, batch_size)
                     results[sid].bias_corrected, results[sid].notes = done, notes
                 timings["bias_correction_s"] += time.perf_counter() - t0
 

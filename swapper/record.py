@@ -85,7 +85,9 @@ class TensorCache:
 
     def read(self, name: str, start: int, stop: int) -> np.ndarray:
         dtype, row_shape, rows = self._meta[name]
-        stop = min(stop, rows)
+        if start < 0:
+            raise ValueError(f"start must be >= 0, got {start}")
+        stop = max(start, min(stop, rows))  # past the end: no rows (a negative count would read the whole file)
         per_row = int(np.prod(row_shape, dtype=np.int64)) if row_shape else 1
         offset = start * per_row * dtype.itemsize
         data = np.fromfile(self._file(name), dtype=dtype, count=(stop - start) * per_row, offset=offset)
