@@ -4,16 +4,20 @@ Each function is built the way swapper meets it in a graph (the single op, and
 where exporters write it as a subgraph, that subgraph too), run by onnxruntime
 on one [64, 32, 32, 32] float32 tensor with one intra-op thread, warmed up,
 then timed ``--repeats`` times in each of ``--sweeps`` passes over all
-models. Cost = median time / median time of Relu.
+models. Cost = median time / median time of Relu, timed as the calling
+thread's CPU time (onnxruntime computes on it with one thread; unlike wall
+time this does not grow while other processes hold a shared CPU).
 
 Writes swapper/data/op_costs.json:
 
     {"schema": "swapper.op_costs/1",
      "measured": {date, onnxruntime, onnx, cpu, shape, dtype, opset, threads,
-                  warmup, repeats, sweeps, statistic, optimization, baseline},
+                  warmup, repeats, sweeps, statistic, optimization, baseline,
+                  load_average_1min},
      "costs": {function: relative cost of its canonical form},
      "forms": {function: {form: relative cost}},
-     "median_ms": {function: {form: milliseconds}}}
+     "median_ms": {function: {form: CPU milliseconds}},
+     "median_wall_ms": {function: {form: wall milliseconds}}}
 
 The canonical form is the single op when the default domain has one at the
 opset we build with, else the decomposed subgraph exporters write. Functions
@@ -28,6 +32,7 @@ import argparse
 import datetime as dt
 import json
 import logging
+import os
 import platform
 import statistics
 import time
@@ -241,26 +246,30 @@ def runner(model: onnx.ModelProto, x: np.ndarray):
     return lambda: sess.run_with_iobinding(binding)
 
 
-def time_all(runs: dict[tuple[str, str], object], warmup: int, repeats: int, sweeps: int) -> dict:
-    """Median seconds per run of each callable, over ``sweeps`` x ``repeats`` runs.
+def time_all(runs: dict[tuple[str, str], object], warmup: int, repeats: int, sweeps: int):
+    """Median CPU seconds and median wall seconds per run of each callable, over sweeps x repeats runs.
 
-    Each sweep times every model in a block (warm-up, then ``repeats``
-    back-to-back runs, so its buffers are as warm as in a steady pipeline); the
-    sweeps spread each model's runs over the whole measurement, so a burst of
-    load from other processes cannot inflate one model alone.
+    With one intra-op thread onnxruntime computes on the calling thread, so
+    that thread's CPU time is the run's compute time, and unlike wall time it
+    does not grow while other processes hold the CPU (this machine is shared).
+    Each sweep times every model in a block (warm-up, then back-to-back runs,
+    buffers as warm as in a steady pipeline); the sweeps spread each model's
+    runs over the whole measurement.
     """
     keys = sorted(runs)
-    times: dict[tuple[str, str], list[float]] = {k: [] for k in keys}
+    cpu: dict[tuple[str, str], list[float]] = {k: [] for k in keys}
+    wall: dict[tuple[str, str], list[float]] = {k: [] for k in keys}
     for _ in range(sweeps):
         for key in keys:
             run = runs[key]
             for _ in range(warmup):
                 run()
             for _ in range(repeats):
-                t0 = time.perf_counter()
+                t0, c0 = time.perf_counter(), time.thread_time()
                 run()
-                times[key].append(time.perf_counter() - t0)
-    return {k: statistics.median(v) for k, v in times.items()}
+                cpu[key].append(time.thread_time() - c0)
+                wall[key].append(time.perf_counter() - t0)
+    return ({k: statistics.median(v) for k, v in cpu.items()}, {k: statistics.median(v) for k, v in wall.items()})
 
 
 def main() -> None:
@@ -273,6 +282,7 @@ def main() -> None:
     logging.basicConfig(level=logging.INFO, format="%(message)s")
 
     add_registry_surrogates()
+    load_before = os.getloadavg()[0]
     rng = np.random.default_rng(0)
     # N(0, 3²) covers both saturated and linear parts of every function
     x = (rng.standard_normal(SHAPE) * 3.0).astype(np.float32)
@@ -283,12 +293,18 @@ def main() -> None:
             model = build()
             onnx.checker.check_model(model)
             runs[(name, form)] = runner(model, x)
-    seconds = time_all(runs, args.warmup, args.repeats, args.sweeps)
+    cpu_s, wall_s = time_all(runs, args.warmup, args.repeats, args.sweeps)
     median_ms: dict[str, dict[str, float]] = {}
-    for (name, form), sec in sorted(seconds.items()):
+    median_wall_ms: dict[str, dict[str, float]] = {}
+    for (name, form), sec in sorted(cpu_s.items()):
         median_ms.setdefault(name, {})[form] = round(sec * 1e3, 4)
-        logger.info("%-12s %-28s %8.3f ms", name, form, sec * 1e3)
+        median_wall_ms.setdefault(name, {})[form] = round(wall_s[(name, form)] * 1e3, 4)
+        logger.info("%-12s %-28s %8.3f ms cpu %8.3f ms wall", name, form, sec * 1e3, wall_s[(name, form)] * 1e3)
 
+    load_after = os.getloadavg()[0]
+    if max(load_before, load_after) > 1.0:
+        logger.warning("system load %.1f/%.1f: other processes share the CPU, costs may be noisy",
+                       load_before, load_after)
     base = median_ms["relu"]["op"]
     forms = {n: {f: round(ms / base, 3) for f, ms in fm.items()} for n, fm in median_ms.items()}
     costs = {n: forms[n][BENCHES[n][0][0]] for n in sorted(BENCHES)}
@@ -306,14 +322,17 @@ def main() -> None:
             "warmup": args.warmup,
             "repeats": args.repeats * args.sweeps,
             "sweeps": args.sweeps,
-            "statistic": ("median wall time of InferenceSession.run_with_iobinding over all runs "
-                          "(each sweep: warm-up then back-to-back runs per model), divided by Relu's"),
+            "statistic": ("median thread CPU time of InferenceSession.run_with_iobinding over all runs "
+                          "(each sweep: warm-up then back-to-back runs per model), divided by Relu's; "
+                          "median wall times kept in median_wall_ms"),
             "optimization": "onnxruntime default (ORT_ENABLE_ALL): decomposed forms may be fused",
             "baseline": "relu",
+            "load_average_1min": [round(load_before, 2), round(load_after, 2)],  # before, after
         },
         "costs": costs,
         "forms": forms,
         "median_ms": median_ms,
+        "median_wall_ms": median_wall_ms,
     }
     args.out.parent.mkdir(parents=True, exist_ok=True)
     args.out.write_text(json.dumps(out, indent=2, sort_keys=False) + "\n")
