@@ -64,8 +64,8 @@ class SiteSwap:
     @classmethod
     def from_dict(cls, d: dict) -> "SiteSwap":
         d = dict(d)
-        for p in PARAMS:
-            d[p] = np.asarray(d[p], dtype=np.float64)
+        for p in PARAMS:  # a summary (model metadata) carries no values: read them as neutral
+            d[p] = np.asarray(d.get(p, [NEUTRAL[p]] * d["channels"]), dtype=np.float64)
         return cls(**d)
 
 
@@ -94,6 +94,14 @@ class Plan:
 
     def to_json(self) -> str:
         return json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+
+    def summary_json(self) -> str:
+        """The plan without per-channel values (they are folded into the graph): small enough for model metadata."""
+        d = self.to_dict()
+        for s in d["swaps"]:
+            for p in PARAMS:
+                del s[p]
+        return json.dumps(d, sort_keys=True, separators=(",", ":"))
 
     @classmethod
     def from_dict(cls, d: dict) -> "Plan":

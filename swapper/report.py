@@ -11,7 +11,8 @@ when a part did not run):
 - ``sites``: one entry per swapped site: ``site_id, source, target, placement
   {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
   bias_corrected, notes`` (mse values null without calibration).
-- ``calibration``: ``{"samples", "timings_s"}`` or null.
+- ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
+  with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.evaluate.Comparison.to_dict``; ``budget``:
   ``{"max_drop_pp", "strict", "min_agreement"}``; ``verdict``: ``{"approved",
   "reason", "rule"}``; ``latency``: per model ``{median_ms, p10_ms, p90_ms,
@@ -101,7 +102,9 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
                 "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
                 "level": fit.level if fit else None,
                 "bias_corrected": list(fit.bias_corrected) if fit else [],
-                "notes": list(s.notes) + (list(rec.notes) if rec else []) + (list(fit.notes) if fit else []),
+                # plan, rewrite and fit may each record the same fact; keep the first of each, in order
+                "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
+                                            + (list(fit.notes) if fit else []))),
             })
     from .pipeline import CAUTION
 
@@ -156,6 +159,7 @@ h1{font-size:1.5rem} h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px soli
 .none{background:#eef1f6;border:1px solid #b8c0cc}
 table{border-collapse:collapse;margin:.5rem 0;font-size:.9rem} td,th{padding:.25rem .6rem;border-bottom:1px solid #e3e7ee;text-align:left}
 td.n{text-align:right;font-variant-numeric:tabular-nums} .side{display:flex;gap:2rem;flex-wrap:wrap}
+.side>div{flex:1 1 22rem;min-width:0}
 .caution{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
 """
 
@@ -266,7 +270,7 @@ def render_html(payload: dict) -> str:
             ["p10–p90 (ms)", f"{_num(lat['original']['p10_ms'])}–{_num(lat['original']['p90_ms'])}",
              f"{_num(lat['candidate']['p10_ms'])}–{_num(lat['candidate']['p90_ms'])}"],
             ["latency ratio", "", f"{lat['ratio']:.3f}"],
-            ["file bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
+            ["serialized bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
             ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]],
         ], numeric={1, 2})
         parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)

@@ -409,7 +409,7 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
     kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
     del out.metadata_props[:]
     out.metadata_props.extend(kept)
-    out.metadata_props.add(key=PLAN_KEY, value=plan.to_json())
+    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
     logger.info("rewrote %d sites: %d -> %d nodes", len(records), len(model.graph.node), len(out.graph.node))
     return RewriteResult(out, len(model.graph.node), len(out.graph.node), records)
 
