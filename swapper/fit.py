@@ -12,25 +12,25 @@ over the *free* parameters; held ones keep their initial value exactly.
 - (b, c) are found by variable projection (Golub & Pereyra 1973): a, d are
   eliminated in closed form and ``scipy.optimize.least_squares`` minimises the
   projected residual over (b, c) alone, with Kaufman's (1975) Jacobian when
-  the derivative ``dg`` is given, finite differences otherwise. (b, c) are
+  the derivative ``dg`` is given, finite differences otherwise, from two
+  starts (the given one, and the same shape on standardised x). (b, c) are
   optimised in standardised form β = b·std(x), γ = c + b·mean(x), so the
   search is scale-free, and are boxed to |β|, |γ| ≤ 1e3 (or twice the start)
   so degenerate channels cannot run off to huge values.
 - ``positive_a``: a is moved inside g later, so it must stay > 0. Once d is
   eliminated the mse is a convex quadratic in a, so the constrained optimum
-  is the unconstrained one clamped to a small positive floor; we clamp (and
-  log nothing: the fit simply reports the clamped a and its true mse).
+  is the unconstrained one clamped to a small positive floor (1e-6 of the
+  natural slope scale); the reported mse is that of the clamped a.
 - Never worse than the start: the initial parameters, the closed-form refit
   of (a, d) at the initial (b, c), and the projected optimum are all scored
   on the given data and the lowest mse wins (the start on ties).
 
 Degenerate data never yields NaN: when z (or x) is constant to within 1e-6 of
-its RMS, the slope a is not identified and keeps its start value while d
-absorbs the mean (d = mean(y) − a·mean(z)); when x is constant, (b, c) keep
-their start values. z also counts as constant when its spread is below 1e-12
-of g's own output scale (a start with b ≈ 0 would otherwise ask for a ≈ 1e100).
-Nothing is clipped silently besides the documented box on
-(β, γ) and the positive floor on a.
+its RMS, or z spreads less than 1e-12 of g's own output scale (b ≈ 0 would
+otherwise ask for a ≈ 1e100), the slope a is not identified and keeps its
+start value while d absorbs the mean (d = mean(y) − a·mean(z)); when x is
+constant, (b, c) keep their start values. Nothing else is clipped: only the
+box on (β, γ) and the floor on a above, both documented here.
 """
 from __future__ import annotations
 
@@ -54,7 +54,7 @@ DEGENERATE = 1e-6  # std below this fraction of the RMS = constant (float32 reso
 Z_FLOOR = 1e-12  # z with std below this fraction of g's own output scale = constant too
 A_FLOOR = 1e-6  # with positive_a: a >= A_FLOOR x the natural slope scale sqrt(var y / var z)
 MAX_NFEV = 200  # per channel; converged fits take far fewer
-_BAD = 1e100  # residual returned where g overflows, so the optimiser backs off
+_BAD = 1e50  # residual returned where g overflows, so the optimiser backs off
 
 
 @dataclass
@@ -112,7 +112,14 @@ def _g_scale(g: Func) -> float:
     return s if np.isfinite(s) and s > 0 else 1.0
 
 
-def _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0):
+def _ystats(y, w):
+    """Weighted mean of y, w·(y − mean) and the variance: fixed across a channel's iterations."""
+    my = float(w @ y)
+    wdy = w * (y - my)
+    return my, wdy, float(wdy @ (y - my))
+
+
+def _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None):
     """Weighted LS of y on [z, 1] over the free ones of (a, d). Returns (a, d, a_solved).
 
     z counts as constant (a not identified) when its spread is below 1e-6 of
@@ -123,15 +130,16 @@ def _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0):
         d = float(w @ (y - a0 * z)) if fd else d0
         return a0, d, False
     if fd:
-        mz, my = float(w @ z), float(w @ y)
-        dz, dy = z - mz, y - my
-        szz, syy = float(w @ (dz * dz)), float(w @ (dy * dy))
-        szy = float(w @ (dz * dy))
+        my, wdy, syy = ystats if ystats is not None else _ystats(y, w)
+        mz = float(w @ z)
+        dz = z - mz
+        szz, szy = float(w @ (dz * dz)), float(dz @ wdy)
+        rms2 = szz + mz * mz
     else:  # regression through the held offset d0
         mz = my = 0.0
         szz, syy = float(w @ (z * z)), float(w @ ((y - d0) ** 2))
         szy = float(w @ (z * (y - d0)))
-    rms2 = float(w @ (z * z))
+        rms2 = szz
     solved = szz > (DEGENERATE**2) * rms2 and szz > z_floor**2 and szz > 0
     a = szy / szz if solved else a0
     if positive_a:
@@ -180,22 +188,23 @@ class _Projected:
         if "b" in free and "c" in free:
             xs = (x - mx) / sx
             self.p0 = np.array([b0 * sx, c0 + b0 * mx])
-            self.dirs = [xs, np.ones_like(x)]
+            self.dirs = np.stack([xs, np.ones_like(x)], axis=1)
             self._u = lambda p: p[0] * xs + p[1]
             self.to_bc = lambda p: (p[0] / sx, p[1] - p[0] * mx / sx)
         elif "b" in free:
             xr = x / sx
             self.p0 = np.array([b0 * sx])
-            self.dirs = [xr]
+            self.dirs = xr[:, None]
             self._u = lambda p: p[0] * xr + c0
             self.to_bc = lambda p: (p[0] / sx, c0)
         else:
             self.p0 = np.array([c0 + b0 * mx])
-            self.dirs = [np.ones_like(x)]
+            self.dirs = np.ones((x.size, 1))
             self._u = lambda p: b0 * x + (p[0] - b0 * mx)
             self.to_bc = lambda p: (b0, p[0] - b0 * mx)
         # second start: the initial shape applied to the standardised data (the
-        # start values are fitted for roughly unit-scale inputs, see starting_params)
+        # start values are fitted for roughly unit-scale inputs, see starting_params);
+        # solve() descends from both and fit_channel keeps the better
         self.p1 = {2: np.array([b0, c0]), 1: np.array([b0])}.get(self.p0.size) if "b" in free else None
         if self.p1 is not None and np.allclose(self.p1, self.p0, rtol=0.5, atol=0.5):
             self.p1 = None  # data already about unit scale: one start is enough
@@ -205,58 +214,79 @@ class _Projected:
         self.bounds = (-half, half)
         self._key, self._val = None, None
         self.nfev = 0
+        self.ystats = _ystats(y, w)
 
     def _eval(self, p):
         key = p.tobytes()
         if key != self._key:
-            u = self._u(p)
-            z = _apply(self.g, u)
-            if not np.isfinite(z).all():
-                self._val = (u, None, 0.0, 0.0, False)
-            else:
-                a, d, solved = _outer(
-                    z, self.y, self.w, self.a0, self.d0, self.fa, self.fd, self.positive_a, self.z_floor
-                )
-                self._val = (u, z, a, d, solved)
+            with np.errstate(all="ignore"):
+                u = self._u(p)
+                z = _apply(self.g, u)
+            self._val = (u, None, 0.0, 0.0, False)  # g overflowed: a point to back off from
+            if np.isfinite(z).all():
+                with np.errstate(all="ignore"):
+                    a, d, solved = _outer(
+                        z, self.y, self.w, self.a0, self.d0, self.fa, self.fd, self.positive_a,
+                        self.z_floor, self.ystats,
+                    )
+                if np.isfinite([a, d]).all():
+                    self._val = (u, z, a, d, solved)
             self._key = key
         return self._val
 
     def residual(self, p):
         u, z, a, d, _ = self._eval(p)
-        if z is None:
-            return np.full(u.size, _BAD)
-        return self.sw * (self.y - a * z - d)
+        if z is not None:
+            with np.errstate(all="ignore"):
+                r = self.sw * (self.y - a * z - d)
+                ok = np.isfinite(r @ r)  # the cost must be finite too, not just each residual
+            if ok:
+                return r
+        return np.full(u.size, _BAD)
 
     def jacobian(self, p):
         # Kaufman's simplification of the Golub–Pereyra derivative: −P⊥·∂(Φα)/∂p,
         # with P⊥ projecting out the columns of Φ = [z, 1] that were solved for
         u, z, a, d, solved = self._eval(p)
-        J = np.zeros((u.size, len(self.dirs)))
+        zero = np.zeros_like(self.dirs)
         if z is None:
-            return J
-        gp = _apply(self.dg, u)
-        if not np.isfinite(gp).all():
-            return J
-        for i, v in enumerate(self.dirs):
-            J[:, i] = -self.sw * a * gp * v
-        cols = ([self.sw * z] if solved else []) + ([self.sw] if self.fd else [])
-        if cols:
-            Q = np.linalg.qr(np.stack(cols, axis=1))[0]
-            J -= Q @ (Q.T @ J)
+            return zero
+        with np.errstate(all="ignore"):
+            J = (-a * self.sw * _apply(self.dg, u))[:, None] * self.dirs
+        if not np.abs(J).max() < 1e100:  # also false for NaN
+            return zero  # JᵀJ would overflow: report a flat spot, the best so far stays
+        # project out the solved columns, orthonormalised by hand (at most two;
+        # sw has unit norm because the weights sum to 1)
+        if self.fd:
+            J -= np.outer(self.sw, self.sw @ J)
+        if solved:
+            q = self.sw * z
+            if self.fd:
+                q -= self.sw * (self.sw @ q)
+            norm = np.sqrt(q @ q)
+            if norm > 1e-12:
+                q /= norm
+                J -= np.outer(q, q @ J)
         return J
 
     def solve(self) -> list[tuple[float, float]]:
-        """Optimised (b, c) from each start."""
+        """Optimised (b, c) from each start (a better-looking start can still be the wrong basin)."""
         found = []
         for p0 in [self.p0] + ([self.p1] if self.p1 is not None else []):
-            res = least_squares(
-                self.residual,
-                p0,
-                jac=self.jacobian if self.dg is not None else "2-point",
-                bounds=self.bounds,
-                method="trf",
-                max_nfev=MAX_NFEV,
-            )
+            # trf sizes its first trust region by |p0|: snap near-zero starts to 0
+            # (then it uses 1) so a start like b = 1e-100 does not crawl or overflow
+            p0 = np.where(np.abs(p0) < 1e-6, 0.0, p0)
+            # near-overflowing g (exp-like) can overflow inside trf's own products;
+            # those points are rejected by the cost check, so silence the noise
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                res = least_squares(
+                    self.residual,
+                    p0,
+                    jac=self.jacobian if self.dg is not None else "2-point",
+                    bounds=self.bounds,
+                    method="trf",
+                    max_nfev=MAX_NFEV,
+                )
             found.append(self.to_bc(res.x))
             self.nfev += res.nfev
         return found
@@ -298,8 +328,9 @@ def fit_channel(
     z_floor = Z_FLOOR * _g_scale(g)
 
     def score(a, b, c, d):
-        z = _apply(g, b * x + c)
-        m = float(w @ (y - a * z - d) ** 2)
+        with np.errstate(all="ignore"):  # overflow scores inf and loses
+            z = _apply(g, b * x + c)
+            m = float(w @ ((y - a * z - d) ** 2))
         return m if np.isfinite(m) else np.inf
 
     mse_init = score(a0, b0, c0, d0)
@@ -307,10 +338,11 @@ def fit_channel(
 
     def consider(b, c, note):
         nonlocal best
-        z = _apply(g, b * x + c)
-        if not np.isfinite(z).all():
-            return
-        a, d, _ = _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor)
+        with np.errstate(all="ignore"):  # overflow anywhere = a candidate that loses
+            z = _apply(g, b * x + c)
+            if not np.isfinite(z).all():
+                return
+            a, d, _ = _outer(z, y, w, a0, d0, fa, fd, positive_a, z_floor)
         m = score(a, b, c, d)
         if m < best[0]:
             best = (m, (a, b, c, d), note)
@@ -324,10 +356,8 @@ def fit_channel(
             problem = _Projected(x, y, w, g, dg, (a0, b0, c0, d0), free, positive_a, mx, sx, z_floor)
             for b, c in problem.solve():
                 consider(float(b), float(c), f"projected ({problem.nfev} evaluations)")
-        elif best[2] == "init kept":
-            best = (best[0], best[1], "constant x, init kept")
         else:
-            best = (best[0], best[1], "constant x, outer only")
+            best = (best[0], best[1], "constant x, " + best[2])
     m, (a, b, c, d), note = best
     return ChannelFit(a=a, b=b, c=c, d=d, mse_init=mse_init, mse=m, note=note)
 
@@ -362,11 +392,8 @@ def fit_channels(
     notes = []
     for ch in range(C):
         x, y = observer.samples(ch)
-        r = fit_channel(
-            x, y, g,
-            init=tuple(float(start[p][ch]) for p in PARAMS),
-            free=free, positive_a=positive_a, dg=dg,
-        )
+        p0 = tuple(float(start[p][ch]) for p in PARAMS)
+        r = fit_channel(x, y, g, init=p0, free=free, positive_a=positive_a, dg=dg)
         for k in out:
             out[k][ch] = getattr(r, k)
         notes.append(r.note)

@@ -393,9 +393,10 @@ def test_reservoir_is_uniform():
     # source: Vitter 1985, Algorithm R: after N items each one is held with probability R/N.
     # Over many seeds, per-item inclusion counts are Binomial(trials, R/N); chi-square goodness
     # of fit (scipy.stats.chisquare) at a 1e-3 level.
-    N, R, trials = 40, 8, 3000
+    # small N so an off-by-one in the draw (j ~ U{0..t-1}) moves late items' odds by ~10%
+    N, R, trials = 12, 4, 4000
     counts = np.zeros(N)
-    sizes = [3, 10, 1, 14, 12]
+    sizes = [2, 5, 1, 4]
     for seed in range(trials):
         obs = ChannelObserver(1, None, reservoir=R, seed=seed)
         start = 0
