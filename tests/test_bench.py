@@ -1,0 +1,127 @@
+"""Tests for `swapper bench` (smoke run through the CLI) and the synthetic scale model."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+from onnx.reference import ReferenceEvaluator
+from sklearn.metrics import accuracy_score
+from typer.testing import CliRunner
+
+from swapper.cli import app
+from swapper.demo import DEMO_DIR
+from swapper.scale_model import INPUT_NAME, build_scale_model, scale_inputs
+from swapper.sites import find_sites
+
+SMALLEST = min(DEMO_DIR.glob("*.onnx"), key=lambda p: p.stat().st_size)
+
+# The fields the module docstring of swapper/bench.py documents for schema swapper.bench/1.
+TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
+MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
+SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
+            "memory_factors", "rungs", "family_rule", "scale"}
+MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory"}
+FAMILY = {"family", "targets", "ladder", "cost", "speed", "int8", "notes"}
+LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "delta_pp", "n"}
+COST = {"plain_pass_s", "record_s", "segments_s", "fit_s", "bias_correction_s", "total_s", "ratio_total",
+        "ratio_record", "ratio_fit"}
+SPEED = {"original_ms", "swapped_ms", "floor_ms", "ratio", "saving_fraction", "note"}
+INT8 = {"metric", "original", "swapped", "delta_pp", "speed"}
+MEMORY = {"factors", "method", "ratio_16_1", "ratio_last_1", "peak_ratio_last_1", "time_ratio_last_1", "base_samples"}
+MEMORY_ROW = {"times", "samples", "baseline_kib", "peak_before_kib", "peak_kib", "delta_kib", "wall_s"}
+TARGET = {"target", "where", "measured", "met"}
+
+
+def _tiny_sets(folder: Path) -> tuple[Path, Path]:
+    with np.load(DEMO_DIR / "calib.npz") as c, np.load(DEMO_DIR / "val.npz") as v:
+        np.savez(folder / "calib.npz", pixels=c["pixels"][:24])
+        np.savez(folder / "val.npz", pixels=v["pixels"][:40], labels=v["labels"][:40])
+    return folder / "calib.npz", folder / "val.npz"
+
+
+@pytest.fixture(scope="module")
+def quick_run(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("bench")
+    calib, val = _tiny_sets(tmp)
+    out = tmp / "out"
+    result = CliRunner().invoke(app, ["bench", str(SMALLEST), "--calib", str(calib), "--val", str(val),
+                                      "--quick", "--no-scale", "--out", str(out), "--repeats", "2"])
+    assert result.exit_code == 0, result.output
+    folders = sorted(p for p in out.iterdir() if p.is_dir())
+    assert len(folders) == 1
+    return folders[0], val
+
+
+def test_quick_bench_writes_every_documented_field(quick_run):
+    folder, _ = quick_run
+    # source: the schema swapper.bench/1 as documented in the swapper/bench.py module docstring
+    data = json.loads((folder / "results.json").read_text())
+    assert TOP <= set(data) and data["schema"] == "swapper.bench/1"
+    assert folder.name == data["created_utc"] and len(data["created_utc"]) == len("20240101T000000Z")
+    assert MACHINE <= set(data["machine"]) and SETTINGS <= set(data["settings"])
+    assert data["settings"]["quick"] is True and "--quick" in data["settings"]["command"]
+    assert len(data["models"]) == 1
+    model = data["models"][0]
+    assert MODEL <= set(model) and model["synthetic"] is False and model["name"] == SMALLEST.stem
+    assert len(model["families"]) == 1  # --quick keeps one family
+    fam = model["families"][0]
+    assert FAMILY <= set(fam) and LADDER <= set(fam["ladder"]) and COST <= set(fam["cost"])
+    assert fam["ladder"]["refit"] is None  # --quick drops the refit rung
+    for rung in ("original", "naive", "local", "sequential", "sequential_bias"):
+        assert 0.0 <= fam["ladder"][rung] <= 1.0
+    assert set(fam["speed"]) == {"1", "40"}  # batch 1 and the whole (40-sample) validation set
+    for row in fam["speed"].values():
+        assert SPEED <= set(row) and row["original_ms"] > 0 and row["swapped_ms"] > 0
+    assert INT8 <= set(fam["int8"])
+    mem = model["memory"]
+    assert MEMORY <= set(mem) and mem["factors"] == [1, 2]
+    for k in mem["factors"]:
+        assert MEMORY_ROW <= set(mem[str(k)]) and mem[str(k)]["samples"] == 24 * k
+    assert mem["ratio_16_1"] is None  # 16x is not run with --quick
+    assert data["targets"] and all(TARGET <= set(t) for t in data["targets"])
+    md = (folder / "results.md").read_text()
+    assert "## Quality ladder" in md and "## Tool cost" in md and "## Model speed" in md
+    assert data["settings"]["command"] in md
+
+
+def test_ladder_original_matches_independent_accuracy(quick_run):
+    folder, val = quick_run
+    data = json.loads((folder / "results.json").read_text())
+    with np.load(val) as v:
+        pixels, labels = v["pixels"], v["labels"]
+    sess = ort.InferenceSession(str(SMALLEST), providers=["CPUExecutionProvider"])
+    pred = sess.run(None, {sess.get_inputs()[0].name: pixels})[0].argmax(axis=1)
+    # source: scikit-learn accuracy_score (fraction of exact label matches) on onnxruntime's predictions
+    assert data["models"][0]["families"][0]["ladder"]["original"] == pytest.approx(accuracy_score(labels, pred))
+
+
+def test_scale_model_is_valid_onnx_with_16_silu_sites():
+    model = build_scale_model()
+    onnx.checker.check_model(model, full_check=True)  # source: ONNX checker (IR + operator spec)
+    sites = find_sites(model)
+    assert len(sites) == 16
+    assert all(s.function == "silu" and s.form == "silu/mul-sigmoid" and s.role == "pointwise" for s in sites)
+    assert [s.channels for s in sites] == [16] * 8 + [32] * 8
+
+
+def test_scale_model_runs_as_the_onnx_reference_evaluator_says():
+    model = build_scale_model(blocks=4, size=8)
+    x = scale_inputs(4, size=8, seed=3)
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    got = sess.run(None, {INPUT_NAME: x})[0]
+    # source: onnx.reference.ReferenceEvaluator executes the ONNX operator spec (Conv, Sigmoid, Mul, GAP, Gemm)
+    want = ReferenceEvaluator(model).run(None, {INPUT_NAME: x})[0]
+    np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-4)
+
+
+def test_scale_model_spreads_predictions_over_classes():
+    model = build_scale_model()
+    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
+    pred = sess.run(None, {INPUT_NAME: scale_inputs(128, seed=2)})[0].argmax(axis=1)
+    # common practice, no source: agreement only says something if the original's top-1 varies across samples
+    assert len(np.unique(pred)) >= 4
+    assert np.bincount(pred).max() <= 0.6 * len(pred)
