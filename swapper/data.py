@@ -4,36 +4,31 @@ Transformation: a ``.npz`` archive, a folder of ``.npy`` files (or one ``.npy``
 for a single-input model) becomes a :class:`Dataset` whose arrays line up with
 the model's inputs, then a stream of :class:`Batch` feeds in the model's dtypes.
 
-Arrays are never unpickled (``allow_pickle=False`` and an explicit header check
-first). Folder ``.npy`` files and uncompressed ``.npz`` members (``np.savez``'s
-default) are memory-mapped, so sets larger than memory stream; compressed
-members are read whole. Dtype casts happen per batch, so validating or batching
-never holds more than one chunk/batch in memory.
+Arrays are never unpickled and are memory-mapped where the format allows
+(:mod:`swapper.npy_files`); replicated sets are lazy views
+(:mod:`swapper.lazy_array`). Dtype casts happen per batch, so validating or
+batching never holds more than one chunk/batch in memory.
 """
 from __future__ import annotations
 
 import logging
 import math
-import struct
-import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Iterator
 
 import numpy as np
 import onnx
-from numpy.lib import format as npy_format
 
 from .errors import BadDataError, BadModelError
+from .lazy_array import CycledArray, cycle, head  # noqa: F401  (CycledArray: re-exported, it lived here)
+from .npy_files import read_folder, read_npz
 
 logger = logging.getLogger(__name__)
 
 RESERVED = ("labels", "targets")
 # Validation scans arrays in chunks of about this many bytes so a memmap is never read whole.
 CHUNK_BYTES = 32 * 2**20
-_ZIP_LOCAL_MAGIC = b"PK\x03\x04"
-_ZIP_EMPTY_MAGIC = b"PK\x05\x06"
-_NPY_MAGIC = b"\x93NUMPY"
 
 
 @dataclass
@@ -74,69 +69,6 @@ def fixed_batch_size(specs: list[InputSpec]) -> int | None:
     return min(sizes) if sizes else None
 
 
-class CycledArray:
-    """A read-only, lazy array whose sample i is ``base[i % len(base)]``; nothing is copied up front.
-
-    Supports what :func:`batches` and :func:`subset` need: ``len``, ``shape``,
-    ``dtype`` and indexing on the first axis by int, slice or integer array.
-    """
-
-    def __init__(self, base: np.ndarray, length: int):
-        if len(base) == 0:
-            raise ValueError("cannot cycle an empty array")
-        self.base = base
-        self.length = int(length)
-
-    shape = property(lambda self: (self.length,) + tuple(self.base.shape[1:]))
-    dtype = property(lambda self: self.base.dtype)
-    ndim = property(lambda self: self.base.ndim)
-    size = property(lambda self: math.prod(self.shape))
-    nbytes = property(lambda self: self.size * self.dtype.itemsize)
-
-    def __len__(self) -> int:
-        return self.length
-
-    def __repr__(self) -> str:
-        return f"CycledArray(shape={self.shape}, dtype={self.dtype}, base_samples={len(self.base)})"
-
-    def __getitem__(self, key):
-        if isinstance(key, tuple):
-            head, rest = (key[0], key[1:]) if key else (slice(None), ())
-            part = self[head]
-            return part[rest] if isinstance(head, (int, np.integer)) else part[(slice(None),) + rest]
-        m = len(self.base)
-        if isinstance(key, (int, np.integer)):
-            i = int(key) + self.length if key < 0 else int(key)
-            if not 0 <= i < self.length:
-                raise IndexError(f"index {key} out of range for {self.length} samples")
-            return self.base[i % m]
-        if isinstance(key, slice):
-            start, stop, step = key.indices(self.length)
-            if step != 1:
-                return self.base[np.arange(start, stop, step) % m]
-            pieces, pos = [], start
-            while pos < stop:  # contiguous runs of base, at most one copy of the requested rows
-                b = pos % m
-                take = min(m - b, stop - pos)
-                pieces.append(self.base[b : b + take])
-                pos += take
-            if len(pieces) == 1:
-                return pieces[0]
-            return np.concatenate(pieces) if pieces else self.base[:0]
-        idx = np.asarray(key)
-        if idx.dtype.kind not in "iu":
-            raise IndexError("CycledArray supports int, slice and integer-array indices only")
-        idx = np.where(idx < 0, idx + self.length, idx)
-        if idx.size and (idx.min() < 0 or idx.max() >= self.length):
-            raise IndexError(f"index out of range for {self.length} samples")
-        return self.base[idx % m]
-
-    def __array__(self, dtype=None, copy=None):
-        logger.debug("materialising a CycledArray of %d samples", self.length)
-        out = self[:]
-        return out.astype(dtype) if dtype is not None else np.array(out)
-
-
 @dataclass
 class Dataset:
     """Validated samples. ``arrays`` keyed by model input name; may be memmaps or CycledArrays."""
@@ -158,103 +90,6 @@ class Batch:
     feeds: dict[str, np.ndarray]
     labels: np.ndarray | None
     targets: np.ndarray | None
-
-
-# ---------------------------------------------------------------- reading files
-
-
-def _read_header(fh, where: str, path: Path) -> tuple[tuple, bool, np.dtype]:
-    """Parse an .npy header (shape, fortran_order, dtype); refuse object dtypes before any data is read."""
-    try:
-        version = npy_format.read_magic(fh)
-        reader = npy_format.read_array_header_1_0 if version == (1, 0) else npy_format.read_array_header_2_0
-        shape, fortran, dtype = reader(fh)
-    except (ValueError, EOFError, OSError, SyntaxError) as exc:
-        raise BadDataError(f"{where} is not a valid .npy array ({_first_line(exc)})", path) from None
-    if dtype.hasobject:
-        raise BadDataError(f"{where} contains pickled objects (refused)", path)
-    return tuple(shape), bool(fortran), dtype
-
-
-def _check_size(shape, dtype, where: str, available: int, path: Path) -> None:
-    if math.prod(shape) == 0:
-        raise BadDataError(f"{where} is empty (shape {tuple(shape)})", path)
-    if math.prod(shape) * dtype.itemsize > available:
-        raise BadDataError(f"{where} is truncated (shorter than its header says)", path)
-
-
-def _open_npy(path: Path, where: str) -> np.ndarray:
-    """Memory-map one .npy file read-only after checking its header."""
-    try:
-        with open(path, "rb") as fh:
-            shape, _, dtype = _read_header(fh, where, path)
-            offset = fh.tell()
-        _check_size(shape, dtype, where, path.stat().st_size - offset, path)
-        return np.load(path, mmap_mode="r", allow_pickle=False)
-    except OSError as exc:
-        raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
-    except ValueError as exc:
-        raise BadDataError(f"{where} cannot be loaded ({_first_line(exc)})", path) from None
-
-
-def _zip_member(path: Path, zf: zipfile.ZipFile, info: zipfile.ZipInfo, where: str) -> np.ndarray:
-    """Memory-map a stored (uncompressed) .npz member; read a compressed one into memory."""
-    stored = info.compress_type == zipfile.ZIP_STORED and not info.flag_bits & 0x1
-    if stored:
-        with open(path, "rb") as fh:
-            fh.seek(info.header_offset)
-            local = fh.read(30)
-            if len(local) < 30 or local[:4] != _ZIP_LOCAL_MAGIC:
-                raise BadDataError(f"not a valid .npz (corrupt entry for {info.filename!r})", path)
-            name_len, extra_len = struct.unpack("<HH", local[26:30])
-            start = info.header_offset + 30 + name_len + extra_len
-            fh.seek(start)
-            shape, fortran, dtype = _read_header(fh, where, path)
-            offset = fh.tell()
-        _check_size(shape, dtype, where, min(start + info.file_size, path.stat().st_size) - offset, path)
-        return np.memmap(path, dtype=dtype, mode="r", offset=offset, shape=shape, order="F" if fortran else "C")
-    with zf.open(info) as fh:
-        shape, fortran, dtype = _read_header(fh, where, path)
-        count = math.prod(shape)
-        raw = fh.read(count * dtype.itemsize)
-    _check_size(shape, dtype, where, len(raw), path)
-    return np.frombuffer(raw, dtype=dtype, count=count).reshape(shape, order="F" if fortran else "C")
-
-
-def _read_npz(path: Path) -> dict[str, np.ndarray]:
-    try:
-        with open(path, "rb") as fh:
-            magic = fh.read(6)
-    except OSError as exc:
-        raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
-    if not magic:
-        raise BadDataError("file is empty", path)
-    if magic == _NPY_MAGIC:
-        return {path.stem: _open_npy(path, f"array {path.stem!r}")}
-    if magic[:4] not in (_ZIP_LOCAL_MAGIC, _ZIP_EMPTY_MAGIC):
-        raise BadDataError("not an .npz archive or .npy file (expected a zip of .npy arrays)", path)
-    arrays: dict[str, np.ndarray] = {}
-    try:
-        with zipfile.ZipFile(path) as zf:
-            for info in sorted(zf.infolist(), key=lambda i: i.filename):
-                if info.is_dir():
-                    continue
-                if not info.filename.endswith(".npy"):
-                    raise BadDataError(f"unexpected member {info.filename!r} in the archive (not an .npy)", path)
-                key = info.filename[: -len(".npy")]
-                arrays[key] = _zip_member(path, zf, info, f"array {key!r}")
-    except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, OSError, ValueError, struct.error) as exc:
-        raise BadDataError(f"not a valid .npz (truncated or corrupt zip: {_first_line(exc)})", path) from None
-    if not arrays:
-        raise BadDataError("the archive holds no arrays", path)
-    return arrays
-
-
-def _read_folder(path: Path) -> dict[str, np.ndarray]:
-    files = sorted(p for p in path.glob("*.npy") if p.is_file() and not p.name.startswith("."))
-    if not files:
-        raise BadDataError("folder contains no .npy files", path)
-    return {f.stem: _open_npy(f, f"array {f.stem!r}") for f in files}
 
 
 # ---------------------------------------------------------------- validation
@@ -397,7 +232,7 @@ def load_dataset(
         raise BadDataError("no such file or folder", path)
     if not specs:
         raise BadDataError("the model has no inputs to feed", path)
-    raw = _read_folder(path) if path.is_dir() else _read_npz(path)
+    raw = read_folder(path) if path.is_dir() else read_npz(path)
     labels, targets = raw.get("labels"), raw.get("targets")
     if require_labels and labels is None:
         raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
@@ -450,14 +285,6 @@ def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterat
         yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
 
 
-def _cycle(arr, length: int):
-    if arr is None:
-        return None
-    if isinstance(arr, CycledArray) and len(arr) % len(arr.base) == 0:
-        arr = arr.base  # whole cycles: index the original directly instead of nesting views
-    return CycledArray(arr, length)
-
-
 def replicate(ds: Dataset, times: int) -> Dataset:
     """A lazy view of ``ds`` repeated ``times`` times (sample i = original i % n); no data is copied."""
     if times < 1:
@@ -465,18 +292,12 @@ def replicate(ds: Dataset, times: int) -> Dataset:
     n = ds.n * int(times)
     return Dataset(
         path=ds.path,
-        arrays={k: _cycle(v, n) for k, v in ds.arrays.items()},
-        labels=_cycle(ds.labels, n),
-        targets=_cycle(ds.targets, n),
+        arrays={k: cycle(v, n) for k, v in ds.arrays.items()},
+        labels=cycle(ds.labels, n),
+        targets=cycle(ds.targets, n),
         n=n,
         dtypes=dict(ds.dtypes),
     )
-
-
-def _head(arr, n: int):
-    if arr is None:
-        return None
-    return CycledArray(arr.base, n) if isinstance(arr, CycledArray) else arr[:n]
 
 
 def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
@@ -485,7 +306,7 @@ def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
         raise ValueError("n must be >= 1")
     n = min(int(n), ds.n)
     if seed is None:
-        take = lambda a: _head(a, n)  # noqa: E731 - views, nothing copied
+        take = lambda a: head(a, n)  # noqa: E731 - views, nothing copied
     else:
         idx = np.sort(np.random.default_rng(seed).choice(ds.n, size=n, replace=False))
         take = lambda a: None if a is None else np.asarray(a[idx])  # noqa: E731
@@ -497,8 +318,3 @@ def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
         n=n,
         dtypes=dict(ds.dtypes),
     )
-
-
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__

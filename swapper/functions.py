@@ -36,7 +36,6 @@ import importlib
 import logging
 import math
 from dataclasses import dataclass, field
-from functools import lru_cache
 from typing import Callable
 
 import numpy as np
@@ -45,6 +44,10 @@ from scipy.special import erf, expit
 
 from .emit import Emitter
 from .errors import SwapperError, UsageError
+from .pwl import PWL_DEFAULT_SEGMENTS, emit_pwl, fit_pwl, pwl_grad, pwl_ref
+
+# Moved to swapper.pwl; re-exported so imports from swapper.functions keep working.
+from .pwl import PWL_GRID, PWL_MAX_SEGMENTS, PWL_RANGE  # noqa: F401
 
 logger = logging.getLogger(__name__)
 
@@ -63,10 +66,6 @@ SELU_GAMMA = 1.05070102214813232421875
 # sigmoid versus 0.048 for Howard et al.'s 1/6 (max error 0.076 vs 0.069), and the
 # calibration objective is weighted least squares (measured on a 4801-point grid).
 HSIG_ALPHA, HSIG_BETA = 0.2, 0.5
-PWL_RANGE = 6.0
-PWL_GRID = 4801
-PWL_MAX_SEGMENTS = 8
-PWL_DEFAULT_SEGMENTS = 6
 
 
 @dataclass(frozen=True)
@@ -241,30 +240,6 @@ def _hard_swish_grad(x):
     return np.where(x >= 3.0, 1.0, np.where(x > -3.0, (2.0 * x + 3.0) / 6.0, 0.0))
 
 
-def _pwl_check(knots, slopes, intercept) -> tuple[Array, Array, float]:
-    t, s = np.asarray(knots, dtype=np.float64).ravel(), np.asarray(slopes, dtype=np.float64).ravel()
-    if len(s) != len(t) + 1 or len(s) > PWL_MAX_SEGMENTS:
-        raise UsageError(f"pwl needs len(slopes) == len(knots) + 1 <= {PWL_MAX_SEGMENTS}; got {len(t)} knots, {len(s)} slopes")
-    if np.any(np.diff(t) <= 0) or not (np.all(np.isfinite(t)) and np.all(np.isfinite(s))):
-        raise UsageError("pwl knots must be finite and strictly increasing")
-    return t, s, float(intercept)
-
-
-def _pwl(x, knots=(0.0,), slopes=(0.0, 1.0), intercept=0.0):
-    t, s, i0 = _pwl_check(knots, slopes, intercept)
-    x = _f(x)
-    y = s[0] * x + i0
-    for ti, ds in zip(t, np.diff(s)):
-        y = y + ds * np.maximum(x - ti, 0.0)
-    return y
-
-
-def _pwl_grad(x, knots=(0.0,), slopes=(0.0, 1.0), intercept=0.0):
-    t, s, _ = _pwl_check(knots, slopes, intercept)
-    # Left slope at a knot: the segment index counts knots strictly below x.
-    return s[np.searchsorted(t, _f(x), side="left")]
-
-
 def _igelu_erf(u):
     # Kim et al. 2021: L(u) = sign(u)·[a·(min(|u|, -b) + b)^2 + 1]
     return np.sign(u) * (IGELU_A * (np.minimum(np.abs(u), -IGELU_B) + IGELU_B) ** 2 + 1.0)
@@ -390,29 +365,6 @@ def _emit_prelu(em, x, y, params):
     em.node("PRelu", [x, em.const([slope], "slope")], y)
 
 
-def _emit_pwl(em, x, y, params):
-    """y = s0·x + i0 + Σ (s_i − s_{i−1})·Relu(x − t_i), with Relu/Mul/Add only."""
-    t, s, i0 = _pwl_check(params.get("knots", (0.0,)), params.get("slopes", (0.0, 1.0)),
-                          params.get("intercept", 0.0))
-    terms: list[str] = []
-    if s[0] != 0.0:
-        terms.append(x if s[0] == 1.0 else _mul_const(em, x, float(s[0])))
-    for ti, ds in zip(t, np.diff(s)):
-        if ds == 0.0:
-            continue
-        r = em.node("Relu", [x if ti == 0.0 else em.node("Add", [x, em.const(-ti, "knot")])])
-        terms.append(r if ds == 1.0 else _mul_const(em, r, float(ds)))
-    if not terms:  # constant function: 0·x keeps x's shape
-        terms.append(_mul_const(em, x, 0.0))
-    acc = terms[0]
-    for term in terms[1:]:
-        acc = em.node("Add", [acc, term])
-    if i0 != 0.0 or acc == x:
-        em.node("Add", [acc, em.const(i0, "intercept")], y)
-    else:
-        em.nodes[-1].output[0] = y  # the last node already computes g(x): rename its output
-
-
 def _emit_poly_gelu(em, x, y, params):
     u = _mul_const(em, x, 1.0 / math.sqrt(2.0))
     m = em.node("Min", [em.node("Abs", [u]), em.const(-IGELU_B, "clipb")])
@@ -478,7 +430,7 @@ _add("hard_swish", _hard_swish, _hard_swish_grad, _emit_hard_swish, True, 1.5,
      source="Howard et al. 2019 (MobileNetV3), h-swish: x·ReLU6(x+3)/6")
 _add("hard_tanh", lambda x: np.clip(_f(x), -1.0, 1.0), lambda x: _clip_grad(x, -1.0, 1.0),
      _emit_clip(-1.0, 1.0), True, 1.0, source="Collobert 2004, hard tanh = Clip(x, -1, 1)")
-_add("pwl", _pwl, _pwl_grad, _emit_pwl, True, 3.0, {"knots": (0.0,), "slopes": (0.0, 1.0), "intercept": 0.0},
+_add("pwl", pwl_ref, pwl_grad, emit_pwl, True, 3.0, {"knots": (0.0,), "slopes": (0.0, 1.0), "intercept": 0.0},
      source="continuous piecewise-linear function as a sum of hinges (ReLU basis)")
 _add("poly_gelu", _poly_gelu, _poly_gelu_grad, _emit_poly_gelu, True, 3.0,
      source="Kim et al. 2021 (I-BERT), i-GELU: a=-0.2888, b=-1.769")
@@ -500,27 +452,3 @@ def target_params(source: str, source_params: dict, target: str, *, segments: in
         items = tuple(sorted((k, float(v)) for k, v in merged.items()))
         return fit_pwl(source, items, segments)
     return dict(tgt.params)
-
-
-@lru_cache(maxsize=64)
-def fit_pwl(source: str, source_params: tuple = (), segments: int = PWL_DEFAULT_SEGMENTS) -> dict:
-    """Least-squares pwl fit of ``source`` on [-6, 6] weighted by the N(0, 1) density.
-
-    Knots sit at the N(0, 1) quantiles i/segments (i = 1..segments-1), so the
-    result depends only on the source and ``segments`` (deterministic).
-    """
-    from scipy.stats import norm  # noqa: PLC0415  (scipy.stats is slow to import)
-
-    if not 1 <= int(segments) <= PWL_MAX_SEGMENTS:
-        raise UsageError(f"pwl segments must be in 1..{PWL_MAX_SEGMENTS}; got {segments}")
-    k = int(segments)
-    x = np.linspace(-PWL_RANGE, PWL_RANGE, PWL_GRID)
-    w = np.sqrt(norm.pdf(x))
-    target = get(source).ref(x, **dict(source_params))
-    knots = norm.ppf(np.arange(1, k) / k)
-    basis = np.column_stack([x, np.ones_like(x)] + [np.maximum(x - t, 0.0) for t in knots])
-    coef, *_ = np.linalg.lstsq(basis * w[:, None], target * w, rcond=None)
-    slopes = coef[0] + np.concatenate([[0.0], np.cumsum(coef[2:])])
-    logger.debug("pwl fit of %s with %d segments: knots %s", source, k, knots)
-    return {"knots": tuple(float(t) for t in knots), "slopes": tuple(float(s) for s in slopes),
-            "intercept": float(coef[1])}

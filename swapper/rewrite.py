@@ -9,7 +9,8 @@ moved inside ``g`` (a > 0, homogeneous g), or emitted as per-channel Mul/Add
 nodes. Parameters equal to their neutral value add nothing. The output tensor
 name of every site is kept, so consumers and graph outputs are untouched. The
 input model is never mutated, and folded weights always get a new initializer
-(the model's own initializers may be shared by other nodes).
+(the model's own initializers may be shared by other nodes). The graph
+surgery itself (placing nodes, dropping what died) is :mod:`swapper.splice`.
 """
 from __future__ import annotations
 
@@ -28,6 +29,7 @@ from .fold import (ConsumerFold, ProducerFold, consumer_folds, input_offset, inp
 from .graph import GraphIndex, attr
 from .plan import NEUTRAL, PARAMS, Plan, SiteSwap
 from .sites import Site
+from .splice import all_names, copy_model, site_positions, splice, used_names
 
 logger = logging.getLogger(__name__)
 
@@ -63,9 +65,8 @@ class _Weights:
     sites folding into one layer compose.
     """
 
-    def __init__(self, index: GraphIndex, taken: set[str]):
+    def __init__(self, index: GraphIndex):
         self.index = index
-        self.taken = taken
         self.values: dict[str, np.ndarray] = {}
         self.dtypes: dict[str, np.dtype] = {}
 
@@ -88,18 +89,14 @@ class _Weights:
             return self.dtype(node, 1) if slot != 1 else np.dtype(np.float32)
         return value.dtype
 
-    def write(self, node: onnx.NodeProto, slot: int, value: np.ndarray, prefix: str) -> None:
+    def write(self, node: onnx.NodeProto, slot: int, value: np.ndarray, em: Emitter) -> None:
+        """Set input ``slot`` of ``node``; its first write rewires it to a new tensor named by ``em``."""
         name = node.input[slot] if slot < len(node.input) else ""
         if name in self.values:
             self.values[name] = np.asarray(value, dtype=np.float64)
             return
         dtype = self.dtype(node, slot)
-        base = f"{prefix}/{node.name}/in{slot}"
-        new, k = base, 0
-        while new in self.taken:
-            k += 1
-            new = f"{base}_{k}"
-        self.taken.add(new)
+        new = em.fresh(f"{node.name}/in{slot}")
         while len(node.input) <= slot:
             node.input.append("")
         node.input[slot] = new
@@ -121,7 +118,7 @@ def _bias_of(node: onnx.NodeProto, add: onnx.NodeProto | None) -> tuple[onnx.Nod
     return add, 1 if add.input[0] == node.output[0] else 0
 
 
-def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray, prefix: str) -> list[str]:
+def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray, em: Emitter) -> list[str]:
     """Fold b (scale) and c (shift) into the layer that produces x. Returns the touched node names."""
     node = pf.node
     bias_node, bias_slot = _bias_of(node, pf.add)
@@ -129,15 +126,16 @@ def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray,
     new_w, new_bias = scale_shift_output(pf.kind, node, w.read(node, 1), bias, b, c)
     touched = []
     if not _neutral("b", b):
-        w.write(node, 1, new_w, prefix)
+        w.write(node, 1, new_w, em)
         touched.append(node.name)
     if pf.kind != "matmul" and (not _neutral("c", c) or (bias is not None and not _neutral("b", b))):
-        w.write(bias_node, bias_slot, new_bias, prefix)
+        w.write(bias_node, bias_slot, new_bias, em)
         touched.append(bias_node.name)
     return touched
 
 
-def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.ndarray | None, prefix: str) -> list[str]:
+def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.ndarray | None,
+                    em: Emitter) -> list[str]:
     """Fold y -> a·y + d into one linear consumer. d uses the weights before the a scaling."""
     node = f.node
     weight = w.read(node, 1)
@@ -148,10 +146,10 @@ def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.nd
             offset = offset / float(attr(node, "beta", 1.0))
         bias_node, bias_slot = _bias_of(node, f.add)
         bias = w.read(bias_node, bias_slot)
-        w.write(bias_node, bias_slot, (0.0 if bias is None else bias) + offset, prefix)
+        w.write(bias_node, bias_slot, (0.0 if bias is None else bias) + offset, em)
         touched.append(bias_node.name)
     if a is not None:
-        w.write(node, 1, input_scale(f.kind, node, weight, a), prefix)
+        w.write(node, 1, input_scale(f.kind, node, weight, a), em)
         touched.append(node.name)
     return touched
 
@@ -227,7 +225,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         if pf is None or (in_c and not pf.can_shift):
             raise UsageError(f"site {site.id}: plan folds b/c into the producer but {why or pf.reason}")
         folded += _apply_producer(weights, pf, vals["b"] if in_b else np.ones(1),
-                                  vals["c"] if in_c else np.zeros(1), em.prefix)
+                                  vals["c"] if in_c else np.zeros(1), em)
     x = site.input
     if place["b"] == "nodes" and need["b"]:
         x = em.node("Mul", [x, const("b", vals["b"])])
@@ -254,7 +252,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
         for f in folds:
             folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
-                                      vals["d"] if d_cons else None, em.prefix)
+                                      vals["d"] if d_cons else None, em)
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
     fn.emit(em, x, g_out, dict(swap.target_params))
@@ -267,121 +265,10 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     return SiteRecord(site.id, site.function, swap.target, dict(place), sorted(set(folded)), len(em.nodes), notes)
 
 
-# ------------------------------------------------------------ graph surgery
-def _deep_inputs(nodes) -> set[str]:
-    """Every tensor name read by ``nodes``, including from inside their subgraphs."""
-    used: set[str] = set()
-    for node in nodes:
-        used.update(t for t in node.input if t)
-        for a in node.attribute:
-            graphs = [a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs)
-            for g in graphs:
-                used |= _deep_inputs(g.node)
-                used.update(o.name for o in g.output)
-    return used
-
-
-def _site_positions(model: onnx.ModelProto, sites: list[Site]) -> dict[str, list[int]]:
-    positions: dict[str, list[int]] = {}
-    for i, node in enumerate(model.graph.node):
-        positions.setdefault(node.name, []).append(i)
-    out, owner = {}, {}
-    for site in sites:
-        pos = []
-        for name in site.nodes:
-            found = positions.get(name, [])
-            if len(found) != 1:
-                what = "not found" if not found else "not unique (load the model with swapper.model_io.load_model)"
-                raise BadModelError(f"site {site.id}: node name {name!r} is {what}")
-            if found[0] in owner:
-                raise UsageError(f"sites {owner[found[0]]} and {site.id} share node {name!r}")
-            owner[found[0]] = site.id
-            pos.append(found[0])
-        out[site.id] = sorted(pos)
-    return out
-
-
-def _splice(model: onnx.ModelProto, sites: list[Site], positions: dict[str, list[int]],
-            inserts: dict[str, list[onnx.NodeProto]], initializers: list[onnx.TensorProto],
-            used_before: set[str]) -> None:
-    """Replace each site's nodes by its inserted nodes (at the first site node); drop what became unused.
-
-    ``used_before``: the tensors the graph read before any edit (only those may be dropped).
-    """
-    g = model.graph
-    removed = {p for s in sites for p in positions[s.id]}
-    at = {positions[s.id][0]: inserts[s.id] for s in sites}
-    kept = [n for i, n in enumerate(g.node) if i not in removed]
-    new_nodes = [n for s in sites for n in inserts[s.id]]
-    used = _deep_inputs(kept + new_nodes) | {o.name for o in g.output}
-    outputs = {s.output for s in sites}
-    for i in sorted(removed):
-        node = g.node[i]
-        dangling = [t for t in node.output if t and t in used and t not in outputs]
-        if dangling and node.op_type == "Constant":
-            removed.discard(i)  # a shared constant of the pattern: keep it for its other readers
-        elif dangling:
-            raise BadModelError(f"site tensor {dangling[0]!r} is also read outside the site")
-    nodes = []
-    for i, node in enumerate(g.node):
-        nodes.extend(at.get(i, []))
-        if i not in removed:
-            nodes.append(node)
-    del g.node[:]
-    g.node.extend(nodes)
-    g.initializer.extend(initializers)
-    if model.ir_version < 4:  # old IR: every initializer must also be a graph input
-        for t in initializers:
-            g.input.append(helper.make_tensor_value_info(t.name, t.data_type, list(t.dims)))
-    _drop_unused(model, used_before)
-
-
-def _drop_unused(model: onnx.ModelProto, used_before: set[str]) -> None:
-    g = model.graph
-    used = _used(model)
-    gone = {t.name for t in g.initializer if t.name in used_before and t.name not in used}
-    stale_consts = [n for n in g.node if n.op_type == "Constant" and n.output[0] in used_before
-                    and n.output[0] not in used]
-    if gone:
-        keep = [t for t in g.initializer if t.name not in gone]
-        del g.initializer[:]
-        g.initializer.extend(keep)
-        keep_in = [v for v in g.input if v.name not in gone]
-        del g.input[:]
-        g.input.extend(keep_in)
-    if stale_consts:
-        drop = {n.output[0] for n in stale_consts}
-        keep_nodes = [n for n in g.node if not (n.op_type == "Constant" and n.output[0] in drop)]
-        del g.node[:]
-        g.node.extend(keep_nodes)
-    produced = {t for n in g.node for t in n.output} | {v.name for v in g.input} | {t.name for t in g.initializer}
-    keep_vi = [v for v in g.value_info if v.name in produced]
-    del g.value_info[:]
-    g.value_info.extend(keep_vi)
-    logger.debug("dropped %d initializers, %d constants", len(gone), len(stale_consts))
-
-
-def _used(model: onnx.ModelProto) -> set[str]:
-    return _deep_inputs(model.graph.node) | {o.name for o in model.graph.output}
-
-
-def _all_names(model: onnx.ModelProto) -> set[str]:
-    g = model.graph
-    names = {n.name for n in g.node} | {t for n in g.node for t in list(n.input) + list(n.output)}
-    names |= {t.name for t in g.initializer} | {v.name for v in list(g.input) + list(g.output) + list(g.value_info)}
-    return names
-
-
-def _copy(model: onnx.ModelProto) -> onnx.ModelProto:
-    out = onnx.ModelProto()
-    out.CopyFrom(model)
-    return out
-
-
 # ------------------------------------------------------------------ public
 def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteResult:
     """A copy of ``model`` with every site of ``plan`` replaced by its surrogate, parameters placed."""
-    out = _copy(model)
+    out = copy_model(model)
     index = GraphIndex.of(out)
     if index.opset <= 0:
         raise BadModelError("model imports no default-domain opset")
@@ -390,10 +277,10 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
     if missing:
         raise UsageError(f"plan names unknown site {', '.join(missing)}; valid ids: {', '.join(sorted(by_id))}")
     chosen = [by_id[s.site_id] for s in plan.swaps]
-    positions = _site_positions(out, chosen)
-    used_before = _used(out)
-    taken = _all_names(out)
-    weights = _Weights(index, taken)
+    positions = site_positions(out, chosen)
+    used_before = used_names(out)
+    taken = all_names(out)
+    weights = _Weights(index)
     # Analyse every site on the untouched copy: folds rewire weights to new tensors.
     analyses = {s.id: (producer_fold(index, s), consumer_folds(index, s)) for s in chosen}
     inserts, emitted, records = {}, [], []
@@ -405,7 +292,7 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
         records.append(_swap_site(index, weights, site, swap, em, analyses[site.id]))
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
-    _splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
+    splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
     kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
     del out.metadata_props[:]
     out.metadata_props.extend(kept)
@@ -416,13 +303,13 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
 
 def rewrite_identity_floor(model: onnx.ModelProto, sites: list[Site]) -> onnx.ModelProto:
     """A copy of ``model`` with each site replaced by Identity: the speed floor of any swap."""
-    out = _copy(model)
-    positions = _site_positions(out, sites)
-    taken = _all_names(out)
+    out = copy_model(model)
+    positions = site_positions(out, sites)
+    taken = all_names(out)
     inserts, opset = {}, GraphIndex.of(out).opset
     for site in sites:
         em = Emitter(prefix=f"swapper/{site.id}", opset=opset, taken=taken)
         em.identity(site.input, site.output)
         inserts[site.id] = em.nodes
-    _splice(out, sites, positions, inserts, [], _used(out))
+    splice(out, sites, positions, inserts, [], used_names(out))
     return out

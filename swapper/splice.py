@@ -1,0 +1,135 @@
+"""Graph surgery for the rewriter: put new nodes where a site's nodes were, drop what died.
+
+Transformation: given each site's node positions and the nodes (plus
+initializers) that replace them, the graph gets the new nodes at the place of
+each site's first node, loses the site's nodes, and then loses initializers,
+Constant nodes and value_info that nothing reads any more, but only ones the
+graph read before the edit, so a caller's new tensors are never dropped.
+Subgraphs (If/Loop/Scan bodies) count as readers.
+"""
+from __future__ import annotations
+
+import logging
+
+import onnx
+from onnx import helper
+
+from .errors import BadModelError, UsageError
+from .sites import Site
+
+logger = logging.getLogger(__name__)
+
+
+def deep_inputs(nodes) -> set[str]:
+    """Every tensor name read by ``nodes``, including from inside their subgraphs."""
+    used: set[str] = set()
+    for node in nodes:
+        used.update(t for t in node.input if t)
+        for a in node.attribute:
+            graphs = [a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs)
+            for g in graphs:
+                used |= deep_inputs(g.node)
+                used.update(o.name for o in g.output)
+    return used
+
+
+def site_positions(model: onnx.ModelProto, sites: list[Site]) -> dict[str, list[int]]:
+    """Site id -> sorted positions of its nodes in ``model``; names must be unique and sites disjoint."""
+    positions: dict[str, list[int]] = {}
+    for i, node in enumerate(model.graph.node):
+        positions.setdefault(node.name, []).append(i)
+    out, owner = {}, {}
+    for site in sites:
+        pos = []
+        for name in site.nodes:
+            found = positions.get(name, [])
+            if len(found) != 1:
+                what = "not found" if not found else "not unique (load the model with swapper.model_io.load_model)"
+                raise BadModelError(f"site {site.id}: node name {name!r} is {what}")
+            if found[0] in owner:
+                raise UsageError(f"sites {owner[found[0]]} and {site.id} share node {name!r}")
+            owner[found[0]] = site.id
+            pos.append(found[0])
+        out[site.id] = sorted(pos)
+    return out
+
+
+def splice(model: onnx.ModelProto, sites: list[Site], positions: dict[str, list[int]],
+           inserts: dict[str, list[onnx.NodeProto]], initializers: list[onnx.TensorProto],
+           used_before: set[str]) -> None:
+    """Replace each site's nodes by its inserted nodes (at the first site node); drop what became unused.
+
+    ``used_before``: the tensors the graph read before any edit (only those may be dropped).
+    """
+    g = model.graph
+    removed = {p for s in sites for p in positions[s.id]}
+    at = {positions[s.id][0]: inserts[s.id] for s in sites}
+    kept = [n for i, n in enumerate(g.node) if i not in removed]
+    new_nodes = [n for s in sites for n in inserts[s.id]]
+    used = deep_inputs(kept + new_nodes) | {o.name for o in g.output}
+    outputs = {s.output for s in sites}
+    for i in sorted(removed):
+        node = g.node[i]
+        dangling = [t for t in node.output if t and t in used and t not in outputs]
+        if dangling and node.op_type == "Constant":
+            removed.discard(i)  # a shared constant of the pattern: keep it for its other readers
+        elif dangling:
+            raise BadModelError(f"site tensor {dangling[0]!r} is also read outside the site")
+    nodes = []
+    for i, node in enumerate(g.node):
+        nodes.extend(at.get(i, []))
+        if i not in removed:
+            nodes.append(node)
+    del g.node[:]
+    g.node.extend(nodes)
+    g.initializer.extend(initializers)
+    if model.ir_version < 4:  # old IR: every initializer must also be a graph input
+        for t in initializers:
+            g.input.append(helper.make_tensor_value_info(t.name, t.data_type, list(t.dims)))
+    drop_unused(model, used_before)
+
+
+def drop_unused(model: onnx.ModelProto, used_before: set[str]) -> None:
+    """Remove initializers and Constants in ``used_before`` nothing reads now, and stale value_info."""
+    g = model.graph
+    used = used_names(model)
+    gone = {t.name for t in g.initializer if t.name in used_before and t.name not in used}
+    stale_consts = [n for n in g.node if n.op_type == "Constant" and n.output[0] in used_before
+                    and n.output[0] not in used]
+    if gone:
+        keep = [t for t in g.initializer if t.name not in gone]
+        del g.initializer[:]
+        g.initializer.extend(keep)
+        keep_in = [v for v in g.input if v.name not in gone]
+        del g.input[:]
+        g.input.extend(keep_in)
+    if stale_consts:
+        drop = {n.output[0] for n in stale_consts}
+        keep_nodes = [n for n in g.node if not (n.op_type == "Constant" and n.output[0] in drop)]
+        del g.node[:]
+        g.node.extend(keep_nodes)
+    produced = {t for n in g.node for t in n.output} | {v.name for v in g.input} | {t.name for t in g.initializer}
+    keep_vi = [v for v in g.value_info if v.name in produced]
+    del g.value_info[:]
+    g.value_info.extend(keep_vi)
+    logger.debug("dropped %d initializers, %d constants", len(gone), len(stale_consts))
+
+
+def used_names(model: onnx.ModelProto) -> set[str]:
+    """Tensors read by any node (subgraphs included) or listed as graph outputs."""
+    return deep_inputs(model.graph.node) | {o.name for o in model.graph.output}
+
+
+def all_names(model: onnx.ModelProto) -> set[str]:
+    """Every node and tensor name of the main graph: what a new name must avoid."""
+    g = model.graph
+    names = {n.name for n in g.node} | {t for n in g.node for t in list(n.input) + list(n.output)}
+    names |= {t.name for t in g.initializer} | {v.name for v in list(g.input) + list(g.output) + list(g.value_info)}
+    return names
+
+
+def copy_model(model: onnx.ModelProto) -> onnx.ModelProto:
+    """A deep copy (the input model is never mutated)."""
+    out = onnx.ModelProto()
+    out.CopyFrom(model)
+    return out
