@@ -8,7 +8,7 @@ models. Cost = median time / median time of Relu, timed as the calling
 thread's CPU time (onnxruntime computes on it with one thread; unlike wall
 time this does not grow while other processes hold a shared CPU).
 
-Writes swapper/data/op_costs.json:
+Writes swapper/resources/op_costs.json:
 
     {"schema": "swapper.op_costs/1",
      "measured": {date, onnxruntime, onnx, cpu, shape, dtype, opset, threads,
@@ -277,7 +277,7 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=20, help="timed runs per model per sweep")
     ap.add_argument("--sweeps", type=int, default=5, help="passes over all models")
     ap.add_argument("--warmup", type=int, default=5)
-    ap.add_argument("--out", type=Path, default=Path(__file__).resolve().parents[1] / "swapper/data/op_costs.json")
+    ap.add_argument("--out", type=Path, default=Path(__file__).resolve().parents[1] / "swapper/resources/op_costs.json")
     args = ap.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(message)s")
 

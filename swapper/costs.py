@@ -1,6 +1,6 @@
 """Relative CPU cost of each activation function (Relu = 1.0).
 
-The numbers come from ``swapper/data/op_costs.json``, written by
+The numbers come from ``swapper/resources/op_costs.json``, written by
 ``benchmarks/measure_op_costs.py`` (onnxruntime, one thread, a
 [64, 32, 32, 32] float32 tensor; the file records how and where). A function
 can be measured in several *forms* (the single op, the com.microsoft op, the
@@ -18,7 +18,7 @@ from .errors import UsageError
 
 logger = logging.getLogger(__name__)
 
-COSTS_PATH = Path(__file__).resolve().parent / "data" / "op_costs.json"
+COSTS_PATH = Path(__file__).resolve().parent / "resources" / "op_costs.json"
 
 
 @lru_cache(maxsize=1)

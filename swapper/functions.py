@@ -381,7 +381,7 @@ def _add(name, ref, grad, emit, cheap, cost, params=None, homogeneous=False, sou
 
 
 # Static costs: our own estimate per element relative to Relu (a transcendental
-# ~4, each extra elementwise op ~1); used only until swapper/data/op_costs.json exists.
+# ~4, each extra elementwise op ~1); used only until swapper/resources/op_costs.json exists.
 def _sigmoid_grad(x):
     s = _sigmoid(x)
     return s * (1.0 - s)
