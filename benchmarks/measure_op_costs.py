@@ -22,7 +22,9 @@ Writes swapper/resources/op_costs.json:
 The canonical form is the single op when the default domain has one at the
 opset we build with, else the decomposed subgraph exporters write. Functions
 only swapper writes (surrogates such as relu6, pwl) are built with the
-registry's own emitter and default parameters (form "emitted").
+registry's own emitter, with the parameters they get when they replace a SiLU
+(``functions.target_params("silu", {}, name)``: e.g. the 6-segment
+piecewise-linear fit), form "emitted".
 
 Run:  python benchmarks/measure_op_costs.py [--repeats 20] [--sweeps 5] [--out PATH]
 """
@@ -195,15 +197,17 @@ BENCHES = {
 
 
 def registry_emitted(name: str):
-    """A function the registry emits (surrogates): the nodes ``Function.emit`` writes, default params."""
+    """A function the registry emits: the nodes ``Function.emit`` writes, with the parameters a swap gives it."""
 
     def build():
         from swapper.emit import Emitter
-        from swapper.functions import get
+        from swapper.functions import get, target_params
 
         fn = get(name)
         em = Emitter(f"bench/{name}", OPSET)
-        fn.emit(em, "X", "Y", dict(fn.params))
+        # a surrogate's own parameters as a real swap sets them (pwl: several knots, not the default single one)
+        params = target_params("silu", {}, name) if fn.is_cheap and fn.params else dict(fn.params)
+        fn.emit(em, "X", "Y", params)
         g = _G()
         g.nodes, g.inits = list(em.nodes), list(em.initializers)
         return g.model()

@@ -162,7 +162,9 @@ def check(
     }
     int8_view = None
     if int8:
-        from .quantize import quantize_int8
+        from dataclasses import asdict
+
+        from .quantize import LOSSY_WEIGHT, quantize_int8, weight_losses
 
         source = calib if calib is not None else val
         with progress.task("quantizing to int8", 2) as advance:
@@ -179,6 +181,9 @@ def check(
             | {"ratio": q_time["candidate"].median_ms / q_time["original"].median_ms},
             "size": {"original_bytes": serialized_size(q_orig), "candidate_bytes": serialized_size(q_cand)},
             "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/quantize.py)",
+            # layers whose int8 weights lose much of an input channel (one channel sets the row's scale)
+            "lossy_weights": [asdict(w) for w in weight_losses(candidate, q_cand)
+                              if w.median_input_error > LOSSY_WEIGHT],
         }
     return CheckResult(comparison=comparison, verdict=verdict, budget=budget, latency=latency, size=size,
                        int8=int8_view)

@@ -288,6 +288,11 @@ def render_html(payload: dict) -> str:
                 ["median latency (ms)", _num(q["latency"]["original"]["median_ms"]), _num(q["latency"]["candidate"]["median_ms"])],
                 ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
             ]) + f"<small>{_e(q['quantization'])}</small>")
+            for w in q.get("lossy_weights") or []:
+                parts.append(f"<p>Warning: int8 weights of {_e(w['op_type'])} {_e(w['node'])} lose "
+                             f"{100 * w['median_input_error']:.0f}% of the median input channel; input channel "
+                             f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
+                             f"output channels.</p>")
     if payload["sites"]:
         rows = [[s["site_id"], f"{s['source']} → {s['target']}",
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
