@@ -28,9 +28,10 @@ from onnx.utils import Extractor
 from . import functions
 from .data import Dataset, batches
 from .fit import fit_channels
+from .consumers import Reach, reach_linear
 from .observe import ChannelObserver
 from .graph import GraphIndex, attr
-from .plan import Plan, SiteSwap
+from .plan import POSITIVE_A, Plan, SiteSwap
 from .progress import Silent
 from .record import TensorCache, expose, open_session
 from .sites import Site
@@ -39,6 +40,7 @@ logger = logging.getLogger(__name__)
 
 MODES = ("sequential", "local")
 LINEAR_CONSUMERS = ("Conv", "Gemm", "MatMul")
+_TMP = "swapper::bias_correction/"  # tensor names of the difference model (never a model's own)
 
 
 @dataclass
@@ -119,7 +121,8 @@ def _fit(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
         g,
         init=swap.params(),
         free="".join(swap.free()),
-        positive_a=swap.placement.get("a") == "inner",
+        positive_a=swap.placement.get("a") == "inner"
+        or (swap.placement.get("a") in POSITIVE_A and bool(np.all(np.asarray(swap.a) > 0))),
         dg=dg,
     )
     swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
@@ -163,54 +166,125 @@ def _consumer_bias_slot(index: GraphIndex, node: onnx.NodeProto) -> tuple[str | 
     return None, None
 
 
-def _single_node_model(model: onnx.ModelProto, node: onnx.NodeProto, index: GraphIndex) -> onnx.ModelProto:
-    """A model running one consumer node on a fed input (its constants copied in)."""
-    dyn = [t for t in node.input if t and t not in index.initializers]
-    consts = [index.initializers[t] for t in node.input if t in index.initializers]
-    elem = index.dtypes.get(dyn[0], onnx.TensorProto.FLOAT)
-    graph = helper.make_graph(
-        [node],
-        "consumer",
-        [helper.make_tensor_value_info(dyn[0], elem, None)],
-        [helper.make_tensor_value_info(node.output[0], elem, None)],
-        initializer=consts,
-    )
-    return helper.make_model(graph, opset_imports=model.opset_import, ir_version=model.ir_version)
+def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach,
+                      pair: bool, with_layer: bool) -> onnx.ModelProto | None:
+    """A model from a changed site output to the change at (or, ``with_layer``, after) a reached layer.
+
+    Inputs "delta" (student − teacher; every step is linear) or, with ``pair``,
+    "student" and "teacher" (a max pool is not linear: each goes through the
+    steps and the difference is taken after them). With ``with_layer`` the layer
+    runs without its bias on the difference (its zero padding is linear too).
+    Output "shift". None when a step reads a run-time tensor (a computed shape).
+    """
+    elem = index.dtypes.get(site.output, onnx.TensorProto.FLOAT)
+    nodes, consts, ends = [], {}, []
+    sides = [f"{_TMP}{side}" for side in (("student", "teacher") if pair else ("delta",))]
+    for side in sides:
+        tensor = side
+        for i, step in enumerate(reach.steps):
+            inputs = [tensor]
+            for name in list(step.node.input)[1:]:
+                value = index.const(name) if name else None
+                if name and value is None:
+                    return None
+                if name:
+                    consts[name] = numpy_helper.from_array(value, name)
+                inputs.append(name)
+            copy = onnx.NodeProto()
+            copy.CopyFrom(step.node)
+            copy.name, tensor = f"{side}/{i}", f"{side}::{i}"
+            copy.input[:], copy.output[:] = inputs, [tensor]
+            nodes.append(copy)
+        ends.append(tensor)
+    diff = f"{_TMP}shift" if not with_layer else f"{_TMP}diff"
+    nodes.append(helper.make_node("Sub", ends, [diff]) if pair else helper.make_node("Identity", ends, [diff]))
+    if with_layer:  # the layer's linear part only: weight input, no bias
+        layer = onnx.NodeProto()
+        layer.CopyFrom(reach.node)
+        layer.input[:], layer.output[:] = [diff, reach.node.input[1]], [f"{_TMP}shift"]
+        consts[reach.node.input[1]] = index.initializers[reach.node.input[1]]
+        nodes.append(layer)
+    graph = helper.make_graph(nodes, "difference",
+                              [helper.make_tensor_value_info(n, elem, None) for n in sides],
+                              [helper.make_tensor_value_info(f"{_TMP}shift", elem, None)],
+                              initializer=list(consts.values()))
+    return helper.make_model(graph, opset_imports=work.opset_import, ir_version=work.ir_version)
+
+
+def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach, cache: TensorCache,
+                student: str, teacher: str, ds: Dataset, batch_size: int, axis: int) -> np.ndarray | None:
+    """E[layer(student path) − layer(teacher path)] per output channel, bias cancelled (None: cannot run).
+
+    The layer is linear: Gemm and 2-D MatMul get W·mean(Δ) in numpy, Conv (and
+    batched MatMul) runs once on Δ, not on both inputs.
+    """
+    node = reach.node
+    w = index.const(node.input[1]).astype(np.float64)
+    in_numpy = node.op_type == "Gemm" or (node.op_type == "MatMul" and w.ndim == 2)
+    pair = any(s.kind == "max" for s in reach.steps)
+    model = None
+    if reach.steps or not in_numpy:
+        model = _difference_model(work, index, site, reach, pair, with_layer=not in_numpy)
+        if model is None:
+            return None
+    sess = open_session(model) if model is not None else None
+    total, count = None, 0
+    for start in range(0, ds.n, batch_size):
+        stop = min(start + batch_size, ds.n)
+        s, t = cache.read(student, start, stop), cache.read(teacher, start, stop)
+        if sess is None:
+            out = s.astype(np.float64) - t.astype(np.float64)
+        elif pair:
+            out = sess.run(None, {f"{_TMP}student": s, f"{_TMP}teacher": t})[0]
+        else:
+            out = sess.run(None, {f"{_TMP}delta": (s.astype(np.float64) - t.astype(np.float64)).astype(s.dtype)})[0]
+        if in_numpy and node.op_type == "Gemm" and int(attr(node, "transA", 0)):
+            out = out.T
+        ax = -1 if in_numpy else axis
+        rows = np.moveaxis(out.astype(np.float64), ax, 0).reshape(out.shape[ax], -1)
+        total = rows.sum(axis=1) if total is None else total + rows.sum(axis=1)
+        count += rows.shape[1]
+    mean = total / max(count, 1)
+    if not in_numpy:
+        return mean
+    if node.op_type == "Gemm":  # Y = alpha·A'·B' + beta·C
+        return float(attr(node, "alpha", 1.0)) * (mean @ (w.T if attr(node, "transB", 0) else w))
+    return mean @ w
 
 
 def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student: str, teacher: str, ds: Dataset,
                   batch_size: int) -> tuple[list[str], list[str]]:
-    """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019)."""
+    """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019).
+
+    The consumers may sit behind pools and reshapes (``reach_linear`` without
+    gates: a gate's other operand is not recorded).
+    """
     index = GraphIndex.of(work)
-    corrected, notes = [], []
-    for node in index.users(site.output):
+    corrected = []
+    reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False)
+    notes = [f"no bias correction: {why}" for why in dead_ends]
+    for reach in reached:
+        node = reach.node
         if node.op_type not in LINEAR_CONSUMERS:
             notes.append(f"no bias correction through {node.op_type} {node.name}")
             continue
-        if node.input[0] != site.output or not all(t in index.initializers for t in node.input[1:] if t):
+        if node.input[0] != reach.tensor or reach.tensor in node.input[1:] \
+                or not all(t in index.initializers for t in node.input[1:] if t):
             notes.append(f"no bias correction: {node.name} does not read the site as its data input")
             continue
         bias_name, axis = _consumer_bias_slot(index, node)
         if bias_name is None:
             notes.append(f"no bias correction: {node.name} has no constant bias")
             continue
-        sess = open_session(_single_node_model(work, node, index))
-        in_name = sess.get_inputs()[0].name
-        shift_sum, count = None, 0
-        for start in range(0, ds.n, batch_size):
-            stop = min(start + batch_size, ds.n)
-            cand = sess.run(None, {in_name: cache.read(student, start, stop)})[0].astype(np.float64)
-            orig = sess.run(None, {in_name: cache.read(teacher, start, stop)})[0].astype(np.float64)
-            diff = np.moveaxis(cand - orig, axis, 0).reshape(cand.shape[axis], -1)
-            shift_sum = diff.sum(axis=1) if shift_sum is None else shift_sum + diff.sum(axis=1)
-            count += diff.shape[1]
-        shift = shift_sum / max(count, 1)
-        if node.op_type == "Gemm":  # Y = alpha·A·B + beta·C: the bias enters scaled by beta
-            beta = float(attr(node, "beta", 1.0))
-            if beta == 0.0:
-                notes.append(f"no bias correction: {node.name} has beta = 0")
-                continue
-            shift = shift / beta
+        beta = float(attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
+        if beta == 0.0:
+            notes.append(f"no bias correction: {node.name} has beta = 0")
+            continue
+        shift = _mean_shift(work, index, site, reach, cache, student, teacher, ds, batch_size, axis)
+        if shift is None:
+            notes.append(f"no bias correction: the way to {node.name} reads a run-time tensor")
+            continue
+        shift = shift / beta  # Gemm: Y = alpha·A·B + beta·C, the bias enters scaled by beta
         init = index.initializers[bias_name]
         bias = numpy_helper.to_array(init).astype(np.float64)
         if bias.size not in (1, shift.size):

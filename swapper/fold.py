@@ -5,9 +5,14 @@ Transformation: a swapped site computes ``y = a·g(b·x + c) + d`` per channel.
 layer that produces ``x`` (scale its output channel, shift its bias);
 ``a`` and ``d`` are an affine map of ``y``, so they fold exactly into linear
 layers that read ``y`` (scale their input-channel weights, add ``W·d`` to
-their bias). This module decides, per site and fold policy, which of these
-folds are exact (``decide_placement``) and holds the numpy arithmetic of each
-fold; :mod:`swapper.rewrite` applies them to a graph copy.
+their bias), also behind ops they commute with (pools, channel-keeping
+reshapes; ``a`` also through a gate Mul; a max pool passes ``a`` only when
+a >= 0, hence placement "consumers+"; see
+:func:`swapper.consumers.reach_linear`). Every path from ``y`` must end in
+such a layer, or that parameter goes where the policy puts what cannot fold.
+This module decides, per site and fold policy, which of these folds are
+exact (``decide_placement``) and holds the numpy arithmetic of each fold;
+:mod:`swapper.rewrite` applies them to a graph copy.
 
 Weight layouts (ONNX operator spec): Conv W is [M, C/group, k...];
 ConvTranspose W is [C, M/group, k...]; Gemm computes alpha·A'·B' + beta·C with
@@ -22,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 import onnx
 
+from .consumers import Reach, float_const as _float_const, reach_linear, sole_bias_add
 from .errors import UsageError
 from .functions import Function
 from .graph import GraphIndex, attr
@@ -54,19 +60,13 @@ class ConsumerFold:
     add: onnx.NodeProto | None  # the bias Add after a MatMul (d folds there)
     d_exact: bool
     d_approx: bool  # a zero-padded Conv: d folds into its bias, inexact at borders
+    path: tuple[str, ...] = ()  # pass-through nodes between the site output and this layer
+    a_positive: bool = False  # a max pool is on the path: a folds only where a >= 0
+    d_block: str = ""  # why d cannot reach this layer ("" when it can)
 
 
 def _is(node: onnx.NodeProto, op: str) -> bool:
     return node.op_type == op and node.domain in _DEFAULT
-
-
-def _float_const(index: GraphIndex, name: str) -> np.ndarray | None:
-    if not name:
-        return None
-    value = index.const(name)
-    if value is None or value.dtype.kind != "f":
-        return None
-    return value
 
 
 def _rank(index: GraphIndex, site: Site) -> int | None:
@@ -83,7 +83,13 @@ def per_channel(site: Site) -> bool:
 
 def _axis_is(index: GraphIndex, site: Site, want: str) -> bool:
     """Is the site's channel axis the layer's channel axis ("first" = axis 1, "last")?"""
-    axis, rank = site.channel_axis, _rank(index, site)
+    return _axis_at(site.channel_axis, _rank(index, site), want)
+
+
+def _axis_at(axis: int | None, rank: int | None, want: str) -> bool:
+    """Is ``axis`` of a rank-``rank`` tensor the layer's channel axis ("first" = axis 1, "last")?"""
+    if axis is None:
+        return False
     if want == "last" and axis == -1:
         return True
     if rank is None:
@@ -92,12 +98,18 @@ def _axis_is(index: GraphIndex, site: Site, want: str) -> bool:
     return axis == (1 if want == "first" else rank - 1)
 
 
-def _check_layer(index: GraphIndex, site: Site, axis: str, width: int) -> str:
-    """Empty string if per-channel parameters line up with a layer's ``width`` channels."""
+def _check_layer(index: GraphIndex, site: Site, axis: str, width: int, reach: Reach | None = None) -> str:
+    """Empty string if per-channel parameters line up with a layer's ``width`` channels.
+
+    ``reach``: the layer reads the site output through pass-through ops; the
+    channel axis is then where the walk carried it.
+    """
     if not per_channel(site):
         return ""
-    if not _axis_is(index, site, axis):
-        return f"channel axis {site.channel_axis} is not the layer's {axis} axis"
+    ok = _axis_at(reach.axis, reach.rank, axis) if reach is not None and reach.steps else _axis_is(index, site, axis)
+    if not ok:
+        where = reach.axis if reach is not None and reach.steps else site.channel_axis
+        return f"channel axis {where} is not the layer's {axis} axis"
     if width != site.channels:
         return f"layer has {width} channels, site has {site.channels}"
     return ""
@@ -177,27 +189,43 @@ def _matmul_add(index: GraphIndex, site: Site, add: onnx.NodeProto) -> tuple[Pro
 
 
 def consumer_folds(index: GraphIndex, site: Site) -> tuple[list[ConsumerFold] | None, str]:
-    """Every linear layer reading ``site.output`` (all of them must fold), or None and why not."""
+    """Every linear layer behind ``site.output`` (all paths must end in one that folds), or None and why not.
+
+    The layers may sit behind pass-through ops (:func:`swapper.consumers.reach_linear`);
+    each fold says whether a needs a >= 0 on its path and what stops d.
+    """
     y = site.output
     if index.is_graph_output(y):
         return None, f"{y!r} is a graph output"
-    users = sorted(index.users(y), key=lambda n: index.node_position.get(n.name, 0))
-    if not users:
+    if not index.users(y):
         return None, f"{y!r} has no consumers"
-    folds, seen = [], set()
-    for node in users:
-        if node.name in seen:
-            continue
-        seen.add(node.name)
-        fold, why = _consumer(index, site, node)
+    rank = _rank(index, site)
+    axis = site.channel_axis if per_channel(site) else None
+    if axis is not None and axis < 0 and rank is not None:
+        axis += rank
+    reached, failed = reach_linear(index, y, axis, rank, site.channels or 1)
+    if failed:
+        return None, failed[0]
+    folds = []
+    for reach in reached:
+        fold, why = _consumer(index, site, reach)
         if fold is None:
             return None, why
         folds.append(fold)
     return folds, ""
 
 
-def _consumer(index: GraphIndex, site: Site, node: onnx.NodeProto) -> tuple[ConsumerFold | None, str]:
-    y = site.output
+def _consumer(index: GraphIndex, site: Site, reach: Reach) -> tuple[ConsumerFold | None, str]:
+    fold, why = _layer(index, site, reach)
+    if fold is not None:
+        fold.path = tuple(s.node.name for s in reach.steps)
+        fold.a_positive, fold.d_block = reach.a_positive, reach.d_block
+    return fold, why
+
+
+def _layer(index: GraphIndex, site: Site, reach: Reach) -> tuple[ConsumerFold | None, str]:
+    """The fold into one reached layer, by the same exactness rules whether it reads y directly or not."""
+    node, y = reach.node, reach.tensor
     slots = [i for i, t in enumerate(node.input) if t == y]
     label = f"consumer {node.op_type} {node.name!r}"
     if not any(_is(node, op) for op in ("Conv", "ConvTranspose", "Gemm", "MatMul")):
@@ -210,43 +238,30 @@ def _consumer(index: GraphIndex, site: Site, node: onnx.NodeProto) -> tuple[Cons
         return None, f"{label} has non-constant weights"
     if _is(node, "Conv"):
         width = w.shape[1] * int(attr(node, "group", 1))
-        why = _check_layer(index, site, "first", width)
+        why = _check_layer(index, site, "first", width, reach)
         pads = attr(node, "pads", None) or []
         auto_pad = attr(node, "auto_pad", b"NOTSET")
         auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
         unpadded = all(p == 0 for p in pads) and auto_pad in ("NOTSET", "VALID")
         return (None, f"{label}: {why}") if why else (ConsumerFold("conv", node, None, unpadded, not unpadded), "")
     if _is(node, "ConvTranspose"):
-        why = _check_layer(index, site, "first", w.shape[0])
+        why = _check_layer(index, site, "first", w.shape[0], reach)
         # A constant input overlaps unevenly at the output borders: d never folds exactly.
         return (None, f"{label}: {why}") if why else (ConsumerFold("convtranspose", node, None, False, False), "")
     if _is(node, "Gemm"):
         if int(attr(node, "transA", 0)) and per_channel(site):
             return None, f"{label} has transA=1"
         width = w.shape[1] if attr(node, "transB", 0) else w.shape[0]
-        why = _check_layer(index, site, "last", width)
+        why = _check_layer(index, site, "last", width, reach)
         beta = float(attr(node, "beta", 1.0))
         return (None, f"{label}: {why}") if why else (ConsumerFold("gemm", node, None, beta != 0.0, False), "")
     if _is(node, "MatMul"):
-        why = _check_layer(index, site, "last", w.shape[-2] if w.ndim >= 2 else w.shape[0])
+        why = _check_layer(index, site, "last", w.shape[-2] if w.ndim >= 2 else w.shape[0], reach)
         if why:
             return None, f"{label}: {why}"
-        add = _bias_add(index, node) if w.ndim == 2 else None
+        add = sole_bias_add(index, node) if w.ndim == 2 else None
         return ConsumerFold("matmul", node, add, add is not None, False), ""
     raise AssertionError(node.op_type)  # unreachable: op types checked above
-
-
-def _bias_add(index: GraphIndex, mm: onnx.NodeProto) -> onnx.NodeProto | None:
-    """The constant-bias Add that alone reads a MatMul's output, if any."""
-    out = mm.output[0]
-    users = index.users(out)
-    if index.is_graph_output(out) or len(users) != 1 or not _is(users[0], "Add"):
-        return None
-    add = users[0]
-    if list(add.input).count(out) != 1:
-        return None
-    other = add.input[1] if add.input[0] == out else add.input[0]
-    return add if _float_const(index, other) is not None else None
 
 
 # ----------------------------------------------------------------- placement
@@ -274,15 +289,20 @@ def decide_placement(index: GraphIndex, site: Site, target: Function, policy: st
     if target.homogeneous and placement["b"] in ("producer", "nodes"):
         placement["a"] = "inner"
         notes.append(f"a moved inside {target.name} (needs a > 0)")
+    elif cons is not None and any(f.a_positive for f in cons):
+        placement["a"] = "consumers+"
+        pools = sorted({p for f in cons if f.a_positive for p in f.path})
+        notes.append(f"a folded through a max pool on the way to its consumers (needs a >= 0; via {', '.join(pools)})")
     elif cons is not None:
         placement["a"] = "consumers"
     else:
         placement["a"] = rest
         notes.append(f"a {rest}: {cons_why}")
 
-    if cons is not None and all(f.d_exact for f in cons):
+    reaches = cons is not None and not any(f.d_block for f in cons)
+    if reaches and all(f.d_exact for f in cons):
         placement["d"] = "consumers"
-    elif policy == "approximate" and cons is not None and all(f.d_exact or f.d_approx for f in cons):
+    elif policy == "approximate" and reaches and all(f.d_exact or f.d_approx for f in cons):
         placement["d"] = "approx"
         padded = ", ".join(f.node.name for f in cons if not f.d_exact)
         notes.append(f"d approx: folded into zero-padded Conv bias ({padded}); inexact at the borders")
@@ -290,6 +310,8 @@ def decide_placement(index: GraphIndex, site: Site, target: Function, policy: st
         placement["d"] = rest
         if cons is None:
             notes.append(f"d {rest}: {cons_why}")
+        elif not reaches:
+            notes.append(f"d {rest}: {next(f.d_block for f in cons if f.d_block)}")
         else:
             blocked = ", ".join(f"{f.node.op_type} {f.node.name!r}" for f in cons if not f.d_exact)
             notes.append(f"d {rest}: no exact bias fold into {blocked}")

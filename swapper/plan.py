@@ -10,7 +10,12 @@ Per swapped site, the surrogate computes, per channel c,
 and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
 
 - ``"producer"``  folded into the Conv/Gemm/MatMul(+Add)/BatchNormalization that feeds x;
-- ``"consumers"`` folded into the linear layers that read y;
+- ``"consumers"`` folded into the linear layers that read y, directly or behind
+                  ops that commute with it (average pools, channel-keeping reshapes;
+                  a also through a gate Mul, d only where no zero padding is averaged);
+- ``"consumers+"`` (a only) as "consumers", but a max pool is on the way: exact
+                  only for a >= 0, so the fitter keeps a > 0 (a negative a is
+                  emitted as a node instead);
 - ``"inner"``     (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
 - ``"nodes"``     emitted as per-channel Mul/Add nodes (adds nodes, always exact);
 - ``"held"``      kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
@@ -26,6 +31,7 @@ import numpy as np
 PARAMS = ("a", "b", "c", "d")
 NEUTRAL = {"a": 1.0, "b": 1.0, "c": 0.0, "d": 0.0}
 FOLD_POLICIES = ("exact", "nodes", "approximate", "off")
+POSITIVE_A = ("inner", "consumers+")  # placements of a that the fitter must keep > 0
 
 
 @dataclass
@@ -41,7 +47,7 @@ class SiteSwap:
     b: np.ndarray
     c: np.ndarray
     d: np.ndarray
-    placement: dict  # param -> "producer" | "consumers" | "inner" | "nodes" | "held" | "approx"
+    placement: dict  # param -> "producer" | "consumers" | "consumers+" | "inner" | "nodes" | "held" | "approx"
     notes: list[str] = field(default_factory=list)
 
     def free(self) -> tuple[str, ...]:
@@ -211,7 +217,7 @@ def make_plan(
         placement, notes = decide_placement(index, site, target_fn, fold)
         free = "".join(p for p in PARAMS if placement.get(p) != "held")
         a, b, c, d = _starting_params(site.function, site.params, target, tparams, free,
-                                      placement.get("a") == "inner")
+                                      placement.get("a") in POSITIVE_A)
         channels = site.channels or 1
         swaps.append(
             SiteSwap(

@@ -54,7 +54,7 @@ from .fit import fit_channels
 from .graph import GraphIndex
 from .im2col import conv_geometry, im2col
 from .observe import ChannelObserver
-from .plan import Plan
+from .plan import POSITIVE_A, Plan
 from .progress import Silent
 from .record import expose, open_session
 from .rewrite import rewrite
@@ -151,7 +151,8 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, dataset: 
         params = dict(sw.target_params)
         fitted = fit_channels(
             observers[s.id], lambda z: fn.ref(z, **params), init=sw.params(), free="".join(sw.free()),
-            positive_a=sw.placement.get("a") == "inner",
+            positive_a=sw.placement.get("a") == "inner"
+            or (sw.placement.get("a") in POSITIVE_A and bool(np.all(np.asarray(sw.a) > 0))),
             dg=(lambda z: fn.grad(z, **params)) if fn.grad is not None else None)
         sw.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
         _note(result, s.id, f"a, b, c, d re-fitted on the refitted upstream layers: MSE "

@@ -2,15 +2,17 @@
 
 Transformation: for every swapped site, the site's nodes are replaced by
 ``y = a·g(b·x + c) + d`` where ``g`` is the registry emitter of the target and
-each of a, b, c, d is placed as the plan says: folded into the producer of
-``x`` (its output channels scaled/shifted), folded into the linear layers that
-read ``y`` (their input-channel weights scaled, ``W·d`` added to their bias),
-moved inside ``g`` (a > 0, homogeneous g), or emitted as per-channel Mul/Add
-nodes. Parameters equal to their neutral value add nothing. The output tensor
-name of every site is kept, so consumers and graph outputs are untouched. The
-input model is never mutated, and folded weights always get a new initializer
-(the model's own initializers may be shared by other nodes). The graph
-surgery itself (placing nodes, dropping what died) is :mod:`swapper.splice`.
+each of a, b, c, d is placed as the plan says: folded into the producer of ``x``
+(its output channels scaled/shifted), folded into the linear layers that read
+``y``, directly or behind pools/reshapes/gates (their input-channel weights
+scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool, valid
+for a >= 0, else a is emitted as a node), moved inside ``g`` (a > 0,
+homogeneous g), or emitted as per-channel Mul/Add nodes. Parameters equal to
+their neutral value add nothing. The output tensor name of every site is kept,
+so consumers and graph outputs are untouched. The input model is never
+mutated, and folded weights always get a new initializer (the model's own
+initializers may be shared by other nodes). The graph surgery itself (placing
+nodes, dropping what died) is :mod:`swapper.splice`.
 """
 from __future__ import annotations
 
@@ -34,7 +36,8 @@ from .splice import all_names, copy_model, site_positions, splice, used_names
 logger = logging.getLogger(__name__)
 
 PLAN_KEY = "swapper.plan"
-PLACEMENTS = ("producer", "consumers", "inner", "nodes", "held", "approx")
+PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx")
+IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
 
 
 @dataclass
@@ -183,7 +186,8 @@ def _param_shape(index: GraphIndex, site: Site, swap: SiteSwap, n: int) -> tuple
 def _check_placement(site: Site, swap: SiteSwap, fn: functions.Function, vals: dict) -> dict[str, str]:
     place = {p: swap.placement.get(p, "held") for p in PARAMS}
     for p, where in place.items():
-        if where not in PLACEMENTS or (where == "inner" and p != "a") or (where == "approx" and p != "d"):
+        if where not in PLACEMENTS or (where in ("inner", "consumers+") and p != "a") \
+                or (where == "approx" and p != "d"):
             raise UsageError(f"site {site.id}: invalid placement {where!r} for {p}")
         if where == "held" and not _neutral(p, vals[p]):
             raise UsageError(f"site {site.id}: {p} is held but not neutral ({NEUTRAL[p]})")
@@ -207,16 +211,21 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     vals = _vectors(swap)
     place = _check_placement(site, swap, fn, vals)
     notes = list(swap.notes)
+    if place["a"] == "consumers+" and np.any(vals["a"] < 0):
+        # max(a·y) = a·max(y) only for a >= 0: a negative channel cannot cross the max pool
+        place["a"] = "nodes"
+        notes.append("a emitted as a node: a < 0 on some channel cannot pass the max pool before the consumers")
     if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not _neutral(p, vals[p]) for p in PARAMS}
     n = max(v.size for v in vals.values())
     np_dtype = helper.tensor_dtype_to_np_dtype(index.dtypes.get(site.input, onnx.TensorProto.FLOAT))
-    shape = _param_shape(index, site, swap, n) if any(
-        place[p] == "nodes" and need[p] and vals[p].size > 1 for p in PARAMS) else ()
 
     def const(p: str, v: np.ndarray) -> str:
-        return em.const(np.broadcast_to(v, (n,)).reshape(shape) if v.size > 1 else v.reshape(()), p, np_dtype)
+        """A per-channel constant shaped to broadcast along the channel axis (asked for only when emitted)."""
+        if v.size == 1:
+            return em.const(v.reshape(()), p, np_dtype)
+        return em.const(np.broadcast_to(v, (n,)).reshape(_param_shape(index, site, swap, n)), p, np_dtype)
 
     folded: list[str] = []
     in_b, in_c = place["b"] == "producer" and need["b"], place["c"] == "producer" and need["c"]
@@ -232,7 +241,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     if place["c"] == "nodes" and need["c"]:
         x = em.node("Add", [x, const("c", vals["c"])])
 
-    a_cons = place["a"] == "consumers" and need["a"]
+    a_cons = place["a"] in IN_CONSUMERS and need["a"]
     d_cons = place["d"] in ("consumers", "approx") and need["d"]
     a_node, d_node = place["a"] == "nodes" and need["a"], place["d"] == "nodes" and need["d"]
     d_emit = vals["d"]
@@ -248,8 +257,10 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         if folds is None:
             raise UsageError(f"site {site.id}: plan folds a/d into the consumers but {why}")
         ok = (lambda f: f.d_exact) if place["d"] == "consumers" else (lambda f: f.d_exact or f.d_approx)
-        if d_cons and not all(ok(f) for f in folds):
+        if d_cons and not all(ok(f) and not f.d_block for f in folds):
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
+        if a_cons and place["a"] == "consumers" and any(f.a_positive for f in folds):
+            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers+")
         for f in folds:
             folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
                                       vals["d"] if d_cons else None, em)
