@@ -34,6 +34,16 @@ box on (β, γ) and the floor on a above, both documented here.
 
 The closed-form (a, d) and the projected (b, c) problem live in
 :mod:`swapper.varpro`; this module holds the API and the safeguards above.
+
+:func:`fit_channel` is the one-channel scipy path described above.
+:func:`fit_channels` (every channel of a site) takes the batched path of
+:mod:`swapper.fit_batched`: the same candidates and safeguards, with the
+projected search done for all channels at once by row-wise
+Levenberg–Marquardt (:mod:`swapper.varpro_batched`), falling back to
+:func:`fit_channel` only for channels that search could not move. Measured
+on the scale model (16 sites, 385 channels, 4096 pairs each): fitting went
+from 3.5 s to 0.8 s with the mean per-site mse 0.8% lower (relu) / 1.1%
+lower (hard_swish).
 """
 from __future__ import annotations
 
@@ -212,7 +222,7 @@ def fit_channels(
     positive_a: bool = False,
     dg: Func | None = None,
 ) -> SiteFit:
-    """Fit every channel of ``observer`` on its reservoir sample.
+    """Fit every channel of ``observer`` on its reservoir sample (all channels at once, :func:`fit_rows`).
 
     ``init`` maps "a".."d" to per-channel arrays (or scalars); missing keys
     start neutral (a = b = 1, c = d = 0). Raises ``BadDataError`` when the
@@ -229,20 +239,15 @@ def fit_channels(
         if v.size not in (1, C):
             raise ValueError(f"init[{p!r}] must be a scalar or have {C} values, got {v.size}")
         start[p] = np.broadcast_to(v, (C,))
-    out = {k: np.empty(C) for k in ("a", "b", "c", "d", "mse_init", "mse")}
-    notes = []
-    for ch in range(C):
-        x, y = observer.samples(ch)
-        p0 = tuple(float(start[p][ch]) for p in PARAMS)
-        r = fit_channel(x, y, g, init=p0, free=free, positive_a=positive_a, dg=dg)
-        for k in out:
-            out[k][ch] = getattr(r, k)
-        notes.append(r.note)
+    from .fit_batched import fit_rows  # imported here: fit_batched builds on this module
+
+    X, Y = observer.all_samples()
+    out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg)
     logger.debug(
         "fitted %d channels on %d samples each: mse %.3g -> %.3g",
-        C, observer.held, float(out["mse_init"].mean()), float(out["mse"].mean()),
+        C, observer.held, float(out.mse_init.mean()), float(out.mse.mean()),
     )
-    return SiteFit(notes=notes, **out)
+    return out
 
 
 def starting_params(

@@ -74,7 +74,8 @@ class TensorCache:
         if array.shape[1:] != row_shape or array.dtype != dtype:
             raise ValueError(f"tensor {name!r} changed shape or dtype between batches")
         with open(self._file(name), "ab") as fh:
-            fh.write(array.tobytes())
+            if array.size:  # the array's own buffer (a buffered write loops until all is out): no bytes copy
+                fh.write(memoryview(array).cast("B"))
         self._meta[name] = (dtype, row_shape, rows + array.shape[0])
 
     def __contains__(self, name: str) -> bool:

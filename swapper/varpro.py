@@ -6,7 +6,8 @@ projected residual over (b, c) alone (Golub & Pereyra 1973), with Kaufman's
 (1975) Jacobian, is minimised by ``scipy.optimize.least_squares`` in
 standardised, boxed coordinates (:class:`Projected`). The safeguards and the
 public API (never worse than the start, degenerate data) are in
-:mod:`swapper.fit`, whose docstring states the full method.
+:mod:`swapper.fit`, whose docstring states the full method. The same problem
+for all channels of a site at once is :mod:`swapper.varpro_batched`.
 """
 from __future__ import annotations
 
