@@ -191,9 +191,32 @@ def atomic_write_bytes(data: bytes, out: str | Path) -> Path:
     return out
 
 
-def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | Path, ...] = ()) -> Path:
-    """Serialise ``model`` to ``out`` atomically; never overwrite any path in ``inputs``."""
+def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | Path, ...] = (),
+               external_above: int = PROTOBUF_LIMIT) -> Path:
+    """Serialise ``model`` to ``out`` atomically; never overwrite any path in ``inputs``.
+
+    Models larger than ``external_above`` bytes (default: the 2 GiB protobuf
+    limit) keep their weights in ``<out>.data`` beside the model.
+    """
     out = check_output_path(out, inputs=inputs)
-    if model.ByteSize() > PROTOBUF_LIMIT:
-        raise BadOutputError("model exceeds 2 GiB; saving with external data is not supported yet", out)
-    return atomic_write_bytes(model.SerializeToString(deterministic=True), out)
+    if model.ByteSize() <= external_above:
+        return atomic_write_bytes(model.SerializeToString(deterministic=True), out)
+    data_name = out.name + ".data"
+    for given in inputs:
+        if given is not None and (out.resolve().parent / data_name) == Path(given).resolve():
+            raise BadOutputError(f"refusing to overwrite the input file {data_name}", out)
+    # saving with external data rewrites the tensors it is given: work on a copy
+    copy = onnx.ModelProto()
+    copy.CopyFrom(model)
+    with tempfile.TemporaryDirectory(prefix=f".{out.name}.", dir=out.resolve().parent) as tmp:
+        staged = Path(tmp) / out.name
+        try:
+            onnx.save_model(copy, str(staged), save_as_external_data=True, all_tensors_to_one_file=True,
+                            location=data_name, size_threshold=0)
+            # weights first, then the model that points at them: a reader never sees a model without its data
+            if (Path(tmp) / data_name).exists():  # absent when every tensor is below the threshold
+                os.replace(Path(tmp) / data_name, out.resolve().parent / data_name)
+            os.replace(staged, out)
+        except OSError as exc:
+            raise BadOutputError(f"cannot write: {exc.strerror or exc}", out) from None
+    return out

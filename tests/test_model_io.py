@@ -191,3 +191,15 @@ def test_errors_are_one_line_exceptions(tmp_path):
     with pytest.raises(BadModelError) as info:
         load_model(tmp_path / "x.onnx")
     assert "\n" not in str(info.value)
+
+
+def test_large_models_are_saved_with_external_data_and_load_back(tmp_path):
+    # The 2 GiB protobuf limit (protobuf docs) is simulated with a low threshold: same code path.
+    model = tiny_model()
+    out = save_model(model, tmp_path / "big.onnx", external_above=16)
+    assert (tmp_path / "big.onnx.data").is_file()
+    assert model.graph.initializer[0].data_location == TensorProto.DEFAULT  # the caller's model is untouched
+    loaded = load_model(out)
+    w = numpy_helper.to_array(loaded.model.graph.initializer[0])
+    assert np.array_equal(w, numpy_helper.to_array(model.graph.initializer[0]))
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".big.onnx.")]  # no staging left behind
