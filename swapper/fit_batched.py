@@ -18,7 +18,10 @@ The search, per channel, in the standardised coordinates of swapper.fit:
    with heavy damping (λ₀ = ``CAREFUL_LAMBDA``: short first steps, which keep
    e.g. a ReLU kink from jumping out of the data into a flat, all-linear
    valley);
-2. the endpoint with the lowest subsample cost is polished on all n pairs.
+2. the endpoint with the lowest subsample cost is polished on all n pairs;
+   with b free, one whose |β| left [BETA_MIN, BETA_MAX] is never kept but
+   restarted inside that band (:func:`swapper.varpro.band_starts`);
+3. :func:`swapper.fit.well_scaled` (affine candidate, exact rescaling).
 
 Measured on the sites of the four demo models and the synthetic scale model
 (59 sites, 1776 channels, same data for both): per-site mean mse between
@@ -34,9 +37,9 @@ import logging
 
 import numpy as np
 
-from .fit import Z_FLOOR, Func, SiteFit, _check_free, _g_scale, _weights, fit_channel
+from .fit import Z_FLOOR, Func, SiteFit, _check_free, _g_scale, _weights, fit_channel, well_scaled
 from .plan import PARAMS
-from .varpro import BOX, DEGENERATE, apply_g
+from .varpro import BOX, DEGENERATE, apply_g, band_box, band_starts, in_band
 from .varpro_batched import BAD_START, FLAT, LAMBDA0, lm_projected, outer_solve_rows
 
 logger = logging.getLogger(__name__)
@@ -115,6 +118,7 @@ def fit_rows(
     everyone = np.arange(C)
     if fa or fd:
         consider(everyone, b0, c0, "outer only")
+    ok = np.ones(C, dtype=bool)
     if fb or fc:
         mx = X @ w
         sx = np.sqrt(((X - mx[:, None]) ** 2) @ w)
@@ -124,6 +128,7 @@ def fit_rows(
         if rows.size:
             _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, positive_a, z_floor, consider,
                           best, notes)
+    well_scaled(X, Y, w, g, best, mse_init, notes, free, ok)
     return SiteFit(a=best["a"], b=best["b"], c=best["c"], d=best["d"], mse_init=mse_init, mse=best["mse"],
                    notes=[str(t) for t in notes])
 
@@ -153,12 +158,13 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
         V = X[rows] - mx[:, None]
         q0 = np.stack([b0, c0 + b0 * mx], axis=1)
 
-    def to_bc(q):
+    def to_bc(q, i):
+        """(b, c) of standardised q for the rows ``i`` (indices into ``rows``)."""
         if fb and fc:
-            return q[:, 0] / sx, q[:, 1] - q[:, 0] * mx / sx
+            return q[:, 0] / sx[i], q[:, 1] - q[:, 0] * mx[i] / sx[i]
         if fb:
-            return q[:, 0] / sx, c0.copy()
-        return b0.copy(), q[:, 1] - b0 * mx
+            return q[:, 0] / sx[i], c0[i].copy()
+        return b0[i].copy(), q[:, 1] - b0[i] * mx[i]
 
     fm = np.array([fb, fc])
     # second start (as in swapper.varpro): the start shape on the standardised data, unless close
@@ -193,21 +199,40 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     if keep is not None:  # every endpoint is a candidate too (scored on all pairs by consider)
         for part in (slice(0, rows.size), slice(rows.size, rows.size + two.size), slice(rows.size + two.size, None)):
             idx, qe = sel[part], res.q[part]
-            fine = res.status[part] != BAD_START
-            q_end = q0.copy()
-            q_end[idx] = qe
-            b, c = to_bc(q_end)
-            consider(idx[fine], b[idx[fine]], c[idx[fine]], "projected (batched, subsample)", rows)
+            fine = (res.status[part] != BAD_START) & (in_band(qe[:, 0]) if fb else True)
+            b, c = to_bc(qe[fine], idx[fine])
+            consider(idx[fine], b, c, "projected (batched, subsample)", rows)
 
-    # 2. polish the best endpoint on all pairs
+    # 2. polish the best endpoint on all pairs. With b free, an endpoint whose |β| left
+    #    [BETA_MIN, BETA_MAX] is not kept: the search restarts inside that band from
+    #    swapper.varpro.band_starts (module docstring of swapper.varpro)
     go = np.nonzero(np.isfinite(c_best))[0]
-    if go.size:
-        if keep is not None:
-            res = lm_projected(V[go], Yr[go], w, g, dg, q_best[go], (fb, fc), -half[go], half[go], a0[go], d0[go],
-                               ftol=POLISH_FTOL, max_iter=POLISH_ITER, **opts)
-            q_best[go] = res.q
-        b, c = to_bc(q_best)
-        consider(go, b[go], c[go], "projected (batched)", rows)
+    out = go[~in_band(q_best[go, 0])] if fb else go[:0]
+    inside = np.setdiff1d(go, out)
+    if keep is None:  # the search already used every pair
+        b, c = to_bc(q_best[inside], inside)
+        consider(inside, b, c, "projected (batched)", rows)
+        inside = inside[:0]
+    restarts = band_starts(q_best[out])
+    groups = [(inside, q_best[inside], "projected (batched)")]
+    for k in range(max((len(r) for r in restarts), default=0)):
+        has = np.array([len(r) > k for r in restarts], dtype=bool)
+        groups.append((out[has], np.array([r[k] for r, h in zip(restarts, has) if h]).reshape(-1, 2),
+                       "projected (batched, band restart)"))
+    sel = np.concatenate([gi for gi, _, _ in groups])
+    if sel.size:
+        q_go = np.concatenate([q for _, q, _ in groups])
+        if not fc:
+            q_go[:, 1] = q0[sel, 1]  # held c: band_starts' γ must not move it
+        lo, hi = band_box(q_go, half[sel]) if fb else (-half[sel], half[sel])
+        res = lm_projected(V[sel], Yr[sel], w, g, dg, np.clip(q_go, lo, hi), (fb, fc), lo, hi, a0[sel], d0[sel],
+                           ftol=POLISH_FTOL, max_iter=POLISH_ITER, **opts)
+        at = 0
+        for gi, _, note in groups:  # one group at a time: a row appears at most once per call
+            q = res.q[at:at + gi.size]
+            at += gi.size
+            b, c = to_bc(q, gi)
+            consider(gi, b, c, note, rows)
 
     # 3. the scipy path where the batched search could not move at all
     needs_scipy = stuck & unflat
