@@ -9,38 +9,39 @@ A post-training, layer-wise distillation on unlabelled samples:
         fit a, b, c, d per channel so that a·g(b·x' + c) + d ≈ y
         optionally correct the mean shift at the site's linear consumers
 
-Sequential mode never reruns the whole network per site: level L runs only the
-segment of the original graph between the graph inputs / earlier swapped-site
-outputs and the level's site inputs; swapped outputs are computed in numpy from
-the cached inputs and fitted parameters and kept in an on-disk cache.
+Nothing reruns the whole network per site: level L runs only the segments of
+the graph between the graph inputs / earlier swapped-site outputs and the
+level's site outputs (the original model: the targets y) and site inputs (the
+partially swapped model, sequential mode); swapped outputs are computed in
+numpy from the cached inputs and fitted parameters. Recorded tensors live in a
+:class:`~swapper.record.TensorCache` (RAM up to its budget, disk beyond) and
+are discarded after the last level that reads them, so what is held at once
+is a few levels' tensors, not the whole network's.
 """
 from __future__ import annotations
 
 import logging
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import onnx
-from onnx import helper, numpy_helper
 from onnx.utils import Extractor
 
 from . import functions
+from .bias_correction import DeltaSum, correct_bias
 from .data import Dataset, batches
 from .fit import fit_channels
-from .consumers import Reach, reach_linear
+from .graph import GraphIndex
 from .observe import ChannelObserver
-from .graph import GraphIndex, attr
 from .plan import POSITIVE_A, Plan, SiteSwap
 from .progress import Silent
-from .record import TensorCache, expose, open_session
+from .record import TensorCache, open_session
 from .sites import Site
 
 logger = logging.getLogger(__name__)
 
 MODES = ("sequential", "local")
-LINEAR_CONSUMERS = ("Conv", "Gemm", "MatMul")
-_TMP = "swapper::bias_correction/"  # tensor names of the difference model (never a model's own)
 
 
 @dataclass
@@ -62,6 +63,7 @@ class CalibrationResult:
     sites: list[SiteCalibration]
     timings: dict[str, float]  # seconds per phase
     samples: int
+    cache: dict = field(default_factory=dict)  # bytes the tensor cache wrote to disk and held in RAM
 
     def to_dict(self) -> dict:
         return {
@@ -90,9 +92,11 @@ def site_levels(index: GraphIndex, sites: list[Site], swapped: set[str]) -> dict
 def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     """a·g(b·x + c) + d per channel, in float64, returned in x's dtype.
 
-    Computed a few samples (axis 0) at a time so the float64 temporaries stay
-    cache-sized: whole-batch float64 copies cost more in allocation and page
-    faults than in arithmetic. Elementwise, so the values equal one big pass.
+    Computed a few samples (axis 0) at a time in one reused float64 buffer so
+    the temporaries stay cache-sized: whole-batch float64 copies cost more in
+    allocation and page faults than in arithmetic. x is widened exactly and the
+    result rounded once on the final store, so the values are bit-equal to
+    ``(a * g(b * x.astype(float64) + c) + d).astype(x.dtype)``.
     """
     fn = functions.get(swap.target)
     x = np.asarray(x)
@@ -106,10 +110,18 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     a, b, c, d = (np.asarray(getattr(swap, p), dtype=np.float64).reshape(shape) for p in "abcd")
     out = np.empty(x.shape, dtype=x.dtype)
     step = max(1, (1 << 16) // max(1, x[0].size))
+    buf = np.empty((min(step, x.shape[0]),) + x.shape[1:], dtype=np.float64)
     for i in range(0, x.shape[0], step):
         s = slice(i, i + step)
         pa, pb, pc, pd = (v[s] if axis == 0 else v for v in (a, b, c, d))
-        out[s] = pa * fn.ref(pb * x[s].astype(np.float64) + pc, **swap.target_params) + pd
+        z = buf[: x[s].shape[0]]
+        np.copyto(z, x[s])  # one widening copy, then same-dtype ufuncs (mixed dtypes go through slow buffers)
+        np.multiply(z, pb, out=z)
+        np.add(z, pc, out=z)
+        g = np.asarray(fn.ref(z, **swap.target_params), dtype=np.float64)
+        np.multiply(g, pa, out=z)
+        np.add(z, pd, out=z)
+        np.copyto(out[s], z, casting="same_kind")
     return out
 
 
@@ -139,16 +151,6 @@ def _fit(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
     return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 
 
-def _feeds_for(session, batch, cache: TensorCache) -> dict[str, np.ndarray]:
-    feeds = {}
-    for inp in session.get_inputs():
-        if inp.name in batch.feeds:
-            feeds[inp.name] = batch.feeds[inp.name]
-        else:
-            feeds[inp.name] = cache.read(inp.name, batch.start, batch.stop)
-    return feeds
-
-
 def _segment(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> onnx.ModelProto:
     """The part of ``model`` that computes ``outputs`` from ``inputs`` (graph inputs always allowed)."""
     extractor = Extractor(model)
@@ -161,159 +163,125 @@ def _segment(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> o
     return seg
 
 
-def _consumer_bias_slot(index: GraphIndex, node: onnx.NodeProto) -> tuple[str | None, int | None]:
-    """Where a linear consumer's per-output-channel bias lives: (initializer name, output channel axis)."""
-    if node.op_type == "Conv" and len(node.input) > 2 and node.input[2] in index.initializers:
-        return node.input[2], 1
-    if node.op_type == "Gemm" and len(node.input) > 2 and node.input[2] in index.initializers:
-        return node.input[2], -1
-    if node.op_type == "MatMul":
-        users = index.users(node.output[0])
-        if len(users) == 1 and users[0].op_type == "Add":
-            other = [t for t in users[0].input if t != node.output[0]]
-            if other and other[0] in index.initializers:
-                return other[0], -1
-    return None, None
+def _boundary_reads(index: GraphIndex, boundary: set[str], outputs: list[str]) -> list[str]:
+    """The ``boundary`` tensors that computing ``outputs`` reads (a backward walk stopping at the boundary)."""
+    reads, seen, stack = set(), set(), list(outputs)
+    while stack:
+        name = stack.pop()
+        if not name or name in seen:
+            continue
+        seen.add(name)
+        if name in boundary:
+            reads.add(name)
+            continue
+        node = index.producer.get(name)
+        if node is not None:
+            stack.extend(node.input)
+    return sorted(reads)
 
 
-def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach,
-                      pair: bool, with_layer: bool) -> onnx.ModelProto | None:
-    """A model from a changed site output to the change at (or, ``with_layer``, after) a reached layer.
+@dataclass
+class _Segment:
+    """Part of a model run batch by batch: boundary tensors in (data set or cache), outputs into the cache."""
 
-    Inputs "delta" (student − teacher; every step is linear) or, with ``pair``,
-    "student" and "teacher" (a max pool is not linear: each goes through the
-    steps and the difference is taken after them). With ``with_layer`` the layer
-    runs without its bias on the difference (its zero padding is linear too).
-    Output "shift". None when a step reads a run-time tensor (a computed shape).
+    boundary: list[str]  # graph inputs + the earlier site outputs it may start from
+    outputs: list[str]  # computed tensors
+    store: dict[str, list[str]]  # tensor (output or graph input) -> cache keys it is appended under
+    feed: dict[str, str]  # boundary tensor read from the cache -> its cache key
+
+
+@dataclass
+class _Schedule:
+    """What each level computes and reads, worked out before any data flows.
+
+    Per level: a segment of the original (the targets y; at level 1 also the
+    site inputs) and, at deeper levels, a segment of the partially swapped
+    model (the site inputs x'). ``last`` maps every cache key to the last level
+    that reads it, so each key is discarded as soon as that level is done.
     """
-    elem = index.dtypes.get(site.output, onnx.TensorProto.FLOAT)
-    nodes, consts, ends = [], {}, []
-    sides = [f"{_TMP}{side}" for side in (("student", "teacher") if pair else ("delta",))]
-    for side in sides:
-        tensor = side
-        for i, step in enumerate(reach.steps):
-            inputs = [tensor]
-            for name in list(step.node.input)[1:]:
-                value = index.const(name) if name else None
-                if name and value is None:
-                    return None
-                if name:
-                    consts[name] = numpy_helper.from_array(value, name)
-                inputs.append(name)
-            copy = onnx.NodeProto()
-            copy.CopyFrom(step.node)
-            copy.name, tensor = f"{side}/{i}", f"{side}::{i}"
-            copy.input[:], copy.output[:] = inputs, [tensor]
-            nodes.append(copy)
-        ends.append(tensor)
-    diff = f"{_TMP}shift" if not with_layer else f"{_TMP}diff"
-    nodes.append(helper.make_node("Sub", ends, [diff]) if pair else helper.make_node("Identity", ends, [diff]))
-    if with_layer:  # the layer's linear part only: weight input, no bias
-        layer = onnx.NodeProto()
-        layer.CopyFrom(reach.node)
-        layer.input[:], layer.output[:] = [diff, reach.node.input[1]], [f"{_TMP}shift"]
-        consts[reach.node.input[1]] = index.initializers[reach.node.input[1]]
-        nodes.append(layer)
-    graph = helper.make_graph(nodes, "difference",
-                              [helper.make_tensor_value_info(n, elem, None) for n in sides],
-                              [helper.make_tensor_value_info(f"{_TMP}shift", elem, None)],
-                              initializer=list(consts.values()))
-    return helper.make_model(graph, opset_imports=work.opset_import, ir_version=work.ir_version)
+
+    groups: dict[int, list[str]]  # level -> site ids, in site order
+    teacher: dict[str, str]  # site id -> cache key of the original output
+    student: dict[str, str]  # site id -> cache key of the swapped output
+    original: dict[int, _Segment] = field(default_factory=dict)
+    swapped: dict[int, _Segment] = field(default_factory=dict)
+    last: dict[str, int] = field(default_factory=dict)
 
 
-def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach, cache: TensorCache,
-                student: str, teacher: str, ds: Dataset, batch_size: int, axis: int) -> np.ndarray | None:
-    """E[layer(student path) − layer(teacher path)] per output channel, bias cancelled (None: cannot run).
-
-    The layer is linear: Gemm and 2-D MatMul get W·mean(Δ) in numpy, Conv (and
-    batched MatMul) runs once on Δ, not on both inputs.
-    """
-    node = reach.node
-    w = index.const(node.input[1]).astype(np.float64)
-    in_numpy = node.op_type == "Gemm" or (node.op_type == "MatMul" and w.ndim == 2)
-    pair = any(s.kind == "max" for s in reach.steps)
-    model = None
-    if reach.steps or not in_numpy:
-        model = _difference_model(work, index, site, reach, pair, with_layer=not in_numpy)
-        if model is None:
-            return None
-    sess = open_session(model) if model is not None else None
-    total, count = None, 0
-    for start in range(0, ds.n, batch_size):
-        stop = min(start + batch_size, ds.n)
-        s, t = cache.read(student, start, stop), cache.read(teacher, start, stop)
-        if sess is None:
-            out = s.astype(np.float64) - t.astype(np.float64)
-        elif pair:
-            out = sess.run(None, {f"{_TMP}student": s, f"{_TMP}teacher": t})[0]
-        else:
-            out = sess.run(None, {f"{_TMP}delta": (s.astype(np.float64) - t.astype(np.float64)).astype(s.dtype)})[0]
-        if in_numpy and node.op_type == "Gemm" and int(attr(node, "transA", 0)):
-            out = out.T
-        ax = -1 if in_numpy else axis
-        rows = np.moveaxis(out.astype(np.float64), ax, 0).reshape(out.shape[ax], -1)
-        total = rows.sum(axis=1) if total is None else total + rows.sum(axis=1)
-        count += rows.shape[1]
-    mean = total / max(count, 1)
-    if not in_numpy:
-        return mean
-    if node.op_type == "Gemm":  # Y = alpha·A'·B' + beta·C
-        return float(attr(node, "alpha", 1.0)) * (mean @ (w.T if attr(node, "transB", 0) else w))
-    return mean @ w
+def _site_order(sid: str) -> int:
+    return int(sid[1:]) if sid[1:].isdigit() else 0
 
 
-def _correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student: str, teacher: str, ds: Dataset,
-                  batch_size: int) -> tuple[list[str], list[str]]:
-    """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019).
+def _schedule(index: GraphIndex, by_id: dict[str, Site], levels: dict[str, int]) -> _Schedule:
+    graph_inputs = list(index.graph_inputs)
+    order = sorted(set(levels.values()))
+    groups = {lv: sorted((s for s, l in levels.items() if l == lv), key=_site_order) for lv in order}
+    sched = _Schedule(groups=groups, teacher={s: f"teacher::{by_id[s].output}" for s in levels}, student={})
+    cached: set[str] = set()
+    last = sched.last
 
-    The consumers may sit behind pools and reshapes (``reach_linear`` without
-    gates: a gate's other operand is not recorded).
-    """
-    index = GraphIndex.of(work)
-    corrected = []
-    reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False)
-    notes = [f"no bias correction: {why}" for why in dead_ends]
-    for reach in reached:
-        node = reach.node
-        if node.op_type not in LINEAR_CONSUMERS:
-            notes.append(f"no bias correction through {node.op_type} {node.name}")
-            continue
-        if node.input[0] != reach.tensor or reach.tensor in node.input[1:] \
-                or not all(t in index.initializers for t in node.input[1:] if t):
-            notes.append(f"no bias correction: {node.name} does not read the site as its data input")
-            continue
-        bias_name, axis = _consumer_bias_slot(index, node)
-        if bias_name is None:
-            notes.append(f"no bias correction: {node.name} has no constant bias")
-            continue
-        beta = float(attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
-        if beta == 0.0:
-            notes.append(f"no bias correction: {node.name} has beta = 0")
-            continue
-        shift = _mean_shift(work, index, site, reach, cache, student, teacher, ds, batch_size, axis)
-        if shift is None:
-            notes.append(f"no bias correction: the way to {node.name} reads a run-time tensor")
-            continue
-        shift = shift / beta  # Gemm: Y = alpha·A·B + beta·C, the bias enters scaled by beta
-        init = index.initializers[bias_name]
-        bias = numpy_helper.to_array(init).astype(np.float64)
-        if bias.size not in (1, shift.size):
-            notes.append(f"no bias correction: bias of {node.name} has unexpected size {bias.size}")
-            continue
-        users = sum(1 for n in work.graph.node for t in n.input if t == bias_name)
-        new = numpy_helper.from_array((bias - shift).astype(numpy_helper.to_array(init).dtype).reshape(
-            np.broadcast_shapes(bias.shape, shift.shape) if bias.size == 1 else bias.shape), bias_name)
-        if users > 1:  # shared bias: give this consumer its own copy
-            new.name = f"swapper/{site.id}/bias_correction/{node.name}"
-            work.graph.initializer.append(new)
-            for n in work.graph.node:
-                if n.name == node.name or (node.op_type == "MatMul" and bias_name in n.input and
-                                           node.output[0] in n.input):
-                    n.input[:] = [new.name if t == bias_name else t for t in n.input]
-        else:
-            init.CopyFrom(new)
-        corrected.append(node.name)
-    return corrected, notes
+    def read_at(key: str, level: int) -> None:
+        last[key] = max(last.get(key, level), level)
+
+    def segment(level: int, outputs: list[str], store: dict, keys: dict[str, str]) -> _Segment:
+        boundary = list(dict.fromkeys(graph_inputs + [by_id[s].output for s, lv in levels.items() if lv < level]))
+        feed = {t: keys[t] for t in _boundary_reads(index, set(boundary), outputs) if t not in graph_inputs}
+        for key in feed.values():
+            read_at(key, level)
+        return _Segment(boundary, outputs, store, feed)
+
+    for level in order:
+        group = groups[level]
+        earlier = [s for s, lv in levels.items() if lv < level]
+        # the original: this level's targets, and at level 1 the site inputs (the original's values)
+        store: dict[str, list[str]] = {}
+        for sid in group:
+            store.setdefault(by_id[sid].output, []).append(sched.teacher[sid])
+        if level == order[0]:
+            for sid in group:
+                if by_id[sid].input not in store.get(by_id[sid].input, []):
+                    store.setdefault(by_id[sid].input, []).append(by_id[sid].input)
+        cached.update(k for keys in store.values() for k in keys)
+        outputs = [t for t in store if t not in graph_inputs]
+        sched.original[level] = segment(level, outputs, store, {by_id[s].output: sched.teacher[s] for s in earlier})
+        # the partially swapped model: this level's site inputs not cached yet
+        needed = list(dict.fromkeys(by_id[s].input for s in group if by_id[s].input not in cached))
+        if needed:
+            keys = {by_id[s].output: sched.student[s] for s in earlier}
+            sched.swapped[level] = segment(level, needed, {t: [t] for t in needed}, keys)
+            cached.update(needed)
+        for sid in group:
+            site = by_id[sid]
+            # in local mode the original value of this tensor may already be cached as another
+            # site's input, so the swapped one goes under its own key (no duplicated rows)
+            sched.student[sid] = site.output if site.output not in cached else f"student::{site.output}"
+            cached.add(sched.student[sid])
+            for key in (site.input, sched.teacher[sid], sched.student[sid]):
+                read_at(key, level)
+    return sched
+
+
+def _run_segment(model: onnx.ModelProto, seg: _Segment, cache: TensorCache, dataset: Dataset, batch_size: int,
+                 threads: int, advance) -> None:
+    """Run ``seg`` of ``model`` over the data set, appending its outputs (and stored graph inputs)."""
+    session, in_names = None, []
+    if seg.outputs:
+        session = open_session(_segment(model, seg.boundary, seg.outputs), threads=threads)
+        out_names = [o.name for o in session.get_outputs()]
+        in_names = [i.name for i in session.get_inputs()]
+    # batch only the data set arrays this segment reads or stores (a deep segment reads none)
+    wanted = set(in_names) | set(seg.store)
+    only = replace(dataset, arrays={k: v for k, v in dataset.arrays.items() if k in wanted}, labels=None, targets=None)
+    for batch in batches(only, batch_size):
+        values = dict(batch.feeds)
+        if session is not None:
+            feeds = {n: batch.feeds[n] if n in batch.feeds else cache.read(seg.feed[n], batch.start, batch.stop)
+                     for n in in_names}
+            values.update(zip(out_names, session.run(None, feeds)))
+        for name, keys in seg.store.items():
+            for key in keys:
+                cache.append(key, values[name], owned=True)  # fresh arrays of this batch: no copy needed
+        advance(1)
 
 
 def calibrate(
@@ -343,79 +311,73 @@ def calibrate(
     levels = site_levels(index, sites, set(swaps))
     if mode == "local":
         levels = {k: 1 for k in levels}
+    sched = _schedule(index, by_id, levels)
     results: dict[str, SiteCalibration] = {}
-    teacher = {sid: f"teacher::{by_id[sid].output}" for sid in swaps}  # cache keys of original outputs
-    student: dict[str, str] = {}  # cache keys of swapped outputs
     n_batches = -(-dataset.n // batch_size)
 
     with TensorCache() as cache:
-        # 1. one pass of the original: every swapped site's output (the targets), level-1 inputs
-        first = [sid for sid, lv in levels.items() if lv == 1]
-        graph_inputs = set(index.graph_inputs)
-        names = [by_id[s].output for s in swaps] + [by_id[s].input for s in first if by_id[s].input not in graph_inputs]
-        t0 = time.perf_counter()
-        session = open_session(expose(original, names), threads=threads)
-        out_names = [o.name for o in session.get_outputs()]
-        with progress.task("recording original", n_batches) as advance:
-            for batch in batches(dataset, batch_size):
-                values = dict(zip(out_names, session.run(None, batch.feeds)))
-                for sid in swaps:
-                    cache.append(teacher[sid], values[by_id[sid].output])
-                for sid in first:
-                    name = by_id[sid].input
-                    if name not in cache or cache.rows(name) < batch.stop:  # two sites may share an input
-                        cache.append(name, batch.feeds[name] if name in graph_inputs else values[name])
-                advance(1)
-        timings["record_s"] += time.perf_counter() - t0
-
-        for level in sorted(set(levels.values())):
-            group = sorted((sid for sid, lv in levels.items() if lv == level), key=lambda s: int(s[1:]) if s[1:].isdigit() else 0)
-            needed = list(dict.fromkeys(by_id[s].input for s in group if by_id[s].input not in cache))
-            if level > 1 and needed:
-                # 2. inputs of this level from the partially swapped model, segment only
+        for level, group in sched.groups.items():
+            # the original's targets (and level-1 inputs), then the swapped model's inputs of this level
+            t0 = time.perf_counter()
+            with progress.task(f"level {level}: recording original", n_batches) as advance:
+                _run_segment(original, sched.original[level], cache, dataset, batch_size, threads, advance)
+            timings["record_s"] += time.perf_counter() - t0
+            if level in sched.swapped:
                 t0 = time.perf_counter()
-                earlier = [by_id[s].output for s, lv in levels.items() if lv < level]
-                seg = _segment(work, list(GraphIndex.of(work).graph_inputs) + earlier, needed)
-                seg_session = open_session(seg, threads=threads)
-                seg_outs = [o.name for o in seg_session.get_outputs()]
                 with progress.task(f"level {level}: running segment", n_batches) as advance:
-                    for batch in batches(dataset, batch_size):
-                        values = seg_session.run(None, _feeds_for(seg_session, batch, cache))
-                        for name, value in zip(seg_outs, values):
-                            cache.append(name, value)
-                        advance(1)
+                    _run_segment(work, sched.swapped[level], cache, dataset, batch_size, threads, advance)
                 timings["segments_s"] += time.perf_counter() - t0
 
-            # 3. observe (x', y) pairs and fit
-            t0 = time.perf_counter()
+            # observe (x', y) pairs, fit, record the swapped output (and its shift for bias correction)
+            shifts = {}
             with progress.task(f"level {level}: fitting {len(group)} site(s)", len(group)) as advance:
                 for sid in group:
-                    site, swap = by_id[sid], swaps[sid]
-                    observer = _observer(swap, seed, reservoir)
-                    for start in range(0, dataset.n, batch_size):
-                        stop = min(start + batch_size, dataset.n)
-                        observer.update(cache.read(site.input, start, stop), cache.read(teacher[sid], start, stop))
-                    mse_start, mse_fit = _fit(swap, observer)
-                    seen = observer.compute()
-                    results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
-                                                   x_min=[float(v) for v in seen.min_x],
-                                                   x_max=[float(v) for v in seen.max_x])
-                    # the swapped output feeds the next levels' segments; in local mode the
-                    # original value of this tensor may already be cached as another site's
-                    # input, so the swapped one goes under its own key (no duplicated rows)
-                    student[sid] = site.output if site.output not in cache else f"student::{site.output}"
-                    for start in range(0, dataset.n, batch_size):
-                        stop = min(start + batch_size, dataset.n)
-                        cache.append(student[sid], surrogate_output(swap, cache.read(site.input, start, stop)))
+                    shifts[sid] = _fit_site(by_id[sid], swaps[sid], level, sched, cache, dataset.n, batch_size,
+                                            seed, reservoir, bias_correction, results, timings)
                     advance(1)
-            timings["fit_s"] += time.perf_counter() - t0
 
             if bias_correction:
                 t0 = time.perf_counter()
                 for sid in group:
-                    done, notes = _correct_bias(work, by_id[sid], cache, student[sid], teacher[sid], dataset, batch_size)
+                    done, notes = correct_bias(work, by_id[sid], cache, sched.student[sid], sched.teacher[sid],
+                                               dataset, batch_size, shifts[sid])
                     results[sid].bias_corrected, results[sid].notes = done, notes
                 timings["bias_correction_s"] += time.perf_counter() - t0
-
+            for key in sorted(k for k, last in sched.last.items() if last == level):
+                cache.discard(key)  # no later level reads it
+        stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
+                 "memory_budget": cache.memory_budget}
+    logger.info("calibration cache: %s", stats)
     ordered = [results[sid] for sid in sorted(results, key=lambda s: list(swaps).index(s))]
-    return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n)
+    return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n,
+                             cache=stats)
+
+
+def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,
+              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict):
+    """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
+    t0 = time.perf_counter()
+    sid, teacher, student = site.id, sched.teacher[site.id], sched.student[site.id]
+    observer = _observer(swap, seed, reservoir)
+    for start in range(0, n, batch_size):
+        stop = min(start + batch_size, n)
+        observer.update(cache.read(site.input, start, stop), cache.read(teacher, start, stop))
+    mse_start, mse_fit = _fit(swap, observer)
+    seen = observer.compute()
+    results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
+                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x])
+    # the swapped output feeds the next levels' segments (and the bias correction below)
+    delta = DeltaSum() if shift else None
+    t_shift = 0.0
+    needed = shift or sched.last.get(student, level) > level
+    for start in range(0, n if needed else 0, batch_size):
+        stop = min(start + batch_size, n)
+        out = surrogate_output(swap, cache.read(site.input, start, stop))
+        cache.append(student, out, owned=True)
+        if delta is not None:
+            t1 = time.perf_counter()
+            delta.add(out, cache.read(teacher, start, stop))
+            t_shift += time.perf_counter() - t1
+    timings["fit_s"] += time.perf_counter() - t0 - t_shift
+    timings["bias_correction_s"] += t_shift
+    return delta

@@ -11,6 +11,7 @@ output shift E[W·(x̃ − x)] from the layer's bias).
 from __future__ import annotations
 
 import copy
+import functools
 from pathlib import Path
 
 import numpy as np
@@ -22,6 +23,7 @@ from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
 
+import swapper.bias_correction as bias_correction
 import swapper.calibrate as cal
 from swapper import api
 from swapper.data import Dataset, batches, replicate, subset
@@ -102,15 +104,28 @@ def spy(monkeypatch):
         return obs
 
     class RecordingCache(TensorCache):
+        """Also keeps, per name, the rows it held when discarded (``final_rows``), and fails on
+        an append after a discard (a tensor recorded twice)."""
+
         def __init__(self, *a, **k):
             super().__init__(*a, **k)
             self.names: list[str] = []
+            self.discarded: dict[str, int] = {}
             seen["caches"].append(self)
 
-        def append(self, name, array):
+        def append(self, name, array, **kw):
+            assert name not in self.discarded, f"{name} appended after it was discarded"
             if name not in self.names:
                 self.names.append(name)
-            super().append(name, array)
+            super().append(name, array, **kw)
+
+        def discard(self, name):
+            if name in self:
+                self.discarded[name] = self.rows(name)
+            super().discard(name)
+
+        def final_rows(self) -> dict[str, int]:
+            return {n: self.discarded[n] if n in self.discarded else self.rows(n) for n in self.names}
 
     monkeypatch.setattr(cal, "_observer", observer)
     monkeypatch.setattr(cal, "TensorCache", RecordingCache)
@@ -420,7 +435,7 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
         for s in plan.swaps:
             assert all(np.isfinite(v).all() for v in s.params().values())
         cache = spy["caches"][-1]
-        assert cache.names and all(cache.rows(n) == big.n for n in cache.names)
+        assert cache.names and all(r == big.n for r in cache.final_rows().values())
         held[times] = {sid: max(h) for sid, h in spy["held"].items()}
         res_bytes[times] = {sid: max(b) for sid, b in spy["res_bytes"].items()}
         shapes = {s.id: s.shape for s in sites}
@@ -469,7 +484,7 @@ def test_site_reading_another_site_output(mode, spy, tmp_path):
     assert all(r.mse_fit <= r.mse_start for r in result.sites)
     # no tensor is recorded twice: every cached name holds exactly one row per sample
     cache = spy["caches"][-1]
-    assert "t" in cache.names and {n: cache.rows(n) for n in cache.names} == {n: 100 for n in cache.names}
+    assert "t" in cache.names and cache.final_rows() == {n: 100 for n in cache.names}
     seen_t = np.concatenate(spy["x"]["s2"])
     assert seen_t.shape == (100, 6)
     if mode == "local":
@@ -502,6 +517,157 @@ def test_site_reading_a_graph_input(mode, spy, tmp_path):
     result = cal.calibrate(model, sites, plan, ds, mode=mode, batch_size=32)
     np.testing.assert_array_equal(np.concatenate(spy["x"]["s1"]), x)  # fed straight from the data set
     cache = spy["caches"][-1]
-    assert {n: cache.rows(n) for n in cache.names} == {n: 90 for n in cache.names}
+    assert cache.final_rows() == {n: 90 for n in cache.names}
     assert result.sites[0].mse_fit <= result.sites[0].mse_start
     assert result.sites[0].bias_corrected == ["g"]
+
+
+# ------------------------------------------------ schedule, discards, cache budget
+def test_schedule_last_reads_hand_built(tmp_path):
+    # _chain with all three swapped (levels 1, 2, 3), worked out by hand from the drawing: each level
+    # runs the original from the previous site output (its teacher value) to this site's output, and
+    # the swapped model from the previous swapped output to this site's input
+    model = _load(_chain(), tmp_path)
+    sites = find_sites(model)
+    by_id = {s.id: s for s in sites}
+    index = GraphIndex.of(model)
+    levels = cal.site_levels(index, sites, {"s1", "s2", "s3"})
+    sched = cal._schedule(index, by_id, levels)
+    assert sched.last == {"x": 1, "teacher::t1": 2, "t1": 2, "m1": 2,
+                          "teacher::s1": 3, "s1": 3, "m2": 3, "teacher::t2": 3, "t2": 3}
+    assert sched.original[2].feed == {"t1": "teacher::t1"} and sched.swapped[2].feed == {"t1": "t1"}
+    assert sched.swapped[3].outputs == ["m2"] and 1 not in sched.swapped
+
+
+def _small_scale(blocks: int):
+    from swapper.scale_model import build_scale_model, scale_data
+
+    return build_scale_model(blocks=blocks, widths=(4, 4), size=8), scale_data(64, size=8, seed=1)
+
+
+def test_discards_bound_memory_by_level_not_depth_and_change_nothing(monkeypatch):
+    # common practice, no source: a tensor nobody reads later can be freed; with every level's tensors
+    # the same size, what is held at once must not grow with the number of levels
+    peaks, kept = {}, {}
+    for blocks in (3, 9):
+        model, ds = _small_scale(blocks)
+        sites = find_sites(model)
+        plan = make_plan(model, sites, to="relu")
+        result = cal.calibrate(model, sites, plan, ds)
+        peaks[blocks] = result.cache["peak_bytes_in_memory"]
+        assert result.cache["bytes_written"] == 0  # well inside the RAM budget
+        with monkeypatch.context() as m:
+            m.setattr(TensorCache, "discard", lambda self, name: None)
+            plan_kept = make_plan(model, sites, to="relu")
+            result_kept = cal.calibrate(model, sites, plan_kept, ds)
+        kept[blocks] = result_kept.cache["peak_bytes_in_memory"]
+        one = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
+        assert one == rewrite(result_kept.model, sites, plan_kept).model.SerializeToString(deterministic=True)
+    assert peaks[3] == peaks[9] > 0
+    assert kept[9] > 2 * kept[3]  # without discards the cache holds every level's tensors
+
+
+def test_results_do_not_depend_on_the_cache_budget(monkeypatch):
+    model, ds = _small_scale(4)
+    sites = find_sites(model)
+    out = {}
+    for budget in (0, 100_000, 1 << 30):
+        monkeypatch.setattr(cal, "TensorCache", functools.partial(TensorCache, memory_budget=budget))
+        plan = make_plan(model, sites, to="relu")
+        result = cal.calibrate(model, sites, plan, ds, batch_size=16)
+        assert result.cache["peak_bytes_in_memory"] <= budget
+        assert (result.cache["bytes_written"] > 0) == (budget < 1 << 30)
+        out[budget] = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
+    assert len(set(out.values())) == 1  # spilled or not, the same bytes come back
+
+
+# ------------------------------------------------ bias correction from the mean difference
+@settings(max_examples=30, deadline=None)
+@given(
+    spatial=st.sampled_from([(7,), (6, 5), (5, 7)]),
+    kernel=st.integers(1, 3),
+    stride=st.integers(1, 2),
+    dilation=st.integers(1, 2),
+    pad=st.integers(0, 2),
+    auto_pad=st.sampled_from(["NOTSET", "SAME_UPPER", "SAME_LOWER", "VALID"]),
+    group=st.sampled_from([1, 2]),
+    seed=st.integers(0, 2**16),
+)
+def test_conv_mean_matches_reference_conv(spatial, kernel, stride, dilation, pad, auto_pad, group, seed):
+    rng = np.random.default_rng(seed)
+    d = len(spatial)
+    c_in, c_out = 2 * group, 3 * group
+    attrs = {"kernel_shape": [kernel] * d, "strides": [stride] * d, "dilations": [dilation] * d, "group": group}
+    if auto_pad == "NOTSET":
+        attrs["pads"] = [pad] * (2 * d)
+    else:
+        attrs["auto_pad"] = auto_pad
+    node = helper.make_node("Conv", ["x", "W"], ["y"], **attrs)
+    w = rng.normal(size=(c_out, c_in // group) + (kernel,) * d)
+    x = rng.normal(size=(1, c_in) + spatial)
+    graph = helper.make_graph([node], "conv", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, None)],
+                              [helper.make_tensor_value_info("y", TensorProto.DOUBLE, None)],
+                              initializer=[numpy_helper.from_array(w, "W")])
+    ref_model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
+    # source: ONNX operator spec, Conv (pads / strides / dilations / auto_pad / group), as executed in float64
+    # by onnx.reference.ReferenceEvaluator; the mean over output positions per output channel
+    y = ReferenceEvaluator(ref_model).run(None, {"x": x})[0]
+    want = y.mean(axis=tuple(i for i in range(y.ndim) if i != 1))
+    np.testing.assert_allclose(bias_correction._conv_mean(node, w, x), want, rtol=1e-10, atol=1e-12)
+
+
+@settings(max_examples=20, deadline=None)
+@given(sizes=st.lists(st.integers(0, 7), min_size=1, max_size=5), seed=st.integers(0, 2**16))
+def test_delta_sum_is_the_mean_difference(sizes, seed):
+    rng = np.random.default_rng(seed)
+    s_parts = [rng.normal(size=(n, 3, 2)).astype(np.float32) for n in sizes]
+    t_parts = [(p + 0.01 * rng.normal(size=p.shape)).astype(np.float32) for p in s_parts]
+    delta = bias_correction.DeltaSum()
+    for s, t in zip(s_parts, t_parts):
+        delta.add(s, t)
+    assert delta.n == sum(sizes)
+    if delta.n:
+        # source: numpy reference, float64 mean over samples of the difference
+        want = np.mean(np.concatenate(s_parts).astype(np.float64) - np.concatenate(t_parts), axis=0)
+        np.testing.assert_allclose(delta.mean()[0], want, rtol=1e-9, atol=1e-12)
+
+
+def _conv_pool_conv(pool: str, seed: int = 0) -> onnx.ModelProto:
+    """x[N,2,8,8] -> Conv(W1, b1) -> Tanh -> {Average,Max}Pool 2x2 -> Conv(W2, b2, pads 1) -> y."""
+    rng = np.random.default_rng(seed)
+    inits = [_init("W1", rng.normal(size=(4, 2, 3, 3))), _init("b1", rng.normal(size=4)),
+             _init("W2", rng.normal(size=(3, 4, 3, 3))), _init("b2", rng.normal(size=3))]
+    nodes = [helper.make_node("Conv", ["x", "W1", "b1"], ["h"], name="c1", kernel_shape=[3, 3], pads=[1, 1, 1, 1]),
+             helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
+             helper.make_node(pool, ["t"], ["p"], name="pool", kernel_shape=[2, 2], strides=[2, 2]),
+             helper.make_node("Conv", ["p", "W2", "b2"], ["y"], name="c2", kernel_shape=[3, 3], pads=[1, 1, 1, 1])]
+    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 2, 8, 8])],
+                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 3, 4, 4])],
+                              initializer=inits)
+    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
+
+
+@pytest.mark.parametrize("pool", ["AveragePool", "MaxPool"])
+def test_bias_correction_through_pooling_restores_conv_mean(pool, tmp_path, monkeypatch):
+    model = _load(_conv_pool_conv(pool), tmp_path)
+    sites = find_sites(model)
+    assert [s.function for s in sites] == ["tanh"]
+    ds = _dataset((np.random.default_rng(3).normal(size=(200, 2, 8, 8))).astype(np.float32))
+    biases = {}
+    for path in ("mean", "per_batch"):
+        with monkeypatch.context() as m:
+            if path == "per_batch":  # no shift sums: every consumer falls back to batch-by-batch runs
+                m.setattr(cal, "DeltaSum", lambda: None)
+            plan = make_plan(model, sites, fold="off", to="relu")
+            result = cal.calibrate(model, sites, plan, ds, reservoir=16, batch_size=48)
+        assert result.sites[0].bias_corrected == ["c2"]
+        biases[path] = numpy_helper.to_array(GraphIndex.of(result.model).initializers["b2"])
+        candidate = rewrite(result.model, sites, plan).model
+        # source: Nagel et al. 2019, bias correction: E[candidate consumer output] = E[original], here per
+        # output channel over samples and positions (float32 tolerance)
+        got = _run(candidate, ds, ["y"])["y"].astype(np.float64).mean(axis=(0, 2, 3))
+        want = _run(model, ds, ["y"])["y"].astype(np.float64).mean(axis=(0, 2, 3))
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-4)
+    before = numpy_helper.to_array(GraphIndex.of(model).initializers["b2"])
+    assert np.max(np.abs(biases["mean"] - before)) > 1e-3  # a real correction happened
+    np.testing.assert_allclose(biases["mean"], biases["per_batch"], rtol=0, atol=1e-6)
