@@ -328,17 +328,20 @@ def is_homogeneous(g: Func) -> bool:
 
 
 def affine_params(s, t, x_lo, x_hi, piece: Piece):
-    """Balanced (a, b, c, d) with a·g(b·x + c) + d = s·x + t on [x_lo, x_hi], z kept in ``piece``.
+    """Well-scaled (a, b, c, d) with a·g(b·x + c) + d = s·x + t on [x_lo, x_hi], z kept in ``piece``.
 
-    Vectorised over rows; a > 0 and |a| = |b| = sqrt(|s/m|) unless a bounded
-    piece is too narrow for that z range (then |b| shrinks and a grows).
+    Vectorised over rows. a = 1/|m| (so g's piece has unit slope after the outer
+    scale: a folded into the consumers leaves their weights as they were) and
+    the whole slope s goes to b, which folds into the producer row; when a bounded piece is too narrow for that z range, |b| shrinks and a
+    grows. Units matter here: balancing |a| = |b| instead would depend on the
+    scale of x (x in millivolts vs volts), this form does not.
     Rows with s = 0 or x_lo = x_hi get NaN (no such form is needed there).
     """
     s, t = np.asarray(s, dtype=np.float64), np.asarray(t, dtype=np.float64)
     m, k = piece.slope, piece.intercept
     xr = np.asarray(x_hi, dtype=np.float64) - x_lo
     with np.errstate(all="ignore"):
-        mag = np.sqrt(np.abs(s / m))
+        mag = np.abs(s)  # |b| when a = 1/|m|: |a·m·b| = |s|
         width = piece.hi - piece.lo
         if np.isfinite(width):
             mag = np.minimum(mag, width / ((1 + 2 * MARGIN) * xr))

@@ -101,12 +101,13 @@ def test_affine_params_are_exact_on_the_range_and_balanced(s, t, lo, width, gi):
     ref = onnx_op(name, **attrs)
     zz = z.astype(np.float32).astype(np.float64)  # what the float32 op sees
     np.testing.assert_allclose(ref(zz), g(zz), rtol=1e-6, atol=1e-6)
-    # balanced |a| = |b| = sqrt(|s/m|) unless a bounded piece is too narrow for the range
+    # scale-free form: a = 1/|m| (consumer weights keep their size), |b| = |s| (the slope goes to the
+    # producer), unless a bounded piece is too narrow for the range (then |b| shrinks and a grows)
     m = piece.slope
-    if np.isinf(piece.hi) or np.sqrt(abs(s / m)) * width * (1 + 2 * MARGIN) <= piece.hi - piece.lo:
-        np.testing.assert_allclose([a, abs(b)], [np.sqrt(abs(s / m))] * 2, rtol=1e-12)
+    if np.isinf(piece.hi) or abs(s) * width * (1 + 2 * MARGIN) <= piece.hi - piece.lo:
+        np.testing.assert_allclose([a, abs(b)], [1 / abs(m), abs(s)], rtol=1e-12)
     else:
-        assert a >= np.sqrt(abs(s / m)) * (1 - 1e-12)
+        assert a >= (1 / abs(m)) * (1 - 1e-12)
 
 
 # -- inputs entirely on a linear piece: |a| stays bounded, the fit stays as good ------
@@ -132,10 +133,10 @@ def test_fit_on_one_linear_piece_is_well_scaled(g, dg, lo):
               fit_rows(x[None], y[None], g, init={p: np.array([v]) for p, v in zip("abcd", drift)}, dg=dg)):
         a, b, c, d = (float(np.ravel(getattr(r, p))[0]) for p in "abcd")
         mse = float(np.ravel(r.mse)[0])
-        # the bound: the balanced affine form has |a| = sqrt(|s/m|) with m = 1 on this piece; a fit
-        # that uses g's curvature instead must stay within the band |β| >= BETA_MIN, so
-        # |a| <= std(y)/(m·BETA_MIN). Either way far below the drift's 7e3.
-        assert abs(a) <= max(1.01 * np.sqrt(abs(s)), np.std(y) / BETA_MIN)
+        # the bound: the scale-free affine form has a = 1/m = 1 on this piece; a fit that uses g's
+        # curvature instead must stay within the band |β| >= BETA_MIN, so |a| <= std(y)/(m·BETA_MIN).
+        # Either way far below the drift's 7e3.
+        assert abs(a) <= max(1.01, np.std(y) / BETA_MIN)
         assert mse <= mse_drift  # never worse than the drifting start
         assert mse <= mse_affine * (1 + 1e-6)
         assert mse == pytest.approx(wmse(y, a * g(b * x + c) + d), rel=1e-9)
