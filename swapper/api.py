@@ -84,6 +84,7 @@ def swap(
     batch_size: int = 64,
     threads: int = 1,
     progress=None,
+    cache_mb: float | None = None,
 ) -> SwapResult:
     """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model."""
     progress = progress or Silent()
@@ -98,8 +99,9 @@ def swap(
     if calib is not None and plan.swaps:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
         t0 = time.perf_counter()
+        extra = {} if cache_mb is None else {"cache_bytes": int(cache_mb * (1 << 20))}
         calibration = calibrate(loaded.model, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
-                                batch_size=batch_size, seed=seed, threads=threads, progress=progress)
+                                batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
         base = calibration.model
         if refit_consumers:
             from .refit import refit_consumers as refit

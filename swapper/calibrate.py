@@ -36,7 +36,7 @@ from .graph import GraphIndex
 from .observe import ChannelObserver
 from .plan import POSITIVE_A, Plan, SiteSwap
 from .progress import Silent
-from .record import TensorCache, open_session
+from .record import MEMORY_BUDGET, TensorCache, open_session
 from .sites import Site
 
 logger = logging.getLogger(__name__)
@@ -297,8 +297,12 @@ def calibrate(
     reservoir: int = 4096,
     threads: int = 1,
     progress=None,
+    cache_bytes: int = MEMORY_BUDGET,
 ) -> CalibrationResult:
-    """Fit every swap in ``plan`` (updated in place) on ``dataset``; never mutates ``original``."""
+    """Fit every swap in ``plan`` (updated in place) on ``dataset``; never mutates ``original``.
+
+    ``cache_bytes``: recorded tensors kept in RAM up to this size, on disk beyond it.
+    """
     if mode not in MODES:
         raise ValueError(f"mode must be one of {MODES}")
     progress = progress or Silent()
@@ -315,7 +319,7 @@ def calibrate(
     results: dict[str, SiteCalibration] = {}
     n_batches = -(-dataset.n // batch_size)
 
-    with TensorCache() as cache:
+    with TensorCache(memory_budget=cache_bytes) as cache:
         for level, group in sched.groups.items():
             # the original's targets (and level-1 inputs), then the swapped model's inputs of this level
             t0 = time.perf_counter()

@@ -99,6 +99,7 @@ def swap(
     seed: Annotated[int, typer.Option(help="Seed for sampling; same inputs + seed = same bytes.")] = 0,
     batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
     threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
+    cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
     from .model_io import check_output_path
@@ -117,7 +118,7 @@ def swap(
             include_gates=include_gates, include_outputs=include_outputs, fold=fold, mode=mode,
             bias_correction=bias_correction, refit_consumers=refit_consumers, val=val, budget=budget,
             strict=strict, min_agreement=min_agreement, force=force, int8=int8, report=report, seed=seed,
-            batch_size=batch_size, threads=threads,
+            batch_size=batch_size, threads=threads, cache_mb=cache_mb,
         )
     except SwapperError as exc:
         _fail(exc)

@@ -52,7 +52,10 @@ def expose(model: onnx.ModelProto, names: list[str]) -> onnx.ModelProto:
     return out
 
 
-MEMORY_BUDGET = 256 << 20  # bytes of recorded tensors kept in RAM before spilling to disk
+# Bytes of recorded tensors kept in RAM before spilling to disk. Small on purpose: calibration's own
+# footprint is ~90 MiB (onnxruntime sessions, observers), and the benchmark's target is that 16x more
+# calibration data costs at most +10% peak memory; raise it (--cache-mb) to trade memory for speed.
+MEMORY_BUDGET = 8 << 20
 
 
 class TensorCache:
