@@ -11,7 +11,6 @@ output shift E[W·(x̃ − x)] from the layer's bias).
 from __future__ import annotations
 
 import copy
-import functools
 from pathlib import Path
 
 import numpy as np

@@ -126,7 +126,6 @@ def test_fit_on_one_linear_piece_is_well_scaled(g, dg, lo):
     mse_drift = wmse(y, a_drift * g(b_drift * x + c_drift) + d_drift)
     # source: scikit-learn LinearRegression, the best affine fit (the drift can only equal it)
     lr = LinearRegression().fit(x[:, None], y)
-    s = float(lr.coef_[0])
     mse_affine = wmse(y, lr.predict(x[:, None]))
     assert mse_affine <= mse_drift * (1 + 1e-9)
     for r in (fit_channel(x, y, g, init=drift, dg=dg),
