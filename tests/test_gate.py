@@ -16,7 +16,6 @@ Measured on the build machine (onnxruntime 1.32.0, x86-64) for the cases used:
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import shutil
 from pathlib import Path
@@ -26,21 +25,9 @@ import onnx
 import onnxruntime as ort
 import pytest
 from sklearn.metrics import accuracy_score
-from typer.testing import CliRunner
-
-from swapper.cli import app
-
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
-CALIB, VAL = DEMO / "calib.npz", DEMO / "val.npz"
-runner = CliRunner()
 
 
-def sha256(path: Path) -> str:
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
+from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
 
 
 def predict(path: Path) -> np.ndarray:

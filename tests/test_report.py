@@ -9,7 +9,6 @@ verdict, the caution and self-containment (no external references).
 from __future__ import annotations
 
 import copy
-import hashlib
 import importlib.util
 import json
 import math
@@ -26,22 +25,10 @@ import onnxruntime as ort
 import pytest
 from sklearn.metrics import accuracy_score
 from statsmodels.stats.contingency_tables import mcnemar
-from typer.testing import CliRunner
 
-from swapper.cli import app
 from swapper.report import validate_report
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
-CALIB, VAL = DEMO / "calib.npz", DEMO / "val.npz"
-runner = CliRunner()
-
-
-def sha256(path: Path) -> str:
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
-
-
-def invoke(*args):
-    return runner.invoke(app, [str(a) for a in args])
+from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
 
 
 def logits(path: Path) -> np.ndarray:
