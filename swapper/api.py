@@ -15,7 +15,7 @@ from pathlib import Path
 
 import onnx
 
-from .calibrate import CalibrationResult, calibrate
+from .calibrate import CalibrationResult, calibrate, check_mode
 from .data import Dataset, input_specs, load_dataset
 from .errors import UsageError
 from .model_io import LoadedModel, load_model
@@ -88,6 +88,7 @@ def swap(
 ) -> SwapResult:
     """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model."""
     progress = progress or Silent()
+    check_mode(mode)  # also when there is nothing to calibrate: a wrong option is an error, not ignored
     loaded = _as_loaded(model)
     sites = find_sites(loaded.model)
     t0 = time.perf_counter()

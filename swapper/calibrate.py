@@ -31,10 +31,11 @@ from onnx.utils import Extractor
 from . import functions
 from .bias_correction import DeltaSum, correct_bias
 from .data import Dataset, batches
+from .errors import UsageError
 from .fit import fit_channels
 from .graph import GraphIndex
 from .observe import ChannelObserver
-from .plan import POSITIVE_A, Plan, SiteSwap
+from .plan import Plan, SiteSwap
 from .progress import Silent
 from .record import MEMORY_BUDGET, TensorCache, open_session
 from .sites import Site
@@ -71,6 +72,12 @@ class CalibrationResult:
             "timings_s": {k: round(v, 4) for k, v in self.timings.items()},
             "sites": [s.__dict__ for s in self.sites],
         }
+
+
+def check_mode(mode: str) -> None:
+    """Raise UsageError unless ``mode`` is a calibration mode."""
+    if mode not in MODES:
+        raise UsageError(f"unknown mode {mode!r}; valid: {', '.join(MODES)}")
 
 
 def site_levels(index: GraphIndex, sites: list[Site], swapped: set[str]) -> dict[str, int]:
@@ -125,28 +132,17 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     return out
 
 
-def _observer(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
+def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
+    """An empty observer shaped for ``swap``'s channels."""
     axis = swap.channel_axis if swap.channels > 1 else None
     return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
 
 
-def _fit(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
-    fn = functions.get(swap.target)
-    params = swap.target_params
-
-    def g(z):
-        return fn.ref(z, **params)
-
-    dg = (lambda z: fn.grad(z, **params)) if fn.grad is not None else None
-    fitted = fit_channels(
-        observer,
-        g,
-        init=swap.params(),
-        free="".join(swap.free()),
-        positive_a=swap.placement.get("a") == "inner"
-        or (swap.placement.get("a") in POSITIVE_A and bool(np.all(np.asarray(swap.a) > 0))),
-        dg=dg,
-    )
+def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
+    """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
+    g, dg = swap.surrogate()
+    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()),
+                          positive_a=swap.positive_a(), dg=dg)
     swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
     return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 
@@ -303,8 +299,7 @@ def calibrate(
 
     ``cache_bytes``: recorded tensors kept in RAM up to this size, on disk beyond it.
     """
-    if mode not in MODES:
-        raise ValueError(f"mode must be one of {MODES}")
+    check_mode(mode)
     progress = progress or Silent()
     timings = {"record_s": 0.0, "segments_s": 0.0, "fit_s": 0.0, "bias_correction_s": 0.0}
     swaps = plan.by_site()
@@ -362,11 +357,11 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
     """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
     t0 = time.perf_counter()
     sid, teacher, student = site.id, sched.teacher[site.id], sched.student[site.id]
-    observer = _observer(swap, seed, reservoir)
+    observer = observer_for(swap, seed, reservoir)
     for start in range(0, n, batch_size):
         stop = min(start + batch_size, n)
         observer.update(cache.read(site.input, start, stop), cache.read(teacher, start, stop))
-    mse_start, mse_fit = _fit(swap, observer)
+    mse_start, mse_fit = fit_swap(swap, observer)
     seen = observer.compute()
     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
                                    x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x])

@@ -111,8 +111,6 @@ def swap(
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
             raise UsageError("--calib and --no-calibrate exclude each other")
-        if mode not in ("sequential", "local"):
-            raise UsageError(f"unknown mode {mode!r}; valid: sequential, local")
         code = run_swap(
             model, output, console=out, calib=calib, to=to, site_ids=_split(sites), only=only,
             include_gates=include_gates, include_outputs=include_outputs, fold=fold, mode=mode,

@@ -80,6 +80,14 @@ class Function:
     homogeneous: bool = False
     source: str = ""  # where the formula is published
 
+    def bind(self, params: dict) -> tuple[Callable[[Array], Array], Callable[[Array], Array] | None]:
+        """(g, dg): the function and its derivative with ``params`` fixed, as the fitters take them."""
+        def g(x: Array) -> Array:
+            return self.ref(x, **params)
+
+        dg = None if self.grad is None else (lambda x: self.grad(x, **params))
+        return g, dg
+
     @property
     def cost(self) -> float:
         """Relative cost per element: measured (swapper.costs) when available, else static."""

@@ -54,6 +54,22 @@ class SiteSwap:
         """The parameters a fitter may move."""
         return tuple(p for p in PARAMS if self.placement.get(p) != "held")
 
+    def positive_a(self) -> bool:
+        """Whether the fitter must keep a > 0.
+
+        "inner" always (a moves inside g); "consumers+" while every a is already
+        positive (a passes a MaxPool only when positive; once some a is not, the
+        rewriter emits a as a node instead and the sign is free).
+        """
+        place = self.placement.get("a")
+        return place == "inner" or (place in POSITIVE_A and bool(np.all(np.asarray(self.a) > 0)))
+
+    def surrogate(self):
+        """(g, dg) of the surrogate with its own parameters fixed."""
+        from . import functions
+
+        return functions.get(self.target).bind(self.target_params)
+
     def params(self) -> dict[str, np.ndarray]:
         return {p: getattr(self, p) for p in PARAMS}
 
@@ -122,24 +138,22 @@ class Plan:
         return cls.from_dict(json.loads(text))
 
 
+_STARTS: dict[tuple, tuple[float, float, float, float]] = {}
+
+
 def _starting_params(source: str, source_params: dict, target: str, target_params: dict,
-                     free: str, positive_a: bool, _cache: dict = {}) -> tuple[float, float, float, float]:
-    """Least-squares best a, b, c, d of the surrogate to the source over a standard input range."""
+                     free: str, positive_a: bool) -> tuple[float, float, float, float]:
+    """Least-squares best a, b, c, d of the surrogate to the source over a standard input range (memoised)."""
     from . import functions
     from .fit import starting_params
 
-    key = (source, tuple(sorted(source_params.items())), target,
-           json.dumps(target_params, sort_keys=True), free, positive_a)
-    if key not in _cache:
-        f, g = functions.get(source), functions.get(target)
-        _cache[key] = starting_params(
-            lambda x: f.ref(x, **source_params),
-            lambda z: g.ref(z, **target_params),
-            free=free,
-            positive_a=positive_a,
-            dg=(lambda z: g.grad(z, **target_params)) if g.grad is not None else None,
-        )
-    return _cache[key]
+    key = (source, json.dumps(source_params, sort_keys=True), target, json.dumps(target_params, sort_keys=True),
+           free, positive_a)
+    if key not in _STARTS:
+        f, _ = functions.get(source).bind(source_params)
+        g, dg = functions.get(target).bind(target_params)
+        _STARTS[key] = starting_params(f, g, free=free, positive_a=positive_a, dg=dg)
+    return _STARTS[key]
 
 
 def make_plan(
@@ -215,25 +229,22 @@ def make_plan(
         target_fn = functions.get(target)
         tparams = functions.target_params(site.function, site.params, target)
         placement, notes = decide_placement(index, site, target_fn, fold)
-        free = "".join(p for p in PARAMS if placement.get(p) != "held")
-        a, b, c, d = _starting_params(site.function, site.params, target, tparams, free,
-                                      placement.get("a") in POSITIVE_A)
         channels = site.channels or 1
-        swaps.append(
-            SiteSwap(
-                site_id=site.id,
-                source=site.function,
-                source_params=dict(site.params),
-                target=target,
-                target_params=tparams,
-                channel_axis=site.channel_axis if site.channels else None,
-                channels=channels,
-                a=np.full(channels, a),
-                b=np.full(channels, b),
-                c=np.full(channels, c),
-                d=np.full(channels, d),
-                placement=placement,
-                notes=list(notes),
-            )
+        swap = SiteSwap(
+            site_id=site.id,
+            source=site.function,
+            source_params=dict(site.params),
+            target=target,
+            target_params=tparams,
+            channel_axis=site.channel_axis if site.channels else None,
+            channels=channels,
+            **{p: np.full(channels, NEUTRAL[p]) for p in PARAMS},
+            placement=placement,
+            notes=list(notes),
         )
+        # before any value exists, a placement in POSITIVE_A asks for a positive start
+        start = _starting_params(site.function, site.params, target, tparams, "".join(swap.free()),
+                                 placement.get("a") in POSITIVE_A)
+        swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
+        swaps.append(swap)
     return Plan(fold=fold, swaps=swaps, skipped=skipped)

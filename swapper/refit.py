@@ -46,15 +46,12 @@ import time
 import numpy as np
 import onnx
 
-from . import functions
-from .calibrate import site_levels
+from .calibrate import fit_swap, observer_for, site_levels
 from .consumers import Consumer, find_consumers, theta_of, write_theta
 from .data import Dataset, batches
-from .fit import fit_channels
 from .graph import GraphIndex
 from .im2col import conv_geometry, im2col
-from .observe import ChannelObserver
-from .plan import POSITIVE_A, Plan
+from .plan import Plan
 from .progress import Silent
 from .record import expose, open_session
 from .rewrite import rewrite
@@ -130,11 +127,7 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, dataset: 
     inner = [t for t in ins if t not in graph_inputs]
     cand_sess = open_session(expose(cand, inner), threads=threads) if inner else None
     orig_sess = open_session(expose(original, outs), threads=threads)
-    observers = {}
-    for s in group:
-        sw = swaps[s.id]
-        observers[s.id] = ChannelObserver(sw.channels, sw.channel_axis if sw.channels > 1 else None,
-                                          reservoir=RESERVOIR, seed=seed)
+    observers = {s.id: observer_for(swaps[s.id], seed, RESERVOIR) for s in group}
     label = f"re-fitting {len(group)} site(s) on refitted layers"
     with progress.task(label, -(-dataset.n // batch_size)) as advance:
         for batch in batches(dataset, batch_size):
@@ -146,17 +139,9 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, dataset: 
                 observers[s.id].update(xs[s.input], ys[s.output])
             advance(1)
     for s in group:
-        sw = swaps[s.id]
-        fn = functions.get(sw.target)
-        params = dict(sw.target_params)
-        fitted = fit_channels(
-            observers[s.id], lambda z: fn.ref(z, **params), init=sw.params(), free="".join(sw.free()),
-            positive_a=sw.placement.get("a") == "inner"
-            or (sw.placement.get("a") in POSITIVE_A and bool(np.all(np.asarray(sw.a) > 0))),
-            dg=(lambda z: fn.grad(z, **params)) if fn.grad is not None else None)
-        sw.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
+        mse_start, mse_fit = fit_swap(swaps[s.id], observers[s.id])  # calibration's own fit, same rules
         _note(result, s.id, f"a, b, c, d re-fitted on the refitted upstream layers: MSE "
-                            f"{float(np.mean(fitted.mse_init)):.4g} -> {float(np.mean(fitted.mse)):.4g}")
+                            f"{mse_start:.4g} -> {mse_fit:.4g}")
 
 
 # ------------------------------------------------------------------- public

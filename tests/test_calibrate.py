@@ -84,7 +84,7 @@ def spy(monkeypatch):
     """Record, per site id, every x an observer is fed and its reservoir size after each update;
     and every TensorCache calibrate opens with the names appended to it."""
     seen = {"x": {}, "held": {}, "res_bytes": {}, "observers": {}, "caches": []}
-    real = cal._observer
+    real = cal.observer_for
 
     def observer(swap, seed, reservoir):
         obs = real(swap, seed, reservoir)
@@ -126,7 +126,7 @@ def spy(monkeypatch):
         def final_rows(self) -> dict[str, int]:
             return {n: self.discarded[n] if n in self.discarded else self.rows(n) for n in self.names}
 
-    monkeypatch.setattr(cal, "_observer", observer)
+    monkeypatch.setattr(cal, "observer_for", observer)
     monkeypatch.setattr(cal, "TensorCache", RecordingCache)
     return seen
 
