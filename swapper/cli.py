@@ -102,11 +102,9 @@ def swap(
     cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
-    from .model_io import check_output_path
     from .pipeline import run_swap
 
     try:
-        check_output_path(output, inputs=(model,))
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:

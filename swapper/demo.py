@@ -39,7 +39,7 @@ def run_demo(out_dir: Path, *, console=None, models_dir: Path = DEMO_DIR, budget
             console.print(sites_table(sites, f"{model.name}: {len(sites)} activation sites"))
         output = out_dir / f"{model.stem}.swapped.onnx"
         report = out_dir / f"{model.stem}-{stamp}"
-        code = run_swap(model, output, console=console, calib=calib, val=val, budget=budget, report=report)
+        code = run_swap(loaded, output, console=console, calib=calib, val=val, budget=budget, report=report)
         summary.append((model.name, "approved" if code == 0 else "rejected", report / "report.html"))
     if console is not None:
         console.rule("summary")

@@ -14,19 +14,12 @@ import onnx
 
 from . import api
 from .evaluate import Budget
-from .model_io import check_output_path, load_model, save_model
+from .model_io import LoadedModel, check_output_path, load_model, save_model
 from .progress import RichBars, Silent
-from .report import write_report
+from .report import pct, site_rows, write_report
 from .tables import skipped_lines, swap_table
 
 logger = logging.getLogger(__name__)
-
-CAUTION = (
-    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
-    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
-    "and licensed practice."
-)
-
 
 def utc_stamp() -> str:
     return datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
@@ -67,13 +60,9 @@ def _print_check(console, result: api.CheckResult) -> None:
                   f"{s['original']['bytes']} → {s['candidate']['bytes']}", highlight=False)
     if result.int8:
         q = result.int8["comparison"]
-        console.print(f"  int8: top-1 original {_pct(q.get('top1_original'))} candidate "
-                      f"{_pct(q.get('top1_candidate'))}, latency ratio {result.int8['latency']['ratio']:.2f}",
+        console.print(f"  int8: top-1 original {pct(q.get('top1_original'))} candidate "
+                      f"{pct(q.get('top1_candidate'))}, latency ratio {result.int8['latency']['ratio']:.2f}",
                       highlight=False)
-
-
-def _pct(x) -> str:
-    return "-" if x is None else f"{100 * x:.2f}%"
 
 
 def run_check(original: Path, candidate: Path, val: Path, *, console=None, budget: float = 1.0,
@@ -97,14 +86,18 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     return 0 if result.verdict.approved else 1
 
 
-def run_swap(model: Path, output: Path, *, console=None, calib: Path | None = None, val: Path | None = None,
+def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Path | None = None, val: Path | None = None,
              budget: float = 1.0, strict: bool = False, min_agreement: float | None = None, force: bool = False,
              int8: bool = False, report: Path | None = None, batch_size: int = 64, threads: int = 1,
              **swap_options) -> int:
-    """`swapper swap`: plan, calibrate, rewrite; with ``val``, gate before writing ``output``."""
-    check_output_path(output, inputs=(model,))
+    """`swapper swap`: plan, calibrate, rewrite; with ``val``, gate before writing ``output``.
+
+    ``model`` is a path or an already loaded model (the demo has loaded it to show its sites).
+    """
+    path = model.path if isinstance(model, LoadedModel) else Path(model)
+    check_output_path(output, inputs=(path,))  # before any work: a bad output path is a usage error
     rule = Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement)
-    loaded = load_model(model)
+    loaded = model if isinstance(model, LoadedModel) else load_model(path)
     calib_ds = api.load_data(calib, loaded) if calib is not None else None
     val_ds = api.load_data(val, loaded) if val is not None else None
     progress = _progress(console)
@@ -112,7 +105,7 @@ def run_swap(model: Path, output: Path, *, console=None, calib: Path | None = No
                       **swap_options)
     if console is not None:
         if result.plan.swaps:
-            console.print(swap_table(result.plan, result.rewrite.records, result.calibration))
+            console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
         for line in skipped_lines(result.plan):
             console.print(f"  {line}", highlight=False)
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
@@ -122,7 +115,7 @@ def run_swap(model: Path, output: Path, *, console=None, calib: Path | None = No
                           highlight=False)
     if not result.plan.swaps:
         if console is not None:
-            console.print(f"{model}: nothing to swap; no model written")
+            console.print(f"{path}: nothing to swap; no model written")
         return 0
     candidate = result.candidate
     check = None
@@ -133,14 +126,14 @@ def run_swap(model: Path, output: Path, *, console=None, calib: Path | None = No
         _print_check(console, check)
     approved = check is None or check.verdict.approved
     if approved or force:
-        save_model(candidate, output, inputs=(model,))
+        save_model(candidate, output, inputs=(path,))
         if console is not None:
             note = "" if approved else " (rejected; written because of --force)"
             console.print(f"wrote {output}{note}", highlight=False)
     elif console is not None:
         console.print(f"not written: {output} (rejected)", highlight=False)
     if check is not None or report is not None:
-        folder = report or default_report_dir(Path(model))
+        folder = report or default_report_dir(path)
         paths = write_report(folder, original=loaded, candidate_path=output if (approved or force) else None,
                              candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib)
         if console is not None:

@@ -40,12 +40,18 @@ from pathlib import Path
 import numpy as np
 
 from . import functions
+from .api import sha256_file
 from .model_io import atomic_write_bytes
 from .errors import BadOutputError
 
 logger = logging.getLogger(__name__)
 
 SCHEMA = "swapper.report/1"
+CAUTION = (
+    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
+    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
+    "and licensed practice."
+)
 TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
             "verdict", "latency", "size", "int8", "caution")
 SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
@@ -68,8 +74,6 @@ def _versions() -> dict:
 def _file_entry(path) -> dict | None:
     if path is None:
         return None
-    from .api import sha256_file
-
     p = Path(path)
     if p.is_dir():  # a folder of .npy files: hash the sorted file list and contents
         import hashlib
@@ -84,30 +88,36 @@ def _file_entry(path) -> dict | None:
     return {"path": str(p), "sha256": sha256_file(p), "bytes": p.stat().st_size}
 
 
+def site_rows(plan, records, calibration) -> list[dict]:
+    """One summary per swapped site: what was fitted, where its parameters live, what it cost.
+
+    The ``sites`` entries of report.json, also what the terminal table shows.
+    """
+    by_record = {r.site_id: r for r in records or []}
+    fits = {c.site_id: c for c in calibration.sites} if calibration is not None else {}
+    rows = []
+    for s in plan.swaps:
+        rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
+        rows.append({
+            "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
+            "nodes_added": rec.nodes_added if rec else None,
+            "folded_into": list(rec.folded_into) if rec else [],
+            "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
+            "level": fit.level if fit else None,
+            "bias_corrected": list(fit.bias_corrected) if fit else [],
+            # plan, rewrite and fit may each record the same fact; keep the first of each, in order
+            "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
+                                        + (list(fit.notes) if fit else []))),
+        })
+    return rows
+
+
 def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
                  calib_path=None) -> dict:
     """Assemble the report.json payload (see the module docstring for its schema)."""
     from .stats import json_safe
 
-    sites = []
-    if swap is not None:
-        records = {r.site_id: r for r in swap.rewrite.records}
-        fits = {c.site_id: c for c in swap.calibration.sites} if swap.calibration else {}
-        for s in swap.plan.swaps:
-            rec, fit = records.get(s.site_id), fits.get(s.site_id)
-            sites.append({
-                "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
-                "nodes_added": rec.nodes_added if rec else None,
-                "folded_into": list(rec.folded_into) if rec else [],
-                "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
-                "level": fit.level if fit else None,
-                "bias_corrected": list(fit.bias_corrected) if fit else [],
-                # plan, rewrite and fit may each record the same fact; keep the first of each, in order
-                "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
-                                            + (list(fit.notes) if fit else []))),
-            })
-    from .pipeline import CAUTION
-
+    sites = site_rows(swap.plan, swap.rewrite.records, swap.calibration) if swap is not None else []
     payload = {
         "schema": SCHEMA,
         "created_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -180,7 +190,8 @@ def _table(header: list[str], rows: list[list], numeric: set[int] = frozenset())
     return f"<table><tr>{head}</tr>{body}</table>"
 
 
-def _pct(x) -> str:
+def pct(x) -> str:
+    """A fraction as a percentage with two decimals; a dash when absent."""
     return "–" if x is None else f"{100 * x:.2f}%"
 
 
@@ -248,9 +259,9 @@ def render_html(payload: dict) -> str:
              f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner]
     c = payload["comparison"]
     if c is not None:
-        rows = [["samples", c["n"], ""], ["top-1 accuracy", _pct(c["top1_original"]), _pct(c["top1_candidate"])]]
+        rows = [["samples", c["n"], ""], ["top-1 accuracy", pct(c["top1_original"]), pct(c["top1_candidate"])]]
         if c.get("top5_original") is not None:
-            rows.append(["top-5 accuracy", _pct(c["top5_original"]), _pct(c["top5_candidate"])])
+            rows.append(["top-5 accuracy", pct(c["top5_original"]), pct(c["top5_candidate"])])
         acc = _table(["", "original", "candidate"], rows)
         extra = []
         if c.get("delta_pp") is not None:
@@ -260,7 +271,7 @@ def render_html(payload: dict) -> str:
                 extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
             extra.append(["McNemar exact p", f"{_num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
         if c.get("agreement") is not None:
-            extra.append(["top-1 agreement", _pct(c["agreement"])])
+            extra.append(["top-1 agreement", pct(c["agreement"])])
         for name, errs in (c.get("output_errors") or {}).items():
             extra.append([f"output {name}", f"max |Δ| {_num(errs.get('max_abs'))}, RMSE {_num(errs.get('rmse'))}, "
                                             f"cosine {_num(errs.get('cosine'), '{:.6f}')}, SQNR {_num(errs.get('sqnr_db'), '{:.1f}')} dB"])
@@ -284,7 +295,7 @@ def render_html(payload: dict) -> str:
         if payload["int8"]:
             q = payload["int8"]
             parts.append("<h2>int8 view</h2>" + _table(["", "original", "candidate"], [
-                ["top-1 accuracy", _pct(q["comparison"].get("top1_original")), _pct(q["comparison"].get("top1_candidate"))],
+                ["top-1 accuracy", pct(q["comparison"].get("top1_original")), pct(q["comparison"].get("top1_candidate"))],
                 ["median latency (ms)", _num(q["latency"]["original"]["median_ms"]), _num(q["latency"]["candidate"]["median_ms"])],
                 ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
             ]) + f"<small>{_e(q['quantization'])}</small>")

@@ -20,22 +20,19 @@ def sites_table(sites: list[Site], title: str) -> Table:
     return table
 
 
-def swap_table(plan: Plan, rewrite_records=None, calibration=None) -> Table:
-    fits = {c.site_id: c for c in calibration.sites} if calibration is not None else {}
-    records = {r.site_id: r for r in rewrite_records or []}
+def swap_table(rows: list[dict]) -> Table:
+    """The per-site summaries of :func:`swapper.report.site_rows` as a terminal table."""
     table = Table(title="swapped sites", title_justify="left")
     for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted"):
         table.add_column(col)
-    for s in plan.swaps:
-        rec = records.get(s.site_id)
-        fit = fits.get(s.site_id)
+    for r in rows:
         table.add_row(
-            s.site_id,
-            f"{s.source} → {s.target}",
-            *(s.placement.get(p, "-") for p in "abcd"),
-            str(rec.nodes_added) if rec is not None else "-",
-            f"{fit.mse_start:.3g}" if fit else "-",
-            f"{fit.mse_fit:.3g}" if fit else "-",
+            r["site_id"],
+            f"{r['source']} → {r['target']}",
+            *(r["placement"].get(p, "-") for p in "abcd"),
+            "-" if r["nodes_added"] is None else str(r["nodes_added"]),
+            "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
+            "-" if r["mse_fit"] is None else f"{r['mse_fit']:.3g}",
         )
     return table
 
