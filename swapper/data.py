@@ -79,6 +79,7 @@ class Dataset:
     targets: np.ndarray | None
     n: int
     dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
+    max_batch: int | None = None  # the model's static batch dimension (e.g. 1): batches never exceed it
 
 
 @dataclass
@@ -220,12 +221,12 @@ def _check_targets(targets: np.ndarray, n: int, path: Path) -> None:
 
 
 def load_dataset(
-    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False, check_values: bool = True
+    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False
 ) -> Dataset:
     """Open an .npz / .npy-folder data set and validate it against the model inputs ``specs``.
 
-    ``require_labels`` demands a ``labels`` array. ``check_values=False`` skips the
-    NaN/Inf/overflow scan (one streaming pass over the data). Raises BadDataError.
+    ``require_labels`` demands a ``labels`` array. Values are scanned for NaN/Inf/overflow in one
+    streaming pass. Raises BadDataError.
     """
     path = Path(path)
     if not path.exists():
@@ -256,11 +257,11 @@ def load_dataset(
         _check_labels(labels, n, path)
     if targets is not None:
         _check_targets(targets, n, path)
-    if check_values:
-        for s in specs:
-            _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
+    for s in specs:
+        _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
     logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
-    return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes)
+    return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
+                   max_batch=fixed_batch_size(specs))
 
 
 # ---------------------------------------------------------------- iteration and views
@@ -269,10 +270,12 @@ def load_dataset(
 def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterator[Batch]:
     """Yield samples in order, ``batch_size`` at a time (the last may be short), up to ``limit``.
 
-    Each batch owns fresh contiguous copies in the model's dtypes; nothing else is held.
+    Each batch owns fresh contiguous copies in the model's dtypes; nothing else is held. A model
+    with a static batch dimension gets batches of at most that size, whatever ``batch_size`` asks.
     """
     if batch_size < 1:
         raise ValueError("batch_size must be >= 1")
+    batch_size = min(batch_size, ds.max_batch or batch_size)
     total = ds.n if limit is None else max(0, min(int(limit), ds.n))
     for start in range(0, total, batch_size):
         stop = min(start + batch_size, total)
@@ -297,6 +300,7 @@ def replicate(ds: Dataset, times: int) -> Dataset:
         targets=cycle(ds.targets, n),
         n=n,
         dtypes=dict(ds.dtypes),
+        max_batch=ds.max_batch,
     )
 
 
@@ -317,4 +321,5 @@ def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
         targets=take(ds.targets),
         n=n,
         dtypes=dict(ds.dtypes),
+        max_batch=ds.max_batch,
     )

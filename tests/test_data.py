@@ -434,3 +434,14 @@ def test_input_specs_refuses_non_tensor_inputs():
     )
     with pytest.raises(BadModelError, match="'s' is a sequence_type"):
         input_specs(helper.make_model(graph))
+
+
+def test_static_batch_dimension_caps_batches(tmp_path):
+    # A model exported with batch 1 (common for edge targets) must get batches of 1, whatever is asked;
+    # onnxruntime rejects any other first dimension (ONNX shape semantics: a dim_value is fixed).
+    x = np.arange(5 * 3, dtype=np.float32).reshape(5, 3)
+    np.savez(tmp_path / "d.npz", x=x)
+    ds = load_dataset(tmp_path / "d.npz", [InputSpec("x", np.dtype(np.float32), (1, 3))])
+    got = list(batches(ds, 4))
+    assert [b.feeds["x"].shape[0] for b in got] == [1] * 5
+    assert np.array_equal(np.concatenate([b.feeds["x"] for b in got]), x)
