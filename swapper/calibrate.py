@@ -39,6 +39,7 @@ from .plan import Plan, SiteSwap
 from .progress import Silent
 from .record import MEMORY_BUDGET, TensorCache, open_session
 from .sites import Site
+from .splice import copy_model
 
 logger = logging.getLogger(__name__)
 
@@ -304,8 +305,7 @@ def calibrate(
     timings = {"record_s": 0.0, "segments_s": 0.0, "fit_s": 0.0, "bias_correction_s": 0.0}
     swaps = plan.by_site()
     by_id = {s.id: s for s in sites}
-    work = onnx.ModelProto()
-    work.CopyFrom(original)
+    work = copy_model(original)  # bias corrections go here; the original stays the teacher
     index = GraphIndex.of(work)
     levels = site_levels(index, sites, set(swaps))
     if mode == "local":
@@ -347,7 +347,7 @@ def calibrate(
         stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
                  "memory_budget": cache.memory_budget}
     logger.info("calibration cache: %s", stats)
-    ordered = [results[sid] for sid in sorted(results, key=lambda s: list(swaps).index(s))]
+    ordered = [results[sid] for sid in swaps if sid in results]  # plan order
     return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n,
                              cache=stats)
 

@@ -114,9 +114,6 @@ class Plan:
             "skipped": [asdict(s) for s in self.skipped],
         }
 
-    def to_json(self) -> str:
-        return json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
-
     def summary_json(self) -> str:
         """The plan without per-channel values (they are folded into the graph): small enough for model metadata."""
         d = self.to_dict()
