@@ -75,9 +75,6 @@ from .varpro import (DEGENERATE, Projected, affine_params, apply_g, canonical_pa
                      outer_solve)
 from .varpro_batched import score_rows
 
-# Moved to swapper.varpro; re-exported so imports from swapper.fit keep working.
-from .varpro import A_FLOOR, BETA_MIN, BOX, MAX_NFEV  # noqa: F401
-
 logger = logging.getLogger(__name__)
 
 Func = Callable[[np.ndarray], np.ndarray]

@@ -39,7 +39,7 @@ import numpy as np
 
 from .fit import Z_FLOOR, Func, SiteFit, _check_free, _g_scale, _weights, fit_channel, well_scaled
 from .plan import PARAMS
-from .varpro import BOX, DEGENERATE, apply_g, band_box, band_starts, in_band
+from .varpro import DEGENERATE, apply_g, band_box, band_starts, in_band, standardise
 from .varpro_batched import BAD_START, FLAT, LAMBDA0, lm_projected, outer_solve_rows
 
 logger = logging.getLogger(__name__)
@@ -145,34 +145,11 @@ def _subsample(n: int, w: np.ndarray):
 def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes) -> None:
     """The projected search of :func:`fit_rows` on the channels ``rows`` (non-constant x)."""
     a0, b0, c0, d0 = (v[rows] for v in start)
-    mx, sx = mx[rows], sx[rows]
     fb, fc = "b" in free, "c" in free
-    # standardised coordinates of swapper.varpro.Projected: u = q0·v + q1
-    if fb and fc:
-        V = (X[rows] - mx[:, None]) / sx[:, None]
-        q0 = np.stack([b0 * sx, c0 + b0 * mx], axis=1)
-    elif fb:
-        V = X[rows] / sx[:, None]
-        q0 = np.stack([b0 * sx, c0], axis=1)
-    else:
-        V = X[rows] - mx[:, None]
-        q0 = np.stack([b0, c0 + b0 * mx], axis=1)
-
-    def to_bc(q, i):
-        """(b, c) of standardised q for the rows ``i`` (indices into ``rows``)."""
-        if fb and fc:
-            return q[:, 0] / sx[i], q[:, 1] - q[:, 0] * mx[i] / sx[i]
-        if fb:
-            return q[:, 0] / sx[i], c0[i].copy()
-        return b0[i].copy(), q[:, 1] - b0[i] * mx[i]
-
-    fm = np.array([fb, fc])
-    # second start (as in swapper.varpro): the start shape on the standardised data, unless close
-    q1 = np.where(fm[None, :], np.stack([b0, c0], axis=1), q0)
-    second = ~(np.abs(q1 - q0) <= 0.5 + 0.5 * np.abs(q0))[:, fm].all(axis=1) if fb else np.zeros(rows.size, bool)
-    half = np.maximum(BOX, 2 * np.abs(q0))
-    half = np.where(second[:, None], np.maximum(half, 2 * np.abs(q1)), half)
-    half = np.where(fm[None, :], half, np.inf)
+    # the coordinates, second start and box of swapper.varpro.Projected: u = q0·v + q1;
+    # to_bc(q, i) maps rows i (indices into ``rows``) back
+    std = standardise(X[rows], b0, c0, mx[rows], sx[rows], fb, fc)
+    V, q0, q1, second, half, to_bc = std.V, std.q0, std.q1, std.second, std.half, std.to_bc
     Yr = Y[rows]
     opts = dict(fa="a" in free, fd="d" in free, positive_a=positive_a, z_floor=z_floor)
     keep, ws = _subsample(V.shape[1], w)

@@ -72,9 +72,8 @@ def y_stats(y, w):
 def outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None):
     """Weighted LS of y on [z, 1] over the free ones of (a, d). Returns (a, d, a_solved).
 
-    z counts as constant (a not identified) when its spread is below 1e-6 of
-    its RMS or below ``z_floor``: a tiny-but-varying z (e.g. b ≈ 0) would
-    otherwise need an astronomically large a.
+    The one-row case of :func:`slope_rows` (which states the rules for a);
+    the moments are summed here in this path's own order.
     """
     if not fa:
         d = float(w @ (y - a0 * z)) if fd else d0
@@ -90,14 +89,34 @@ def outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None):
         szz, syy = float(w @ (z * z)), float(w @ ((y - d0) ** 2))
         szy = float(w @ (z * (y - d0)))
         rms2 = szz
-    solved = szz > (DEGENERATE**2) * rms2 and szz > z_floor**2 and szz > 0
-    a = szy / szz if solved else a0
-    if positive_a:
-        floor = A_FLOOR * (np.sqrt(syy / szz) if solved and syy > 0 else abs(a0))
-        if a < floor:
-            a, solved = floor, False  # active bound: a no longer moves with (b, c)
+    a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor)
+    a = float(a)
     d = my - a * mz if fd else d0
-    return float(a), float(d), solved
+    return a, float(d), bool(solved)
+
+
+def slope_rows(szz, szy, syy, rms2, a0, positive_a: bool, z_floor: float):
+    """The slope a of the weighted LS of y on [z, 1] from its moments, per row, and whether it was solved.
+
+    ``szz``, ``szy``, ``syy`` are the weighted (co)variances of z and y
+    (about their means when d is free, else about 0 and d₀), ``rms2`` the
+    weighted mean square of z. z counts as constant, and a keeps ``a0``, when
+    its spread is below ``DEGENERATE`` of its RMS or below ``z_floor``: a
+    tiny-but-varying z (e.g. b ≈ 0) would otherwise need an astronomically
+    large a. With ``positive_a`` a is clamped to ``A_FLOOR`` × the natural
+    slope scale sqrt(syy / szz) (× |a0| where that is undefined); a clamped
+    a counts as not solved (active bound: a no longer moves with (b, c)).
+    """
+    with np.errstate(all="ignore"):  # constant or overflowing rows are caught by `solved`/finiteness
+        solved = (szz > (DEGENERATE**2) * rms2) & (szz > z_floor**2) & (szz > 0)
+        a = np.where(solved, szy / np.where(solved, szz, 1.0), a0)
+        if positive_a:
+            ok = solved & (syy > 0)
+            floor = A_FLOOR * np.where(ok, np.sqrt(np.where(ok, syy / np.where(ok, szz, 1.0), 0.0)), np.abs(a0))
+            low = a < floor
+            a = np.where(low, floor, a)
+            solved = solved & ~low
+    return a, solved
 
 
 class Projected:
@@ -110,37 +129,41 @@ class Projected:
         self.fa, self.fd, self.positive_a = "a" in free, "d" in free, positive_a
         self.free_b = "b" in free  # then p[0] is β
         b0, c0 = self.b0, self.c0
-        # standardised parameters: the argument u = b·x + c written as p·v + offset
-        if "b" in free and "c" in free:
-            xs = (x - mx) / sx
-            self.p0 = np.array([b0 * sx, c0 + b0 * mx])
-            self.dirs = np.stack([xs, np.ones_like(x)], axis=1)
-            self._u = lambda p: p[0] * xs + p[1]
-            self.to_bc = lambda p: (p[0] / sx, p[1] - p[0] * mx / sx)
-        elif "b" in free:
-            xr = x / sx
-            self.p0 = np.array([b0 * sx])
-            self.dirs = xr[:, None]
-            self._u = lambda p: p[0] * xr + c0
-            self.to_bc = lambda p: (p[0] / sx, c0)
-        else:
-            self.p0 = np.array([c0 + b0 * mx])
-            self.dirs = np.ones((x.size, 1))
-            self._u = lambda p: b0 * x + (p[0] - b0 * mx)
-            self.to_bc = lambda p: (b0, p[0] - b0 * mx)
-        # second start: the initial shape applied to the standardised data (the
-        # start values are fitted for roughly unit-scale inputs, see starting_params);
-        # solve() descends from both and fit_channel keeps the better
-        self.p1 = {2: np.array([b0, c0]), 1: np.array([b0])}.get(self.p0.size) if "b" in free else None
-        if self.p1 is not None and np.allclose(self.p1, self.p0, rtol=0.5, atol=0.5):
-            self.p1 = None  # data already about unit scale: one start is enough
-        half = np.maximum(BOX, 2 * np.abs(self.p0))
-        if self.p1 is not None:
+        # p: the free ones of the standardised (β, γ); solve() descends from
+        # both starts and fit_channel keeps the better
+        self.std = standardise(x[None, :], *(np.array([v]) for v in (b0, c0, mx, sx)), self.free_b, "c" in free)
+        self.fm = np.array([self.free_b, "c" in free])
+        self.p0 = self.std.q0[0, self.fm]
+        self.p1 = self.std.q1[0, self.fm] if self.std.second[0] else None
+        half = self.std.half[0, self.fm]
+        if self.free_b and self.p1 is None and not np.isfinite(self.p0).all():
+            # an infinite p0 (b0·std(x) past float64) is close to p1 by the shared rule, but
+            # not by np.allclose, this path's test before: kept, so its starts do not change
+            self.p1 = self.std.q1[0, self.fm]
             half = np.maximum(half, 2 * np.abs(self.p1))
         self.bounds = (-half, half)
+        # the argument u = b·x + c as p·v + offset; dirs = ∂u/∂p, C-ordered (the
+        # Jacobian's products are summed in the order that layout gives)
+        v = self.std.V[0]
+        if self.fm.all():
+            self.dirs = np.stack([v, np.ones_like(x)], axis=1)
+            self._u = lambda p: p[0] * v + p[1]
+        elif self.free_b:
+            self.dirs = v[:, None]
+            self._u = lambda p: p[0] * v + c0
+        else:  # γ alone: this path's own order of operations, u = b0·x + (γ − b0·mx)
+            self.dirs = np.ones((x.size, 1))
+            self._u = lambda p: b0 * x + (p[0] - b0 * mx)
         self._key, self._val = None, None
         self.nfev = 0
         self.ystats = y_stats(y, w)
+
+    def to_bc(self, p):
+        """(b, c) of the free standardised parameters p."""
+        q = self.std.q0.copy()
+        q[0, self.fm] = p
+        b, c = self.std.to_bc(q)
+        return b[0], c[0]
 
     def _eval(self, p):
         key = p.tobytes()
@@ -231,6 +254,62 @@ class Projected:
                 end = self._least_squares(q[:k], lo[0, :k], hi[0, :k])
                 found.append(self.to_bc(end.x))
         return found
+
+
+@dataclass(frozen=True)
+class Standard:
+    """Standardised coordinates of u = b·x + c for rows of x: u = q₀·V + q₁ (see :func:`standardise`)."""
+
+    V: np.ndarray  # (rows, n) standardised x
+    q0: np.ndarray  # (rows, 2) the start (β, γ); a held column holds b0 or c0
+    q1: np.ndarray  # (rows, 2) the second start
+    second: np.ndarray  # (rows,) whether q1 is worth a descent of its own
+    half: np.ndarray  # (rows, 2) half-widths of the box on q (inf on a held column)
+    b0: np.ndarray
+    c0: np.ndarray
+    mx: np.ndarray
+    sx: np.ndarray
+    fb: bool
+    fc: bool
+
+    def to_bc(self, q: np.ndarray, i=slice(None)) -> tuple[np.ndarray, np.ndarray]:
+        """(b, c) of standardised rows q (rows ``i`` of this set)."""
+        mx, sx = self.mx[i], self.sx[i]
+        if self.fb and self.fc:
+            return q[:, 0] / sx, q[:, 1] - q[:, 0] * mx / sx
+        if self.fb:
+            return q[:, 0] / sx, self.c0[i].copy()
+        return self.b0[i].copy(), q[:, 1] - self.b0[i] * mx
+
+
+def standardise(X, b0, c0, mx, sx, fb: bool, fc: bool) -> Standard:
+    """The search coordinates of u = b·x + c for rows of X with weighted mean mx and std sx > 0.
+
+    With b free, β = b·sx and V = x/sx (centred, γ = c + b·mx, when c is free
+    too); with c alone, V = x − mx and γ = c + b·mx, b held. The second start
+    is the start shape applied to the standardised data (the start values are
+    fitted for roughly unit-scale inputs, see swapper.fit.starting_params),
+    used only with b free and where some free coordinate is not within
+    0.5 + 0.5·|q0| of the start (data already about unit scale: one start is
+    enough). The box is ±``BOX``, widened to twice either start.
+    """
+    fm = np.array([fb, fc])
+    if fb and fc:
+        V = (X - mx[:, None]) / sx[:, None]
+        q0 = np.stack([b0 * sx, c0 + b0 * mx], axis=1)
+    elif fb:
+        V = X / sx[:, None]
+        q0 = np.stack([b0 * sx, c0], axis=1)
+    else:
+        V = X - mx[:, None]
+        q0 = np.stack([b0, c0 + b0 * mx], axis=1)
+    q1 = np.where(fm[None, :], np.stack([b0, c0], axis=1), q0)
+    close = np.abs(q1 - q0) <= 0.5 + 0.5 * np.abs(q0)
+    second = ~close[:, fm].all(axis=1) if fb else np.zeros(len(q0), dtype=bool)
+    half = np.maximum(BOX, 2 * np.abs(q0))
+    half = np.where(second[:, None], np.maximum(half, 2 * np.abs(q1)), half)
+    half = np.where(fm[None, :], half, np.inf)
+    return Standard(V, q0, q1, second, half, b0, c0, mx, sx, fb, fc)
 
 
 def in_band(beta) -> np.ndarray:

@@ -37,7 +37,7 @@ from typing import Callable
 
 import numpy as np
 
-from .varpro import A_FLOOR, DEGENERATE, apply_g
+from .varpro import apply_g, slope_rows
 
 logger = logging.getLogger(__name__)
 
@@ -56,9 +56,9 @@ CONVERGED, FLAT, CAPPED, BAD_START = 0, 1, 2, 3
 def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_floor: float = 0.0):
     """Row-wise weighted LS of Y on [Z, 1] over the free ones of (a, d). Returns (a, d, solved), each (rows,).
 
-    Same rules as :func:`swapper.varpro.outer_solve`: a is kept at ``a0`` where
-    z is constant (spread below 1e-6 of its RMS or below ``z_floor``); with
-    ``positive_a`` a is clamped to its floor (then counted as not solved).
+    The rules for a are :func:`swapper.varpro.slope_rows`: a is kept at ``a0``
+    where z is constant (spread below 1e-6 of its RMS or below ``z_floor``);
+    with ``positive_a`` a is clamped to its floor (then counted as not solved).
     """
     rows = Z.shape[0]
     if not fa:
@@ -78,14 +78,7 @@ def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_fl
             wz = Z * w
             szz, szy, syy = (wz * Z).sum(axis=1), (wz * yd).sum(axis=1), (yd * yd) @ w
             rms2 = szz
-        solved = (szz > (DEGENERATE**2) * rms2) & (szz > z_floor**2) & (szz > 0)
-        a = np.where(solved, szy / np.where(solved, szz, 1.0), a0)
-        if positive_a:
-            slope = np.sqrt(np.where(solved & (syy > 0), syy / np.where(solved, szz, 1.0), 0.0))
-            floor = A_FLOOR * np.where(solved & (syy > 0), slope, np.abs(a0))
-            low = a < floor
-            a = np.where(low, floor, a)
-            solved &= ~low  # active bound: a no longer moves with (b, c)
+        a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor)
         d = my - a * mz if fd else d0.copy()
     return a, d, solved
 
@@ -101,12 +94,11 @@ def score_rows(X, Y, w, g: Func, a, b, c, d) -> np.ndarray:
 
 @dataclass
 class LMResult:
-    """Final standardised parameters q (rows, 2), projected cost, status code and iterations per row."""
+    """Final standardised parameters q (rows, 2), projected cost and status code per row."""
 
     q: np.ndarray
     cost: np.ndarray
     status: np.ndarray
-    iterations: np.ndarray
 
 
 def _dot(A: np.ndarray, B: np.ndarray) -> np.ndarray:
@@ -160,15 +152,7 @@ class _Problem:
             szy = self.wdot(Z, self.Yc)  # the targets are centred when d is solved
             szz = zz - mz * mz if self.fd else zz
             if self.fa:
-                solved = (szz > (DEGENERATE**2) * zz) & (szz > self.z_floor**2) & (szz > 0)
-                a = np.where(solved, szy / np.where(solved, szz, 1.0), self.a0)
-                if self.positive_a:
-                    ok = solved & (self.syy > 0)
-                    floor = A_FLOOR * np.where(ok, np.sqrt(np.where(ok, self.syy / np.where(ok, szz, 1.0), 0.0)),
-                                               np.abs(self.a0))
-                    low = a < floor
-                    a = np.where(low, floor, a)
-                    solved &= ~low
+                a, solved = slope_rows(szz, szy, self.syy, zz, self.a0, self.positive_a, self.z_floor)
             else:
                 a, solved = self.a0, np.zeros(Z.shape[0], dtype=bool)
             cost = np.maximum(self.syy - 2 * a * szy + a * a * szz, 0.0)
@@ -229,7 +213,6 @@ def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool],
     lo, hi = np.asarray(lo, dtype=np.float64), np.asarray(hi, dtype=np.float64)
     lam = np.array(np.broadcast_to(np.asarray(lam0, dtype=np.float64), (rows,)))
     status = np.full(rows, CAPPED)
-    iters = np.zeros(rows, dtype=np.int64)
     prob = _Problem(V, Y, w, g, dg, np.asarray(a0, float), np.asarray(d0, float), fa, fd, positive_a, z_floor)
     cost, H, grad = prob.evaluate(q)
     status[~np.isfinite(cost)] = BAD_START  # g overflows at the start: left to the scipy path
@@ -237,7 +220,7 @@ def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool],
     idx = np.arange(rows)  # rows of the working set (compacted as rows finish)
     wq, wlo, whi, wlam, wcost, wH, wgrad = q, lo, hi, lam, cost, H, grad
     wact = active.copy()
-    for it in range(1, max_iter + 1):
+    for _ in range(max_iter):
         if not wact.any():
             break
         if wact.sum() < 0.75 * wact.size:  # drop finished rows once they are a quarter of the work
@@ -262,11 +245,10 @@ def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool],
         wlam = np.where(acc, np.maximum(wlam * 0.3, 1e-12), np.where(wact, wlam * 10.0, wlam))
         done = wact & (flat | small_drop | small_step | (wlam > LAMBDA_MAX) | (wcost == 0))
         status[idx[done]] = np.where(flat[done], FLAT, CONVERGED)
-        iters[idx[wact]] = it
         q[idx] = wq
         cost[idx] = wcost
         wact = wact & ~done
-    return LMResult(q=q, cost=cost, status=status, iterations=iters)
+    return LMResult(q=q, cost=cost, status=status)
 
 
 def _damped_step(H, grad, lam, fm: np.ndarray) -> np.ndarray:
