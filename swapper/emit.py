@@ -46,5 +46,9 @@ class Emitter:
         )
         return out
 
+    def mul_const(self, x: str, k: float, y: str | None = None) -> str:
+        """Add Mul(x, k) with k a new float32 scalar initializer; return its output (``y`` if given)."""
+        return self.node("Mul", [x, self.const(k, "k")], y)
+
     def identity(self, x: str, y: str) -> str:
         return self.node("Identity", [x], y)

@@ -9,6 +9,14 @@ from __future__ import annotations
 from pathlib import Path
 
 
+def first_line(exc: BaseException) -> str:
+    """The first non-empty line of ``str(exc)`` (library errors can span pages), else the type name."""
+    for line in str(exc).splitlines():
+        if line.strip():
+            return line.strip()
+    return type(exc).__name__
+
+
 class SwapperError(Exception):
     """Base class: a user-facing failure with a one-line message."""
 

@@ -20,9 +20,9 @@ CONTRACT (the rest of the package relies on it):
   fixed parameters for a given source (e.g. the knots of a piecewise-linear fit);
   {} for surrogates without any.
 
-Additions: ``sources()`` lists the costly names; ``Function.cost`` is a
-property reading ``swapper.costs.relative_cost(name)`` when that module exists
-and falling back to ``Function.static_cost`` (our own estimate, relu = 1).
+Additions: ``sources()`` lists the costly names; ``Function.cost`` is the
+measured ``swapper.costs.relative_cost(name)``, or ``Function.static_cost``
+(our estimate) for a function not yet in the measured table.
 
 Kinks: ``grad`` returns the derivative of the piece selected by strict
 inequalities (relu'(0) = 0, clip'(bound) = 0, leaky'(0) = alpha, a pwl knot
@@ -32,7 +32,6 @@ one-sided derivatives.
 """
 from __future__ import annotations
 
-import importlib
 import logging
 import math
 from dataclasses import dataclass, field
@@ -42,12 +41,10 @@ import numpy as np
 import onnx.defs
 from scipy.special import erf, expit
 
+from . import costs
 from .emit import Emitter
-from .errors import SwapperError, UsageError
+from .errors import UsageError
 from .pwl import PWL_DEFAULT_SEGMENTS, emit_pwl, fit_pwl, pwl_grad, pwl_ref
-
-# Moved to swapper.pwl; re-exported so imports from swapper.functions keep working.
-from .pwl import PWL_GRID, PWL_MAX_SEGMENTS, PWL_RANGE  # noqa: F401
 
 logger = logging.getLogger(__name__)
 
@@ -75,7 +72,7 @@ class Function:
     grad: Callable[..., Array] | None
     emit: Callable[[Emitter, str, str, dict], None]
     is_cheap: bool
-    static_cost: float  # our own relative cost estimate per element (relu = 1)
+    static_cost: float  # our own relative cost estimate per element (relu = 1), used until measured
     params: dict = field(default_factory=dict)  # default parameters
     homogeneous: bool = False
     source: str = ""  # where the formula is published
@@ -90,21 +87,15 @@ class Function:
 
     @property
     def cost(self) -> float:
-        """Relative cost per element: measured (swapper.costs) when available, else static."""
-        return _measured_cost(self.name, self.static_cost)
+        """Relative cost per element (Relu = 1): measured (swapper/resources/op_costs.json), else our estimate.
 
-
-def _measured_cost(name: str, fallback: float) -> float:
-    # Imported lazily: swapper.costs may import this module, and may not exist yet.
-    try:
-        costs = importlib.import_module("swapper.costs")
-    except ImportError:
-        return fallback
-    try:  # a missing/unreadable table or an unmeasured name keeps our estimate
-        value = costs.relative_cost(name)
-    except (OSError, LookupError, ValueError, SwapperError):
-        return fallback
-    return float(value) if value is not None else fallback
+        The estimate covers a function added to the registry before anyone re-ran
+        benchmarks/measure_op_costs.py, so a scan never fails on a missing table row.
+        """
+        try:
+            return float(costs.relative_cost(self.name))
+        except (LookupError, UsageError):
+            return self.static_cost
 
 
 REGISTRY: dict[str, Function] = {}
@@ -299,10 +290,6 @@ def _op(op: str, **attrs):
     return emit
 
 
-def _mul_const(em: Emitter, x: str, k: float, y: str | None = None) -> str:
-    return em.node("Mul", [x, em.const(k, "k")], y)
-
-
 def _emit_clip(lo: float, hi: float):
     def emit(em: Emitter, x: str, y: str, params: dict) -> None:
         # Clip takes min/max as inputs from opset 11 (ONNX operator spec, Clip-11).
@@ -312,7 +299,7 @@ def _emit_clip(lo: float, hi: float):
 
 
 def _emit_swish_beta(em: Emitter, x: str, y: str, beta: float) -> None:
-    z = x if beta == 1.0 else _mul_const(em, x, beta)
+    z = x if beta == 1.0 else em.mul_const(x, beta)
     em.node("Mul", [x, em.node("Sigmoid", [z])], y)
 
 
@@ -328,8 +315,8 @@ def _emit_gelu(em, x, y, params):
     if _has("Gelu", em.opset):
         em.node("Gelu", [x], y, approximate="none")
         return
-    half_x = _mul_const(em, x, 0.5)
-    e = em.node("Erf", [_mul_const(em, x, 1.0 / math.sqrt(2.0))])
+    half_x = em.mul_const(x, 0.5)
+    e = em.node("Erf", [em.mul_const(x, 1.0 / math.sqrt(2.0))])
     em.node("Mul", [half_x, em.node("Add", [e, em.const(1.0, "one")])], y)
 
 
@@ -338,9 +325,9 @@ def _emit_gelu_tanh(em, x, y, params):
         em.node("Gelu", [x], y, approximate="tanh")
         return
     x3 = em.node("Mul", [em.node("Mul", [x, x]), x])
-    inner = em.node("Add", [x, _mul_const(em, x3, GELU_TANH_C)])
-    t = em.node("Tanh", [_mul_const(em, inner, math.sqrt(2.0 / math.pi))])
-    em.node("Mul", [_mul_const(em, x, 0.5), em.node("Add", [t, em.const(1.0, "one")])], y)
+    inner = em.node("Add", [x, em.mul_const(x3, GELU_TANH_C)])
+    t = em.node("Tanh", [em.mul_const(inner, math.sqrt(2.0 / math.pi))])
+    em.node("Mul", [em.mul_const(x, 0.5), em.node("Add", [t, em.const(1.0, "one")])], y)
 
 
 def _emit_mish(em, x, y, params):
@@ -357,7 +344,7 @@ def _emit_celu(em, x, y, params):
     elif alpha == 1.0:
         em.node("Elu", [x], y, alpha=1.0)
     else:  # ONNX spec, Celu: alpha·Elu(x/alpha) with Elu alpha = 1
-        _mul_const(em, em.node("Elu", [_mul_const(em, x, 1.0 / alpha)], alpha=1.0), alpha, y)
+        em.mul_const(em.node("Elu", [em.mul_const(x, 1.0 / alpha)], alpha=1.0), alpha, y)
 
 
 def _emit_hard_swish(em, x, y, params):
@@ -374,12 +361,12 @@ def _emit_prelu(em, x, y, params):
 
 
 def _emit_poly_gelu(em, x, y, params):
-    u = _mul_const(em, x, 1.0 / math.sqrt(2.0))
+    u = em.mul_const(x, 1.0 / math.sqrt(2.0))
     m = em.node("Min", [em.node("Abs", [u]), em.const(-IGELU_B, "clipb")])
     q = em.node("Add", [m, em.const(IGELU_B, "b")])
-    p = em.node("Add", [_mul_const(em, em.node("Mul", [q, q]), IGELU_A), em.const(1.0, "one")])
+    p = em.node("Add", [em.mul_const(em.node("Mul", [q, q]), IGELU_A), em.const(1.0, "one")])
     erf_l = em.node("Mul", [em.node("Sign", [u]), p])
-    h = em.node("Add", [_mul_const(em, erf_l, 0.5), em.const(0.5, "half")])
+    h = em.node("Add", [em.mul_const(erf_l, 0.5), em.const(0.5, "half")])
     em.node("Mul", [x, h], y)
 
 
@@ -388,8 +375,6 @@ def _add(name, ref, grad, emit, cheap, cost, params=None, homogeneous=False, sou
     REGISTRY[name] = Function(name, ref, grad, emit, cheap, cost, dict(params or {}), homogeneous, source)
 
 
-# Static costs: our own estimate per element relative to Relu (a transcendental
-# ~4, each extra elementwise op ~1); used only until swapper/resources/op_costs.json exists.
 def _sigmoid_grad(x):
     s = _sigmoid(x)
     return s * (1.0 - s)
@@ -423,8 +408,8 @@ _add("celu", _celu, _celu_grad, _emit_celu, False, 4.5, {"alpha": 1.0},
 _add("softsign", lambda x: _f(x) / (1.0 + np.abs(_f(x))), lambda x: 1.0 / (1.0 + np.abs(_f(x))) ** 2,
      _op("Softsign"), False, 2.5, source="ONNX operator spec, Softsign: x/(1+|x|)")
 
-_add("relu", lambda x: np.maximum(_f(x), 0.0), lambda x: _clip_grad(x, 0.0, np.inf), _op("Relu"), True,
-     1.0, homogeneous=True, source="ONNX operator spec, Relu")
+_add("relu", lambda x: np.maximum(_f(x), 0.0), lambda x: _clip_grad(x, 0.0, np.inf), _op("Relu"), True, 1.0,
+     homogeneous=True, source="ONNX operator spec, Relu")
 _add("relu6", lambda x: np.clip(_f(x), 0.0, 6.0), lambda x: _clip_grad(x, 0.0, 6.0), _emit_clip(0.0, 6.0),
      True, 1.0, source="Howard et al. 2017 (MobileNet), ReLU6 = Clip(x, 0, 6)")
 _add("leaky_relu", _leaky, _leaky_grad, _op("LeakyRelu", alpha=0.01), True, 1.0, {"alpha": 0.01},

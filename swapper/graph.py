@@ -5,7 +5,9 @@ module that reads graphs uses the same look-ups.
 """
 from __future__ import annotations
 
+import math
 from collections import defaultdict
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -19,6 +21,31 @@ def attr(node: onnx.NodeProto, name: str, default=None):
         if a.name == name:
             return onnx.helper.get_attribute_value(a)
     return default
+
+
+def node_subgraphs(node: onnx.NodeProto) -> list[onnx.GraphProto]:
+    """The bodies a node carries (If branches, Loop/Scan bodies), in attribute-name order."""
+    graphs = []
+    for a in sorted(node.attribute, key=lambda a: a.name):
+        if a.type == onnx.AttributeProto.GRAPH:
+            graphs.append(a.g)
+        elif a.type == onnx.AttributeProto.GRAPHS:
+            graphs.extend(a.graphs)
+    return graphs
+
+
+def subgraphs(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
+    """Every graph nested in ``graph`` (bodies of bodies included), depth first, in node order."""
+    for node in graph.node:
+        for body in node_subgraphs(node):
+            yield body
+            yield from subgraphs(body)
+
+
+def _is_constant(node: onnx.NodeProto | None) -> bool:
+    # Constant is a default-domain op (ONNX operator spec); another domain's
+    # "Constant" is an unknown op whose output we cannot know.
+    return node is not None and node.op_type == "Constant" and node.domain in ("", "ai.onnx")
 
 
 @dataclass
@@ -39,8 +66,12 @@ class GraphIndex:
 
     @classmethod
     def of(cls, model: onnx.ModelProto) -> "GraphIndex":
-        g = model.graph
-        index = cls(graph=g, opsets={o.domain or "": o.version for o in model.opset_import})
+        return cls.of_graph(model.graph, {o.domain or "": o.version for o in model.opset_import})
+
+    @classmethod
+    def of_graph(cls, g: onnx.GraphProto, opsets: dict[str, int]) -> "GraphIndex":
+        """The index of one graph (the main graph or an If/Loop/Scan body, which shares its model's opsets)."""
+        index = cls(graph=g, opsets=dict(opsets))
         for init in g.initializer:
             index.initializers[init.name] = init
         for pos, node in enumerate(g.node):
@@ -74,7 +105,7 @@ class GraphIndex:
         if name in self.initializers:
             return numpy_helper.to_array(self.initializers[name])
         node = self.producer.get(name)
-        if node is not None and node.op_type == "Constant" and node.domain in ("", "ai.onnx"):
+        if _is_constant(node):
             for a in node.attribute:
                 if a.name == "value":
                     return numpy_helper.to_array(a.t)
@@ -90,14 +121,20 @@ class GraphIndex:
 
     def scalar(self, name: str) -> float | None:
         """A constant with exactly one element, as float; None if ``name`` is not such a constant."""
+        init = self.initializers.get(name)
+        if init is not None and math.prod(init.dims) != 1:
+            return None  # decided from the header: weights can be large, or live in external data
         value = self.const(name)
         if value is None or value.size != 1:
             return None
         return float(value.reshape(()))
 
     def is_dynamic(self, name: str) -> bool:
-        """True if ``name`` is computed at run time (not an initializer or Constant output)."""
-        return self.const(name) is None
+        """True if ``name`` is computed at run time (not an initializer or Constant output).
+
+        Decided from the graph alone, without decoding any tensor.
+        """
+        return name not in self.initializers and not _is_constant(self.producer.get(name))
 
     def users(self, name: str) -> list[onnx.NodeProto]:
         return list(self.consumers.get(name, []))

@@ -14,9 +14,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import onnx
-from google.protobuf.message import DecodeError
+from google.protobuf.message import DecodeError, EncodeError
 
-from .errors import BadModelError, BadOutputError
+from .errors import BadModelError, BadOutputError, first_line
+from .graph import subgraphs
 
 logger = logging.getLogger(__name__)
 
@@ -40,7 +41,8 @@ class LoadedModel:
     file_bytes: int  # the .onnx file plus any external data files
 
 
-def _default_opset(model: onnx.ModelProto) -> int | None:
+def default_opset(model: onnx.ModelProto) -> int | None:
+    """The version of the default-domain (ai.onnx) opset the model imports, None if it imports none."""
     for entry in model.opset_import:
         if entry.domain in ("", "ai.onnx"):
             return entry.version
@@ -74,9 +76,16 @@ def _check_external_paths(model: onnx.ModelProto, path: Path) -> int:
 
 
 def name_unnamed_nodes(model: onnx.ModelProto) -> None:
-    """Give every node a unique name so sites can refer to nodes by name."""
+    """Give every node a name unique in its graph (bodies included) so sites can refer to nodes by name."""
+    for graph in (model.graph, *subgraphs(model.graph)):
+        _name_graph_nodes(graph)
+
+
+def _name_graph_nodes(graph: onnx.GraphProto) -> None:
+    # Unique per graph: each body is indexed on its own (sites.find_sites), and
+    # unnamed nodes get "<OpType>_<position>".
     seen: set[str] = set()
-    for i, node in enumerate(model.graph.node):
+    for i, node in enumerate(graph.node):
         if not node.name or node.name in seen:
             base = node.name or f"{node.op_type}_{i}"
             name, k = base, 0
@@ -87,21 +96,43 @@ def name_unnamed_nodes(model: onnx.ModelProto) -> None:
         seen.add(node.name)
 
 
-def load_model(path: str | Path, *, infer_shapes: bool = True) -> LoadedModel:
+def load_model(path: str | Path) -> LoadedModel:
     """Read, check and shape-infer a model. Raises BadModelError with a one-line cause."""
     path = Path(path)
+    data = _read(path)
+    model = _parse(data, path)
+    opset = _supported_opset(model, path)
+    external_bytes = _check_external_paths(model, path)
+    is_large = len(data) + external_bytes > PROTOBUF_LIMIT
+    try:
+        model = _checked_and_inferred(model, data, path, has_external=external_bytes > 0, is_large=is_large)
+    except onnx.checker.ValidationError as exc:
+        raise BadModelError(f"invalid graph: {first_line(exc)}", path) from None
+    except onnx.shape_inference.InferenceError as exc:
+        raise BadModelError(f"shape inference failed: {first_line(exc)}", path) from None
+    except (OSError, ValueError) as exc:
+        raise BadModelError(f"cannot load: {first_line(exc)}", path) from None
+    name_unnamed_nodes(model)
+    logger.debug("loaded %s: opset %d, %d nodes", path, opset, len(model.graph.node))
+    return LoadedModel(model=model, path=path, opset=opset, file_bytes=len(data) + external_bytes)
+
+
+def _read(path: Path) -> bytes:
     if not path.exists():
         raise BadModelError("no such file", path)
     if path.is_dir():
         raise BadModelError("is a directory, expected an .onnx file", path)
     try:
-        raw_size = path.stat().st_size
         with open(path, "rb") as fh:
             data = fh.read()
     except OSError as exc:
         raise BadModelError(f"cannot read: {exc.strerror or exc}", path) from None
-    if raw_size == 0:
+    if not data:
         raise BadModelError("file is empty", path)
+    return data
+
+
+def _parse(data: bytes, path: Path) -> onnx.ModelProto:
     model = onnx.ModelProto()
     try:
         model.ParseFromString(data)
@@ -109,51 +140,38 @@ def load_model(path: str | Path, *, infer_shapes: bool = True) -> LoadedModel:
         raise BadModelError(f"not an ONNX protobuf or truncated ({type(exc).__name__})", path) from None
     if not model.HasField("graph") or len(model.graph.node) == 0 and len(model.graph.output) == 0:
         raise BadModelError("not an ONNX model (no graph inside)", path)
+    return model
 
-    opset = _default_opset(model)
+
+def _supported_opset(model: onnx.ModelProto, path: Path) -> int:
+    opset = default_opset(model)
     if opset is None:
         raise BadModelError("model imports no default-domain (ai.onnx) opset", path)
     if not MIN_OPSET <= opset <= MAX_OPSET:
         raise BadModelError(
             f"opset {opset} is outside the supported range {MIN_OPSET}..{MAX_OPSET}", path
         )
-
-    external_bytes = _check_external_paths(model, path)
-    is_large = raw_size + external_bytes > PROTOBUF_LIMIT
-    try:
-        if is_large:
-            # Too big for one protobuf message: let onnx check it from disk.
-            onnx.checker.check_model(str(path), full_check=True)
-        else:
-            if external_bytes:
-                onnx.load_external_data_for_model(model, str(path.parent))
-            onnx.checker.check_model(model, full_check=True)
-    except onnx.checker.ValidationError as exc:
-        raise BadModelError(f"invalid graph: {_first_line(exc)}", path) from None
-    except onnx.shape_inference.InferenceError as exc:
-        raise BadModelError(f"shape inference failed: {_first_line(exc)}", path) from None
-    except (OSError, ValueError) as exc:
-        raise BadModelError(f"cannot load: {_first_line(exc)}", path) from None
-
-    if infer_shapes and not is_large:
-        try:
-            model = onnx.shape_inference.infer_shapes(model, check_type=True, data_prop=True)
-        except onnx.shape_inference.InferenceError as exc:
-            raise BadModelError(f"shape inference failed: {_first_line(exc)}", path) from None
-    elif is_large:
-        # Large model: keep weights on disk; shapes come from the inferred copy.
-        with tempfile.TemporaryDirectory() as tmp:
-            inferred = Path(tmp) / "inferred.onnx"
-            onnx.shape_inference.infer_shapes_path(str(path), str(inferred))
-            model = onnx.load(str(inferred), load_external_data=False)
-    name_unnamed_nodes(model)
-    logger.debug("loaded %s: opset %d, %d nodes", path, opset, len(model.graph.node))
-    return LoadedModel(model=model, path=path, opset=opset, file_bytes=raw_size + external_bytes)
+    return opset
 
 
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__
+def _checked_and_inferred(model: onnx.ModelProto, data: bytes, path: Path, *, has_external: bool,
+                          is_large: bool) -> onnx.ModelProto:
+    """Structure check, then one strict shape inference (it also checks types), on bytes we already hold.
+
+    Strict inference with type checks is what check_model(full_check=True) adds
+    to the structure check, so running it once covers both.
+    """
+    if is_large:
+        # Weights stay on disk. The structure check goes by path so external
+        # files resolve against the model's folder; inference never reads
+        # external tensors, so the in-memory .onnx bytes are all it needs.
+        onnx.checker.check_model(str(path))
+    else:
+        if has_external:  # inference reads initializer values (e.g. Reshape shapes): bring them in
+            onnx.load_external_data_for_model(model, str(path.parent))
+            data = model.SerializeToString()
+        onnx.checker.check_model(data)
+    return onnx.shape_inference.infer_shapes(data, check_type=True, strict_mode=True, data_prop=True)
 
 
 def check_output_path(out: str | Path, *, inputs: tuple[str | Path, ...] = ()) -> Path:
@@ -191,6 +209,14 @@ def atomic_write_bytes(data: bytes, out: str | Path) -> Path:
     return out
 
 
+def _serialise(model: onnx.ModelProto) -> bytes | None:
+    """The model's bytes, or None when protobuf cannot serialise it (a message above 2 GiB)."""
+    try:
+        return model.SerializeToString(deterministic=True)
+    except (EncodeError, ValueError):  # above 2 GiB: upb raises EncodeError, the C++ backend ValueError
+        return None
+
+
 def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | Path, ...] = (),
                external_above: int = PROTOBUF_LIMIT) -> Path:
     """Serialise ``model`` to ``out`` atomically; never overwrite any path in ``inputs``.
@@ -199,8 +225,10 @@ def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | P
     limit) keep their weights in ``<out>.data`` beside the model.
     """
     out = check_output_path(out, inputs=inputs)
-    if model.ByteSize() <= external_above:
-        return atomic_write_bytes(model.SerializeToString(deterministic=True), out)
+    data = _serialise(model)
+    if data is not None and len(data) <= external_above:
+        return atomic_write_bytes(data, out)
+    del data  # the external-data path writes its own bytes; do not hold two copies
     data_name = out.name + ".data"
     for given in inputs:
         if given is not None and (out.resolve().parent / data_name) == Path(given).resolve():

@@ -10,12 +10,12 @@ nobody else reads.
 """
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 
 import onnx
 
-from .graph import GraphIndex
+from . import functions
+from .graph import GraphIndex, attr
 
 RTOL = 1e-3  # tolerance on pattern constants (exporters round √2, √(2/π), ... differently)
 
@@ -44,18 +44,13 @@ class Decline:
     reason: str
 
 
-def scalar(ix: GraphIndex, name: str) -> float | None:
-    """ix.scalar without decoding large initializers (weights may live in external data)."""
-    init = ix.initializers.get(name)
-    if init is not None and math.prod(init.dims) != 1:
-        return None
-    return ix.scalar(name)
+def node_params(node: onnx.NodeProto, function: str) -> dict:
+    """The registry's default parameters of ``function``, each overridden by ``node``'s attribute of that name.
 
-
-def dynamic(ix: GraphIndex, name: str) -> bool:
-    """True if ``name`` is computed at run time (not an initializer or a Constant output)."""
-    node = ix.producer.get(name)
-    return name not in ix.initializers and not (node is not None and node.op_type == "Constant")
+    ONNX names its activation attributes as the registry names its parameters
+    (LeakyRelu/Elu/Celu alpha, Selu alpha/gamma, HardSigmoid alpha/beta).
+    """
+    return {k: float(attr(node, k, v)) for k, v in functions.get(function).params.items()}
 
 
 def close(value: float | None, target: float, rtol: float = RTOL) -> bool:
@@ -101,11 +96,11 @@ def scaled_x(ix: GraphIndex, tensor: str) -> tuple[str, float, onnx.NodeProto] |
         return None
     a, b = node.input
     if node.op_type == "Div":
-        c = scalar(ix, b)
-        return (a, 1.0 / c, node) if c not in (None, 0.0) and dynamic(ix, a) else None
+        c = ix.scalar(b)
+        return (a, 1.0 / c, node) if c not in (None, 0.0) and ix.is_dynamic(a) else None
     for x, k in ((a, b), (b, a)):
-        c = scalar(ix, k)
-        if c is not None and dynamic(ix, x):
+        c = ix.scalar(k)
+        if c is not None and ix.is_dynamic(x):
             return x, c, node
     return None
 
@@ -118,7 +113,7 @@ def add_one(ix: GraphIndex, tensor: str, what: str) -> tuple[onnx.NodeProto | No
         return None, (private_reason(ix, tensor) if adds else None)
     if user.op_type != "Add" or user.domain not in ("", "ai.onnx"):
         return None, None
-    one = scalar(ix, other_operand(user, tensor))
+    one = ix.scalar(other_operand(user, tensor))
     if not close(one, 1.0):
         return None, f"{what} is offset by {one}, expected 1"
     return user, None
@@ -143,7 +138,7 @@ def close_product(
             break
         other = other_operand(user, cur)
         if user.op_type == "Div":
-            c = scalar(ix, user.input[1])
+            c = ix.scalar(user.input[1])
             if user.input[0] != cur or c in (None, 0.0):
                 break
             k /= c
@@ -151,8 +146,8 @@ def close_product(
             if have_x:
                 return "x appears twice in the product"
             have_x = True
-        elif scalar(ix, other) is not None:
-            k *= scalar(ix, other)
+        elif (c := ix.scalar(other)) is not None:
+            k *= c
         else:
             inner = scaled_x(ix, other)  # (x·0.5) or (x/2) computed first
             if inner is None or inner[0] != x or have_x:

@@ -30,56 +30,45 @@ import logging
 
 import onnx
 
+from .functions import QUICK_GELU_BETA
 from .graph import GraphIndex, attr
-from .pattern_base import Decline, Match, close
+from .pattern_base import Decline, Match, close, node_params
 from .patterns_decomposed import PATTERNS
-
-# Moved to swapper.pattern_base / swapper.patterns_decomposed; re-exported so imports from here keep working.
-from .pattern_base import (RTOL, add_one, close_product, dynamic, other_operand, private_reason,  # noqa: F401
-                           produced_by, scalar, scaled_x, sole_user)
-from .patterns_decomposed import GELU_TANH_CUBIC, SQRT2, SQRT_2_OVER_PI, Pattern  # noqa: F401
 
 logger = logging.getLogger(__name__)
 
 MS_DOMAIN = "com.microsoft"
-# ONNX operator spec, Selu defaults
-SELU_ALPHA = 1.67326319217681884765625
-SELU_GAMMA = 1.05070102214813232421875
-QUICK_GELU_ALPHA = 1.702  # com.microsoft QuickGelu default alpha (onnxruntime contrib op docs)
+# (domain, op type) -> registry function; parameters come from the registry's
+# defaults overridden by the node's attributes (pattern_base.node_params).
+SINGLE_OPS: dict[tuple[str, str], str] = {
+    ("", "Sigmoid"): "sigmoid", ("", "Tanh"): "tanh", ("", "Relu"): "relu", ("", "Softplus"): "softplus",
+    ("", "Softsign"): "softsign", ("", "HardSwish"): "hard_swish", ("", "Mish"): "mish",
+    ("", "LeakyRelu"): "leaky_relu", ("", "PRelu"): "prelu", ("", "Elu"): "elu", ("", "Celu"): "celu",
+    ("", "Selu"): "selu", ("", "HardSigmoid"): "hard_sigmoid", ("", "Gelu"): "gelu",
+    (MS_DOMAIN, "Gelu"): "gelu", (MS_DOMAIN, "BiasGelu"): "gelu", (MS_DOMAIN, "FastGelu"): "gelu_tanh",
+    (MS_DOMAIN, "QuickGelu"): "quick_gelu",
+}
 
 
 def _single(node: onnx.NodeProto) -> tuple[str, dict] | tuple[None, None]:
     """(function, params) for a single activation op, or (None, None)."""
-    op, dom = node.op_type, node.domain or ""
-    if dom in ("", "ai.onnx"):
-        simple = {"Sigmoid": "sigmoid", "Tanh": "tanh", "Relu": "relu", "Softplus": "softplus",
-                  "Softsign": "softsign", "HardSwish": "hard_swish", "Mish": "mish"}
-        if op in simple:
-            return simple[op], {}
-        if op == "LeakyRelu":
-            return "leaky_relu", {"alpha": float(attr(node, "alpha", 0.01))}
-        if op == "PRelu":
-            return "prelu", {"slope": node.input[1]}
-        if op in ("Elu", "Celu"):
-            return op.lower(), {"alpha": float(attr(node, "alpha", 1.0))}
-        if op == "Selu":
-            return "selu", {"alpha": float(attr(node, "alpha", SELU_ALPHA)),
-                            "gamma": float(attr(node, "gamma", SELU_GAMMA))}
-        if op == "HardSigmoid":
-            return "hard_sigmoid", {"alpha": float(attr(node, "alpha", 0.2)), "beta": float(attr(node, "beta", 0.5))}
-        if op == "Gelu":
-            approx = attr(node, "approximate", b"none")
-            approx = approx.decode() if isinstance(approx, bytes) else approx
-            return ("gelu_tanh" if approx == "tanh" else "gelu"), {}
-    elif dom == MS_DOMAIN:
-        if op == "Gelu":
-            return "gelu", {}
-        if op in ("FastGelu", "BiasGelu"):
-            return ("gelu_tanh" if op == "FastGelu" else "gelu"), {}
-        if op == "QuickGelu":  # x·σ(alpha·x); the registry's quick_gelu fixes alpha = 1.702
-            alpha = float(attr(node, "alpha", QUICK_GELU_ALPHA))
-            return ("quick_gelu", {}) if close(alpha, QUICK_GELU_ALPHA) else ("swish", {"beta": alpha})
-    return None, None
+    domain = "" if node.domain in ("", "ai.onnx") else node.domain
+    function = SINGLE_OPS.get((domain, node.op_type))
+    if function is None:
+        return None, None
+    if function == "prelu":  # the slope is an input tensor (often per channel), recorded by name
+        return function, {"slope": node.input[1]}
+    if function == "gelu" and domain == "" and _text(attr(node, "approximate", "none")) == "tanh":
+        return "gelu_tanh", {}
+    if function == "quick_gelu":  # x·σ(alpha·x); the registry's quick_gelu fixes alpha = 1.702
+        alpha = float(attr(node, "alpha", QUICK_GELU_BETA))
+        if not close(alpha, QUICK_GELU_BETA):
+            return "swish", {"beta": alpha}
+    return function, node_params(node, function)
+
+
+def _text(value) -> str:
+    return value.decode() if isinstance(value, bytes) else value
 
 
 def match_single_op(node: onnx.NodeProto) -> Match | None:

@@ -15,13 +15,16 @@ from typing import Callable
 
 import onnx
 
-from .graph import GraphIndex, attr
+from .functions import GELU_TANH_C
+from .graph import GraphIndex
 from .pattern_base import (Match, add_one, close, close_gate, close_product, first_private_reason, gated_by,
-                           private_reason, produced_by, scalar, scaled_x, sole_user)
+                           node_params, private_reason, produced_by, scaled_x, sole_user)
 
 SQRT2 = math.sqrt(2.0)
 SQRT_2_OVER_PI = math.sqrt(2.0 / math.pi)
-GELU_TANH_CUBIC = 0.044715  # Hendrycks & Gimpel 2016, tanh approximation
+
+# What feeds a gate's anchor: (x, the nodes from x to the anchor in data-flow order, the function's params).
+Inner = tuple[str, list[onnx.NodeProto], dict]
 
 
 @dataclass
@@ -31,8 +34,9 @@ class Pattern:
     name: str  # the Site.form, "<function>/<shape>"
     function: str
     anchors: tuple[str, ...]
-    maths: str
     matcher: Callable[["Pattern", GraphIndex, onnx.NodeProto], "Match | str | None"] = field(repr=False)
+    # For x·h(x) gates sharing one matcher: finds x and the nodes between x and the anchor, or None.
+    inner: Callable[[GraphIndex, onnx.NodeProto], Inner | None] | None = field(default=None, repr=False)
 
     def match(self, ix: GraphIndex, anchor: onnx.NodeProto) -> Match | str | None:
         """None if ``anchor`` does not start this pattern; a reason if declined; else the Match."""
@@ -43,23 +47,35 @@ class Pattern:
         return Match(self.name, self.function, dict(params or {}), x, y, ordered)
 
 
-# silu(x) = x·σ(x)                 (Elfwing et al. 2018)
-# swish(x; β) = x·σ(β·x)           (Ramachandran et al. 2017)
-def _match_sigmoid_gate(p: Pattern, ix: GraphIndex, sig: onnx.NodeProto):
-    s = sig.input[0]
-    scaled = scaled_x(ix, s) if p.function == "swish" else None
-    x = scaled[0] if scaled else s
-    if p.function == "swish" and (scaled is None or scaled[2].op_type != "Mul"):
+def _match_gate(p: Pattern, ix: GraphIndex, anchor: onnx.NodeProto):
+    """x·h(x) where h is the chain ``p.inner`` finds followed by ``anchor``; every link read by the chain alone."""
+    found = p.inner(ix, anchor)
+    if found is None:
         return None
-    out = sig.output[0]
+    x, pre, params = found
+    out = anchor.output[0]
     if not gated_by(ix, out, x):
         return None
-    closed = close_gate(ix, out, x, [(s, sig)] if scaled else [])
+    chain = [*pre, anchor]
+    closed = close_gate(ix, out, x, [(node.output[0], reader) for node, reader in zip(chain, chain[1:])])
     if isinstance(closed, str):
         return closed
     mul, y = closed
-    nodes = [sig, mul] + ([scaled[2]] if scaled else [])
-    return p.make(ix, x, y, nodes, {"beta": scaled[1]} if scaled else {})
+    return p.make(ix, x, y, [*chain, mul], params)
+
+
+# silu(x) = x·σ(x)                 (Elfwing et al. 2018)
+def _silu_inner(ix: GraphIndex, sig: onnx.NodeProto) -> Inner:
+    return sig.input[0], [], {}
+
+
+# swish(x; β) = x·σ(β·x)           (Ramachandran et al. 2017)
+def _swish_inner(ix: GraphIndex, sig: onnx.NodeProto) -> Inner | None:
+    scaled = scaled_x(ix, sig.input[0])
+    if scaled is None or scaled[2].op_type != "Mul":  # only β·x written as a Mul is claimed
+        return None
+    x, beta, mul = scaled
+    return x, [mul], {"beta": beta}
 
 
 # gelu(x) = 0.5·x·(1 + erf(x/√2))   (Hendrycks & Gimpel 2016)
@@ -90,7 +106,7 @@ def _cube_of(ix: GraphIndex, tensor: str, x: str) -> list[onnx.NodeProto] | None
         return None
     a, b = node.input
     if node.op_type == "Pow":
-        return [node] if a == x and close(scalar(ix, b), 3.0) else None
+        return [node] if a == x and close(ix.scalar(b), 3.0) else None
     for sq, lin in ((a, b), (b, a)):
         inner = produced_by(ix, sq, "Mul")
         if lin == x and inner is not None and list(inner.input) == [x, x]:
@@ -121,8 +137,8 @@ def _match_gelu_tanh(p: Pattern, ix: GraphIndex, tanh: onnx.NodeProto):
     x, w, (cube_out, c, cubic_mul), cube = found
     if not close(k, SQRT_2_OVER_PI):
         return f"tanh argument scale {k:.6g}, expected √(2/π) = {SQRT_2_OVER_PI:.6g}"
-    if not close(c, GELU_TANH_CUBIC):
-        return f"cubic coefficient {c:.6g}, expected {GELU_TANH_CUBIC}"
+    if not close(c, GELU_TANH_C):
+        return f"cubic coefficient {c:.6g}, expected {GELU_TANH_C}"
     reason = first_private_reason(ix, ((tanh.input[0], tanh), (inner, outer_mul), (w, add), (cube_out, cubic_mul)))
     if reason:
         return reason
@@ -137,34 +153,22 @@ def _match_gelu_tanh(p: Pattern, ix: GraphIndex, tanh: onnx.NodeProto):
 
 
 # mish(x) = x·tanh(softplus(x)),  softplus(x) = ln(1 + eˣ)   (Misra 2019)
-def _match_mish(p: Pattern, ix: GraphIndex, tanh: onnx.NodeProto):
-    t_in = tanh.input[0]
-    if p.name == "mish/softplus-tanh":
-        sp = produced_by(ix, t_in, "Softplus")
-        if sp is None:
-            return None
-        x, pre = sp.input[0], [sp]
-    else:
-        log = produced_by(ix, t_in, "Log")
-        add = produced_by(ix, log.input[0], "Add") if log else None
-        exp = None
-        if add is not None:
-            for e_out, one in ((add.input[0], add.input[1]), (add.input[1], add.input[0])):
-                cand = produced_by(ix, e_out, "Exp")
-                if cand is not None and close(scalar(ix, one), 1.0):
-                    exp = cand
-        if exp is None:
-            return None
-        x, pre = exp.input[0], [exp, add, log]
-    out = tanh.output[0]
-    if not gated_by(ix, out, x):
-        return None
-    chain = [*pre, tanh]
-    closed = close_gate(ix, out, x, [(node.output[0], reader) for node, reader in zip(chain, chain[1:])])
-    if isinstance(closed, str):
-        return closed
-    mul, y = closed
-    return p.make(ix, x, y, [*chain, mul])
+def _softplus_inner(ix: GraphIndex, tanh: onnx.NodeProto) -> Inner | None:
+    sp = produced_by(ix, tanh.input[0], "Softplus")
+    return (sp.input[0], [sp], {}) if sp is not None else None
+
+
+def _exp_log_inner(ix: GraphIndex, tanh: onnx.NodeProto) -> Inner | None:
+    """ln(1 + eˣ) written as Log(Add(Exp(x), 1)), the Add in either operand order."""
+    log = produced_by(ix, tanh.input[0], "Log")
+    add = produced_by(ix, log.input[0], "Add") if log else None
+    exp = None
+    if add is not None:
+        for e_out, one in ((add.input[0], add.input[1]), (add.input[1], add.input[0])):
+            cand = produced_by(ix, e_out, "Exp")
+            if cand is not None and close(ix.scalar(one), 1.0):
+                exp = cand
+    return (exp.input[0], [exp, add, log], {}) if exp is not None else None
 
 
 # hard_swish(x) = x·HardSigmoid(x; α=1/6, β=0.5)   (Howard et al. 2019; ONNX operator spec, HardSwish)
@@ -172,7 +176,8 @@ def _match_hard_swish(p: Pattern, ix: GraphIndex, hs: onnx.NodeProto):
     x, out = hs.input[0], hs.output[0]
     if not gated_by(ix, out, x):
         return None
-    alpha, beta = attr(hs, "alpha", 0.2), attr(hs, "beta", 0.5)
+    hsig = node_params(hs, "hard_sigmoid")  # ONNX HardSigmoid defaults unless the node sets them
+    alpha, beta = hsig["alpha"], hsig["beta"]
     if not (close(alpha, 1.0 / 6.0) and close(beta, 0.5)):
         return f"HardSigmoid has alpha={alpha:.6g}, beta={beta:.6g}; hard-swish needs 1/6, 0.5"
     closed = close_gate(ix, out, x)
@@ -184,13 +189,11 @@ def _match_hard_swish(p: Pattern, ix: GraphIndex, hs: onnx.NodeProto):
 
 # Tried in this order at each anchor; the first Match wins.
 PATTERNS: tuple[Pattern, ...] = (
-    Pattern("swish/mul-sigmoid-scaled", "swish", ("Sigmoid",), "x·σ(β·x)", _match_sigmoid_gate),
-    Pattern("silu/mul-sigmoid", "silu", ("Sigmoid",), "x·σ(x)", _match_sigmoid_gate),
-    Pattern("gelu/erf", "gelu", ("Erf",), "0.5·x·(1 + erf(x/√2))", _match_gelu_erf),
-    Pattern("gelu_tanh/tanh-cubic", "gelu_tanh", ("Tanh",),
-            "0.5·x·(1 + tanh(√(2/π)·(x + 0.044715·x³)))", _match_gelu_tanh),
-    Pattern("mish/softplus-tanh", "mish", ("Tanh",), "x·tanh(softplus(x))", _match_mish),
-    Pattern("mish/exp-log-tanh", "mish", ("Tanh",), "x·tanh(ln(1 + eˣ))", _match_mish),
-    Pattern("hard_swish/mul-hardsigmoid", "hard_swish", ("HardSigmoid",),
-            "x·HardSigmoid(x; 1/6, 0.5)", _match_hard_swish),
+    Pattern("swish/mul-sigmoid-scaled", "swish", ("Sigmoid",), _match_gate, _swish_inner),
+    Pattern("silu/mul-sigmoid", "silu", ("Sigmoid",), _match_gate, _silu_inner),
+    Pattern("gelu/erf", "gelu", ("Erf",), _match_gelu_erf),
+    Pattern("gelu_tanh/tanh-cubic", "gelu_tanh", ("Tanh",), _match_gelu_tanh),
+    Pattern("mish/softplus-tanh", "mish", ("Tanh",), _match_gate, _softplus_inner),
+    Pattern("mish/exp-log-tanh", "mish", ("Tanh",), _match_gate, _exp_log_inner),
+    Pattern("hard_swish/mul-hardsigmoid", "hard_swish", ("HardSigmoid",), _match_hard_swish),
 )

@@ -57,24 +57,20 @@ def pwl_grad(x, knots=(0.0,), slopes=(0.0, 1.0), intercept=0.0):
     return s[np.searchsorted(t, np.asarray(x, dtype=np.float64), side="left")]
 
 
-def _mul_const(em: Emitter, x: str, k: float) -> str:
-    return em.node("Mul", [x, em.const(k, "k")])
-
-
 def emit_pwl(em: Emitter, x: str, y: str, params: dict) -> None:
     """y = s0·x + i0 + Σ (s_i − s_{i−1})·Relu(x − t_i), with Relu/Mul/Add only."""
     t, s, i0 = pwl_params(params.get("knots", (0.0,)), params.get("slopes", (0.0, 1.0)),
                           params.get("intercept", 0.0))
     terms: list[str] = []
     if s[0] != 0.0:
-        terms.append(x if s[0] == 1.0 else _mul_const(em, x, float(s[0])))
+        terms.append(x if s[0] == 1.0 else em.mul_const(x, float(s[0])))
     for ti, ds in zip(t, np.diff(s)):
         if ds == 0.0:
             continue
         r = em.node("Relu", [x if ti == 0.0 else em.node("Add", [x, em.const(-ti, "knot")])])
-        terms.append(r if ds == 1.0 else _mul_const(em, r, float(ds)))
+        terms.append(r if ds == 1.0 else em.mul_const(r, float(ds)))
     if not terms:  # constant function: 0·x keeps x's shape
-        terms.append(_mul_const(em, x, 0.0))
+        terms.append(em.mul_const(x, 0.0))
     acc = terms[0]
     for term in terms[1:]:
         acc = em.node("Add", [acc, term])

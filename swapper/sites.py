@@ -51,15 +51,15 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import asdict, dataclass, replace
+from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Literal
 
 import onnx
 
 from .costs import relative_cost
-from .graph import GraphIndex
-from .patterns import Decline, Match, dynamic, match_graph
+from .graph import GraphIndex, node_subgraphs
+from .patterns import Decline, Match, match_graph
 
 logger = logging.getLogger(__name__)
 
@@ -118,7 +118,7 @@ def _producer_kind(ix: GraphIndex, tensor: str, depth: int = 4) -> str | None:
             return "token"
         if node.op_type not in PASS_THROUGH:
             return None
-        live = [t for t in node.input if t and dynamic(ix, t)]
+        live = [t for t in node.input if t and ix.is_dynamic(t)]
         kinds = {_producer_kind(ix, t, 1) for t in live}
         for kind in ("conv", "token"):  # a dynamic operand made by a layer decides
             if kind in kinds:
@@ -161,7 +161,7 @@ def role_of(ix: GraphIndex, y: str) -> str:
         if user.op_type in ("Mul", "Div") and user.domain in ("", "ai.onnx") and len(user.input) == 2:
             others = [t for t in user.input if t != y]
             # the feature map a squeeze-excite gate multiplies is gated, not a gate
-            if others and dynamic(ix, others[0]) and not _strictly_broadcast(ix.shape(others[0]), ix.shape(y)):
+            if others and ix.is_dynamic(others[0]) and not _strictly_broadcast(ix.shape(others[0]), ix.shape(y)):
                 return "gate"
     return "pointwise"
 
@@ -179,41 +179,32 @@ def _article(word: str) -> str:
     return "an" if word[:1].upper() in "AEIOU" else "a"
 
 
-def _subgraphs(node: onnx.NodeProto) -> list[onnx.GraphProto]:
-    graphs = []
-    for a in sorted(node.attribute, key=lambda a: a.name):
-        if a.type == onnx.AttributeProto.GRAPH:
-            graphs.append(a.g)
-        elif a.type == onnx.AttributeProto.GRAPHS:
-            graphs.extend(a.graphs)
-    return graphs
-
-
-def _body_index(model: onnx.ModelProto, graph: onnx.GraphProto) -> GraphIndex:
-    """A GraphIndex over a subgraph (a copy, with synthetic names for unnamed nodes)."""
-    from .model_io import name_unnamed_nodes
-
-    sub = onnx.ModelProto()
-    sub.graph.CopyFrom(graph)
-    sub.opset_import.extend(model.opset_import)
-    name_unnamed_nodes(sub)
-    return GraphIndex.of(sub)
-
-
-def _collect(model, ix: GraphIndex, key: tuple, inside: str | None, out: list, declines: list) -> None:
+def _collect(ix: GraphIndex, key: tuple, inside: str | None, out: list, declines: list) -> None:
     """Append (order key, index, match, reason-from-context) for this graph and its bodies."""
     matches, declined = match_graph(ix)
     declines.extend(declined)
     for m in matches:
         out.append((key + (ix.node_position[m.nodes[0]],), ix, m, inside))
     for node in ix.graph.node:
-        for k, graph in enumerate(_subgraphs(node)):
+        for k, body in enumerate(node_subgraphs(node)):
             reason = f"inside {_article(node.op_type)} {node.op_type} body (subgraphs are not rewritten)"
-            _collect(model, _body_index(model, graph), key + (ix.node_position[node.name], k), reason,
+            _collect(GraphIndex.of_graph(body, ix.opsets), key + (ix.node_position[node.name], k), reason,
                      out, declines)
 
 
-def _describe(sid: str, ix: GraphIndex, m: Match, inside: str | None) -> Site:
+def _cost(sid: str, ix: GraphIndex, m: Match) -> tuple[int | None, float]:
+    """(elements per sample, cost) of a match; cost 0 when the elements are unknown."""
+    shape = ix.shape(m.input)
+    elements = _elements(shape)
+    if elements is None:
+        logger.info("site %s: elements per sample unknown (shape %s); cost counted as 0", sid, shape)
+        return None, 0.0
+    return elements, float(elements * relative_cost(m.function, m.form, m.domain))
+
+
+def _describe(sid: str, ix: GraphIndex, m: Match, inside: str | None, measured: tuple[int | None, float],
+              total_cost: float) -> Site:
+    """The Site for a match; ``measured`` is its (elements, cost) from :func:`_cost`."""
     shape = ix.shape(m.input)
     axis = channel_axis(ix, m.input, shape)
     channels = shape[axis] if axis is not None and isinstance(shape[axis], int) else None
@@ -221,15 +212,13 @@ def _describe(sid: str, ix: GraphIndex, m: Match, inside: str | None) -> Site:
     consumers = [u.op_type for u in ix.users(m.output)]
     if ix.is_graph_output(m.output):
         consumers.append("<output>")
-    elements = _elements(shape)
-    cost = elements * relative_cost(m.function, m.form, m.domain) if elements is not None else 0.0
-    if elements is None:
-        logger.info("site %s: elements per sample unknown (shape %s); cost counted as 0", sid, shape)
+    elements, cost = measured
     return Site(
         id=sid, function=m.function, params=dict(m.params), input=m.input, output=m.output,
         nodes=tuple(m.nodes), form=m.form, shape=shape, channel_axis=axis, channels=channels,
         producer=producer.op_type if producer is not None else None, consumers=tuple(consumers),
-        role=role_of(ix, m.output), elements=elements, cost=float(cost), cost_share=0.0,
+        role=role_of(ix, m.output), elements=elements, cost=cost,
+        cost_share=cost / total_cost if total_cost > 0 else 0.0,
         supported=m.supported and inside is None, reason=inside or m.reason, domain=m.domain,
     )
 
@@ -238,30 +227,30 @@ def find_sites(model: onnx.ModelProto, *, declines: list[Decline] | None = None)
     """Every activation site of a loaded, shape-inferred model, in graph order (ids s1, s2, ...).
 
     Pass a list as ``declines`` to receive the decomposed patterns that were
-    seen but not claimed, with their reasons. Unnamed nodes inside subgraph
-    bodies are listed under synthetic "<OpType>_<position>" names.
+    seen but not claimed, with their reasons. Nodes are referred to by name, so
+    the model's nodes, subgraph bodies included, must be named as
+    :func:`swapper.model_io.load_model` leaves them (``name_unnamed_nodes``).
     """
     found: list = []
     seen_declines: list[Decline] = []
-    _collect(model, GraphIndex.of(model), (), None, found, seen_declines)
+    _collect(GraphIndex.of(model), (), None, found, seen_declines)
     found.sort(key=lambda item: item[0])
-    sites = [_describe(f"s{i}", ix, m, inside) for i, (_, ix, m, inside) in enumerate(found, start=1)]
-    total = sum(s.cost for s in sites)
-    sites = [replace(s, cost_share=(s.cost / total) if total > 0 else 0.0) for s in sites]
+    ids = [f"s{i}" for i in range(1, len(found) + 1)]
+    measured = [_cost(sid, ix, m) for sid, (_, ix, m, _) in zip(ids, found)]
+    total = sum(cost for _, cost in measured)  # first, so each Site is built once, with its share
+    sites = [_describe(sid, ix, m, inside, cost, total)
+             for sid, (_, ix, m, inside), cost in zip(ids, found, measured)]
     if declines is not None:
         declines.extend(seen_declines)
     logger.info("found %d activation sites (%d declined patterns)", len(sites), len(seen_declines))
     return sites
 
 
-def sites_to_json(sites: list[Site], model_path: str | Path, opset: int | None = None) -> dict:
+def sites_to_json(sites: list[Site], model_path: str | Path, opset: int) -> dict:
     """The "swapper.scan/1" document (module docstring) for ``sites`` of the model at ``model_path``.
 
-    ``opset`` defaults to the default-domain opset read from ``model_path``.
+    ``opset`` is the model's default-domain opset (``LoadedModel.opset``).
     """
-    if opset is None:
-        header = onnx.load(str(model_path), load_external_data=False)
-        opset = next((o.version for o in header.opset_import if o.domain in ("", "ai.onnx")), 0)
     return {
         "schema": SCHEMA,
         "model": str(model_path),

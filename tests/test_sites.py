@@ -194,7 +194,7 @@ def test_scan_json_schema(tmp_path):
     onnx.save(se_block(), path)
     loaded = load_model(path)
     sites = find_sites(loaded.model)
-    doc = json.loads(json.dumps(sites_to_json(sites, path)))  # JSON-serialisable as is
+    doc = json.loads(json.dumps(sites_to_json(sites, path, loaded.opset)))  # JSON-serialisable as is
     assert list(doc) == ["schema", "model", "opset", "sites", "total_cost"]
     assert (doc["schema"], doc["model"], doc["opset"]) == (SCHEMA, str(path), 17)
     assert doc["total_cost"] == pytest.approx(sum(s.cost for s in sites))
