@@ -24,7 +24,6 @@ and teacher outputs.
 """
 from __future__ import annotations
 
-import itertools
 import logging
 import math
 
@@ -36,32 +35,18 @@ from onnxruntime.capi.onnxruntime_pybind11_state import Fail as OrtFail
 from onnxruntime.capi.onnxruntime_pybind11_state import InvalidArgument as OrtInvalidArgument
 from onnxruntime.capi.onnxruntime_pybind11_state import RuntimeException as OrtRuntimeException
 
-from .consumers import Reach, reach_linear
+from .consumers import Layer, Reach, linear_layer, reach_linear
 from .data import Dataset
 from .graph import GraphIndex, attr
-from .im2col import conv_geometry
+from .im2col import conv_geometry, tap_windows
 from .record import TensorCache, open_session
 from .sites import Site
+from .splice import all_names, set_const_input
 
 logger = logging.getLogger(__name__)
 
 LINEAR_CONSUMERS = ("Conv", "Gemm", "MatMul")
 _TMP = "swapper::bias_correction/"  # tensor names of the difference model (never a model's own)
-
-
-def _consumer_bias_slot(index: GraphIndex, node: onnx.NodeProto) -> tuple[str | None, int | None]:
-    """Where a linear consumer's per-output-channel bias lives: (initializer name, output channel axis)."""
-    if node.op_type == "Conv" and len(node.input) > 2 and node.input[2] in index.initializers:
-        return node.input[2], 1
-    if node.op_type == "Gemm" and len(node.input) > 2 and node.input[2] in index.initializers:
-        return node.input[2], -1
-    if node.op_type == "MatMul":
-        users = index.users(node.output[0])
-        if len(users) == 1 and users[0].op_type == "Add":
-            other = [t for t in users[0].input if t != node.output[0]]
-            if other and other[0] in index.initializers:
-                return other[0], -1
-    return None, None
 
 
 def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach,
@@ -198,8 +183,7 @@ def _conv_mean(node: onnx.NodeProto, w: np.ndarray, x: np.ndarray) -> np.ndarray
     xp = np.pad(x[0], [(0, 0)] + list(zip(pads_begin, pads_end)))
     taps = np.empty((x.shape[1], math.prod(kernel)))
     spatial_axes = tuple(range(1, xp.ndim))
-    for j, offs in enumerate(itertools.product(*[range(k) for k in kernel])):  # row-major = W's layout
-        window = tuple(slice(o * dl, o * dl + s * (m - 1) + 1, s) for o, dl, s, m in zip(offs, dilations, strides, out))
+    for j, window in enumerate(tap_windows(kernel, strides, dilations, out)):
         taps[:, j] = xp[(slice(None),) + window].sum(axis=spatial_axes)
     group = int(attr(node, "group", 1))
     m_g, c_g = w.shape[0] // group, w.shape[1]
@@ -270,6 +254,7 @@ def correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student:
     gates: a gate's other operand is not recorded).
     """
     index = GraphIndex.of(work)
+    taken = all_names(work)
     corrected = []
     reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False)
     notes = [f"no bias correction: {why}" for why in dead_ends]
@@ -278,39 +263,38 @@ def correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student:
         if node.op_type not in LINEAR_CONSUMERS:
             notes.append(f"no bias correction through {node.op_type} {node.name}")
             continue
-        if node.input[0] != reach.tensor or reach.tensor in node.input[1:] \
-                or not all(t in index.initializers for t in node.input[1:] if t):
-            notes.append(f"no bias correction: {node.name} does not read the site as its data input")
-            continue
-        bias_name, axis = _consumer_bias_slot(index, node)
-        if bias_name is None:
-            notes.append(f"no bias correction: {node.name} has no constant bias")
+        layer, why = linear_layer(index, node, reach.tensor)
+        why = f"{node.name} {why}" if layer is None else _no_correction(index, layer)
+        if why:
+            notes.append(f"no bias correction: {why}")
             continue
         beta = float(attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
-        if beta == 0.0:
-            notes.append(f"no bias correction: {node.name} has beta = 0")
-            continue
+        axis = 1 if layer.kind == "conv" else -1  # where the output channels run
         shift = _mean_shift(work, index, site, reach, cache, student, teacher, ds, batch_size, axis, delta)
         if shift is None:
             notes.append(f"no bias correction: the way to {node.name} reads a run-time tensor")
             continue
         shift = shift / beta  # Gemm: Y = alpha·A·B + beta·C, the bias enters scaled by beta
-        init = index.initializers[bias_name]
-        bias = numpy_helper.to_array(init).astype(np.float64)
+        bias = layer.bias.astype(np.float64)
         if bias.size not in (1, shift.size):
             notes.append(f"no bias correction: bias of {node.name} has unexpected size {bias.size}")
             continue
-        users = sum(1 for n in work.graph.node for t in n.input if t == bias_name)
-        new = numpy_helper.from_array((bias - shift).astype(numpy_helper.to_array(init).dtype).reshape(
-            np.broadcast_shapes(bias.shape, shift.shape) if bias.size == 1 else bias.shape), bias_name)
-        if users > 1:  # shared bias: give this consumer its own copy
-            new.name = f"swapper/{site.id}/bias_correction/{node.name}"
-            work.graph.initializer.append(new)
-            for n in work.graph.node:
-                if n.name == node.name or (node.op_type == "MatMul" and bias_name in n.input and
-                                           node.output[0] in n.input):
-                    n.input[:] = [new.name if t == bias_name else t for t in n.input]
-        else:
-            init.CopyFrom(new)
+        shape = bias.shape if bias.size == shift.size else np.broadcast_shapes(bias.shape, shift.shape)
+        # a bias other nodes share gets a copy of its own, so their outputs stay as they were
+        set_const_input(work, layer.bias_node, layer.bias_slot, (bias - shift).reshape(shape), layer.bias.dtype,
+                        taken, f"swapper/{site.id}/bias_correction", hint=node.name)
         corrected.append(node.name)
     return corrected, notes
+
+
+def _no_correction(index: GraphIndex, layer: Layer) -> str:
+    """Why a linear layer's bias is not corrected (no bias, not in initializers, beta = 0), or ""."""
+    name = layer.node.name
+    if not layer.bias_name():
+        return f"{name} has no constant bias"
+    if not all(t in index.initializers for t in (layer.node.input[1], layer.bias_name())):
+        # the difference model takes the weight, and the correction the bias, as initializers
+        return f"{name} keeps its weight or bias in a Constant node"
+    if layer.kind == "gemm" and float(attr(layer.node, "beta", 1.0)) == 0.0:
+        return f"{name} has beta = 0"
+    return ""

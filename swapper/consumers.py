@@ -1,5 +1,9 @@
 """The linear layers that read a swapped site: reached, and seen as a regression θ = [W; bias].
 
+Layers (:func:`linear_layer`): a Conv / ConvTranspose / Gemm / MatMul that
+reads a tensor as its data input only, with constant weights; its bias is
+input 2, or for a MatMul the constant operand of the Add that alone reads it.
+
 Reaching (:func:`reach_linear`): from a site output, walk forward through
 ops that commute with a per-channel map y -> a·y + d (ONNX operator spec
 semantics): MaxPool / GlobalMaxPool (max(a·x) = a·max(x) needs a >= 0;
@@ -28,11 +32,12 @@ from dataclasses import dataclass
 
 import numpy as np
 import onnx
-from onnx import helper, numpy_helper
 
-from .emit import Emitter
 from .graph import GraphIndex, attr
+from .im2col import pads_input
+from .pattern_base import other_operand
 from .sites import Site
+from .splice import all_names, input_at, set_const_input
 
 logger = logging.getLogger(__name__)
 
@@ -41,6 +46,7 @@ LINEAR = ("Conv", "ConvTranspose", "Gemm", "MatMul")
 MAX_POOLS = ("MaxPool", "GlobalMaxPool")
 AVG_POOLS = ("AveragePool", "GlobalAveragePool")
 RESHAPES = ("Flatten", "Reshape", "Squeeze", "Unsqueeze", "Identity")
+_REFIT = "swapper/refit"  # name prefix of the weight copies write_theta makes
 
 
 # ------------------------------------------------------------ shared look-ups
@@ -64,9 +70,49 @@ def sole_bias_add(index: GraphIndex, mm: onnx.NodeProto) -> onnx.NodeProto | Non
     add = users[0]
     if list(add.input).count(out) != 1:
         return None
-    other = add.input[1] if add.input[0] == out else add.input[0]
-    return add if float_const(index, other) is not None else None
+    return add if float_const(index, other_operand(add, out)) is not None else None
 
+
+@dataclass
+class Layer:
+    """A linear layer reading a tensor as its data input, with constant weights (:func:`linear_layer`)."""
+
+    kind: str  # "conv" | "convtranspose" | "gemm" | "matmul"
+    node: onnx.NodeProto
+    weight: np.ndarray  # input 1
+    bias: np.ndarray | None  # the bias value (None: no bias yet)
+    bias_node: onnx.NodeProto | None  # holds the bias: ``node`` itself, a MatMul's bias Add, None (MatMul, no Add)
+    bias_slot: int  # input slot of the bias in bias_node (2 for Conv/Gemm, even while it is absent)
+
+    @property
+    def add(self) -> onnx.NodeProto | None:
+        """The constant-bias Add after a MatMul, if any."""
+        return self.bias_node if self.kind == "matmul" else None
+
+    def bias_name(self) -> str:
+        """The bias tensor ("" when the layer has none)."""
+        return input_at(self.bias_node, self.bias_slot) if self.bias_node is not None else ""
+
+
+def linear_layer(index: GraphIndex, node: onnx.NodeProto, tensor: str) -> tuple[Layer | None, str]:
+    """``node`` as a linear layer reading ``tensor`` as its data input only, with constant weights and
+    bias; or None and why not (a phrase to follow the node's label: "is not a linear layer", ...)."""
+    if node.domain not in _DEFAULT or node.op_type not in LINEAR:
+        return None, "is not a linear layer"
+    if [i for i, t in enumerate(node.input) if t == tensor] != [0]:
+        return None, f"does not read {tensor!r} as its data input only"
+    w = float_const(index, input_at(node, 1))
+    bias_name = input_at(node, 2)
+    bias = float_const(index, bias_name)
+    if w is None or (bias_name and bias is None):
+        return None, "has non-constant weights"
+    if node.op_type != "MatMul":
+        return Layer(node.op_type.lower(), node, w, bias, node, 2), ""
+    add = sole_bias_add(index, node)
+    if add is None:
+        return Layer("matmul", node, w, None, None, -1), ""
+    slot = 1 - list(add.input).index(node.output[0])
+    return Layer("matmul", node, w, float_const(index, add.input[slot]), add, slot), ""
 
 
 # ------------------------------------------------------------------ reaching
@@ -103,7 +149,8 @@ def _label(node: onnx.NodeProto) -> str:
     return f"consumer {node.op_type} {node.name!r}"
 
 
-def _norm(axis: int | None, rank: int | None) -> int | None:
+def norm_axis(axis: int | None, rank: int | None) -> int | None:
+    """``axis`` counted from the front (a negative axis needs the rank; unknown rank: left as is)."""
     return axis + rank if axis is not None and axis < 0 and rank is not None else axis
 
 
@@ -135,10 +182,7 @@ def _avg_d_block(node: onnx.NodeProto) -> str:
     """Why an average pool does not pass + d: zero padding counted in the mean."""
     if node.op_type == "GlobalAveragePool" or int(attr(node, "count_include_pad", 0)) == 0:
         return ""
-    auto_pad = attr(node, "auto_pad", b"NOTSET")
-    auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
-    padded = any(p != 0 for p in (attr(node, "pads", None) or [])) or auto_pad not in ("NOTSET", "VALID") \
-        or int(attr(node, "ceil_mode", 0)) != 0
+    padded = pads_input(node) or int(attr(node, "ceil_mode", 0)) != 0
     return f"AveragePool {node.name!r} counts zero padding in its mean" if padded else ""
 
 
@@ -158,14 +202,14 @@ def _step(index: GraphIndex, node: onnx.NodeProto, tensor: str, axis: int | None
     if op != "Mul" and node.input[0] != tensor:
         return None, None, None, f"{label} does not read {tensor!r} as its data input"
     if op in MAX_POOLS + AVG_POOLS:
-        if axis is not None and (rank is None or rank < 3 or _norm(axis, rank) != 1):
+        if axis is not None and (rank is None or rank < 3 or norm_axis(axis, rank) != 1):
             return None, None, None, f"{label} pools along the parameters' channel axis {axis}"
         kind = "max" if op in MAX_POOLS else "avg"
         return Step(node, kind, "" if kind == "max" else _avg_d_block(node)), axis, rank, ""
     if op in RESHAPES:
         if axis is None:
             return Step(node, "reshape"), None, out_rank, ""
-        new = channel_after_reshape(index.shape(tensor), out_shape, _norm(axis, rank), channels)
+        new = channel_after_reshape(index.shape(tensor), out_shape, norm_axis(axis, rank), channels)
         if new is None:
             return None, None, None, f"{label} does not keep the {channels} channels on one axis"
         return Step(node, "reshape"), new, out_rank, ""
@@ -177,7 +221,7 @@ def _step(index: GraphIndex, node: onnx.NodeProto, tensor: str, axis: int | None
         return gate, None, out_rank, ""
     if rank is None or out_rank is None or out_rank < rank:
         return None, None, None, f"{label}: ranks unknown, cannot follow the channel axis"
-    new = _norm(axis, rank) + out_rank - rank
+    new = norm_axis(axis, rank) + out_rank - rank
     if isinstance(out_shape[new], int) and out_shape[new] != channels:
         return None, None, None, f"{label} broadcasts the channel axis"
     return gate, new, out_rank, ""
@@ -200,9 +244,7 @@ def reach_linear(index: GraphIndex, start: str, axis: int | None, rank: int | No
         tensor, steps, ax, rk = queue.pop(0)
         if tensor != start and index.is_graph_output(tensor):
             failed.append(f"{tensor!r} (after {steps[-1].node.op_type}) is a graph output")
-        users = sorted({n.name: n for n in index.users(tensor)}.values(),
-                       key=lambda n: index.node_position.get(n.name, 0))
-        for node in users:
+        for node in {n.name: n for n in index.users(tensor)}.values():  # graph order, each node once
             if node.name in seen:
                 continue  # read through two carried tensors: caught below
             seen[node.name] = node
@@ -246,62 +288,49 @@ def _along_last(value: np.ndarray, width: int) -> bool:
 def find_consumers(index: GraphIndex, site: Site, blocked: set[str]) -> tuple[list[Consumer], list[str]]:
     """The refittable linear consumers of ``site.output`` in graph order, and notes on the others."""
     found, notes = [], []
-    users = sorted({n.name: n for n in index.users(site.output)}.values(),
-                   key=lambda n: index.node_position[n.name])
-    for node in users:
+    for node in {n.name: n for n in index.users(site.output)}.values():  # graph order, each node once
         label = f"no refit of {node.op_type} {node.name!r}"
         if node.name in blocked:
             notes.append(f"{label}: it is part of a swapped site")
             continue
-        if node.domain not in _DEFAULT or node.op_type not in ("Conv", "Gemm", "MatMul"):
-            notes.append(f"{label}: not a linear layer")
+        layer, why = linear_layer(index, node, site.output)
+        if layer is None:
+            notes.append(f"{label}: it {why}")
             continue
-        if [t for t in node.input].count(site.output) != 1 or node.input[0] != site.output:
-            notes.append(f"{label}: does not read the site as its data input only")
+        why = _why_not_refit(layer, blocked)
+        if why:
+            notes.append(f"{label}: {why}")
             continue
-        w = float_const(index, node.input[1])
-        bias_name = node.input[2] if len(node.input) > 2 else ""
-        bias = float_const(index, bias_name) if bias_name else None
-        if w is None or (bias_name and bias is None):
-            notes.append(f"{label}: weights are not constant")
-            continue
-        if node.op_type == "Conv":
-            if int(attr(node, "group", 1)) != 1:
-                notes.append(f"{label}: grouped Conv (group={attr(node, 'group', 1)})")
-                continue
-            found.append(Consumer(site.id, "conv", node.name, node.name, 2, site.output, node.output[0]))
-        elif node.op_type == "Gemm":
-            width = w.shape[0] if attr(node, "transB", 0) else w.shape[1]
-            if int(attr(node, "transA", 0)) or float(attr(node, "alpha", 1.0)) == 0.0 \
-                    or float(attr(node, "beta", 1.0)) == 0.0:
-                notes.append(f"{label}: transA=1, alpha=0 or beta=0")
-                continue
-            if bias is not None and not _along_last(bias, width):
-                notes.append(f"{label}: C is not a per-output-channel bias")
-                continue
-            found.append(Consumer(site.id, "gemm", node.name, node.name, 2, site.output, node.output[0]))
-        else:
-            add = _bias_add(index, node, blocked)
-            if w.ndim != 2 or add is None:
-                notes.append(f"{label}: needs a 2-D constant weight and a constant bias Add")
-                continue
-            slot = 1 if add.input[0] == node.output[0] else 0
-            if not _along_last(float_const(index, add.input[slot]), w.shape[1]):
-                notes.append(f"{label}: its bias does not run along the output channels")
-                continue
-            found.append(Consumer(site.id, "matmul", node.name, add.name, slot, site.output, add.output[0]))
+        bias = layer.bias_node
+        found.append(Consumer(site.id, layer.kind, node.name, bias.name, layer.bias_slot, site.output,
+                              bias.output[0]))
     return found, notes
 
 
-def _bias_add(index: GraphIndex, mm: onnx.NodeProto, blocked: set[str]) -> onnx.NodeProto | None:
-    """The constant-bias Add that alone reads ``mm``'s output, unless it belongs to a swapped site."""
-    add = sole_bias_add(index, mm)
-    return None if add is None or add.name in blocked else add
+def _why_not_refit(layer: Layer, blocked: set[str]) -> str:
+    """Why a linear layer cannot be seen as output = [x, 1]·θ (module docstring), or ""."""
+    node, w = layer.node, layer.weight
+    if layer.kind == "convtranspose":
+        return "transposed convolutions are not refitted"
+    if layer.kind == "conv" and int(attr(node, "group", 1)) != 1:
+        return f"grouped Conv (group={attr(node, 'group', 1)})"
+    if layer.kind == "gemm":
+        if int(attr(node, "transA", 0)) or float(attr(node, "alpha", 1.0)) == 0.0 \
+                or float(attr(node, "beta", 1.0)) == 0.0:
+            return "transA=1, alpha=0 or beta=0"
+        width = w.shape[0] if attr(node, "transB", 0) else w.shape[1]
+        if layer.bias is not None and not _along_last(layer.bias, width):
+            return "C is not a per-output-channel bias"
+    if layer.kind == "matmul":
+        if w.ndim != 2 or layer.add is None or layer.add.name in blocked:
+            return "needs a 2-D constant weight and a constant bias Add"
+        if not _along_last(layer.bias, w.shape[1]):
+            return "its bias does not run along the output channels"
+    return ""
 
 
 def _bias_name(index: GraphIndex, c: Consumer) -> str:
-    node = index.nodes_by_name[c.bias_node]
-    return node.input[c.bias_slot] if c.bias_slot < len(node.input) else ""
+    return input_at(index.nodes_by_name[c.bias_node], c.bias_slot)
 
 
 def theta_of(index: GraphIndex, c: Consumer) -> np.ndarray:
@@ -321,42 +350,17 @@ def theta_of(index: GraphIndex, c: Consumer) -> np.ndarray:
 
 
 # ---------------------------------------------------------------- writing
-def _references(model: onnx.ModelProto, name: str) -> int:
-    def count(nodes) -> int:
-        total = 0
-        for n in nodes:
-            total += sum(1 for t in n.input if t == name)
-            for a in n.attribute:
-                for g in ([a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs)):
-                    total += count(g.node)
-        return total
-    return count(model.graph.node) + sum(1 for o in model.graph.output if o.name == name)
+def write_theta(model: onnx.ModelProto, c: Consumer, theta: np.ndarray, index: GraphIndex | None = None,
+                taken: set[str] | None = None) -> None:
+    """Store ``theta`` (as from :func:`theta_of`) back into the consumer's weight and bias, in their dtypes.
 
-
-def _put(model: onnx.ModelProto, index: GraphIndex, node: onnx.NodeProto, slot: int, value: np.ndarray,
-         dtype: np.dtype) -> None:
-    """Set ``node`` input ``slot`` to ``value``: in place if only it reads the initializer, else a fresh copy."""
-    name = node.input[slot] if slot < len(node.input) else ""
-    tensor = numpy_helper.from_array(np.asarray(value).astype(dtype), name)
-    init = index.initializers.get(name) if name else None
-    if init is not None and list(init.dims) == list(tensor.dims) and _references(model, name) == 1:
-        init.CopyFrom(tensor)
-        return
-    taken = {t.name for t in model.graph.initializer} | {t for n in model.graph.node for t in
-                                                         list(n.input) + list(n.output)}
-    fresh = Emitter("swapper/refit", index.opset, taken).fresh(f"{node.name}/in{slot}")
-    tensor.name = fresh
-    model.graph.initializer.append(tensor)
-    if model.ir_version < 4:  # old IR: initializers are also graph inputs
-        model.graph.input.append(helper.make_tensor_value_info(fresh, tensor.data_type, list(tensor.dims)))
-    while len(node.input) <= slot:
-        node.input.append("")
-    node.input[slot] = fresh
-
-
-def write_theta(model: onnx.ModelProto, c: Consumer, theta: np.ndarray) -> None:
-    """Store ``theta`` (as from :func:`theta_of`) back into the consumer's weight and bias, in their dtypes."""
-    index = GraphIndex.of(model)
+    A weight or bias other readers share gets a fresh copy (:func:`swapper.splice.set_const_input`).
+    ``index``: a GraphIndex of ``model`` itself, from before any write to this consumer; ``taken``:
+    the names new tensors must avoid (:func:`swapper.splice.all_names`, updated here). Callers writing
+    many consumers pass both so neither is rebuilt per call.
+    """
+    index = GraphIndex.of(model) if index is None else index
+    taken = all_names(model) if taken is None else taken
     node, bias_node = index.nodes_by_name[c.node], index.nodes_by_name[c.bias_node]
     w = index.const(node.input[1])
     old_bias_name = _bias_name(index, c)
@@ -372,5 +376,6 @@ def write_theta(model: onnx.ModelProto, c: Consumer, theta: np.ndarray) -> None:
         new_w = w_eff
     if old_bias is not None and old_bias.size == bias.size:
         bias = bias.reshape(old_bias.shape)  # keep the layout the model had
-    _put(model, index, node, 1, new_w, w.dtype)
-    _put(model, index, bias_node, c.bias_slot, bias, old_bias.dtype if old_bias is not None else w.dtype)
+    set_const_input(model, node, 1, new_w, w.dtype, taken, _REFIT)
+    set_const_input(model, bias_node, c.bias_slot, bias, old_bias.dtype if old_bias is not None else w.dtype,
+                    taken, _REFIT)

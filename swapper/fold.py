@@ -27,10 +27,12 @@ from dataclasses import dataclass
 import numpy as np
 import onnx
 
-from .consumers import Reach, float_const as _float_const, reach_linear, sole_bias_add
+from .consumers import (Layer, Reach, float_const as _float_const, linear_layer, norm_axis, reach_linear,
+                        sole_bias_add)
 from .errors import UsageError
 from .functions import Function
 from .graph import GraphIndex, attr
+from .im2col import pads_input
 from .plan import FOLD_POLICIES, PARAMS
 from .sites import Site
 
@@ -45,31 +47,61 @@ class ProducerFold:
     """The layer that produces a site's input, and how b, c fold into it."""
 
     kind: str  # "conv" | "convtranspose" | "gemm" | "matmul_add" | "matmul" | "batchnorm"
-    node: onnx.NodeProto  # the layer holding the weights
-    add: onnx.NodeProto | None  # the bias Add of a MatMul+Add
+    node: onnx.NodeProto  # the layer holding the weights (input 1; BatchNormalization: its scale)
+    bias_node: onnx.NodeProto | None  # holds the bias: ``node`` (input 2), a MatMul's Add, None (bare MatMul)
+    bias_slot: int  # input slot of the bias in bias_node
     can_shift: bool  # c folds without a node
     reason: str = ""  # why c cannot fold, when it cannot
 
 
 @dataclass
 class ConsumerFold:
-    """One linear layer reading a site's output, and how a, d fold into it."""
+    """One linear layer reading a site's output (the end of ``reach``), and how a, d fold into it."""
 
-    kind: str  # "conv" | "convtranspose" | "gemm" | "matmul"
-    node: onnx.NodeProto
-    add: onnx.NodeProto | None  # the bias Add after a MatMul (d folds there)
+    reach: Reach
+    layer: Layer
     d_exact: bool
     d_approx: bool  # a zero-padded Conv: d folds into its bias, inexact at borders
-    path: tuple[str, ...] = ()  # pass-through nodes between the site output and this layer
-    a_positive: bool = False  # a max pool is on the path: a folds only where a >= 0
-    d_block: str = ""  # why d cannot reach this layer ("" when it can)
+
+    @property
+    def kind(self) -> str:  # "conv" | "convtranspose" | "gemm" | "matmul"
+        return self.layer.kind
+
+    @property
+    def node(self) -> onnx.NodeProto:
+        return self.reach.node
+
+    @property
+    def bias_node(self) -> onnx.NodeProto | None:
+        """Where d folds: the layer itself, or the bias Add after a MatMul."""
+        return self.layer.bias_node
+
+    @property
+    def bias_slot(self) -> int:
+        return self.layer.bias_slot
+
+    @property
+    def path(self) -> tuple[str, ...]:
+        """Pass-through nodes between the site output and this layer."""
+        return tuple(s.node.name for s in self.reach.steps)
+
+    @property
+    def a_positive(self) -> bool:
+        """A max pool is on the path: a folds only where a >= 0."""
+        return self.reach.a_positive
+
+    @property
+    def d_block(self) -> str:
+        """Why d cannot reach this layer ("" when it can)."""
+        return self.reach.d_block
 
 
 def _is(node: onnx.NodeProto, op: str) -> bool:
     return node.op_type == op and node.domain in _DEFAULT
 
 
-def _rank(index: GraphIndex, site: Site) -> int | None:
+def site_rank(index: GraphIndex, site: Site) -> int | None:
+    """Rank of the site's tensors (from the site, else the inferred shapes), None when unknown."""
     if site.shape is not None:
         return len(site.shape)
     shape = index.shape(site.input) or index.shape(site.output)
@@ -83,7 +115,7 @@ def per_channel(site: Site) -> bool:
 
 def _axis_is(index: GraphIndex, site: Site, want: str) -> bool:
     """Is the site's channel axis the layer's channel axis ("first" = axis 1, "last")?"""
-    return _axis_at(site.channel_axis, _rank(index, site), want)
+    return _axis_at(site.channel_axis, site_rank(index, site), want)
 
 
 def _axis_at(axis: int | None, rank: int | None, want: str) -> bool:
@@ -136,7 +168,7 @@ def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, s
         width = w.shape[0] if _is(node, "Conv") else w.shape[1] * int(attr(node, "group", 1))
         why = _check_layer(index, site, "first", width)
         kind = "conv" if _is(node, "Conv") else "convtranspose"
-        return (None, why) if why else (ProducerFold(kind, node, None, True), "")
+        return (None, why) if why else (ProducerFold(kind, node, node, 2, True), "")
     if _is(node, "Gemm"):
         w = _float_const(index, node.input[1])
         has_c = len(node.input) > 2 and node.input[2]
@@ -147,7 +179,7 @@ def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, s
         if why:
             return None, why
         beta = float(attr(node, "beta", 1.0))
-        return ProducerFold("gemm", node, None, beta != 0.0, "Gemm beta is 0" if beta == 0.0 else ""), ""
+        return ProducerFold("gemm", node, node, 2, beta != 0.0, "Gemm beta is 0" if beta == 0.0 else ""), ""
     if _is(node, "BatchNormalization"):
         if int(attr(node, "training_mode", 0)):
             return None, f"BatchNormalization {node.name!r} is in training mode"
@@ -155,7 +187,7 @@ def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, s
         if scale is None or shift is None:
             return None, f"BatchNormalization {node.name!r} scale/bias are not constant"
         why = _check_layer(index, site, "first", scale.shape[0])
-        return (None, why) if why else (ProducerFold("batchnorm", node, None, True), "")
+        return (None, why) if why else (ProducerFold("batchnorm", node, node, 2, True), "")
     if _is(node, "Add"):
         return _matmul_add(index, site, node)
     if _is(node, "MatMul"):
@@ -165,7 +197,7 @@ def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, s
         why = _check_layer(index, site, "last", w.shape[-1])
         if why:
             return None, why
-        return ProducerFold("matmul", node, None, False, "MatMul has no bias; c needs an Add node"), ""
+        return ProducerFold("matmul", node, None, -1, False, "MatMul has no bias; c needs an Add node"), ""
     return None, f"producer {node.op_type} {node.name!r} is not a foldable linear layer"
 
 
@@ -176,7 +208,7 @@ def _matmul_add(index: GraphIndex, site: Site, add: onnx.NodeProto) -> tuple[Pro
         bias = _float_const(index, add.input[1 - slot])
         if mm is None or not _is(mm, "MatMul") or bias is None:
             continue
-        if index.is_graph_output(mm.output[0]) or len(index.users(mm.output[0])) != 1:
+        if sole_bias_add(index, mm) is not add:
             return None, f"MatMul {mm.name!r} output is used outside its bias Add"
         w = _float_const(index, mm.input[1])
         if w is None or w.ndim < 2:
@@ -184,7 +216,7 @@ def _matmul_add(index: GraphIndex, site: Site, add: onnx.NodeProto) -> tuple[Pro
         if bias.ndim and bias.shape[-1] not in (1, w.shape[-1]):
             return None, f"bias of Add {add.name!r} does not run along the MatMul output axis"
         why = _check_layer(index, site, "last", w.shape[-1])
-        return (None, why) if why else (ProducerFold("matmul_add", mm, add, True), "")
+        return (None, why) if why else (ProducerFold("matmul_add", mm, add, 1 - slot, True), "")
     return None, f"Add {add.name!r} is not a MatMul followed by a constant bias"
 
 
@@ -199,69 +231,48 @@ def consumer_folds(index: GraphIndex, site: Site) -> tuple[list[ConsumerFold] | 
         return None, f"{y!r} is a graph output"
     if not index.users(y):
         return None, f"{y!r} has no consumers"
-    rank = _rank(index, site)
-    axis = site.channel_axis if per_channel(site) else None
-    if axis is not None and axis < 0 and rank is not None:
-        axis += rank
+    rank = site_rank(index, site)
+    axis = norm_axis(site.channel_axis if per_channel(site) else None, rank)
     reached, failed = reach_linear(index, y, axis, rank, site.channels or 1)
     if failed:
         return None, failed[0]
     folds = []
     for reach in reached:
-        fold, why = _consumer(index, site, reach)
+        fold, why = _layer(index, site, reach)
         if fold is None:
             return None, why
         folds.append(fold)
     return folds, ""
 
 
-def _consumer(index: GraphIndex, site: Site, reach: Reach) -> tuple[ConsumerFold | None, str]:
-    fold, why = _layer(index, site, reach)
-    if fold is not None:
-        fold.path = tuple(s.node.name for s in reach.steps)
-        fold.a_positive, fold.d_block = reach.a_positive, reach.d_block
-    return fold, why
-
-
 def _layer(index: GraphIndex, site: Site, reach: Reach) -> tuple[ConsumerFold | None, str]:
     """The fold into one reached layer, by the same exactness rules whether it reads y directly or not."""
-    node, y = reach.node, reach.tensor
-    slots = [i for i, t in enumerate(node.input) if t == y]
+    node = reach.node
     label = f"consumer {node.op_type} {node.name!r}"
-    if not any(_is(node, op) for op in ("Conv", "ConvTranspose", "Gemm", "MatMul")):
-        return None, f"{label} is not a linear layer with constant weights"
-    if slots != [0]:
-        return None, f"{label} does not read {y!r} as its data input only"
-    w = _float_const(index, node.input[1]) if len(node.input) > 1 else None
-    bias_name = node.input[2] if len(node.input) > 2 else ""
-    if w is None or (bias_name and _float_const(index, bias_name) is None):
-        return None, f"{label} has non-constant weights"
-    if _is(node, "Conv"):
-        width = w.shape[1] * int(attr(node, "group", 1))
-        why = _check_layer(index, site, "first", width, reach)
-        pads = attr(node, "pads", None) or []
-        auto_pad = attr(node, "auto_pad", b"NOTSET")
-        auto_pad = auto_pad.decode() if isinstance(auto_pad, bytes) else str(auto_pad)
-        unpadded = all(p == 0 for p in pads) and auto_pad in ("NOTSET", "VALID")
-        return (None, f"{label}: {why}") if why else (ConsumerFold("conv", node, None, unpadded, not unpadded), "")
-    if _is(node, "ConvTranspose"):
+    layer, why = linear_layer(index, node, reach.tensor)
+    if layer is None:
+        return None, f"{label} {why}"
+    w = layer.weight
+    if layer.kind == "conv":
+        why = _check_layer(index, site, "first", w.shape[1] * int(attr(node, "group", 1)), reach)
+        exact = not pads_input(node)  # zero padding reads 0, not d, at the borders
+        return (None, f"{label}: {why}") if why else (ConsumerFold(reach, layer, exact, not exact), "")
+    if layer.kind == "convtranspose":
         why = _check_layer(index, site, "first", w.shape[0], reach)
         # A constant input overlaps unevenly at the output borders: d never folds exactly.
-        return (None, f"{label}: {why}") if why else (ConsumerFold("convtranspose", node, None, False, False), "")
-    if _is(node, "Gemm"):
+        return (None, f"{label}: {why}") if why else (ConsumerFold(reach, layer, False, False), "")
+    if layer.kind == "gemm":
         if int(attr(node, "transA", 0)) and per_channel(site):
             return None, f"{label} has transA=1"
         width = w.shape[1] if attr(node, "transB", 0) else w.shape[0]
         why = _check_layer(index, site, "last", width, reach)
         beta = float(attr(node, "beta", 1.0))
-        return (None, f"{label}: {why}") if why else (ConsumerFold("gemm", node, None, beta != 0.0, False), "")
-    if _is(node, "MatMul"):
-        why = _check_layer(index, site, "last", w.shape[-2] if w.ndim >= 2 else w.shape[0], reach)
-        if why:
-            return None, f"{label}: {why}"
-        add = sole_bias_add(index, node) if w.ndim == 2 else None
-        return ConsumerFold("matmul", node, add, add is not None, False), ""
-    raise AssertionError(node.op_type)  # unreachable: op types checked above
+        return (None, f"{label}: {why}") if why else (ConsumerFold(reach, layer, beta != 0.0, False), "")
+    why = _check_layer(index, site, "last", w.shape[-2] if w.ndim >= 2 else w.shape[0], reach)
+    if why:
+        return None, f"{label}: {why}"
+    # d folds into the bias Add of a 2-D MatMul only: input_offset computes d·B for a 2-D B
+    return ConsumerFold(reach, layer, layer.add is not None and w.ndim == 2, False), ""
 
 
 # ----------------------------------------------------------------- placement

@@ -27,17 +27,18 @@ from . import functions
 from .emit import Emitter
 from .errors import BadModelError, UsageError
 from .fold import (ConsumerFold, ProducerFold, consumer_folds, input_offset, input_scale, producer_fold,
-                   scale_shift_output)
+                   scale_shift_output, site_rank)
 from .graph import GraphIndex, attr
 from .plan import NEUTRAL, PARAMS, Plan, SiteSwap
 from .sites import Site
-from .splice import all_names, copy_model, site_positions, splice, used_names
+from .splice import all_names, copy_model, copy_name, input_at, rewire, site_positions, splice, used_names
 
 logger = logging.getLogger(__name__)
 
 PLAN_KEY = "swapper.plan"
 PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx")
 IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
+FOLDING = ("producer", "consumers", "consumers+", "approx", "inner")  # placements that need the fold analysis
 
 
 @dataclass
@@ -64,17 +65,19 @@ class _Weights:
     """Folded copies of weight tensors, in float64 until written out.
 
     Each (node, input) that gets folded is rewired once to a fresh tensor that
-    only it reads; later folds into the same input update that copy, so two
-    sites folding into one layer compose.
+    only it reads (named by :func:`swapper.splice.copy_name`, added by
+    :func:`swapper.splice.splice`); later folds into the same input update
+    that copy, so two sites folding into one layer compose.
     """
 
-    def __init__(self, index: GraphIndex):
+    def __init__(self, index: GraphIndex, taken: set[str]):
         self.index = index
+        self.taken = taken
         self.values: dict[str, np.ndarray] = {}
         self.dtypes: dict[str, np.dtype] = {}
 
     def read(self, node: onnx.NodeProto, slot: int) -> np.ndarray | None:
-        name = node.input[slot] if slot < len(node.input) else ""
+        name = input_at(node, slot)
         if not name:
             return None
         if name in self.values:
@@ -84,7 +87,7 @@ class _Weights:
 
     def dtype(self, node: onnx.NodeProto, slot: int) -> np.dtype:
         """dtype of the tensor in ``slot``; a missing bias takes the weight's (slot 1) dtype."""
-        name = node.input[slot] if slot < len(node.input) else ""
+        name = input_at(node, slot)
         if name in self.dtypes:
             return self.dtypes[name]
         value = self.index.const(name) if name else None
@@ -93,16 +96,14 @@ class _Weights:
         return value.dtype
 
     def write(self, node: onnx.NodeProto, slot: int, value: np.ndarray, em: Emitter) -> None:
-        """Set input ``slot`` of ``node``; its first write rewires it to a new tensor named by ``em``."""
-        name = node.input[slot] if slot < len(node.input) else ""
+        """Set input ``slot`` of ``node``; its first write rewires it to a new tensor under ``em``'s prefix."""
+        name = input_at(node, slot)
         if name in self.values:
             self.values[name] = np.asarray(value, dtype=np.float64)
             return
         dtype = self.dtype(node, slot)
-        new = em.fresh(f"{node.name}/in{slot}")
-        while len(node.input) <= slot:
-            node.input.append("")
-        node.input[slot] = new
+        new = copy_name(node, slot, self.taken, em.prefix)
+        rewire(node, slot, new)
         self.values[new] = np.asarray(value, dtype=np.float64)
         self.dtypes[new] = np.dtype(dtype)
 
@@ -114,25 +115,17 @@ def _neutral(p: str, v: np.ndarray) -> bool:
     return bool(np.all(v == NEUTRAL[p]))
 
 
-def _bias_of(node: onnx.NodeProto, add: onnx.NodeProto | None) -> tuple[onnx.NodeProto, int]:
-    """(node, input slot) holding the bias: the layer's input 2, or the constant operand of its Add."""
-    if add is None:
-        return node, 2
-    return add, 1 if add.input[0] == node.output[0] else 0
-
-
 def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray, em: Emitter) -> list[str]:
     """Fold b (scale) and c (shift) into the layer that produces x. Returns the touched node names."""
-    node = pf.node
-    bias_node, bias_slot = _bias_of(node, pf.add)
-    bias = None if pf.kind == "matmul" else w.read(bias_node, bias_slot)
+    node, bias_node = pf.node, pf.bias_node
+    bias = None if bias_node is None else w.read(bias_node, pf.bias_slot)
     new_w, new_bias = scale_shift_output(pf.kind, node, w.read(node, 1), bias, b, c)
     touched = []
     if not _neutral("b", b):
         w.write(node, 1, new_w, em)
         touched.append(node.name)
-    if pf.kind != "matmul" and (not _neutral("c", c) or (bias is not None and not _neutral("b", b))):
-        w.write(bias_node, bias_slot, new_bias, em)
+    if bias_node is not None and (not _neutral("c", c) or (bias is not None and not _neutral("b", b))):
+        w.write(bias_node, pf.bias_slot, new_bias, em)
         touched.append(bias_node.name)
     return touched
 
@@ -147,10 +140,9 @@ def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.nd
         offset = input_offset(f.kind, node, weight, d)
         if f.kind == "gemm":  # C is scaled by beta inside Gemm
             offset = offset / float(attr(node, "beta", 1.0))
-        bias_node, bias_slot = _bias_of(node, f.add)
-        bias = w.read(bias_node, bias_slot)
-        w.write(bias_node, bias_slot, (0.0 if bias is None else bias) + offset, em)
-        touched.append(bias_node.name)
+        bias = w.read(f.bias_node, f.bias_slot)
+        w.write(f.bias_node, f.bias_slot, (0.0 if bias is None else bias) + offset, em)
+        touched.append(f.bias_node.name)
     if a is not None:
         w.write(node, 1, input_scale(f.kind, node, weight, a), em)
         touched.append(node.name)
@@ -177,10 +169,10 @@ def _param_shape(index: GraphIndex, site: Site, swap: SiteSwap, n: int) -> tuple
         raise UsageError(f"site {site.id}: {n} parameters per set but no channel axis")
     if axis < 0:
         return (n,) + (1,) * (-axis - 1)
-    shape = site.shape or index.shape(site.input) or index.shape(site.output)
-    if shape is None:
+    rank = site_rank(index, site)
+    if rank is None:
         raise BadModelError(f"site {site.id}: rank of {site.input!r} is unknown; cannot place per-channel nodes")
-    return (n,) + (1,) * (len(shape) - 1 - axis)
+    return (n,) + (1,) * (rank - 1 - axis)
 
 
 def _check_placement(site: Site, swap: SiteSwap, fn: functions.Function, vals: dict) -> dict[str, str]:
@@ -204,9 +196,10 @@ def _check_placement(site: Site, swap: SiteSwap, fn: functions.Function, vals: d
 
 
 def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap, em: Emitter,
-               analysis: tuple) -> SiteRecord:
+               analysis: tuple | None) -> SiteRecord:
     """Emit one site's surrogate into ``em`` and fold its parameters; ``analysis`` is
-    ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired."""
+    ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
+    plan folds nothing of this site)."""
     fn = functions.get(swap.target)
     vals = _vectors(swap)
     place = _check_placement(site, swap, fn, vals)
@@ -291,16 +284,18 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
     positions = site_positions(out, chosen)
     used_before = used_names(out)
     taken = all_names(out)
-    weights = _Weights(index)
-    # Analyse every site on the untouched copy: folds rewire weights to new tensors.
-    analyses = {s.id: (producer_fold(index, s), consumer_folds(index, s)) for s in chosen}
+    weights = _Weights(index, taken)
+    # Analyse on the untouched copy (folds rewire weights to new tensors), and only the sites whose
+    # plan folds something: an all-"nodes" plan (refit's) needs no analysis at all.
+    analyses = {s.site_id: (producer_fold(index, by_id[s.site_id]), consumer_folds(index, by_id[s.site_id]))
+                for s in plan.swaps if set(s.placement.values()) & set(FOLDING)}
     inserts, emitted, records = {}, [], []
     for swap in plan.swaps:
         site = by_id[swap.site_id]
         if swap.source != site.function:
             raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
         em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken)
-        records.append(_swap_site(index, weights, site, swap, em, analyses[site.id]))
+        records.append(_swap_site(index, weights, site, swap, em, analyses.get(site.id)))
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
     splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
