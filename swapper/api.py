@@ -146,17 +146,16 @@ def check(
     """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``."""
     from .data import batches
     from .evaluate import Budget, compare, decide
-    from .latency import measure_latency, model_summary, serialized_size
+    from .latency import model_summary, serialized_size
 
     budget = budget or Budget()
     progress = progress or Silent()
-    comparison = compare(original, candidate, val, batch_size=batch_size, threads=threads, progress=progress)
+    # One session per model, used for the accuracy pass and then for the timing.
+    sessions = _open_pair(original, candidate, threads)
+    comparison = compare(sessions["original"], sessions["candidate"], val, batch_size=batch_size, progress=progress)
     verdict = decide(comparison, budget)
-    feeds = next(batches(val, batch_size)).feeds
-    timed = measure_latency({"original": original, "candidate": candidate}, feeds, threads=threads,
-                            repeats=latency_repeats)
-    latency = {k: v.__dict__ for k, v in timed.items()}
-    latency["ratio"] = timed["candidate"].median_ms / timed["original"].median_ms
+    feeds = next(batches(val, batch_size)).feeds  # compare has checked that val is not empty
+    latency = _timed(sessions, feeds, threads, latency_repeats)
     latency["batch_size"] = int(next(iter(feeds.values())).shape[0])
     latency["threads"] = threads
     size = {
@@ -165,28 +164,53 @@ def check(
     }
     int8_view = None
     if int8:
-        from dataclasses import asdict
-
-        from .quantize import LOSSY_WEIGHT, quantize_int8, weight_losses
-
-        source = calib if calib is not None else val
-        with progress.task("quantizing to int8", 2) as advance:
-            q_orig = quantize_int8(original, (b.feeds for b in batches(source, batch_size)))
-            advance(1)
-            q_cand = quantize_int8(candidate, (b.feeds for b in batches(source, batch_size)))
-            advance(1)
-        q_comp = compare(q_orig, q_cand, val, batch_size=batch_size, threads=threads)
-        q_time = measure_latency({"original": q_orig, "candidate": q_cand}, feeds, threads=threads,
-                                 repeats=latency_repeats)
-        int8_view = {
-            "comparison": q_comp.to_dict(),
-            "latency": {k: v.__dict__ for k, v in q_time.items()}
-            | {"ratio": q_time["candidate"].median_ms / q_time["original"].median_ms},
-            "size": {"original_bytes": serialized_size(q_orig), "candidate_bytes": serialized_size(q_cand)},
-            "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/quantize.py)",
-            # layers whose int8 weights lose much of an input channel (one channel sets the row's scale)
-            "lossy_weights": [asdict(w) for w in weight_losses(candidate, q_cand)
-                              if w.median_input_error > LOSSY_WEIGHT],
-        }
+        int8_view = _int8_view(original, candidate, val, calib if calib is not None else val, feeds,
+                               batch_size=batch_size, threads=threads, repeats=latency_repeats, progress=progress)
     return CheckResult(comparison=comparison, verdict=verdict, budget=budget, latency=latency, size=size,
                        int8=int8_view)
+
+
+def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: int) -> dict:
+    from .record import open_session
+
+    return {role: open_session(model, threads=threads, what=f"the {role} model")
+            for role, model in (("original", original), ("candidate", candidate))}
+
+
+def _timed(sessions: dict, feeds: dict, threads: int, repeats: int) -> dict:
+    """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
+    from .latency import measure_latency
+
+    timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats)
+    ratio = timed["candidate"].median_ms / timed["original"].median_ms
+    return {k: v.__dict__ for k, v in timed.items()} | {"ratio": ratio}
+
+
+def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Dataset, source: Dataset, feeds: dict, *,
+               batch_size: int, threads: int, repeats: int, progress) -> dict:
+    """Accuracy, latency and size of int8-quantized copies of both models, calibrated on ``source``."""
+    from dataclasses import asdict
+
+    from .data import batches
+    from .evaluate import compare
+    from .latency import serialized_size
+    from .quantize import LOSSY_WEIGHT, quantize_int8, quantize_int8_with_losses
+
+    with progress.task("quantizing to int8", 2) as advance:
+        q_orig = quantize_int8(original, (b.feeds for b in batches(source, batch_size)))
+        advance(1)
+        q_cand = quantize_int8_with_losses(candidate, (b.feeds for b in batches(source, batch_size)))
+        advance(1)
+    sessions = _open_pair(q_orig, q_cand.model, threads)
+    q_comp = compare(sessions["original"], sessions["candidate"], val, batch_size=batch_size)
+    losses = q_cand.weight_losses
+    return {
+        "comparison": q_comp.to_dict(),
+        "latency": _timed(sessions, feeds, threads, repeats),
+        "size": {"original_bytes": serialized_size(q_orig), "candidate_bytes": serialized_size(q_cand.model)},
+        "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/quantize.py)",
+        # layers whose int8 weights lose much of an input channel (one channel sets the row's scale),
+        # measured by the quantizer against the float weights it quantized; null when that check failed
+        "lossy_weights": None if losses is None else [asdict(w) for w in losses
+                                                      if w.median_input_error > LOSSY_WEIGHT],
+    }

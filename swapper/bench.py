@@ -60,17 +60,19 @@ import numpy as np
 import onnxruntime as ort
 
 from . import api
-from .bench_measure import (RUNGS, floor_model, int8_view, plain_pass_seconds, quality_ladder, speed,
-                            tool_cost)
-from .bench_memory import memory_section
+from .bench_measure import (RUNGS, FamilyRun, floor_model, int8_original, int8_view, original_reference,
+                            plain_pass_seconds, quality_ladder, speed, tool_cost)
+from .bench_memory import memory_ratios, memory_section
 from .bench_report import write_markdown, write_plots
 from .bench_targets import check_targets
 from .data import Dataset, batches, subset
 from .demo import DEMO_DIR
 from .errors import SwapperError, UsageError
-from .model_io import load_model, save_model
+from .evaluate import Reference
+from .model_io import LoadedModel, atomic_write_bytes, load_model, save_model
 from .pipeline import utc_stamp
-from .plan import make_plan
+from .plan import Plan, make_plan
+from .stats import json_safe
 
 logger = logging.getLogger(__name__)
 
@@ -96,9 +98,9 @@ def machine_info() -> dict:
             "onnxruntime": ort.__version__, "numpy": np.__version__, "platform": platform.platform()}
 
 
-def families_for(model, sites, *, quick: bool) -> list[tuple[str, str | None]]:
-    """(family name, ``to`` for api.swap): the per-site default surrogates, then relu."""
-    targets = sorted({s.target for s in make_plan(model, sites).swaps})
+def families_for(plan: Plan, *, quick: bool) -> list[tuple[str, str | None]]:
+    """(family name, ``to`` for api.swap): the default plan's per-site surrogates, then relu."""
+    targets = sorted({s.target for s in plan.swaps})
     if not targets:
         return []
     first = (targets[0], targets[0]) if len(targets) == 1 else ("default", None)
@@ -128,29 +130,28 @@ def _folder(out_root: Path) -> tuple[Path, str]:
     return folder, stamp
 
 
-def _bench_model(name: str, path: Path, calib: Dataset, val: Dataset, *, synthetic: bool, calib_path: Path | None,
-                 settings: dict, log, memory_extra: dict) -> dict:
+def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *, synthetic: bool,
+                 calib_path: Path | None, settings: dict, log, memory_extra: dict) -> dict:
     """Every measurement for one model (all families, then memory)."""
-    loaded = load_model(path)
-    sites = api.scan(loaded).sites
-    fams = families_for(loaded.model, sites, quick=settings["quick"])
-    entry = {"name": name, "path": str(path), "synthetic": synthetic, "calib_samples": calib.n,
-             "val_samples": val.n, "sites": [s.site_id for s in make_plan(loaded.model, sites).swaps],
-             "families": [], "memory": None}
+    plan = make_plan(loaded.model, api.scan(loaded).sites)
+    fams = families_for(plan, quick=settings["quick"])
+    entry = {"name": name, "path": str(loaded.path), "synthetic": synthetic, "calib_samples": calib.n,
+             "val_samples": val.n, "sites": [s.site_id for s in plan.swaps], "families": [], "memory": None}
     if not fams:
         log(f"{name}: nothing to swap, skipped")
-        entry["memory"] = {"factors": [], "ratio_16_1": None, "ratio_last_1": None, "peak_ratio_last_1": None,
-                           "time_ratio_last_1": None}
+        entry["memory"] = {"factors": [], **memory_ratios({}, [])}
         return entry
     batch = settings["batch_size"]
     lat_batches = sorted({1, min(batch, val.n)})
-    plain = plain_pass_seconds(loaded.model, calib, batch_size=batch)
+    # The original runs over val once; every rung and int8 model of every family is compared with that pass.
+    original = original_reference(loaded.model, val, batch_size=batch)
+    plain = plain_pass_seconds(original.session, calib, batch_size=batch)
     log(f"{name}: plain pass over {calib.n} calibration samples {plain:.4f}s")
-    q_original = None
+    int8_cache: dict = {}  # the int8 original, quantized and scored once per model
     for family, to in fams:
         flog = lambda msg, f=family: log(f"{name} [{f}] {msg}")  # noqa: E731
-        run = quality_ladder(loaded, calib, val, to=to, rungs=tuple(settings["rungs"]), batch_size=batch,
-                             seed=SEED, log=flog)
+        run = quality_ladder(loaded, calib, val, original=original, to=to, rungs=tuple(settings["rungs"]),
+                             batch_size=batch, seed=SEED, log=flog)
         fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
                "notes": run.notes}
         entry["families"].append(fam)
@@ -161,27 +162,35 @@ def _bench_model(name: str, path: Path, calib: Dataset, val: Dataset, *, synthet
         fam["cost"] = tool_cost(run.swap_result, plain)
         flog(f"cost: calibration {fam['cost']['total_s']:.3f}s = {fam['cost']['ratio_total']:.1f}x plain pass")
         floor = floor_model(loaded, run.swap_result)
-        fam["speed"] = speed(loaded.model, run.swapped, floor, val, batch_sizes=lat_batches,
+        fam["speed"] = speed(original.session, run.swapped, floor, val, batch_sizes=lat_batches,
                              repeats=settings["repeats"])
         flog("speed: " + ", ".join(f"batch {b} ratio {s['ratio']:.3f}" for b, s in fam["speed"].items()))
-        try:
-            from .quantize import quantize_int8
-
-            feeds = lambda: (b.feeds for b in batches(calib, batch))  # noqa: E731
-            if q_original is None:  # one int8 original per model, shared by the families
-                q_original = quantize_int8(loaded.model, feeds())
-            q_swapped = quantize_int8(run.swapped, feeds())
-            fam["int8"] = int8_view(loaded.model, q_original, q_swapped, val, batch_sizes=lat_batches,
-                                    repeats=settings["repeats"], batch_size=batch)
-            flog(f"int8: {fam['int8']['metric']} {fam['int8']['original']} -> {fam['int8']['swapped']}")
-        except SwapperError as exc:
-            fam["notes"].append(f"int8 not measured: {exc}")
-            flog(f"int8 not measured: {exc}")
-    spec = {"model": str(path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
+        _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch, lat_batches=lat_batches,
+                    repeats=settings["repeats"], log=flog)
+    spec = {"model": str(loaded.path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
             "to": fams[0][1], **memory_extra}
     entry["memory"] = memory_section(spec, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
     entry["memory"]["base_samples"] = memory_extra.get("base") or calib.n
     return entry
+
+
+def _bench_int8(fam: dict, run: FamilyRun, loaded: LoadedModel, original: Reference, int8_cache: dict, calib: Dataset,
+                val: Dataset, *, batch: int, lat_batches: list[int], repeats: int, log) -> None:
+    """Fill ``fam["int8"]``, or note why it could not be measured (quantization is allowed to fail)."""
+    from .quantize import quantize_int8
+
+    feeds = lambda: (b.feeds for b in batches(calib, batch))  # noqa: E731
+    try:
+        if "original" not in int8_cache:  # stays unset after a failure: the next family tries again
+            int8_cache["original"] = int8_original(original, quantize_int8(loaded.model, feeds()), val,
+                                                   batch_size=batch)
+        q_swapped = quantize_int8(run.swapped, feeds())
+        fam["int8"] = int8_view(original, int8_cache["original"], q_swapped, val, batch_sizes=lat_batches,
+                                repeats=repeats, batch_size=batch)
+        log(f"int8: {fam['int8']['metric']} {fam['int8']['original']} -> {fam['int8']['swapped']}")
+    except SwapperError as exc:
+        fam["notes"].append(f"int8 not measured: {exc}")
+        log(f"int8 not measured: {exc}")
 
 
 def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None) -> list[tuple[Path, Path, Path | None]]:
@@ -231,7 +240,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
         val_ds = api.load_data(val_path, loaded) if val_path else calib_ds
         calib_ds = subset(calib_ds, mode["calib"]) if mode["calib"] else calib_ds
         val_ds = subset(val_ds, mode["val"]) if mode["val"] else val_ds
-        entry = _bench_model(model_path.stem, model_path, calib_ds, val_ds, synthetic=False, calib_path=calib_path,
+        entry = _bench_model(model_path.stem, loaded, calib_ds, val_ds, synthetic=False, calib_path=calib_path,
                              settings=settings, log=log,
                              memory_extra={"base": mode["calib"]} if mode["calib"] else {})
         if val_path is None:
@@ -241,8 +250,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
     if scale:
         results["models"].append(_bench_scale(folder, settings, quick, log))
     results["targets"] = check_targets(results)
-    (folder / "results.json").write_text(json.dumps(results, indent=2, sort_keys=False, default=_json_default) + "\n",
-                                         encoding="utf-8")
+    _write_json(results, folder / "results.json", log)
     write_markdown(results, folder / "results.md")
     for png in write_plots(results, folder):
         log(f"plot: {png}")
@@ -267,15 +275,14 @@ def _bench_scale(folder: Path, settings: dict, quick: bool, log) -> dict:
     # The memory runs regenerate the same seeded inputs in the child and take the first memory_base of them:
     # 16x of the full 256 would stream ~20 GB of recorded tensors through the disk cache.
     extra = {"synthetic_n": cfg["calib"], "synthetic_seed": cfg["calib_seed"], "base": cfg["memory_base"]}
-    return _bench_model("scale_16x_conv_silu", path, calib, val, synthetic=True, calib_path=None,
+    return _bench_model("scale_16x_conv_silu", load_model(path), calib, val, synthetic=True, calib_path=None,
                         settings=settings, log=log, memory_extra=extra)
 
 
-def _json_default(obj):
-    if isinstance(obj, np.generic):
-        return obj.item()
-    if isinstance(obj, np.ndarray):
-        return obj.tolist()
-    if isinstance(obj, Path):
-        return str(obj)
-    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+def _write_json(results: dict, path: Path, log) -> None:
+    """Plain JSON types only, NaN/Inf as null (strict JSON; each replacement logged), written atomically."""
+    notes: list[str] = []
+    payload = json_safe(results, notes, "results")
+    for note in notes:
+        log(f"results.json: {note}")
+    atomic_write_bytes((json.dumps(payload, indent=2, allow_nan=False) + "\n").encode("utf-8"), path)

@@ -3,6 +3,9 @@
 Transformation: (loaded model, calibration set, validation set, family) ->
 plain dicts for the ``swapper.bench/1`` results (see swapper/bench.py):
 
+- ``original_reference``: the original run once over the validation set; every
+  rung and int8 model of every family is compared with its stored outputs, and
+  its session is the one timed;
 - ``quality_ladder``: validation top-1 accuracy (agreement without labels) of
   the original and of five increasingly complete swaps (naive, local,
   sequential, sequential + bias correction, + consumer refit);
@@ -10,9 +13,11 @@ plain dicts for the ``swapper.bench/1`` results (see swapper/bench.py):
   calibration set (the yardstick the tool's own cost is divided by);
 - ``tool_cost``: the calibration timings of the sequential + bias rung over it;
 - ``speed``: interleaved latency of original, swapped and Identity-floor models;
-- ``int8_view``: the same comparison after int8 quantization of both models.
+- ``int8_original`` / ``int8_view``: the same comparison after int8
+  quantization of both models (the int8 original scored once per model).
 
 Timing always uses one onnxruntime thread; latency uses full graph optimisation.
+Each model gets one session, reused for every batch size it is timed at.
 """
 from __future__ import annotations
 
@@ -22,12 +27,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
+import onnxruntime as ort
 
 from . import api
 from .data import Dataset, batches
 from .errors import SwapperError
-from .evaluate import compare
-from .latency import measure_latency
+from .evaluate import Reference, compare, reference
+from .latency import measure_latency, open_sessions
 from .model_io import LoadedModel
 from .record import open_session
 from .rewrite import rewrite_identity_floor
@@ -69,9 +75,14 @@ def metric_for(val: Dataset) -> str:
     return "accuracy" if val.labels is not None else "agreement"
 
 
-def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, to: str | None, rungs: tuple[str, ...],
-                   batch_size: int, seed: int = 0, log=None) -> FamilyRun:
-    """Score every rung in ``rungs`` on ``val``; keep the sequential + bias candidate for timing."""
+def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int) -> Reference:
+    """The original's outputs on ``val`` (one pass per model, shared by every family) and its session."""
+    return reference(model, val, batch_size=batch_size, threads=THREADS)
+
+
+def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, to: str | None,
+                   rungs: tuple[str, ...], batch_size: int, seed: int = 0, log=None) -> FamilyRun:
+    """Score every rung in ``rungs`` on ``val`` against ``original``; keep the sequential + bias candidate."""
     metric = metric_for(val)
     ladder: dict = {"metric": metric, "original": None}
     notes: list[str] = []
@@ -88,9 +99,10 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, to: str
             ladder[rung] = None
             notes.append(f"{rung}: {exc}")
             continue
-        comp = compare(loaded.model, result.candidate, val, batch_size=batch_size, threads=THREADS)
-        original, score = _score(comp, metric)
-        ladder["original"] = original
+        comp = compare(original, result.candidate, val, batch_size=batch_size, threads=THREADS)
+        original_score, score = _score(comp, metric)
+        if ladder["original"] is None:  # every rung is compared with the same stored outputs: same score
+            ladder["original"] = original_score
         ladder[rung] = score
         if rung == "sequential_bias":
             run.swapped, run.swap_result = result.candidate, result
@@ -108,17 +120,17 @@ def _fmt(x: float | None) -> str:
     return "-" if x is None else f"{100 * x:.2f}%"
 
 
-def plain_pass_seconds(model: onnx.ModelProto, calib: Dataset, *, batch_size: int, runs: int = 3) -> float:
-    """Median wall time of one onnxruntime pass of ``model`` over ``calib`` (one thread, batched)."""
-    session = open_session(model, threads=THREADS)
-    feeds = [b.feeds for b in batches(calib, batch_size)]  # batching is not what we time
+def plain_pass_seconds(session: ort.InferenceSession, calib: Dataset, *, batch_size: int, runs: int = 3) -> float:
+    """Median wall time of one pass of the original's ``session`` (one thread) over ``calib``, batched."""
     names = [i.name for i in session.get_inputs()]
-    session.run(None, {n: feeds[0][n] for n in names})  # first call allocates; not part of a pass
+    # batching and building the feed dicts is not what we time
+    feeds = [{n: b.feeds[n] for n in names} for b in batches(calib, batch_size)]
+    session.run(None, feeds[0])  # first call allocates; not part of a pass
     times = []
     for _ in range(runs):
         t0 = time.perf_counter()
         for f in feeds:
-            session.run(None, {n: f[n] for n in names})
+            session.run(None, f)
         times.append(time.perf_counter() - t0)
     return float(np.median(times))
 
@@ -145,13 +157,14 @@ def _first_feeds(ds: Dataset, batch: int) -> dict[str, np.ndarray]:
     return next(batches(ds, batch)).feeds
 
 
-def speed(original: onnx.ModelProto, swapped: onnx.ModelProto, floor: onnx.ModelProto, val: Dataset, *,
-          batch_sizes: list[int], repeats: int) -> dict:
+def speed(original: ort.InferenceSession | onnx.ModelProto, swapped: onnx.ModelProto, floor: onnx.ModelProto,
+          val: Dataset, *, batch_sizes: list[int], repeats: int) -> dict:
     """Median latency (ms) of original / swapped / floor per batch size, and the saving achieved."""
+    sessions = open_sessions({"original": original, "swapped": swapped, "floor": floor}, threads=THREADS,
+                             graph_optimization="all")
     out = {}
     for bs in batch_sizes:
-        timed = measure_latency({"original": original, "swapped": swapped, "floor": floor},
-                                _first_feeds(val, bs), threads=THREADS, repeats=repeats, graph_optimization="all")
+        timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats)
         t_o, t_s, t_f = (timed[k].median_ms for k in ("original", "swapped", "floor"))
         row = {
             "original_ms": t_o, "swapped_ms": t_s, "floor_ms": t_f,
@@ -174,20 +187,36 @@ def floor_model(loaded: LoadedModel, result: api.SwapResult) -> onnx.ModelProto:
     return rewrite_identity_floor(loaded.model, [s for s in result.sites if s.id in chosen])
 
 
-def int8_view(original: onnx.ModelProto, q_original: onnx.ModelProto, q_swapped: onnx.ModelProto, val: Dataset,
+@dataclass(frozen=True)
+class Int8Original:
+    """The int8 copy of a model's original: opened and scored once, shared by the model's families."""
+
+    session: ort.InferenceSession
+    score: float | None  # accuracy, or top-1 agreement with the fp32 original
+
+
+def _int8_score(original: Reference, q_session: ort.InferenceSession, val: Dataset, batch_size: int) -> float | None:
+    comp = compare(original, q_session, val, batch_size=batch_size)
+    return _score(comp, metric_for(val))[1]
+
+
+def int8_original(original: Reference, q_original: onnx.ModelProto, val: Dataset, *, batch_size: int) -> Int8Original:
+    """Open and score the int8 original (against the fp32 original's stored outputs)."""
+    session = open_session(q_original, threads=THREADS)
+    return Int8Original(session=session, score=_int8_score(original, session, val, batch_size))
+
+
+def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.ModelProto, val: Dataset,
               *, batch_sizes: list[int], repeats: int, batch_size: int) -> dict:
     """Accuracy (or agreement with the fp32 original) and latency of int8 original vs int8 swapped."""
-    metric = metric_for(val)
-    scores = {}
-    for name, q in (("original", q_original), ("swapped", q_swapped)):
-        comp = compare(original, q, val, batch_size=batch_size, threads=THREADS)
-        scores[name] = _score(comp, metric)[1]
-    view = {"metric": metric, "original": scores["original"], "swapped": scores["swapped"],
+    swapped = open_session(q_swapped, threads=THREADS)
+    scores = {"original": q_original.score, "swapped": _int8_score(original, swapped, val, batch_size)}
+    view = {"metric": metric_for(val), "original": scores["original"], "swapped": scores["swapped"],
             "delta_pp": None if None in scores.values() else 100.0 * (scores["swapped"] - scores["original"]),
             "speed": {}}
+    sessions = {"original": q_original.session, "swapped": swapped}
     for bs in batch_sizes:
-        timed = measure_latency({"original": q_original, "swapped": q_swapped}, _first_feeds(val, bs),
-                                threads=THREADS, repeats=repeats)
+        timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats)
         t_o, t_s = timed["original"].median_ms, timed["swapped"].median_ms
         view["speed"][str(bs)] = {"original_ms": t_o, "swapped_ms": t_s, "ratio": t_s / t_o}
     return view

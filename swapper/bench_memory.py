@@ -93,13 +93,26 @@ def memory_section(spec: dict, factors: list[int], log=None) -> dict:
         if log:
             log(f"memory {times}x: " + (f"+{row['delta_kib'] / 1024:.1f} MiB, {row['wall_s']:.2f}s"
                                          if "delta_kib" in row else row["error"]))
-    first, last = out.get(str(factors[0]), {}), out.get(str(factors[-1]), {})
+    return out | memory_ratios(out, factors)
+
+
+def memory_ratios(rows: dict, factors: list[int]) -> dict:
+    """Largest factor over the first: memory delta, peak RSS and wall time (None unless both ran).
+
+    ``ratio_16_1`` is ``ratio_last_1`` under the name the bench schema documents
+    for the full run, so it is null unless the largest factor is 16. No factors
+    (a model with nothing to swap) gives every ratio as None.
+    """
+    first = rows.get(str(factors[0]), {}) if factors else {}
+    last = rows.get(str(factors[-1]), {}) if factors else {}
     ok = "delta_kib" in first and "delta_kib" in last
-    out["ratio_last_1"] = last["delta_kib"] / first["delta_kib"] if ok and first["delta_kib"] > 0 else None
-    out["ratio_16_1"] = out["ratio_last_1"] if factors[-1] == 16 else None
-    out["peak_ratio_last_1"] = last["peak_kib"] / first["peak_kib"] if ok and first["peak_kib"] > 0 else None
-    out["time_ratio_last_1"] = last["wall_s"] / first["wall_s"] if ok and first["wall_s"] > 0 else None
-    return out
+
+    def ratio(key: str) -> float | None:
+        return last[key] / first[key] if ok and first[key] > 0 else None
+
+    last_1 = ratio("delta_kib")
+    return {"ratio_last_1": last_1, "ratio_16_1": last_1 if factors and factors[-1] == 16 else None,
+            "peak_ratio_last_1": ratio("peak_kib"), "time_ratio_last_1": ratio("wall_s")}
 
 
 if __name__ == "__main__":  # the fresh process side of measure_memory

@@ -10,6 +10,7 @@ import logging
 from pathlib import Path
 
 from .bench_measure import RUNGS
+from .model_io import atomic_write_bytes
 
 logger = logging.getLogger(__name__)
 
@@ -58,22 +59,42 @@ def _ladder(results: dict) -> list[str]:
     return lines
 
 
+# Columns of the tool-cost table: (results key, header, format); times in seconds unless scaled.
+COST_COLUMNS = [("plain_pass_s", "plain pass ms", ".3f"), ("record_s", "record s", ".3f"),
+                ("segments_s", "segments s", ".3f"), ("fit_s", "fit s", ".3f"),
+                ("bias_correction_s", "bias corr. s", ".3f"), ("total_s", "total s", ".3f"),
+                ("ratio_record", "record ×pass", ".1f"), ("ratio_fit", "fit ×pass", ".1f"),
+                ("ratio_total", "total ×pass", ".1f")]
+
+
+def _cost_cells(cost: dict | None) -> list[str]:
+    """One row of the tool-cost table; dashes for a family whose cost was not measured (cost null)."""
+    cost = cost or {}
+    cells = []
+    for key, _, spec in COST_COLUMNS:
+        value = cost.get(key)
+        if key == "plain_pass_s" and value is not None:
+            value = 1e3 * value  # one pass is milliseconds, not seconds
+        cells.append(_num(value, spec))
+    return cells
+
+
 def _cost(results: dict) -> list[str]:
-    rows = []
-    for m in results["models"]:
-        for f in m["families"]:
-            c = f["cost"]
-            rows.append([_model_label(m), f["family"], _num(None if c["plain_pass_s"] is None else 1e3 * c["plain_pass_s"], ".3f"), _num(c["record_s"], ".3f"),
-                         _num(c["segments_s"], ".3f"), _num(c["fit_s"], ".3f"), _num(c["bias_correction_s"], ".3f"),
-                         _num(c["total_s"], ".3f"), _num(c["ratio_record"], ".1f"), _num(c["ratio_fit"], ".1f"),
-                         _num(c["ratio_total"], ".1f")])
-    head = ["model", "family", "plain pass ms", "record s", "segments s", "fit s", "bias corr. s", "total s",
-            "record ×pass", "fit ×pass", "total ×pass"]
+    rows = [[_model_label(m), f["family"]] + _cost_cells(f["cost"]) for m in results["models"] for f in m["families"]]
+    head = ["model", "family"] + [title for _, title, _ in COST_COLUMNS]
     lines = ["## Tool cost", "", "Sequential + bias-correction calibration over the calibration set, against one "
              "plain onnxruntime pass of the original over the same set (1 thread, same batch, median of 3).", ""]
-    lines += _table(head, rows)
+    return lines + _table(head, rows) + _memory(results)
+
+
+def _memory(results: dict) -> list[str]:
+    """The memory table, over the models whose memory was measured (a model with nothing to swap has no factors)."""
+    measured = [m for m in results["models"] if m["memory"] and m["memory"]["factors"]]
+    if not measured:
+        return []
+    factors = measured[0]["memory"]["factors"]
     rows = []
-    for m in results["models"]:
+    for m in measured:
         mem = m["memory"]
         cells = [_model_label(m)]
         for k in mem["factors"]:
@@ -83,13 +104,10 @@ def _cost(results: dict) -> list[str]:
         cells += [_num(mem["ratio_last_1"], ".3f"), _num(mem["peak_ratio_last_1"], ".3f"),
                   _num(mem["time_ratio_last_1"], ".2f")]
         rows.append(cells)
-    if results["models"]:
-        factors = results["models"][0]["memory"]["factors"]
-        head = ["model"] + [f"{k}× (samples: peak−baseline, time)" for k in factors] + [
-            f"mem {factors[-1]}×/1×", f"peak RSS {factors[-1]}×/1×", f"time {factors[-1]}×/1×"]
-        lines += ["Peak memory of calibration, each factor in a fresh process (peak = ru_maxrss, baseline = RSS "
-                  "right before calibrating).", ""] + _table(head, rows)
-    return lines
+    head = ["model"] + [f"{k}× (samples: peak−baseline, time)" for k in factors] + [
+        f"mem {factors[-1]}×/1×", f"peak RSS {factors[-1]}×/1×", f"time {factors[-1]}×/1×"]
+    return ["Peak memory of calibration, each factor in a fresh process (peak = ru_maxrss, baseline = RSS "
+            "right before calibrating).", ""] + _table(head, rows)
 
 
 def _speed(results: dict) -> list[str]:
@@ -137,8 +155,7 @@ def write_markdown(results: dict, path: Path) -> Path:
     if results["settings"]["quick"]:
         lines += ["**Quick run: tiny settings, a smoke test, not a measurement.**", ""]
     lines += _ladder(results) + _cost(results) + _speed(results) + _targets(results)
-    path.write_text("\n".join(lines), encoding="utf-8")
-    return path
+    return atomic_write_bytes("\n".join(lines).encode("utf-8"), path)
 
 
 def write_plots(results: dict, folder: Path) -> list[Path]:

@@ -7,31 +7,28 @@ the rule in plain words and the figure that decided).
 
 Both models run batch by batch in onnxruntime on the CPU with fixed threading.
 Only per-sample vectors (predictions, correctness) are kept; output tensors are
-folded into streaming accumulators and dropped.
+folded into streaming accumulators and dropped. To judge several candidates
+against one original, :func:`reference` runs the original once and keeps its
+outputs; ``compare`` takes that :class:`Reference` in place of the model.
 """
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 from dataclasses import dataclass, field
+
 import numpy as np
 import onnx
-from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
+import onnxruntime as ort
 
 from . import stats
-from .data import Dataset, batches
-from .errors import BadDataError, BadModelError, UsageError
+from .data import Batch, Dataset, batches
+from .errors import BadDataError, UsageError, first_line
 from .progress import Silent
-from .record import open_session
+from .record import ORT_ERRORS, open_session
 
 logger = logging.getLogger(__name__)
 
-# onnxruntime raises its own exception classes (not RuntimeError subclasses).
-_ORT_ERRORS = tuple(
-    getattr(_ort_state, name)
-    for name in ("Fail", "InvalidArgument", "InvalidGraph", "InvalidProtobuf", "NoSuchFile",
-                 "NotImplemented", "RuntimeException")
-    if hasattr(_ort_state, name)
-)
 TOPK_MIN_CLASSES = 10  # top-5 is only informative with clearly more than 5 classes (common practice, no source)
 
 
@@ -61,15 +58,6 @@ class Comparison:
     signature_changed: bool = False
     signature_reason: str = ""
     notes: list[str] = field(default_factory=list)
-    # per-sample vectors (kept for reports / re-analysis; not written by to_dict)
-    pred_original: np.ndarray | None = field(default=None, repr=False)
-    pred_candidate: np.ndarray | None = field(default=None, repr=False)
-    correct_original: np.ndarray | None = field(default=None, repr=False)
-    correct_candidate: np.ndarray | None = field(default=None, repr=False)
-
-    @property
-    def has_labels(self) -> bool:
-        return self.task == "classification"
 
     def to_dict(self) -> dict:
         """Plain-JSON view: no numpy types; non-finite floats become null with a note."""
@@ -101,14 +89,61 @@ class Comparison:
 # --------------------------------------------------------------------------- running
 
 
-def _session(model: onnx.ModelProto | bytes, role: str, threads: int):
-    if not isinstance(model, (bytes, onnx.ModelProto)):
-        raise TypeError(f"{role} model must be an onnx.ModelProto or serialized bytes, got {type(model).__name__}")
-    try:
-        return open_session(model, threads=threads)
-    except _ORT_ERRORS as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise BadModelError(f"onnxruntime cannot load the {role} model: {first}") from None
+Model = onnx.ModelProto | bytes | ort.InferenceSession
+Outputs = Callable[[Batch], list[np.ndarray]]
+
+
+def _session(model: Model, role: str, threads: int) -> ort.InferenceSession:
+    if isinstance(model, ort.InferenceSession):
+        return model  # opened by the caller, who also times it: one session per model
+    return open_session(model, threads=threads, what=f"the {role} model")
+
+
+def _runner(sess: ort.InferenceSession, role: str) -> Outputs:
+    """Batch -> the session's outputs on it; the input names are looked up once, not per batch."""
+    names = [i.name for i in sess.get_inputs()]
+
+    def run(batch: Batch) -> list[np.ndarray]:
+        missing = [n for n in names if n not in batch.feeds]
+        if missing:
+            raise BadDataError(f"the dataset has no array for {role} model input {missing[0]!r}")
+        try:
+            return sess.run(None, {n: batch.feeds[n] for n in names})
+        except ORT_ERRORS as exc:
+            raise BadDataError(f"onnxruntime failed running the {role} model on the data: {first_line(exc)}") \
+                from None
+
+    return run
+
+
+@dataclass(frozen=True)
+class Reference:
+    """The original model's outputs over one dataset, computed once by :func:`reference`.
+
+    Passed to :func:`compare` in place of the original, it stands in for running
+    the original again, so N candidates cost N + 1 passes instead of 2N. It holds
+    every output of every batch in RAM: meant for class scores and other small
+    outputs (a model with image-sized outputs over a large set is better compared
+    with the model itself, which streams).
+    """
+
+    session: ort.InferenceSession  # the original's session: its output signature is what candidates must keep
+    dataset: Dataset
+    batch_size: int
+    outputs: dict[int, list[np.ndarray]]  # first sample of each batch -> the original's outputs on it
+
+    def outputs_for(self, batch: Batch) -> list[np.ndarray]:
+        return self.outputs[batch.start]
+
+
+def reference(original: Model, dataset: Dataset, *, batch_size: int = 64, threads: int = 1) -> Reference:
+    """Run ``original`` over ``dataset`` once and keep its outputs, to compare several candidates with."""
+    if batch_size < 1:
+        raise UsageError(f"batch size must be >= 1, got {batch_size}")
+    sess = _session(original, "original", threads)
+    run = _runner(sess, "original")
+    return Reference(session=sess, dataset=dataset, batch_size=batch_size,
+                     outputs={batch.start: run(batch) for batch in batches(dataset, batch_size)})
 
 
 def _signature(sess) -> list[tuple[str, str, list]]:
@@ -134,18 +169,6 @@ def signature_difference(sess_orig, sess_cand) -> str:
     return ""
 
 
-def _run(sess, feeds: dict[str, np.ndarray], role: str) -> list[np.ndarray]:
-    names = [i.name for i in sess.get_inputs()]
-    missing = [n for n in names if n not in feeds]
-    if missing:
-        raise BadDataError(f"the dataset has no array for {role} model input {missing[0]!r}")
-    try:
-        return sess.run(None, {n: feeds[n] for n in names})
-    except _ORT_ERRORS as exc:
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise BadDataError(f"onnxruntime failed running the {role} model on the data: {first}") from None
-
-
 def _as_scores(out: np.ndarray) -> np.ndarray | None:
     """(batch, classes) view of a class-score output, or None if it is not one."""
     if out.ndim < 2 or not np.issubdtype(out.dtype, np.floating):
@@ -160,8 +183,8 @@ def _nonfinite(outputs: list[np.ndarray]) -> bool:
 
 
 def compare(
-    original: onnx.ModelProto | bytes,
-    candidate: onnx.ModelProto | bytes,
+    original: Model | Reference,
+    candidate: Model,
     dataset: Dataset,
     *,
     batch_size: int = 64,
@@ -176,11 +199,21 @@ def compare(
     ``progress`` is a reporter with ``task(description, total)`` (see
     ``swapper.progress``); silent by default. ``level``/``interval_method``/``seed``
     configure the accuracy-difference interval (see ``stats.paired_accuracy_difference``).
+    Either model may be an open onnxruntime session (``threads`` then does not
+    apply to it); ``original`` may be a :class:`Reference` made on the same
+    dataset object with the same batch size, whose stored outputs are used.
     """
     if batch_size < 1:
         raise UsageError(f"batch size must be >= 1, got {batch_size}")
-    sess_o = _session(original, "original", threads)
+    if isinstance(original, Reference):
+        if original.dataset is not dataset or original.batch_size != batch_size:
+            raise UsageError("a Reference compares only on the dataset and batch size it was made with")
+        sess_o, run_o = original.session, original.outputs_for
+    else:
+        sess_o = _session(original, "original", threads)
+        run_o = _runner(sess_o, "original")
     sess_c = _session(candidate, "candidate", threads)
+    run_c = _runner(sess_c, "candidate")
     reason = signature_difference(sess_o, sess_c)
     out_names = [o.name for o in sess_o.get_outputs()]
     labels_given = dataset.labels is not None
@@ -199,8 +232,8 @@ def compare(
 
     with reporter.task("comparing models", dataset.n) as advance:
         for batch in batches(dataset, batch_size):
-            outs_o = _run(sess_o, batch.feeds, "original")
-            outs_c = _run(sess_c, batch.feeds, "candidate")
+            outs_o = run_o(batch)
+            outs_c = run_c(batch)
             has_nonfinite |= _nonfinite(outs_c)
             orig_nonfinite |= _nonfinite(outs_o)
             for name, ro, rc in zip(out_names, outs_o, outs_c):
@@ -218,7 +251,7 @@ def compare(
                 preds["original"].append(np.argmax(so, axis=1))
                 preds["candidate"].append(np.argmax(sc, axis=1))
                 if task == "classification":
-                    lab = np.asarray(batch.labels).reshape(-1).astype(np.int64)
+                    lab = np.asarray(batch.labels).reshape(-1).astype(np.int64, copy=False)  # batches give int64
                     if lab.size != so.shape[0] or lab.min() < 0 or lab.max() >= so.shape[1]:
                         raise BadDataError(
                             f"labels of samples {batch.start}..{batch.stop - 1} do not fit "
@@ -268,13 +301,11 @@ def _pick_task(scores: np.ndarray | None, first: np.ndarray, labels: bool, targe
 def _fill_classification(comp: Comparison, preds, labels_seen, top5, level, method, seed) -> None:
     po = np.concatenate(preds["original"])
     pc = np.concatenate(preds["candidate"])
-    comp.pred_original, comp.pred_candidate = po, pc
     comp.agreement = stats.accuracy(po == pc)
     if comp.task != "classification":
         return
     labels = np.concatenate(labels_seen)
     co, cc = po == labels, pc == labels
-    comp.correct_original, comp.correct_candidate = co, cc
     comp.top1_original, comp.top1_candidate = stats.accuracy(co), stats.accuracy(cc)
     if top5["original"]:
         comp.top5_original = stats.accuracy(np.concatenate(top5["original"]))

@@ -24,18 +24,11 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 
-from .errors import BadDataError, BadModelError, UsageError
+from .errors import BadDataError, UsageError, first_line
+from .graph import subgraphs
+from .record import open_session
 
 logger = logging.getLogger(__name__)
-
-# Names a user can give for onnxruntime's graph optimisation levels.
-OPTIMIZATION_LEVELS: dict[str, ort.GraphOptimizationLevel] = {
-    "all": ort.GraphOptimizationLevel.ORT_ENABLE_ALL,
-    "extended": ort.GraphOptimizationLevel.ORT_ENABLE_EXTENDED,
-    "basic": ort.GraphOptimizationLevel.ORT_ENABLE_BASIC,
-    "disabled": ort.GraphOptimizationLevel.ORT_DISABLE_ALL,
-}
-
 
 @dataclass(frozen=True)
 class LatencyStats:
@@ -91,31 +84,6 @@ def time_interleaved(
     return durations
 
 
-def _session_options(threads: int, graph_optimization: str) -> ort.SessionOptions:
-    if graph_optimization not in OPTIMIZATION_LEVELS:
-        known = ", ".join(OPTIMIZATION_LEVELS)
-        raise UsageError(f"unknown graph optimisation level {graph_optimization!r} (known: {known})")
-    if threads < 1:
-        raise UsageError(f"threads must be >= 1, got {threads}")
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = threads
-    # One inter-op thread: the graphs we time are chains, and parallel branches
-    # would make the numbers depend on scheduling luck.
-    options.inter_op_num_threads = 1
-    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    options.graph_optimization_level = OPTIMIZATION_LEVELS[graph_optimization]
-    options.log_severity_level = 3  # errors only; warnings would flood benchmark logs
-    return options
-
-
-def _model_bytes(name: str, model: onnx.ModelProto | bytes) -> bytes:
-    if isinstance(model, (bytes, bytearray)):
-        return bytes(model)
-    if isinstance(model, onnx.ModelProto):
-        return model.SerializeToString()
-    raise BadModelError(f"model {name!r} is a {type(model).__name__}, expected onnx.ModelProto or bytes")
-
-
 def _feeds_for(name: str, session: ort.InferenceSession, feeds: Mapping[str, np.ndarray]) -> dict:
     wanted = [i.name for i in session.get_inputs()]
     missing = [i for i in wanted if i not in feeds]
@@ -124,8 +92,30 @@ def _feeds_for(name: str, session: ort.InferenceSession, feeds: Mapping[str, np.
     return {i: feeds[i] for i in wanted}
 
 
+def open_sessions(
+    models: Mapping[str, onnx.ModelProto | bytes | ort.InferenceSession],
+    *,
+    threads: int = 1,
+    graph_optimization: str = "all",
+) -> dict[str, ort.InferenceSession]:
+    """One CPU session per model name (sorted); sessions given are passed through as they are.
+
+    Opening a session costs far more than one timed call, so callers that time
+    the same models on several feeds, or that also run them for accuracy, open
+    them once here and hand the sessions to :func:`measure_latency`.
+    """
+    if not models:
+        raise UsageError("no models given to time")
+    return {
+        name: models[name] if isinstance(models[name], ort.InferenceSession)
+        else open_session(models[name], threads=threads, graph_optimization=graph_optimization,
+                          what=f"model {name!r}")
+        for name in sorted(models)
+    }
+
+
 def measure_latency(
-    models: Mapping[str, onnx.ModelProto | bytes],
+    models: Mapping[str, onnx.ModelProto | bytes | ort.InferenceSession],
     feeds: Mapping[str, np.ndarray],
     *,
     threads: int = 1,
@@ -137,28 +127,21 @@ def measure_latency(
     """Time every model on the same ``feeds`` with interleaved runs; stats per model name.
 
     One onnxruntime CPU session per model (``intra_op_num_threads=threads``,
-    one inter-op thread, ``graph_optimization`` in all|extended|basic|disabled).
-    Feeds a model does not declare as inputs are ignored. The result is keyed
-    in sorted-name order. Raises UsageError for bad settings, BadModelError if
-    onnxruntime cannot load a model, BadDataError if the feeds do not fit it.
+    one inter-op thread, ``graph_optimization`` in all|extended|basic|disabled);
+    a model given as an open session is timed with the settings it was opened
+    with (see :func:`open_sessions`). Feeds a model does not declare as inputs
+    are ignored. The result is keyed in sorted-name order. Raises UsageError
+    for bad settings, BadModelError if onnxruntime cannot load a model,
+    BadDataError if the feeds do not fit it.
     """
-    if not models:
-        raise UsageError("no models given to time")
-    options = _session_options(threads, graph_optimization)
+    sessions = open_sessions(models, threads=threads, graph_optimization=graph_optimization)
     runners: dict[str, Callable[[], object]] = {}
-    for name in sorted(models):
-        data = _model_bytes(name, models[name])
-        try:
-            session = ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
-        except Exception as exc:  # onnxruntime raises several private exception types
-            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-            raise BadModelError(f"onnxruntime cannot load model {name!r}: {first}") from None
+    for name, session in sessions.items():
         model_feeds = _feeds_for(name, session, feeds)
         try:
             session.run(None, model_feeds)  # fail on bad data here, not mid-benchmark
-        except Exception as exc:
-            first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-            raise BadDataError(f"model {name!r} cannot run on the feeds: {first}") from None
+        except Exception as exc:  # onnxruntime's private error types, and pybind's for unconvertible arrays
+            raise BadDataError(f"model {name!r} cannot run on the feeds: {first_line(exc)}") from None
         runners[name] = _bind(session, model_feeds)
     logger.info(
         "timing %d model(s): %d warm-up + %d interleaved runs each, %d thread(s), optimisation %s",
@@ -189,18 +172,6 @@ _PACKED_4BIT = {
 }
 
 
-def _graphs(graph: onnx.GraphProto):
-    """The graph and, depth first, every subgraph held in node attributes (If/Loop/Scan bodies)."""
-    yield graph
-    for node in graph.node:
-        for a in node.attribute:
-            if a.type == onnx.AttributeProto.GRAPH:
-                yield from _graphs(a.g)
-            elif a.type == onnx.AttributeProto.GRAPHS:
-                for sub in a.graphs:
-                    yield from _graphs(sub)
-
-
 def model_summary(model: onnx.ModelProto) -> dict:
     """Node count, op counts (sorted by op name) and initializer bytes, subgraphs included.
 
@@ -209,7 +180,7 @@ def model_summary(model: onnx.ModelProto) -> dict:
     """
     counts: Counter[str] = Counter()
     init_bytes = 0
-    for graph in _graphs(model.graph):
+    for graph in [model.graph, *subgraphs(model.graph)]:
         for node in graph.node:
             key = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
             counts[key] += 1

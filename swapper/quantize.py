@@ -59,7 +59,9 @@ from onnxruntime.quantization import (
 )
 from onnxruntime.quantization.shape_inference import quant_pre_process
 
-from .errors import BadDataError, BadModelError
+from .errors import BadDataError, BadModelError, first_line
+from .graph import subgraphs
+from .model_io import default_opset
 
 logger = logging.getLogger(__name__)
 
@@ -89,11 +91,6 @@ class WeightLoss:
     zeroed: float  # share of the non-zero weights that became exactly 0
     dominant_input: int | None  # input channel holding the largest weight of most output channels
     dominant_share: float  # share of the output channels whose scale that input channel sets
-
-
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__
 
 
 def _input_dtypes(model: onnx.ModelProto) -> dict[str, np.dtype]:
@@ -140,7 +137,7 @@ def _preprocess(src: Path, dst: Path) -> Path:
         quant_pre_process(str(src), str(dst), skip_symbolic_shape=True)
         return dst
     except Exception as exc:  # optional step: quantizing the raw model still works
-        logger.warning("quantization pre-processing skipped (%s); quantizing the model as given", _first_line(exc))
+        logger.warning("quantization pre-processing skipped (%s); quantizing the model as given", first_line(exc))
         return src
 
 
@@ -151,7 +148,7 @@ def _per_channel_ready(model: onnx.ModelProto) -> onnx.ModelProto:
     the opset, which is invalid below 13 (measured with onnxruntime 1.32: the
     output fails onnx.checker), so older models are upgraded first.
     """
-    opset = next((o.version for o in model.opset_import if o.domain in ("", "ai.onnx")), 0)
+    opset = default_opset(model) or 0
     if opset >= MIN_PER_CHANNEL_OPSET:
         return model
     logger.info("opset %d < %d: converting a copy to opset %d for per-channel scales",
@@ -160,19 +157,17 @@ def _per_channel_ready(model: onnx.ModelProto) -> onnx.ModelProto:
         return onnx.version_converter.convert_version(model, MIN_PER_CHANNEL_OPSET)
     except Exception as exc:
         raise BadModelError(
-            f"cannot convert opset {opset} to {MIN_PER_CHANNEL_OPSET} for per-channel int8: {_first_line(exc)}"
+            f"cannot convert opset {opset} to {MIN_PER_CHANNEL_OPSET} for per-channel int8: {first_line(exc)}"
         ) from None
 
 
 def _drop_unused_opsets(model: onnx.ModelProto) -> None:
     """Remove opset imports no node uses (pre-processing lists every onnxruntime domain)."""
     used = {""} | {f.domain or "" for f in model.functions}
-    pending = [model.graph] + [f for f in model.functions]
-    while pending:  # graphs and function bodies, including If/Loop/Scan subgraphs
-        for node in pending.pop().node:
-            used.add(node.domain or "")
-            for a in node.attribute:
-                pending.extend([a.g] if a.type == onnx.AttributeProto.GRAPH else list(a.graphs))
+    # graphs and function bodies, with their If/Loop/Scan bodies (subgraphs only reads ``.node``)
+    for body in [model.graph, *model.functions]:
+        for graph in [body, *subgraphs(body)]:
+            used.update(node.domain or "" for node in graph.node)
     keep = [o for o in model.opset_import if (o.domain or "") in used]
     del model.opset_import[:]
     model.opset_import.extend(keep)
@@ -286,6 +281,16 @@ def _warn_lossy(losses: list[WeightLoss]) -> None:
         )
 
 
+@dataclass
+class Int8Result:
+    """A quantized model and what int8 rounding did to its weights."""
+
+    model: onnx.ModelProto
+    # per int8 weight, against the float model that was actually quantized (after opset conversion and
+    # pre-processing, which may fold or rename weights); None when the check itself failed
+    weight_losses: list[WeightLoss] | None
+
+
 def quantize_int8(
     model: onnx.ModelProto,
     calib_batches: Iterable[dict[str, np.ndarray]],
@@ -299,14 +304,23 @@ def quantize_int8(
     are no batches or they do not fit the model, BadModelError if the model
     cannot be quantized. ``model`` itself is left unchanged.
     """
+    return quantize_int8_with_losses(model, calib_batches, per_channel=per_channel).model
+
+
+def quantize_int8_with_losses(
+    model: onnx.ModelProto,
+    calib_batches: Iterable[dict[str, np.ndarray]],
+    *,
+    per_channel: bool = True,
+) -> Int8Result:
+    """:func:`quantize_int8`, also handing back the weight losses it measured (and warned about)."""
     if model.ByteSize() > PROTOBUF_LIMIT:
         raise BadModelError("model exceeds 2 GiB; int8 quantization of external-data models is not supported")
-    dtypes = _input_dtypes(model)
     batches = iter(calib_batches)
     first = next(batches, None)
     if first is None:
         raise BadDataError("no calibration batches given for int8 quantization")
-    reader = _BatchReader(itertools.chain([first], batches), dtypes)
+    reader = _BatchReader(itertools.chain([first], batches), _input_dtypes(model))
 
     source = _per_channel_ready(model) if per_channel else model
 
@@ -315,35 +329,46 @@ def quantize_int8(
         src = folder / "float.onnx"
         src.write_bytes(source.SerializeToString())  # a copy on disk: the caller's proto stays untouched
         prepared = _preprocess(src, folder / "prepared.onnx")
-        out = folder / "int8.onnx"
-        try:
-            quantize_static(
-                str(prepared),
-                str(out),
-                reader,
-                quant_format=QuantFormat.QDQ,
-                per_channel=per_channel,
-                activation_type=ACTIVATION_TYPE,
-                weight_type=WEIGHT_TYPE,
-                calibrate_method=CalibrationMethod.MinMax,
-                calibration_providers=["CPUExecutionProvider"],
-            )
-        except BadDataError:
-            raise
-        except Exception as exc:  # the quantizer raises plain Exceptions and onnxruntime errors
-            raise BadModelError(f"int8 quantization failed: {_first_line(exc)}") from None
-        try:
-            quantized = onnx.load(str(out))
-        except Exception as exc:
-            raise BadModelError(f"quantized model could not be read back: {_first_line(exc)}") from None
-        # Compare with the weights that were actually quantized (pre-processing may fold some).
-        try:
-            _warn_lossy(weight_losses(onnx.load(str(prepared)), quantized))
-        except Exception as exc:  # a diagnostic only: never fail the quantization over it
-            logger.debug("int8 weight-loss check skipped: %s", _first_line(exc))
+        quantized = _quantize_file(prepared, folder / "int8.onnx", reader, per_channel)
+        losses = _checked_losses(prepared, quantized)
     _drop_unused_opsets(quantized)
     logger.info(
         "quantized to int8 QDQ on %d calibration batch(es): %d -> %d nodes",
         reader.count, len(model.graph.node), len(quantized.graph.node),
     )
-    return quantized
+    return Int8Result(model=quantized, weight_losses=losses)
+
+
+def _quantize_file(prepared: Path, out: Path, reader: _BatchReader, per_channel: bool) -> onnx.ModelProto:
+    """Run onnxruntime's static quantizer from ``prepared`` to ``out`` and load the result."""
+    try:
+        quantize_static(
+            str(prepared),
+            str(out),
+            reader,
+            quant_format=QuantFormat.QDQ,
+            per_channel=per_channel,
+            activation_type=ACTIVATION_TYPE,
+            weight_type=WEIGHT_TYPE,
+            calibrate_method=CalibrationMethod.MinMax,
+            calibration_providers=["CPUExecutionProvider"],
+        )
+    except BadDataError:
+        raise
+    except Exception as exc:  # the quantizer raises plain Exceptions and onnxruntime errors
+        raise BadModelError(f"int8 quantization failed: {first_line(exc)}") from None
+    try:
+        return onnx.load(str(out))
+    except Exception as exc:
+        raise BadModelError(f"quantized model could not be read back: {first_line(exc)}") from None
+
+
+def _checked_losses(prepared: Path, quantized: onnx.ModelProto) -> list[WeightLoss] | None:
+    """Weight losses against the weights actually quantized (pre-processing may fold some); warn on lossy ones."""
+    try:
+        losses = weight_losses(onnx.load(str(prepared)), quantized)
+    except Exception as exc:  # a diagnostic only: never fail the quantization over it
+        logger.debug("int8 weight-loss check skipped: %s", first_line(exc))
+        return None
+    _warn_lossy(losses)
+    return losses

@@ -1,7 +1,8 @@
 """Run a model with onnxruntime and hand out the tensors inside it.
 
 ``expose`` adds internal tensors as extra graph outputs (on a copy);
-``open_session`` builds a deterministic CPU session; ``TensorCache`` keeps
+``open_session`` builds a deterministic CPU session (every session of the
+package is opened here); ``TensorCache`` keeps
 recorded tensors batch by batch, in RAM up to a byte budget and on disk beyond
 it, so memory does not grow with the calibration set past the budget (spilled
 reads come back one batch at a time with ``np.fromfile``).
@@ -18,23 +19,68 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 from onnx import helper
+from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
 
+from .errors import BadModelError, UsageError, first_line
 from .graph import GraphIndex
 
 logger = logging.getLogger(__name__)
 
 
-def open_session(model: onnx.ModelProto | bytes, *, threads: int = 1, optimize: bool = True) -> ort.InferenceSession:
-    """A CPU session with fixed threading, so repeated runs give identical numbers."""
+# Names a user can give for onnxruntime's graph optimisation levels.
+OPTIMIZATION_LEVELS: dict[str, ort.GraphOptimizationLevel] = {
+    "all": ort.GraphOptimizationLevel.ORT_ENABLE_ALL,
+    "extended": ort.GraphOptimizationLevel.ORT_ENABLE_EXTENDED,
+    "basic": ort.GraphOptimizationLevel.ORT_ENABLE_BASIC,
+    "disabled": ort.GraphOptimizationLevel.ORT_DISABLE_ALL,
+}
+
+# onnxruntime raises its own exception classes (not RuntimeError subclasses).
+ORT_ERRORS: tuple[type[Exception], ...] = tuple(
+    getattr(_ort_state, name)
+    for name in ("Fail", "InvalidArgument", "InvalidGraph", "InvalidProtobuf", "NoSuchFile",
+                 "NotImplemented", "RuntimeException")
+    if hasattr(_ort_state, name)
+)
+
+
+def session_options(threads: int = 1, graph_optimization: str = "all") -> ort.SessionOptions:
+    """Fixed threading and one optimisation level, so repeated runs give identical numbers."""
+    if graph_optimization not in OPTIMIZATION_LEVELS:
+        known = ", ".join(OPTIMIZATION_LEVELS)
+        raise UsageError(f"unknown graph optimisation level {graph_optimization!r} (known: {known})")
+    if threads < 1:
+        raise UsageError(f"threads must be >= 1, got {threads}")
     options = ort.SessionOptions()
     options.intra_op_num_threads = threads
+    # One inter-op thread in sequential mode: parallel branches would make results and
+    # timings depend on scheduling luck.
     options.inter_op_num_threads = 1
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    options.log_severity_level = 3
-    if not optimize:
-        options.graph_optimization_level = ort.GraphOptimizationLevel.ORT_DISABLE_ALL
-    data = model if isinstance(model, bytes) else model.SerializeToString()
-    return ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
+    options.graph_optimization_level = OPTIMIZATION_LEVELS[graph_optimization]
+    options.log_severity_level = 3  # errors only; warnings would flood calibration and benchmark logs
+    return options
+
+
+def open_session(model: onnx.ModelProto | bytes | bytearray, *, threads: int = 1, graph_optimization: str = "all",
+                 what: str = "the model") -> ort.InferenceSession:
+    """A CPU session of ``model`` with :func:`session_options`.
+
+    ``graph_optimization`` is one of all|extended|basic|disabled. Raises
+    UsageError for bad settings and BadModelError (one line, naming ``what``)
+    when onnxruntime cannot load the model.
+    """
+    options = session_options(threads, graph_optimization)
+    if isinstance(model, onnx.ModelProto):
+        data = model.SerializeToString()
+    elif isinstance(model, (bytes, bytearray)):
+        data = bytes(model)
+    else:  # a caller's bug, not a bad model file
+        raise TypeError(f"{what} must be an onnx.ModelProto or serialized bytes, got {type(model).__name__}")
+    try:
+        return ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
+    except ORT_ERRORS as exc:
+        raise BadModelError(f"onnxruntime cannot load {what}: {first_line(exc)}") from None
 
 
 def expose(model: onnx.ModelProto, names: list[str]) -> onnx.ModelProto:
@@ -78,7 +124,7 @@ class TensorCache:
         self._meta: dict[str, tuple[np.dtype, tuple, int]] = {}  # name -> (dtype, row shape, rows)
         self._files: dict[str, str] = {}  # spilled tensors
         self._chunks: dict[str, list[np.ndarray]] = {}  # tensors in RAM: their appended batches
-        self._starts: dict[str, list[int]] = {}  # first row of each chunk, plus the end
+        self._starts: dict[str, list[int]] = {}  # first row of each chunk (the end is the row count in _meta)
         self._held = 0  # bytes in RAM
         self._counter = 0  # file names are never reused, even after a discard
         self.bytes_written = 0  # to disk, over the cache's life (spills included)
@@ -125,7 +171,7 @@ class TensorCache:
             chunk = array if owned and array.flags.c_contiguous else np.array(array, order="C", copy=True)
             chunk.flags.writeable = False
             self._chunks.setdefault(name, []).append(chunk)
-            self._starts.setdefault(name, [0]).append(rows + chunk.shape[0])
+            self._starts.setdefault(name, []).append(rows)
             self._held += chunk.nbytes
             self.peak_bytes_held = max(self.peak_bytes_held, self._held)
         self._meta[name] = (dtype, row_shape, rows + array.shape[0])
@@ -151,13 +197,13 @@ class TensorCache:
         stop = max(start, min(stop, rows))  # past the end: no rows (a negative count would read the whole file)
         if name not in self._files:
             return self._read_chunks(name, start, stop, dtype, row_shape)
-        per_row = int(np.prod(row_shape, dtype=np.int64)) if row_shape else 1
+        per_row = int(np.prod(row_shape, dtype=np.int64))  # 1 for scalar rows: the product of no dims
         offset = start * per_row * dtype.itemsize
         data = np.fromfile(self._file(name), dtype=dtype, count=(stop - start) * per_row, offset=offset)
         return data.reshape((stop - start,) + tuple(row_shape))
 
     def _read_chunks(self, name: str, start: int, stop: int, dtype, row_shape) -> np.ndarray:
-        chunks, starts = self._chunks.get(name, []), self._starts.get(name, [0])
+        chunks, starts = self._chunks.get(name, []), self._starts.get(name, [])
         first = max(0, bisect.bisect_right(starts, start) - 1)
         parts = []
         for i in range(first, len(chunks)):

@@ -12,6 +12,8 @@ from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
 from typer.testing import CliRunner
 
+from swapper.bench_memory import memory_ratios
+from swapper.bench_report import COST_COLUMNS, _cost
 from swapper.cli import app
 from swapper.demo import DEMO_DIR
 from swapper.scale_model import INPUT_NAME, build_scale_model, scale_inputs
@@ -125,3 +127,30 @@ def test_scale_model_spreads_predictions_over_classes():
     # common practice, no source: agreement only says something if the original's top-1 varies across samples
     assert len(np.unique(pred)) >= 4
     assert np.bincount(pred).max() <= 0.6 * len(pred)
+
+
+def _model_entry(name: str, families: list[dict], factors: list[int]) -> dict:
+    """A results.json model entry with just what the Markdown tables read."""
+    memory = {"factors": factors, **memory_ratios({}, factors)}
+    for k in factors:
+        memory[str(k)] = {"times": k, "samples": 10 * k, "delta_kib": 2048.0, "peak_kib": 90000.0, "wall_s": 0.5 * k}
+    return {"name": name, "synthetic": False, "families": families, "memory": memory}
+
+
+def test_cost_table_shows_dashes_for_a_family_without_cost():
+    # a family whose ladder left no sequential + bias candidate has "cost": null (swapper/bench.py docstring)
+    model = _model_entry("m", [{"family": "relu", "cost": None}], [1, 2])
+    lines = _cost({"models": [model]})
+    row = next(line for line in lines if line.startswith("| m | relu |"))
+    assert row.count("–") == len(COST_COLUMNS)
+
+
+def test_memory_table_skips_a_model_with_nothing_to_swap():
+    # a model with nothing to swap has "memory": {"factors": [], ...}; listed first, it must not break the table
+    skipped = _model_entry("nothing", [], [])
+    measured = _model_entry("m", [], [1, 4])
+    lines = _cost({"models": [skipped, measured]})
+    assert any(line.startswith("| model | 1× ") and "mem 4×/1×" in line for line in lines)
+    assert any(line.startswith("| m | 10: +2.0 MiB") for line in lines)
+    assert not any(line.startswith("| nothing |") for line in lines)
+    assert not [line for line in _cost({"models": [skipped]}) if "MiB" in line or "×/1×" in line]

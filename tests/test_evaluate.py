@@ -16,7 +16,7 @@ from sklearn.metrics import accuracy_score, mean_absolute_error, mean_squared_er
 from swapper import stats
 from swapper.data import Dataset, input_specs, load_dataset
 from swapper.errors import BadDataError, BadModelError, UsageError
-from swapper.evaluate import Budget, Comparison, compare, decide
+from swapper.evaluate import Budget, Comparison, compare, decide, reference
 
 FEATURES, CLASSES, N = 8, 12, 203  # N not a multiple of the batch size: the last batch is short
 
@@ -114,6 +114,19 @@ def test_different_models_match_direct_onnxruntime(setup):
     assert got["sqnr_db"] == pytest.approx(10 * np.log10(np.sum(ref_o.astype(np.float64) ** 2) / np.sum(e**2)),
                                            rel=1e-6)
     json.dumps(comp.to_dict(), allow_nan=False)  # RFC 8259: no NaN/Infinity in JSON
+
+
+def test_reference_gives_the_same_comparison_as_the_model(setup):
+    ds = _dataset(setup["x"], setup["labels"])
+    direct = compare(setup["original"], setup["perturbed"], ds, batch_size=37)
+    ref = reference(setup["original"], ds, batch_size=37)
+    # the original's outputs are stored once and stand in for running it again: identical figures
+    for candidate in (setup["perturbed"], setup["perturbed"].SerializeToString()):
+        assert compare(ref, candidate, ds, batch_size=37).to_dict() == direct.to_dict()
+    with pytest.raises(UsageError, match="batch size"):
+        compare(ref, setup["perturbed"], ds, batch_size=32)
+    with pytest.raises(UsageError, match="dataset"):
+        compare(ref, setup["perturbed"], _dataset(setup["x"], setup["labels"]), batch_size=37)
 
 
 def test_to_dict_is_json_safe_with_notes(setup):

@@ -65,30 +65,32 @@ def inputs_unchanged(ws):
         assert sha256(path) == ws["hashes"][name], name
 
 
+def _swap_cnn(ws, label: str, *options):
+    """`swapper swap` of meter_cnn_silu with --calib/--val and ``options``; (result, output path, report folder)."""
+    out = ws["root"] / f"{label}.onnx"
+    rep = ws["root"] / f"rep-{label}"
+    result = invoke("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, *options,
+                    "--report", rep)
+    return result, out, rep
+
+
+# meter_cnn_silu swapped to relu without calibration help: rejected (see the module docstring)
+CRUDE = ("--to", "relu", "--no-bias-correction", "--mode", "local")
+
+
 @pytest.fixture(scope="module")
 def approved(ws):
-    out = ws["root"] / "approved.onnx"
-    rep = ws["root"] / "rep-approved"
-    result = invoke("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, "--report", rep)
-    return result, out, rep
+    return _swap_cnn(ws, "approved")
 
 
 @pytest.fixture(scope="module")
 def rejected(ws):
-    out = ws["root"] / "rejected.onnx"
-    rep = ws["root"] / "rep-rejected"
-    result = invoke("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL,
-                    "--to", "relu", "--no-bias-correction", "--mode", "local", "--report", rep)
-    return result, out, rep
+    return _swap_cnn(ws, "rejected", *CRUDE)
 
 
 @pytest.fixture(scope="module")
 def forced(ws):
-    out = ws["root"] / "forced.onnx"
-    rep = ws["root"] / "rep-forced"
-    result = invoke("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL,
-                    "--to", "relu", "--no-bias-correction", "--mode", "local", "--force", "--report", rep)
-    return result, out, rep
+    return _swap_cnn(ws, "forced", *CRUDE, "--force")
 
 
 def test_approved_swap_exits_0_and_writes_the_model(ws, approved):

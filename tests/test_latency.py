@@ -18,47 +18,30 @@ from onnx import TensorProto, helper, numpy_helper
 
 from swapper.errors import BadDataError, BadModelError, UsageError
 from swapper.latency import (
-    OPTIMIZATION_LEVELS,
     LatencyStats,
-    _session_options,
     measure_latency,
     model_summary,
+    open_sessions,
     serialized_size,
     stats_from_ns,
     time_interleaved,
 )
+from swapper.record import OPTIMIZATION_LEVELS, session_options
+
+from small_models import conv_classifier  # tests/ helper
 
 
 def _cnn(activation: str = "Relu", opset: int = 17) -> onnx.ModelProto:
     """Conv -> act -> Conv -> act -> GlobalAveragePool -> Flatten -> Gemm, fixed random weights."""
     rng = np.random.default_rng(7)
-    inits = [
-        numpy_helper.from_array(rng.normal(0, 0.3, (4, 3, 3, 3)).astype(np.float32), "w1"),
-        numpy_helper.from_array(rng.normal(0, 0.1, (4,)).astype(np.float32), "b1"),
-        numpy_helper.from_array(rng.normal(0, 0.3, (6, 4, 3, 3)).astype(np.float32), "w2"),
-        numpy_helper.from_array(rng.normal(0, 0.3, (3, 6)).astype(np.float32), "wf"),
-        numpy_helper.from_array(np.array([2, 6], dtype=np.int64), "unused_shape"),
-    ]
-    nodes = [
-        helper.make_node("Conv", ["x", "w1", "b1"], ["c1"], pads=[1, 1, 1, 1]),
-        helper.make_node(activation, ["c1"], ["a1"]),
-        helper.make_node("Conv", ["a1", "w2"], ["c2"], pads=[1, 1, 1, 1]),
-        helper.make_node(activation, ["c2"], ["a2"]),
-        helper.make_node("GlobalAveragePool", ["a2"], ["g"]),
-        helper.make_node("Flatten", ["g"], ["f"]),
-        helper.make_node("Gemm", ["f", "wf"], ["y"], transB=1),
-    ]
-    graph = helper.make_graph(
-        nodes,
-        "cnn",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 3, 8, 8])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 3])],
-        inits,
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
-    model.ir_version = 8
-    onnx.checker.check_model(model, full_check=True)
-    return model
+    weights = {
+        "w1": rng.normal(0, 0.3, (4, 3, 3, 3)).astype(np.float32),
+        "b1": rng.normal(0, 0.1, (4,)).astype(np.float32),
+        "w2": rng.normal(0, 0.3, (6, 4, 3, 3)).astype(np.float32),
+        "wf": rng.normal(0, 0.3, (3, 6)).astype(np.float32),
+        "unused_shape": np.array([2, 6], dtype=np.int64),
+    }
+    return conv_classifier(weights, size=8, activations=(activation, activation), opset=opset)
 
 
 @pytest.fixture(scope="module")
@@ -99,6 +82,14 @@ def test_measure_latency_interleaves_with_fake_clock(feeds):
     deciles_a = statistics.quantiles([4 * k + 1 for k in k_a], n=10, method="inclusive")
     assert result["a"].p10_ms == pytest.approx(deciles_a[0])
     assert result["a"].p90_ms == pytest.approx(deciles_a[-1])
+
+
+def test_open_sessions_are_timed_as_given(feeds):
+    sessions = open_sessions({"b": _cnn("Relu"), "a": _cnn("Tanh")})
+    assert list(sessions) == ["a", "b"] and open_sessions(sessions)["a"] is sessions["a"]  # passed through
+    for batch in (1, 2):  # the same sessions timed on several feeds (batch sizes)
+        result = measure_latency(sessions, {"x": feeds["x"][:batch]}, warmup=0, repeats=2)
+        assert list(result) == ["a", "b"] and all(s.runs == 2 for s in result.values())
 
 
 def test_time_interleaved_round_robin_order():
@@ -147,7 +138,7 @@ def test_session_options_mapping():
     }
     assert OPTIMIZATION_LEVELS == expected
     for name, level in expected.items():
-        options = _session_options(2, name)
+        options = session_options(2, name)
         assert options.graph_optimization_level == level
         assert options.intra_op_num_threads == 2
         assert options.inter_op_num_threads == 1

@@ -14,7 +14,9 @@ from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
 from swapper.errors import BadDataError
-from swapper.quantize import LOSSY_WEIGHT, quantize_int8, weight_losses
+from swapper.quantize import LOSSY_WEIGHT, quantize_int8, quantize_int8_with_losses, weight_losses
+
+from small_models import conv_classifier  # tests/ helper
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 
@@ -22,33 +24,15 @@ DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 def _cnn(opset: int = 17) -> onnx.ModelProto:
     """Conv -> Relu -> Conv -> GlobalAveragePool -> Flatten -> Gemm with fixed random weights."""
     rng = np.random.default_rng(11)
-    inits = [
-        numpy_helper.from_array(rng.normal(0, 0.3, (8, 3, 3, 3)).astype(np.float32), "w1"),
-        numpy_helper.from_array(rng.normal(0, 0.1, (8,)).astype(np.float32), "b1"),
-        numpy_helper.from_array(rng.normal(0, 0.2, (16, 8, 3, 3)).astype(np.float32), "w2"),
-        numpy_helper.from_array(rng.normal(0, 0.1, (16,)).astype(np.float32), "b2"),
-        numpy_helper.from_array(rng.normal(0, 0.3, (5, 16)).astype(np.float32), "wf"),
-        numpy_helper.from_array(rng.normal(0, 0.1, (5,)).astype(np.float32), "bf"),
-    ]
-    nodes = [
-        helper.make_node("Conv", ["x", "w1", "b1"], ["c1"], pads=[1, 1, 1, 1], name="conv1"),
-        helper.make_node("Relu", ["c1"], ["r1"], name="relu1"),
-        helper.make_node("Conv", ["r1", "w2", "b2"], ["c2"], pads=[1, 1, 1, 1], name="conv2"),
-        helper.make_node("GlobalAveragePool", ["c2"], ["g"], name="gap"),
-        helper.make_node("Flatten", ["g"], ["f"], name="flat"),
-        helper.make_node("Gemm", ["f", "wf", "bf"], ["y"], transB=1, name="fc"),
-    ]
-    graph = helper.make_graph(
-        nodes,
-        "cnn",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 3, 16, 16])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 5])],
-        inits,
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
-    model.ir_version = 7
-    onnx.checker.check_model(model, full_check=True)
-    return model
+    weights = {
+        "w1": rng.normal(0, 0.3, (8, 3, 3, 3)).astype(np.float32),
+        "b1": rng.normal(0, 0.1, (8,)).astype(np.float32),
+        "w2": rng.normal(0, 0.2, (16, 8, 3, 3)).astype(np.float32),
+        "b2": rng.normal(0, 0.1, (16,)).astype(np.float32),
+        "wf": rng.normal(0, 0.3, (5, 16)).astype(np.float32),
+        "bf": rng.normal(0, 0.1, (5,)).astype(np.float32),
+    }
+    return conv_classifier(weights, size=16, activations=("Relu", None), opset=opset, ir_version=7)
 
 
 def _calib(n_batches: int = 8, batch: int = 8, seed: int = 3) -> list[dict[str, np.ndarray]]:
@@ -387,6 +371,13 @@ def test_inflated_input_channel_is_flagged_and_costs_int8_accuracy(inflated, cap
         quantize_int8(model, _gemm_calib())
     flagged = [r.getMessage() for r in caplog.records if "lose" in r.getMessage()]
     assert len(flagged) == 1 and "'fc2'" in flagged[0] and "input channel 5" in flagged[0]
+
+
+def test_quantize_hands_back_the_losses_it_measured(fp32, int8):
+    result = quantize_int8_with_losses(fp32, _calib())
+    assert result.model.SerializeToString(deterministic=True) == int8.SerializeToString(deterministic=True)
+    # measured against the pre-processed float model, which keeps this CNN's weights as they are
+    assert [(w.node, w.weight) for w in result.weight_losses] == [(w.node, w.weight) for w in weight_losses(fp32, int8)]
 
 
 def test_demo_like_weights_stay_below_warning_threshold(fp32, int8):

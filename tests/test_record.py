@@ -61,7 +61,7 @@ def test_open_session_is_repeatable():
     model = expose(_small_model(), ["act"])
     x = np.random.default_rng(1).normal(size=(33, 4)).astype(np.float32)
     first = open_session(model).run(None, {"x": x})
-    second = open_session(model.SerializeToString(), optimize=False).run(None, {"x": x})
+    second = open_session(model.SerializeToString(), graph_optimization="disabled").run(None, {"x": x})
     # common practice, no source: two one-thread sessions of one model give bit-equal results (what
     # calibration relies on); graph optimisations may only reorder float math (tolerance)
     for a, b in zip(first, open_session(model).run(None, {"x": x})):
