@@ -108,7 +108,7 @@ def swap(
             from .refit import refit_consumers as refit
 
             base = refit(loaded.model, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
-                         threads=threads, progress=progress, result=calibration)
+                         threads=threads, progress=progress, result=calibration, **extra)
             calibration.model = base
         timings["calibrate_s"] = time.perf_counter() - t0
     elif refit_consumers:

@@ -37,7 +37,7 @@ from .graph import GraphIndex
 from .observe import ChannelObserver
 from .plan import Plan, SiteSwap
 from .progress import Silent
-from .record import MEMORY_BUDGET, TensorCache, open_session
+from .record import MEMORY_BUDGET, TensorCache, expose, open_session
 from .sites import Site
 from .splice import copy_model
 
@@ -148,10 +148,19 @@ def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
     return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 
 
-def _segment(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> onnx.ModelProto:
-    """The part of ``model`` that computes ``outputs`` from ``inputs`` (graph inputs always allowed)."""
-    extractor = Extractor(model)
-    seg = extractor.extract_model(inputs, outputs)
+def segment_model(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> onnx.ModelProto:
+    """The part of ``model`` that computes ``outputs`` from ``inputs`` (graph inputs always allowed).
+
+    Extraction needs a type for every tensor on the cut's edges: an input
+    without one is left out (the segment then starts further up, same values),
+    an output without one is typed as :func:`~swapper.record.expose` types it.
+    """
+    index = GraphIndex.of(model)
+    untyped = [t for t in outputs if t not in index.dtypes]
+    if untyped:
+        model = expose(model, untyped)
+    starts = list(dict.fromkeys(index.graph_inputs + [t for t in inputs if t in index.dtypes]))
+    seg = Extractor(model).extract_model(starts, outputs)
     # keep only the inputs the segment really reads, so we feed no more than needed
     used = {t for n in seg.graph.node for t in n.input} | set(outputs)
     kept = [v for v in seg.graph.input if v.name in used]
@@ -160,7 +169,7 @@ def _segment(model: onnx.ModelProto, inputs: list[str], outputs: list[str]) -> o
     return seg
 
 
-def _boundary_reads(index: GraphIndex, boundary: set[str], outputs: list[str]) -> list[str]:
+def boundary_reads(index: GraphIndex, boundary: set[str], outputs: list[str]) -> list[str]:
     """The ``boundary`` tensors that computing ``outputs`` reads (a backward walk stopping at the boundary)."""
     reads, seen, stack = set(), set(), list(outputs)
     while stack:
@@ -222,7 +231,7 @@ def _schedule(index: GraphIndex, by_id: dict[str, Site], levels: dict[str, int])
 
     def segment(level: int, outputs: list[str], store: dict, keys: dict[str, str]) -> _Segment:
         boundary = list(dict.fromkeys(graph_inputs + [by_id[s].output for s, lv in levels.items() if lv < level]))
-        feed = {t: keys[t] for t in _boundary_reads(index, set(boundary), outputs) if t not in graph_inputs}
+        feed = {t: keys[t] for t in boundary_reads(index, set(boundary), outputs) if t not in graph_inputs}
         for key in feed.values():
             read_at(key, level)
         return _Segment(boundary, outputs, store, feed)
@@ -263,7 +272,7 @@ def _run_segment(model: onnx.ModelProto, seg: _Segment, cache: TensorCache, data
     """Run ``seg`` of ``model`` over the data set, appending its outputs (and stored graph inputs)."""
     session, in_names = None, []
     if seg.outputs:
-        session = open_session(_segment(model, seg.boundary, seg.outputs), threads=threads)
+        session = open_session(segment_model(model, seg.boundary, seg.outputs), threads=threads)
         out_names = [o.name for o in session.get_outputs()]
         in_names = [i.name for i in session.get_inputs()]
     # batch only the data set arrays this segment reads or stores (a deep segment reads none)
