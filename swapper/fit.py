@@ -71,8 +71,8 @@ import numpy as np
 from .errors import BadDataError
 from .observe import ChannelObserver
 from .plan import NEUTRAL, PARAMS
-from .varpro import (DEGENERATE, Projected, affine_params, apply_g, canonical_params, is_homogeneous, linear_pieces,
-                     outer_solve)
+from .param_scale import affine_params, canonical_params, is_homogeneous, linear_pieces
+from .varpro import DEGENERATE, Projected, apply_g, outer_solve
 from .varpro_batched import score_rows
 
 logger = logging.getLogger(__name__)
@@ -240,10 +240,10 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     ``best`` maps "a".."d" and "mse" to (rows,) arrays: the fit so far on
     ``X``, ``Y`` (rows, n) with weights ``w``. Two steps, each re-scored on the
     data: (1) with all of a, b, c, d free, the weighted affine fit y = s·x + t,
-    written on a sloped linear piece of g (:func:`swapper.varpro.affine_params`),
+    written on a sloped linear piece of g (:func:`swapper.param_scale.affine_params`),
     is a candidate kept only when strictly better; (2) rows whose z range lies
     in one linear piece, or every row for positively homogeneous g, are
-    rewritten exactly (:func:`swapper.varpro.canonical_params`) and keep the
+    rewritten exactly (:func:`swapper.param_scale.canonical_params`) and keep the
     new values unless they score more than rounding (``SAME_MSE``) above the
     old ones or above ``mse_init``. Held parameters never change, nor do rows
     not in ``moving`` (constant x: b, c keep their start values).

@@ -17,8 +17,8 @@ from sklearn.linear_model import LinearRegression
 
 from swapper.fit import fit_channel
 from swapper.fit_batched import fit_rows
-from swapper.varpro import (BETA_MAX, BETA_MIN, MARGIN, affine_params, canonical_params, in_band,
-                            is_homogeneous, linear_pieces)
+from swapper.param_scale import MARGIN, affine_params, canonical_params, is_homogeneous, linear_pieces
+from swapper.varpro import BETA_MAX, BETA_MIN, in_band
 
 
 def onnx_op(op: str, **attrs):
