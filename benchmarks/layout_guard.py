@@ -48,7 +48,7 @@ def _scale_inputs(work: Path) -> tuple[Path, Path, Path]:
     try:  # the module's home before and after the layout move
         from swapper.bench.scale_model import build_scale_model, scale_data
     except ImportError:
-        from swapper.scale_model import build_scale_model, scale_data
+        from swapper.bench.scale_model import build_scale_model, scale_data
     model = build_scale_model()
     path = work / "scale.onnx"
     onnx.save(model, path)
@@ -68,7 +68,7 @@ def run(work: Path) -> dict:
         key = f"{model.stem}/{name}"
         dest = work / f"{model.stem}-{name}.onnx"
         report = work / f"{model.stem}-{name}-report"
-        cmd = [sys.executable, "-c", "from swapper.cli import app; app()", "swap", str(model), "-o", str(dest), "--calib", str(calib),
+        cmd = [sys.executable, "-c", "from swapper.cli.app import app; app()", "swap", str(model), "-o", str(dest), "--calib", str(calib),
                "--val", str(val), "--budget", "100", "--report", str(report), *extra]
         proc = subprocess.run(cmd, capture_output=True, text=True, cwd=work)
         if proc.returncode not in (0, 1):

@@ -8,7 +8,7 @@ models. Cost = median time / median time of Relu, timed as the calling
 thread's CPU time (onnxruntime computes on it with one thread; unlike wall
 time this does not grow while other processes hold a shared CPU).
 
-Writes swapper/resources/op_costs.json:
+Writes swapper/functions/op_costs.json:
 
     {"schema": "swapper.op_costs/1",
      "measured": {date, onnxruntime, onnx, cpu, shape, dtype, opset, threads,
@@ -48,7 +48,7 @@ from onnx import TensorProto, helper, numpy_helper
 logger = logging.getLogger(__name__)
 
 SHAPE = (64, 32, 32, 32)
-OPSET = 22  # newest default-domain opset swapper reads (swapper.model_io.MAX_OPSET)
+OPSET = 22  # newest default-domain opset swapper reads (swapper.core.model_io.MAX_OPSET)
 MS_DOMAIN = "com.microsoft"
 SQRT_2_OVER_PI = float(np.sqrt(2.0 / np.pi))
 
@@ -200,8 +200,8 @@ def registry_emitted(name: str):
     """A function the registry emits: the nodes ``Function.emit`` writes, with the parameters a swap gives it."""
 
     def build():
-        from swapper.emit import Emitter
-        from swapper.functions import get, target_params
+        from swapper.core.emit import Emitter
+        from swapper.functions.registry import get, target_params
 
         fn = get(name)
         em = Emitter(f"bench/{name}", OPSET)
@@ -218,7 +218,7 @@ def registry_emitted(name: str):
 def add_registry_surrogates() -> None:
     """Measure every registry function without a hand-built entry, as swapper emits it."""
     try:
-        from swapper.functions import REGISTRY
+        from swapper.functions.registry import REGISTRY
     except ImportError as exc:  # the package is optional for this script
         logger.warning("swapper.functions not importable (%s); surrogates not measured", exc)
         return
@@ -281,7 +281,7 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=20, help="timed runs per model per sweep")
     ap.add_argument("--sweeps", type=int, default=5, help="passes over all models")
     ap.add_argument("--warmup", type=int, default=5)
-    ap.add_argument("--out", type=Path, default=Path(__file__).resolve().parents[1] / "swapper/resources/op_costs.json")
+    ap.add_argument("--out", type=Path, default=Path(__file__).resolve().parents[1] / "swapper/functions/op_costs.json")
     args = ap.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(message)s")
 

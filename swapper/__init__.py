@@ -15,11 +15,11 @@ __all__ = ["__version__", "scan", "swap", "check", "load_data", "ScanResult", "S
 def __getattr__(name):
     # Imported lazily so `import swapper.functions` stays light (no onnxruntime session code).
     if name == "SwapperError":
-        from .errors import SwapperError
+        from swapper.errors import SwapperError
 
         return SwapperError
     if name in __all__:
-        from . import api
+        from swapper import api
 
         return getattr(api, name)
     raise AttributeError(f"module 'swapper' has no attribute {name!r}")

@@ -7,7 +7,6 @@ of them prints. Errors a user can cause raise ``swapper.errors.SwapperError``.
 """
 from __future__ import annotations
 
-import hashlib
 import logging
 import time
 from dataclasses import dataclass, field
@@ -15,14 +14,14 @@ from pathlib import Path
 
 import onnx
 
-from .calibrate import CalibrationResult, calibrate, check_mode
-from .data import Dataset, input_specs, load_dataset
-from .errors import UsageError
-from .model_io import LoadedModel, load_model
-from .plan import Plan, make_plan
-from .progress import Silent
-from .rewrite import RewriteResult, rewrite
-from .sites import Site, find_sites
+from swapper.calibrate.loop import CalibrationResult, calibrate, check_mode
+from swapper.core.model_io import LoadedModel, load_model
+from swapper.data.dataset import Dataset, input_specs, load_dataset
+from swapper.errors import UsageError
+from swapper.plan.plan import Plan, make_plan
+from swapper.progress import Silent
+from swapper.rewrite.apply import RewriteResult, rewrite
+from swapper.scan.sites import Site, find_sites
 
 logger = logging.getLogger(__name__)
 
@@ -42,14 +41,6 @@ class SwapResult:
     rewrite: RewriteResult
     calibration: CalibrationResult | None
     timings: dict[str, float] = field(default_factory=dict)
-
-
-def sha256_file(path: str | Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(chunk)
-    return digest.hexdigest()
 
 
 def _as_loaded(model: str | Path | LoadedModel) -> LoadedModel:
@@ -105,7 +96,7 @@ def swap(
                                 batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
         base = calibration.model
         if refit_consumers:
-            from .refit import refit_consumers as refit
+            from swapper.calibrate.refit import refit_consumers as refit
 
             base = refit(loaded.model, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
                          threads=threads, progress=progress, result=calibration, **extra)
@@ -144,9 +135,10 @@ def check(
     progress=None,
 ) -> CheckResult:
     """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``."""
-    from .data import batches
-    from .evaluate import Budget, compare, decide
-    from .latency import model_summary, serialized_size
+    from swapper.check.compare import compare
+    from swapper.check.gate import Budget, decide
+    from swapper.check.size import model_summary, serialized_size
+    from swapper.data.dataset import batches
 
     budget = budget or Budget()
     progress = progress or Silent()
@@ -171,7 +163,7 @@ def check(
 
 
 def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: int) -> dict:
-    from .record import open_session
+    from swapper.core.session import open_session
 
     return {role: open_session(model, threads=threads, what=f"the {role} model")
             for role, model in (("original", original), ("candidate", candidate))}
@@ -179,7 +171,7 @@ def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: i
 
 def _timed(sessions: dict, feeds: dict, threads: int, repeats: int) -> dict:
     """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
-    from .latency import measure_latency
+    from swapper.check.latency import measure_latency
 
     timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats)
     ratio = timed["candidate"].median_ms / timed["original"].median_ms
@@ -191,10 +183,14 @@ def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Datas
     """Accuracy, latency and size of int8-quantized copies of both models, calibrated on ``source``."""
     from dataclasses import asdict
 
-    from .data import batches
-    from .evaluate import compare
-    from .latency import serialized_size
-    from .quantize import LOSSY_WEIGHT, quantize_int8, quantize_int8_with_losses
+    from swapper.check.compare import compare
+    from swapper.check.int8 import (
+        LOSSY_WEIGHT,
+        quantize_int8,
+        quantize_int8_with_losses,
+    )
+    from swapper.check.size import serialized_size
+    from swapper.data.dataset import batches
 
     with progress.task("quantizing to int8", 2) as advance:
         q_orig = quantize_int8(original, (b.feeds for b in batches(source, batch_size)))
@@ -208,7 +204,7 @@ def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Datas
         "comparison": q_comp.to_dict(),
         "latency": _timed(sessions, feeds, threads, repeats),
         "size": {"original_bytes": serialized_size(q_orig), "candidate_bytes": serialized_size(q_cand.model)},
-        "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/quantize.py)",
+        "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/check/int8.py)",
         # layers whose int8 weights lose much of an input channel (one channel sets the row's scale),
         # measured by the quantizer against the float weights it quantized; null when that check failed
         "lossy_weights": None if losses is None else [asdict(w) for w in losses

@@ -1,6 +1,6 @@
 """Cheap activation functions written from their definitions, shared by the fitter tests.
 
-Independent of swapper.functions on purpose: the tests compare the package against these.
+Independent of swapper.functions.registry on purpose: the tests compare the package against these.
 """
 import numpy as np
 

@@ -4,7 +4,7 @@ from pathlib import Path
 
 from typer.testing import CliRunner
 
-from swapper.cli import app
+from swapper.cli.app import app
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 CALIB, VAL = DEMO / "calib.npz", DEMO / "val.npz"

@@ -12,16 +12,16 @@ from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
 from typer.testing import CliRunner
 
-from swapper.bench_memory import memory_ratios
-from swapper.bench_report import COST_COLUMNS, _cost
-from swapper.cli import app
-from swapper.demo import DEMO_DIR
-from swapper.scale_model import INPUT_NAME, build_scale_model, scale_inputs
-from swapper.sites import find_sites
+from swapper.bench.markdown import COST_COLUMNS, _cost
+from swapper.bench.memory import memory_ratios
+from swapper.bench.scale_model import INPUT_NAME, build_scale_model, scale_inputs
+from swapper.cli.app import app
+from swapper.data.demo import DEMO_DIR
+from swapper.scan.sites import find_sites
 
 SMALLEST = min(DEMO_DIR.glob("*.onnx"), key=lambda p: p.stat().st_size)
 
-# The fields the module docstring of swapper/bench.py documents for schema swapper.bench/1.
+# The fields the module docstring of swapper/bench/run.py documents for schema swapper.bench/1.
 TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
@@ -60,7 +60,7 @@ def quick_run(tmp_path_factory):
 
 def test_quick_bench_writes_every_documented_field(quick_run):
     folder, _ = quick_run
-    # source: the schema swapper.bench/1 as documented in the swapper/bench.py module docstring
+    # source: the schema swapper.bench/1 as documented in the swapper/bench/run.py module docstring
     data = json.loads((folder / "results.json").read_text())
     assert TOP <= set(data) and data["schema"] == "swapper.bench/1"
     assert folder.name == data["created_utc"] and len(data["created_utc"]) == len("20240101T000000Z")
@@ -138,7 +138,7 @@ def _model_entry(name: str, families: list[dict], factors: list[int]) -> dict:
 
 
 def test_cost_table_shows_dashes_for_a_family_without_cost():
-    # a family whose ladder left no sequential + bias candidate has "cost": null (swapper/bench.py docstring)
+    # a family whose ladder left no sequential + bias candidate has "cost": null (swapper/bench/run.py docstring)
     model = _model_entry("m", [{"family": "relu", "cost": None}], [1, 2])
     lines = _cost({"models": [model]})
     row = next(line for line in lines if line.startswith("| m | relu |"))

@@ -1,4 +1,4 @@
-"""Tests of swapper.calibrate: levels, sequential inputs, fitting, bias correction, streaming.
+"""Tests of swapper.calibrate.loop: levels, sequential inputs, fitting, bias correction, streaming.
 
 References: onnxruntime and ``onnx.reference.ReferenceEvaluator`` execute the
 ONNX operator spec (the original model's tensors, and the rewritten model's
@@ -22,16 +22,17 @@ from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
 
-import swapper.bias_correction as bias_correction
-import swapper.calibrate as cal
+import swapper.calibrate.bias_correction as bias_correction
+import swapper.calibrate.loop as cal
 from swapper import api
-from swapper.data import Dataset, batches, replicate, subset
-from swapper.graph import GraphIndex
-from swapper.model_io import load_model
-from swapper.plan import Plan, SiteSwap, make_plan
-from swapper.record import TensorCache, expose, open_session
-from swapper.rewrite import rewrite
-from swapper.sites import find_sites
+from swapper.core.graph import GraphIndex
+from swapper.core.model_io import load_model
+from swapper.core.session import expose, open_session
+from swapper.core.tensor_cache import TensorCache
+from swapper.data.dataset import Dataset, batches, replicate, subset
+from swapper.plan.plan import Plan, SiteSwap, make_plan
+from swapper.rewrite.apply import rewrite
+from swapper.scan.sites import find_sites
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "demo_models"
@@ -257,7 +258,7 @@ def test_calibrated_never_worse_than_start_on_demo_models(name):
         result = cal.calibrate(loaded.model, sites, plan, calib, mode=mode)
         assert [s.site_id for s in result.sites] == [s.site_id for s in plan.swaps]
         for sc in result.sites:
-            # the fitter's contract (swapper/fit.py): the start is always a candidate, so the
+            # the fitter's contract (swapper/fit/channel.py): the start is always a candidate, so the
             # fitted mse on the calibration reservoir cannot exceed the starting one
             assert np.isfinite(sc.mse_fit) and sc.mse_fit <= sc.mse_start, (name, mode, sc)
             assert sc.level >= 1 and (mode == "sequential" or sc.level == 1)
@@ -539,7 +540,7 @@ def test_schedule_last_reads_hand_built(tmp_path):
 
 
 def _small_scale(blocks: int):
-    from swapper.scale_model import build_scale_model, scale_data
+    from swapper.bench.scale_model import build_scale_model, scale_data
 
     return build_scale_model(blocks=blocks, widths=(4, 4), size=8), scale_data(64, size=8, seed=1)
 

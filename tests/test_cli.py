@@ -21,7 +21,7 @@ from onnx import numpy_helper
 from onnx.reference import ReferenceEvaluator
 from typer.testing import CliRunner
 
-from swapper.cli import app
+from swapper.cli.app import app
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 MODELS = ("meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_mish_gelutanh", "meter_mlp_tanh_sigmoid")
@@ -121,7 +121,7 @@ def test_scan_json_lists_the_documented_sites(workspace, name):
     doc = json.loads(result.stdout)
     model = onnx.load(str(path))
 
-    # source: swapper/sites.py module docstring, JSON schema "swapper.scan/1"
+    # source: swapper/scan/sites.py module docstring, JSON schema "swapper.scan/1"
     assert set(doc) == {"schema", "model", "opset", "total_cost", "sites"}
     assert doc["schema"] == "swapper.scan/1"
     assert doc["model"] == str(path)

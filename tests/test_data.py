@@ -17,8 +17,16 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper
 
-from swapper import data as D
-from swapper.data import CycledArray, InputSpec, batches, input_specs, load_dataset, replicate, subset
+from swapper.data import dataset as D
+from swapper.data.dataset import (
+    InputSpec,
+    batches,
+    input_specs,
+    load_dataset,
+    replicate,
+    subset,
+)
+from swapper.data.lazy_array import CycledArray
 from swapper.errors import BadDataError, BadModelError
 
 F32 = np.dtype(np.float32)

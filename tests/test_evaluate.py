@@ -11,12 +11,18 @@ import onnx
 import onnxruntime as ort
 import pytest
 from onnx import TensorProto, helper, numpy_helper
-from sklearn.metrics import accuracy_score, mean_absolute_error, mean_squared_error, top_k_accuracy_score
+from sklearn.metrics import (
+    accuracy_score,
+    mean_absolute_error,
+    mean_squared_error,
+    top_k_accuracy_score,
+)
 
-from swapper import stats
-from swapper.data import Dataset, input_specs, load_dataset
+from swapper.check import stats
+from swapper.check.compare import Comparison, compare, reference
+from swapper.check.gate import Budget, decide
+from swapper.data.dataset import Dataset, input_specs, load_dataset
 from swapper.errors import BadDataError, BadModelError, UsageError
-from swapper.evaluate import Budget, Comparison, compare, decide, reference
 
 FEATURES, CLASSES, N = 8, 12, 203  # N not a multiple of the batch size: the last batch is short
 

@@ -1,4 +1,4 @@
-"""Tests of swapper.observe (streaming statistics) and swapper.fit (the fitters).
+"""Tests of swapper.fit.observe (streaming statistics) and swapper.fit (the fitters).
 
 References: numpy / scikit-learn / scipy as independent implementations, the
 ONNX operator spec for the cheap functions, and the published algorithms
@@ -10,15 +10,17 @@ import itertools
 
 import numpy as np
 import pytest
+from cheap_functions import dhard_swish, drelu, hard_swish, relu  # noqa: E402  (tests/ helper)
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 from sklearn.linear_model import LinearRegression, Ridge
 
+from swapper.calibrate.ridge import GramAccumulator
 from swapper.errors import BadDataError
-from swapper.fit import fit_channel, fit_channels, outer_fit, starting_params
-from swapper.observe import ChannelObserver, GramAccumulator
-from cheap_functions import dhard_swish, drelu, hard_swish, relu  # noqa: E402  (tests/ helper)
+from swapper.fit.channel import fit_channel, outer_fit, starting_params
+from swapper.fit.observe import ChannelObserver
+from swapper.fit.site import fit_channels
 
 
 # -- cheap functions, written from their definitions --------------------------
@@ -241,7 +243,7 @@ def test_holds_keep_neutral_values_exactly(free):
     rng = np.random.default_rng(8)
     x = rng.normal(size=800)
     y = 1.3 * tanh_clip(0.7 * x + 0.2) - 0.4 + 0.01 * rng.normal(size=800)
-    neutral = (1.0, 1.0, 0.0, 0.0)  # source: swapper/plan.py NEUTRAL ("held" placement)
+    neutral = (1.0, 1.0, 0.0, 0.0)  # source: swapper/plan/plan.py NEUTRAL ("held" placement)
     r = fit_channel(x, y, tanh_clip, init=neutral, free=free, dg=dtanh_clip)
     for i, p in enumerate("abcd"):
         if p not in free:

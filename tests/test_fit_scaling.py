@@ -15,10 +15,16 @@ from onnx import TensorProto, helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.linear_model import LinearRegression
 
-from swapper.fit import fit_channel
-from swapper.fit_batched import fit_rows
-from swapper.param_scale import MARGIN, affine_params, canonical_params, is_homogeneous, linear_pieces
-from swapper.varpro import BETA_MAX, BETA_MIN, in_band
+from swapper.fit.channel import fit_channel
+from swapper.fit.param_scale import (
+    MARGIN,
+    affine_params,
+    canonical_params,
+    is_homogeneous,
+    linear_pieces,
+)
+from swapper.fit.rows import fit_rows
+from swapper.fit.varpro import BETA_MAX, BETA_MIN, in_band
 
 
 def onnx_op(op: str, **attrs):

@@ -1,4 +1,4 @@
-"""Tests of swapper.fold: placement rules and the fold arithmetic.
+"""Tests of swapper.plan.placement: placement rules and the fold arithmetic.
 
 The arithmetic is checked against onnxruntime executing single Conv /
 ConvTranspose / Gemm / MatMul nodes (ONNX operator spec): a folded layer run
@@ -15,10 +15,11 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 
 from swapper import functions
+from swapper.core.graph import GraphIndex
 from swapper.errors import UsageError
-from swapper.fold import decide_placement, input_offset, input_scale, scale_shift_output
-from swapper.graph import GraphIndex
-from swapper.sites import Site
+from swapper.plan.placement import decide_placement
+from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
+from swapper.scan.sites import Site
 
 OPSET = 17
 

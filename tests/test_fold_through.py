@@ -25,17 +25,18 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-import swapper.calibrate as cal
+import swapper.calibrate.loop as cal
 from swapper import functions
-from swapper.consumers import channel_after_reshape
-from swapper.data import Dataset
-from swapper.emit import Emitter
+from swapper.core.emit import Emitter
+from swapper.core.model_io import load_model
+from swapper.core.session import expose, open_session
+from swapper.data.dataset import Dataset
 from swapper.errors import UsageError
-from swapper.model_io import load_model
-from swapper.plan import PARAMS, make_plan
-from swapper.record import expose, open_session
-from swapper.rewrite import rewrite
-from swapper.sites import find_sites
+from swapper.functions.params import PARAMS
+from swapper.plan.layers import channel_after_reshape
+from swapper.plan.plan import make_plan
+from swapper.rewrite.apply import rewrite
+from swapper.scan.sites import find_sites
 
 OPSET = 17
 C = 4

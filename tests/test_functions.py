@@ -19,9 +19,10 @@ from scipy.stats import norm
 from sklearn.linear_model import LinearRegression
 
 from swapper import functions as F
-from swapper.emit import Emitter
+from swapper.core.emit import Emitter
+from swapper.core.model_io import MAX_OPSET, MIN_OPSET
 from swapper.errors import UsageError
-from swapper.model_io import MAX_OPSET, MIN_OPSET
+from swapper.functions import registry
 
 RNG = np.random.default_rng(20240611)
 X = np.concatenate([RNG.uniform(-8, 8, 500), [-6.0, -3.0, -1.0, 0.0, 1.0, 3.0, 6.0]]).astype(np.float32)
@@ -208,7 +209,7 @@ def test_grad_matches_central_difference(name, params, xs):
 
 
 def test_grad_at_kinks_is_a_one_sided_derivative():
-    # source: sub-gradient convention documented in swapper.functions (strict-inequality piece)
+    # source: sub-gradient convention documented in swapper.functions.registry (strict-inequality piece)
     for name, params in EMIT_PARAMS:
         f = F.get(name)
         for k in _kinks(name, params):
@@ -339,7 +340,7 @@ def test_get_unknown_lists_valid_names():
 
 
 def test_cost_prefers_measured_table_and_falls_back(monkeypatch):
-    monkeypatch.setattr(F.costs, "relative_cost", lambda name: {"silu": 7.5}[name])  # KeyError for the rest
+    monkeypatch.setattr(registry, "relative_cost", lambda name: {"silu": 7.5}[name])  # KeyError for the rest
     assert F.get("silu").cost == 7.5
     assert F.get("relu").cost == F.get("relu").static_cost
     assert all(f.cost > 0 and math.isfinite(f.cost) for f in F.REGISTRY.values())

@@ -24,10 +24,8 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
-from sklearn.metrics import accuracy_score
-
-
 from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
+from sklearn.metrics import accuracy_score
 
 
 def predict(path: Path) -> np.ndarray:

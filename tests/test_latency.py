@@ -1,4 +1,4 @@
-"""Tests for swapper.latency: structure and schedule of the timing, never the timings themselves.
+"""Tests for swapper.check.latency: structure and schedule of the timing, never the timings themselves.
 
 Machines running the suite are shared and noisy, so no assertion compares a
 measured latency against a number; schedules are checked with an injected clock.
@@ -15,20 +15,18 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
+from small_models import conv_classifier  # tests/ helper
 
-from swapper.errors import BadDataError, BadModelError, UsageError
-from swapper.latency import (
+from swapper.check.latency import (
     LatencyStats,
     measure_latency,
-    model_summary,
     open_sessions,
-    serialized_size,
     stats_from_ns,
     time_interleaved,
 )
-from swapper.record import OPTIMIZATION_LEVELS, session_options
-
-from small_models import conv_classifier  # tests/ helper
+from swapper.check.size import model_summary, serialized_size
+from swapper.core.session import OPTIMIZATION_LEVELS, session_options
+from swapper.errors import BadDataError, BadModelError, UsageError
 
 
 def _cnn(activation: str = "Relu", opset: int = 17) -> onnx.ModelProto:

@@ -7,12 +7,12 @@ import pickle
 import numpy as np
 import onnx
 import pytest
-from onnx import helper, numpy_helper, TensorProto
+from onnx import TensorProto, helper, numpy_helper
 from typer.testing import CliRunner
 
-from swapper.cli import app
+from swapper.cli.app import app
+from swapper.core.model_io import MAX_OPSET, MIN_OPSET, load_model, save_model
 from swapper.errors import BadModelError, BadOutputError
-from swapper.model_io import MAX_OPSET, MIN_OPSET, load_model, save_model
 
 runner = CliRunner()
 

@@ -18,8 +18,8 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from scipy.special import erf, expit
 
-from swapper.model_io import name_unnamed_nodes
-from swapper.sites import find_sites
+from swapper.core.model_io import name_unnamed_nodes
+from swapper.scan.sites import find_sites
 
 X_SHAPE = [2, 4, 3, 3]
 MS = "com.microsoft"
@@ -66,7 +66,7 @@ def make(nodes, consts=None, const_mode="init", opset=17, outputs=("Y",), ms=Fal
     """A checked, shape-inferred model: input X, the given nodes, constants as initializers or Constant nodes.
 
     ``nodes`` are (op_type, inputs, output, attrs) tuples; the same preparation as
-    swapper.model_io.load_model (check, infer shapes, name nodes).
+    swapper.core.model_io.load_model (check, infer shapes, name nodes).
     """
     consts = consts or {}
     inits, protos = [], []

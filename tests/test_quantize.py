@@ -1,4 +1,4 @@
-"""Tests for swapper.quantize: the int8 QDQ model is valid, runs, fuses, and stays close to fp32."""
+"""Tests for swapper.check.int8: the int8 QDQ model is valid, runs, fuses, and stays close to fp32."""
 from __future__ import annotations
 
 import subprocess
@@ -12,11 +12,15 @@ import onnxruntime as ort
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
-
-from swapper.errors import BadDataError
-from swapper.quantize import LOSSY_WEIGHT, quantize_int8, quantize_int8_with_losses, weight_losses
-
 from small_models import conv_classifier  # tests/ helper
+
+from swapper.check.int8 import (
+    LOSSY_WEIGHT,
+    quantize_int8,
+    quantize_int8_with_losses,
+    weight_losses,
+)
+from swapper.errors import BadDataError
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 
@@ -186,7 +190,7 @@ def test_package_never_imports_torch():
         "import sys, numpy as np\n"
         "sys.path.insert(0, %r)\n"
         "from test_quantize import _silu_block, _calib\n"
-        "from swapper.quantize import quantize_int8\n"
+        "from swapper.check.int8 import quantize_int8\n"
         "quantize_int8(_silu_block(), _calib(n_batches=1))\n"
         "assert 'torch' not in sys.modules, 'torch was imported'\n"
     ) % str(Path(__file__).resolve().parent)
@@ -357,7 +361,7 @@ def test_inflated_input_channel_is_flagged_and_costs_int8_accuracy(inflated, cap
     np.testing.assert_allclose(_run(model, {"x": x}), ref, rtol=1e-4, atol=1e-4)
     # ... but the int8 copy of the inflated one is far worse: each row's int8 step is set
     # by column 5, leaving the other 7 inputs a handful of levels (the weight-loss cause).
-    with caplog.at_level("WARNING", logger="swapper.quantize"):
+    with caplog.at_level("WARNING", logger="swapper.check.int8"):
         q_balanced = quantize_int8(balanced, _gemm_calib())
     assert not [r for r in caplog.records if "lose" in r.getMessage()]
     err = {name: np.linalg.norm(_run(q, {"x": x}) - ref) / np.linalg.norm(ref)
@@ -367,7 +371,7 @@ def test_inflated_input_channel_is_flagged_and_costs_int8_accuracy(inflated, cap
     losses = {loss.node: loss for loss in weight_losses(balanced, q_balanced)}
     # 8-bit per-channel rounding of well-spread weights: about 2^-8 relative (measured 0.3-0.5% here).
     assert all(loss.median_input_error < 0.02 for loss in losses.values())
-    with caplog.at_level("WARNING", logger="swapper.quantize"):
+    with caplog.at_level("WARNING", logger="swapper.check.int8"):
         quantize_int8(model, _gemm_calib())
     flagged = [r.getMessage() for r in caplog.records if "lose" in r.getMessage()]
     assert len(flagged) == 1 and "'fc2'" in flagged[0] and "input channel 5" in flagged[0]

@@ -1,4 +1,4 @@
-"""Tests of swapper.record: exposing internal tensors and the on-disk TensorCache.
+"""Tests of swapper.core.session: exposing internal tensors and the on-disk TensorCache.
 
 References: ``onnx.reference.ReferenceEvaluator`` executes the ONNX operator
 spec in numpy and hands back every intermediate result (``intermediate=True``);
@@ -14,7 +14,8 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-from swapper.record import TensorCache, expose, open_session
+from swapper.core.session import expose, open_session
+from swapper.core.tensor_cache import TensorCache
 
 OPSET = 17
 

@@ -1,4 +1,4 @@
-"""Tests of swapper.refit: ridge-toward-prior consumer refit.
+"""Tests of swapper.calibrate.refit: ridge-toward-prior consumer refit.
 
 References: scikit-learn's Ridge is the reference ridge solver; onnxruntime
 executes the ONNX Conv spec (pads, strides, dilations, auto_pad); the ONNX
@@ -21,16 +21,23 @@ from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.linear_model import Ridge
 
-from swapper.calibrate import calibrate
-from swapper.data import Dataset, replicate
-from swapper.graph import GraphIndex
-from swapper.observe import GramAccumulator
-from swapper.plan import make_plan
+from swapper.calibrate.loop import calibrate
+from swapper.calibrate.refit import accumulate_level, refit_consumers
+from swapper.calibrate.ridge import (
+    FoldedGram,
+    GramAccumulator,
+    RidgePath,
+    choose_ridge,
+    ridge_toward_prior,
+)
+from swapper.core.conv import conv_geometry, im2col
+from swapper.core.graph import GraphIndex
+from swapper.data.dataset import Dataset, replicate
+from swapper.plan.layers import find_consumers
+from swapper.plan.plan import make_plan
 from swapper.progress import Silent
-from swapper.refit import (FoldedGram, RidgePath, accumulate_level, choose_ridge, conv_geometry, find_consumers,
-                           im2col, refit_consumers, ridge_toward_prior)
-from swapper.rewrite import rewrite
-from swapper.sites import find_sites
+from swapper.rewrite.apply import rewrite
+from swapper.scan.sites import find_sites
 
 OPSET = 17
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"

@@ -1,7 +1,7 @@
 """report.json and report.html as written by the CLI.
 
-report.json is checked twice: by ``swapper.report.validate_report`` and, field
-by field, against the schema in the swapper/report.py module docstring. The
+report.json is checked twice: by ``swapper.report.build.validate_report`` and, field
+by field, against the schema in the swapper/report/build.py module docstring. The
 figures in it are recomputed here from the written files with hashlib,
 onnxruntime, scikit-learn and statsmodels. report.html is checked for the
 verdict, the caution and self-containment (no external references).
@@ -23,12 +23,11 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
+from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
 from sklearn.metrics import accuracy_score
 from statsmodels.stats.contingency_tables import mcnemar
 
-from swapper.report import validate_report
-
-from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
+from swapper.report.build import validate_report
 
 
 def logits(path: Path) -> np.ndarray:
@@ -90,7 +89,7 @@ def _is_num(x) -> bool:
 
 
 def test_report_fields_follow_the_documented_schema(runs):
-    # source: swapper/report.py module docstring, schema swapper.report/1 (every key present, null when not run)
+    # source: swapper/report/build.py module docstring, schema swapper.report/1 (every key present, null when not run)
     p = runs["gated"]["json"]
     assert set(p) == {"schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison",
                       "budget", "verdict", "latency", "size", "int8", "caution"}
@@ -173,7 +172,7 @@ def test_report_fields_follow_the_documented_schema(runs):
 
 
 def test_report_without_validation_has_nulls(runs):
-    # source: swapper/report.py docstring: comparison ... int8 "All null when no validation ran";
+    # source: swapper/report/build.py docstring: comparison ... int8 "All null when no validation ran";
     # mse values null without calibration; calibration null.
     p = runs["plain"]["json"]
     for key in ("comparison", "budget", "verdict", "latency", "size", "int8", "calibration"):
@@ -232,7 +231,7 @@ def test_accuracy_figures_match_an_independent_computation(runs):
     assert c["agreement"] == pytest.approx(np.mean(pred_o == pred_c), abs=1e-12)
     iv = c["interval"]
     assert iv["level"] == 0.95 and iv["lo_pp"] <= c["delta_pp"] <= iv["hi_pp"]
-    # output errors, definitions from swapper/stats.py docstring (max |Δ|, RMSE, cosine, SQNR)
+    # output errors, definitions from swapper/check/stats.py docstring (max |Δ|, RMSE, cosine, SQNR)
     err = c["output_errors"]["logits"]
     diff = (y_c - y_o).astype(np.float64)
     ref = y_o.astype(np.float64)

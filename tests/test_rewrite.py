@@ -1,4 +1,4 @@
-"""Tests of swapper.rewrite: folded and explicit surrogates against independent executors.
+"""Tests of swapper.rewrite.apply: folded and explicit surrogates against independent executors.
 
 References: onnxruntime and onnx.reference.ReferenceEvaluator execute the ONNX
 operator spec; the surrogate formulas below are written out in numpy from
@@ -19,12 +19,13 @@ from onnx.reference import ReferenceEvaluator
 from onnx.utils import Extractor
 
 from swapper import functions
+from swapper.core.graph import GraphIndex
 from swapper.errors import UsageError
-from swapper.fold import decide_placement
-from swapper.graph import GraphIndex
-from swapper.plan import NEUTRAL, PARAMS, Plan, SiteSwap
-from swapper.rewrite import PLAN_KEY, rewrite, rewrite_identity_floor
-from swapper.sites import Site
+from swapper.functions.params import NEUTRAL, PARAMS
+from swapper.plan.placement import decide_placement
+from swapper.plan.plan import Plan, SiteSwap
+from swapper.rewrite.apply import PLAN_KEY, rewrite, rewrite_identity_floor
+from swapper.scan.sites import Site
 
 OPSET = 17
 

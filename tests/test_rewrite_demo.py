@@ -15,11 +15,12 @@ import numpy as np
 import onnx
 import pytest
 
-from swapper.model_io import load_model
-from swapper.plan import PARAMS, make_plan
-from swapper.record import open_session
-from swapper.rewrite import rewrite
-from swapper.sites import find_sites
+from swapper.core.model_io import load_model
+from swapper.core.session import open_session
+from swapper.functions.params import PARAMS
+from swapper.plan.plan import make_plan
+from swapper.rewrite.apply import rewrite
+from swapper.scan.sites import find_sites
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_models"
 MODELS = sorted(p.name for p in DEMO.glob("*.onnx"))

@@ -10,11 +10,11 @@ import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 
-from swapper.costs import known_functions, load_costs, relative_cost
+from swapper.core.model_io import load_model, name_unnamed_nodes
 from swapper.errors import UsageError
-from swapper.model_io import load_model, name_unnamed_nodes
-from swapper.patterns import PATTERNS
-from swapper.sites import SCHEMA, find_sites, sites_to_json
+from swapper.functions.costs import known_functions, load_costs, relative_cost
+from swapper.scan.decomposed import PATTERNS
+from swapper.scan.sites import SCHEMA, find_sites, sites_to_json
 
 DEMO = Path(__file__).resolve().parents[1] / "demo_models"
 SITE_FUNCTIONS = ["sigmoid", "tanh", "relu", "leaky_relu", "prelu", "elu", "selu", "celu", "softplus", "softsign",
@@ -26,7 +26,7 @@ def w(shape, seed=0):
 
 
 def build(nodes, inputs, outputs, inits=(), opset=17):
-    """Checked, shape-inferred model as swapper.model_io.load_model prepares it."""
+    """Checked, shape-inferred model as swapper.core.model_io.load_model prepares it."""
     graph = helper.make_graph(
         nodes, "t", [helper.make_tensor_value_info(n, TensorProto.FLOAT, s) for n, s in inputs],
         [helper.make_tensor_value_info(n, TensorProto.FLOAT, s) for n, s in outputs],

@@ -1,4 +1,4 @@
-"""Checks of swapper.stats against reference implementations and published formulas."""
+"""Checks of swapper.check.stats against reference implementations and published formulas."""
 from __future__ import annotations
 
 import json
@@ -9,11 +9,17 @@ import pytest
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy.stats import binomtest, norm
-from sklearn.metrics import accuracy_score, mean_absolute_error, mean_squared_error, top_k_accuracy_score
+from sklearn.metrics import (
+    accuracy_score,
+    mean_absolute_error,
+    mean_squared_error,
+    top_k_accuracy_score,
+)
 from statsmodels.stats.contingency_tables import mcnemar
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from swapper import stats
+from swapper.check import stats
+from swapper.core.jsonable import json_safe
 
 
 def _paired(n_both: int, n01: int, n10: int, n_neither: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -317,7 +323,7 @@ def test_regression_errors_match_sklearn(seed, n, split):
 
 def test_json_safe_replaces_non_finite_with_null_and_notes():
     notes: list[str] = []
-    out = stats.json_safe({"b": np.float32(1.5), "a": [np.int64(3), math.inf, float("nan")],
+    out = json_safe({"b": np.float32(1.5), "a": [np.int64(3), math.inf, float("nan")],
                            "c": np.bool_(True), "d": np.arange(2)}, notes, "x")
     # RFC 8259 JSON has no Infinity/NaN; allow_nan=False makes json.dumps enforce it
     text = json.dumps(out, allow_nan=False)

@@ -1,0 +1,1 @@
+"""`swapper bench`: accuracy recovered, the tool's own cost, memory and speed of swapped models."""

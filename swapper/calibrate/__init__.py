@@ -1,0 +1,1 @@
+"""Fitting the plan's parameters on recorded tensors: the loop, bias correction, consumer refit."""

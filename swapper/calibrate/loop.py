@@ -1,0 +1,354 @@
+"""Calibration: refit every swapped site so the candidate reproduces the original.
+
+A post-training, layer-wise distillation on unlabelled samples:
+
+    for each depth level L of swapped sites (sites at one level are independent):
+        x' = the level's site inputs, computed by the *partially swapped* model
+             (sequential mode) or by the original model (local mode)
+        y  = the original model's site outputs on the same samples
+        fit a, b, c, d per channel so that a·g(b·x' + c) + d ≈ y
+        optionally correct the mean shift at the site's linear consumers
+
+Nothing reruns the whole network per site: level L runs only the segments of
+the graph between the graph inputs / earlier swapped-site outputs and the
+level's site outputs (the original model: the targets y) and site inputs (the
+partially swapped model, sequential mode); swapped outputs are computed in
+numpy from the cached inputs and fitted parameters. Recorded tensors live in a
+:class:`~swapper.core.tensor_cache.TensorCache` (RAM up to its budget, disk beyond) and
+are discarded after the last level that reads them, so what is held at once
+is a few levels' tensors, not the whole network's.
+"""
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+import onnx
+
+from swapper import functions
+from swapper.calibrate.bias_correction import DeltaSum, correct_bias
+from swapper.core.graph import GraphIndex
+from swapper.core.session import open_session
+from swapper.core.slices import boundary_reads, segment_model
+from swapper.core.surgery import copy_model
+from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
+from swapper.data.dataset import Dataset, batches
+from swapper.errors import UsageError
+from swapper.fit.observe import ChannelObserver
+from swapper.fit.site import fit_channels
+from swapper.plan.plan import Plan, SiteSwap
+from swapper.progress import Silent
+from swapper.scan.sites import Site
+
+logger = logging.getLogger(__name__)
+
+MODES = ("sequential", "local")
+
+
+@dataclass
+class SiteCalibration:
+    site_id: str
+    level: int
+    mse_start: float  # starting parameters on the recorded data
+    mse_fit: float  # fitted parameters on the same data
+    x_min: list[float] = field(default_factory=list)  # per channel, the recorded input range
+    x_max: list[float] = field(default_factory=list)
+    bias_corrected: list[str] = field(default_factory=list)  # consumer node names
+    notes: list[str] = field(default_factory=list)
+
+
+@dataclass
+class CalibrationResult:
+    plan: Plan
+    model: onnx.ModelProto  # the original with consumer corrections; rewrite(plan) gives the candidate
+    sites: list[SiteCalibration]
+    timings: dict[str, float]  # seconds per phase
+    samples: int
+    cache: dict = field(default_factory=dict)  # bytes the tensor cache wrote to disk and held in RAM
+
+    def to_dict(self) -> dict:
+        return {
+            "samples": self.samples,
+            "timings_s": {k: round(v, 4) for k, v in self.timings.items()},
+            "sites": [s.__dict__ for s in self.sites],
+        }
+
+
+def check_mode(mode: str) -> None:
+    """Raise UsageError unless ``mode`` is a calibration mode."""
+    if mode not in MODES:
+        raise UsageError(f"unknown mode {mode!r}; valid: {', '.join(MODES)}")
+
+
+def site_levels(index: GraphIndex, sites: list[Site], swapped: set[str]) -> dict[str, int]:
+    """Depth of each swapped site: 1 + the deepest swapped site upstream of its input."""
+    by_output = {s.output: s for s in sites if s.id in swapped}
+    depth: dict[str, int] = {}
+    level: dict[str, int] = {}
+    for node in index.graph.node:  # ONNX graphs are topologically sorted
+        d = max((depth.get(t, 0) for t in node.input if t), default=0)
+        for out in node.output:
+            depth[out] = d
+            site = by_output.get(out)
+            if site is not None:
+                level[site.id] = depth.get(site.input, 0) + 1
+                depth[out] = level[site.id]
+    return level
+
+
+def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
+    """a·g(b·x + c) + d per channel, in float64, returned in x's dtype.
+
+    Computed a few samples (axis 0) at a time in one reused float64 buffer so
+    the temporaries stay cache-sized: whole-batch float64 copies cost more in
+    allocation and page faults than in arithmetic. x is widened exactly and the
+    result rounded once on the final store, so the values are bit-equal to
+    ``(a * g(b * x.astype(float64) + c) + d).astype(x.dtype)``.
+    """
+    fn = functions.get(swap.target)
+    x = np.asarray(x)
+    if x.ndim == 0:
+        return surrogate_output(swap, x.reshape(1)).reshape(())
+    shape = [1] * x.ndim
+    axis = swap.channel_axis if swap.channel_axis is not None and swap.channels > 1 else None
+    if axis is not None:
+        shape[axis] = swap.channels
+        axis %= x.ndim
+    a, b, c, d = (np.asarray(getattr(swap, p), dtype=np.float64).reshape(shape) for p in "abcd")
+    out = np.empty(x.shape, dtype=x.dtype)
+    step = max(1, (1 << 16) // max(1, x[0].size))
+    buf = np.empty((min(step, x.shape[0]),) + x.shape[1:], dtype=np.float64)
+    for i in range(0, x.shape[0], step):
+        s = slice(i, i + step)
+        pa, pb, pc, pd = (v[s] if axis == 0 else v for v in (a, b, c, d))
+        z = buf[: x[s].shape[0]]
+        np.copyto(z, x[s])  # one widening copy, then same-dtype ufuncs (mixed dtypes go through slow buffers)
+        np.multiply(z, pb, out=z)
+        np.add(z, pc, out=z)
+        g = np.asarray(fn.ref(z, **swap.target_params), dtype=np.float64)
+        np.multiply(g, pa, out=z)
+        np.add(z, pd, out=z)
+        np.copyto(out[s], z, casting="same_kind")
+    return out
+
+
+def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
+    """An empty observer shaped for ``swap``'s channels."""
+    axis = swap.channel_axis if swap.channels > 1 else None
+    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
+
+
+def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
+    """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
+    g, dg = swap.surrogate()
+    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()),
+                          positive_a=swap.positive_a(), dg=dg)
+    swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
+    return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
+
+
+@dataclass
+class _Segment:
+    """Part of a model run batch by batch: boundary tensors in (data set or cache), outputs into the cache."""
+
+    boundary: list[str]  # graph inputs + the earlier site outputs it may start from
+    outputs: list[str]  # computed tensors
+    store: dict[str, list[str]]  # tensor (output or graph input) -> cache keys it is appended under
+    feed: dict[str, str]  # boundary tensor read from the cache -> its cache key
+
+
+@dataclass
+class _Schedule:
+    """What each level computes and reads, worked out before any data flows.
+
+    Per level: a segment of the original (the targets y; at level 1 also the
+    site inputs) and, at deeper levels, a segment of the partially swapped
+    model (the site inputs x'). ``last`` maps every cache key to the last level
+    that reads it, so each key is discarded as soon as that level is done.
+    """
+
+    groups: dict[int, list[str]]  # level -> site ids, in site order
+    teacher: dict[str, str]  # site id -> cache key of the original output
+    student: dict[str, str]  # site id -> cache key of the swapped output
+    original: dict[int, _Segment] = field(default_factory=dict)
+    swapped: dict[int, _Segment] = field(default_factory=dict)
+    last: dict[str, int] = field(default_factory=dict)
+
+
+def _site_order(sid: str) -> int:
+    return int(sid[1:]) if sid[1:].isdigit() else 0
+
+
+def _schedule(index: GraphIndex, by_id: dict[str, Site], levels: dict[str, int]) -> _Schedule:
+    graph_inputs = list(index.graph_inputs)
+    order = sorted(set(levels.values()))
+    groups = {lv: sorted((s for s, l in levels.items() if l == lv), key=_site_order) for lv in order}
+    sched = _Schedule(groups=groups, teacher={s: f"teacher::{by_id[s].output}" for s in levels}, student={})
+    cached: set[str] = set()
+    last = sched.last
+
+    def read_at(key: str, level: int) -> None:
+        last[key] = max(last.get(key, level), level)
+
+    def segment(level: int, outputs: list[str], store: dict, keys: dict[str, str]) -> _Segment:
+        boundary = list(dict.fromkeys(graph_inputs + [by_id[s].output for s, lv in levels.items() if lv < level]))
+        feed = {t: keys[t] for t in boundary_reads(index, set(boundary), outputs) if t not in graph_inputs}
+        for key in feed.values():
+            read_at(key, level)
+        return _Segment(boundary, outputs, store, feed)
+
+    for level in order:
+        group = groups[level]
+        earlier = [s for s, lv in levels.items() if lv < level]
+        # the original: this level's targets, and at level 1 the site inputs (the original's values)
+        store: dict[str, list[str]] = {}
+        for sid in group:
+            store.setdefault(by_id[sid].output, []).append(sched.teacher[sid])
+        if level == order[0]:
+            for sid in group:
+                if by_id[sid].input not in store.get(by_id[sid].input, []):
+                    store.setdefault(by_id[sid].input, []).append(by_id[sid].input)
+        cached.update(k for keys in store.values() for k in keys)
+        outputs = [t for t in store if t not in graph_inputs]
+        sched.original[level] = segment(level, outputs, store, {by_id[s].output: sched.teacher[s] for s in earlier})
+        # the partially swapped model: this level's site inputs not cached yet
+        needed = list(dict.fromkeys(by_id[s].input for s in group if by_id[s].input not in cached))
+        if needed:
+            keys = {by_id[s].output: sched.student[s] for s in earlier}
+            sched.swapped[level] = segment(level, needed, {t: [t] for t in needed}, keys)
+            cached.update(needed)
+        for sid in group:
+            site = by_id[sid]
+            # in local mode the original value of this tensor may already be cached as another
+            # site's input, so the swapped one goes under its own key (no duplicated rows)
+            sched.student[sid] = site.output if site.output not in cached else f"student::{site.output}"
+            cached.add(sched.student[sid])
+            for key in (site.input, sched.teacher[sid], sched.student[sid]):
+                read_at(key, level)
+    return sched
+
+
+def _run_segment(model: onnx.ModelProto, seg: _Segment, cache: TensorCache, dataset: Dataset, batch_size: int,
+                 threads: int, advance) -> None:
+    """Run ``seg`` of ``model`` over the data set, appending its outputs (and stored graph inputs)."""
+    session, in_names = None, []
+    if seg.outputs:
+        session = open_session(segment_model(model, seg.boundary, seg.outputs), threads=threads)
+        out_names = [o.name for o in session.get_outputs()]
+        in_names = [i.name for i in session.get_inputs()]
+    # batch only the data set arrays this segment reads or stores (a deep segment reads none)
+    wanted = set(in_names) | set(seg.store)
+    only = replace(dataset, arrays={k: v for k, v in dataset.arrays.items() if k in wanted}, labels=None, targets=None)
+    for batch in batches(only, batch_size):
+        values = dict(batch.feeds)
+        if session is not None:
+            feeds = {n: batch.feeds[n] if n in batch.feeds else cache.read(seg.feed[n], batch.start, batch.stop)
+                     for n in in_names}
+            values.update(zip(out_names, session.run(None, feeds)))
+        for name, keys in seg.store.items():
+            for key in keys:
+                cache.append(key, values[name], owned=True)  # fresh arrays of this batch: no copy needed
+        advance(1)
+
+
+def calibrate(
+    original: onnx.ModelProto,
+    sites: list[Site],
+    plan: Plan,
+    dataset: Dataset,
+    *,
+    mode: str = "sequential",
+    bias_correction: bool = True,
+    batch_size: int = 64,
+    seed: int = 0,
+    reservoir: int = 4096,
+    threads: int = 1,
+    progress=None,
+    cache_bytes: int = MEMORY_BUDGET,
+) -> CalibrationResult:
+    """Fit every swap in ``plan`` (updated in place) on ``dataset``; never mutates ``original``.
+
+    ``cache_bytes``: recorded tensors kept in RAM up to this size, on disk beyond it.
+    """
+    check_mode(mode)
+    progress = progress or Silent()
+    timings = {"record_s": 0.0, "segments_s": 0.0, "fit_s": 0.0, "bias_correction_s": 0.0}
+    swaps = plan.by_site()
+    by_id = {s.id: s for s in sites}
+    work = copy_model(original)  # bias corrections go here; the original stays the teacher
+    index = GraphIndex.of(work)
+    levels = site_levels(index, sites, set(swaps))
+    if mode == "local":
+        levels = {k: 1 for k in levels}
+    sched = _schedule(index, by_id, levels)
+    results: dict[str, SiteCalibration] = {}
+    n_batches = -(-dataset.n // batch_size)
+
+    with TensorCache(memory_budget=cache_bytes) as cache:
+        for level, group in sched.groups.items():
+            # the original's targets (and level-1 inputs), then the swapped model's inputs of this level
+            t0 = time.perf_counter()
+            with progress.task(f"level {level}: recording original", n_batches) as advance:
+                _run_segment(original, sched.original[level], cache, dataset, batch_size, threads, advance)
+            timings["record_s"] += time.perf_counter() - t0
+            if level in sched.swapped:
+                t0 = time.perf_counter()
+                with progress.task(f"level {level}: running segment", n_batches) as advance:
+                    _run_segment(work, sched.swapped[level], cache, dataset, batch_size, threads, advance)
+                timings["segments_s"] += time.perf_counter() - t0
+
+            # observe (x', y) pairs, fit, record the swapped output (and its shift for bias correction)
+            shifts = {}
+            with progress.task(f"level {level}: fitting {len(group)} site(s)", len(group)) as advance:
+                for sid in group:
+                    shifts[sid] = _fit_site(by_id[sid], swaps[sid], level, sched, cache, dataset.n, batch_size,
+                                            seed, reservoir, bias_correction, results, timings)
+                    advance(1)
+
+            if bias_correction:
+                t0 = time.perf_counter()
+                for sid in group:
+                    done, notes = correct_bias(work, by_id[sid], cache, sched.student[sid], sched.teacher[sid],
+                                               dataset, batch_size, shifts[sid])
+                    results[sid].bias_corrected, results[sid].notes = done, notes
+                timings["bias_correction_s"] += time.perf_counter() - t0
+            for key in sorted(k for k, last in sched.last.items() if last == level):
+                cache.discard(key)  # no later level reads it
+        stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
+                 "memory_budget": cache.memory_budget}
+    logger.info("calibration cache: %s", stats)
+    ordered = [results[sid] for sid in swaps if sid in results]  # plan order
+    return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n,
+                             cache=stats)
+
+
+def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,
+              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict):
+    """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
+    t0 = time.perf_counter()
+    sid, teacher, student = site.id, sched.teacher[site.id], sched.student[site.id]
+    observer = observer_for(swap, seed, reservoir)
+    for start in range(0, n, batch_size):
+        stop = min(start + batch_size, n)
+        observer.update(cache.read(site.input, start, stop), cache.read(teacher, start, stop))
+    mse_start, mse_fit = fit_swap(swap, observer)
+    seen = observer.compute()
+    results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
+                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x])
+    # the swapped output feeds the next levels' segments (and the bias correction below)
+    delta = DeltaSum() if shift else None
+    t_shift = 0.0
+    needed = shift or sched.last.get(student, level) > level
+    for start in range(0, n if needed else 0, batch_size):
+        stop = min(start + batch_size, n)
+        out = surrogate_output(swap, cache.read(site.input, start, stop))
+        cache.append(student, out, owned=True)
+        if delta is not None:
+            t1 = time.perf_counter()
+            delta.add(out, cache.read(teacher, start, stop))
+            t_shift += time.perf_counter() - t1
+    timings["fit_s"] += time.perf_counter() - t0 - t_shift
+    timings["bias_correction_s"] += t_shift
+    return delta

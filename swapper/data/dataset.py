@@ -1,0 +1,325 @@
+"""Calibration and validation data: open, validate against the model, batch.
+
+Transformation: a ``.npz`` archive, a folder of ``.npy`` files (or one ``.npy``
+for a single-input model) becomes a :class:`Dataset` whose arrays line up with
+the model's inputs, then a stream of :class:`Batch` feeds in the model's dtypes.
+
+Arrays are never unpickled and are memory-mapped where the format allows
+(:mod:`swapper.data.npy_files`); replicated sets are lazy views
+(:mod:`swapper.data.lazy_array`). Dtype casts happen per batch, so validating or
+batching never holds more than one chunk/batch in memory.
+"""
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+import onnx
+
+from swapper.data.lazy_array import CycledArray, cycle, head  # noqa: F401  (CycledArray: re-exported, it lived here)
+from swapper.data.npy_files import read_folder, read_npz
+from swapper.errors import BadDataError, BadModelError
+
+logger = logging.getLogger(__name__)
+
+RESERVED = ("labels", "targets")
+# Validation scans arrays in chunks of about this many bytes so a memmap is never read whole.
+CHUNK_BYTES = 32 * 2**20
+
+
+@dataclass
+class InputSpec:
+    """A model input: name, numpy dtype, shape (int, or None/str for dynamic; None = unknown rank)."""
+
+    name: str
+    dtype: np.dtype
+    shape: tuple | None
+
+
+def input_specs(model: onnx.ModelProto) -> list[InputSpec]:
+    """The graph inputs a caller must feed (initializers excluded), in graph order."""
+    initializers = {t.name for t in model.graph.initializer}
+    specs = []
+    for vi in model.graph.input:
+        if vi.name in initializers:
+            continue
+        kind = vi.type.WhichOneof("value")
+        if kind != "tensor_type":
+            raise BadModelError(f"input {vi.name!r} is a {kind}, only tensor inputs can be fed")
+        tt = vi.type.tensor_type
+        if tt.elem_type == onnx.TensorProto.UNDEFINED:
+            raise BadModelError(f"input {vi.name!r} has no element type")
+        dtype = np.dtype(onnx.helper.tensor_dtype_to_np_dtype(tt.elem_type))
+        shape = None
+        if tt.HasField("shape"):
+            shape = tuple(
+                d.dim_value if d.HasField("dim_value") else (d.dim_param or None) for d in tt.shape.dim
+            )
+        specs.append(InputSpec(vi.name, dtype, shape))
+    return specs
+
+
+def fixed_batch_size(specs: list[InputSpec]) -> int | None:
+    """The static batch dimension the model insists on (e.g. 1), or None when it is dynamic."""
+    sizes = {s.shape[0] for s in specs if s.shape and isinstance(s.shape[0], int) and s.shape[0] > 0}
+    return min(sizes) if sizes else None
+
+
+@dataclass
+class Dataset:
+    """Validated samples. ``arrays`` keyed by model input name; may be memmaps or CycledArrays."""
+
+    path: Path
+    arrays: dict[str, np.ndarray]
+    labels: np.ndarray | None
+    targets: np.ndarray | None
+    n: int
+    dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
+    max_batch: int | None = None  # the model's static batch dimension (e.g. 1): batches never exceed it
+
+
+@dataclass
+class Batch:
+    """Samples ``start:stop``: contiguous feeds in the model's dtypes, plus their labels/targets."""
+
+    start: int
+    stop: int
+    feeds: dict[str, np.ndarray]
+    labels: np.ndarray | None
+    targets: np.ndarray | None
+
+
+# ---------------------------------------------------------------- validation
+
+
+def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path) -> tuple[dict, dict]:
+    """Map model inputs to arrays; also return input name -> the array's name in the file (for messages)."""
+    data = {k: v for k, v in raw.items() if k not in RESERVED}
+    wanted = [s.name for s in specs]
+    if len(specs) == 1 and len(data) == 1:
+        # One input, one array: the array's name does not matter.
+        key, arr = next(iter(data.items()))
+        if key != wanted[0]:
+            logger.debug("%s: using array %r for the only model input %r", path, key, wanted[0])
+        return {wanted[0]: arr}, {wanted[0]: key}
+    missing = sorted(set(wanted) - set(data))
+    unexpected = sorted(set(data) - set(wanted))
+    if missing or unexpected:
+        parts = []
+        if missing:
+            parts.append(f"missing arrays for model inputs {missing}")
+        if unexpected:
+            parts.append(f"unexpected arrays {unexpected}")
+        raise BadDataError("; ".join(parts) + f" (model inputs: {', '.join(wanted)})", path)
+    return {name: data[name] for name in wanted}, {name: name for name in wanted}
+
+
+def _target_dtype(name: str, arr: np.ndarray, spec: InputSpec, path: Path) -> np.dtype:
+    """Decide the per-batch cast: float<-float/int, int<-int, bool<-bool; anything else is refused."""
+    src, dst = arr.dtype, spec.dtype
+    if src == dst:
+        return dst
+    ok = (dst.kind == "f" and src.kind in "fiu") or (dst.kind in "iu" and src.kind in "iu")
+    if not ok:
+        raise BadDataError(f"array {name!r} has dtype {src}, but model input {spec.name!r} takes {dst}", path)
+    logger.debug("%s: array %r is %s, cast to %s per batch", path, name, src, dst)
+    return dst
+
+
+def _fmt_shape(shape) -> str:
+    return "(" + ", ".join("?" if d is None else str(d) for d in shape) + ")"
+
+
+def _check_shapes(arrays: dict, specs: list[InputSpec], names: dict[str, str], path: Path) -> None:
+    symbols: dict[str, tuple[str, int]] = {}
+    for spec in specs:
+        arr, name = arrays[spec.name], names[spec.name]
+        if spec.shape is None:
+            continue
+        if arr.ndim != len(spec.shape) or arr.ndim == 0:
+            raise BadDataError(
+                f"array {name!r} has shape {tuple(arr.shape)}, model input expects {_fmt_shape(spec.shape)}"
+                " (first axis = samples)",
+                path,
+            )
+        for axis in range(1, arr.ndim):  # axis 0 is the sample axis, whatever the model says
+            want, got = spec.shape[axis], arr.shape[axis]
+            if isinstance(want, int) and want > 0 and want != got:
+                raise BadDataError(
+                    f"array {name!r} has shape {tuple(arr.shape)}, model input expects"
+                    f" {_fmt_shape(spec.shape)} (axis {axis}: {got} != {want})",
+                    path,
+                )
+            if isinstance(want, str):  # the same symbolic dim must have one size across inputs
+                seen = symbols.setdefault(want, (name, got))
+                if seen[1] != got:
+                    raise BadDataError(
+                        f"dimension {want!r} is {seen[1]} in array {seen[0]!r} but {got} in array {name!r}", path
+                    )
+
+
+def _chunks(arr, rows_hint: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
+    row_bytes = max(1, math.prod(arr.shape[1:]) * arr.dtype.itemsize)
+    step = rows_hint or max(1, CHUNK_BYTES // row_bytes)
+    for start in range(0, len(arr), step):
+        yield start, np.asarray(arr[start : start + step])
+
+
+def _scan_values(name: str, arr: np.ndarray, target: np.dtype, path: Path) -> None:
+    """Reject NaN/Inf (first bad sample) and values the per-batch cast would not keep."""
+    src = arr.dtype
+    float_limit = None
+    if target.kind == "f" and src.kind == "f" and target.itemsize < src.itemsize:
+        float_limit = np.finfo(target).max  # e.g. float64 -> float32 would turn 1e300 into inf
+    int_range = None
+    if target.kind in "iu" and src.kind in "iu" and not np.can_cast(src, target, "safe"):
+        int_range = (np.iinfo(target).min, np.iinfo(target).max)
+    if src.kind != "f" and int_range is None:
+        return
+    for start, chunk in _chunks(arr):
+        flat = chunk.reshape(len(chunk), -1)
+        if src.kind == "f":
+            bad = ~np.isfinite(flat).all(axis=1)
+            if bad.any():
+                i = int(np.argmax(bad))
+                what = "NaN" if np.isnan(flat[i]).any() else "Inf"
+                raise BadDataError(f"array {name!r} contains {what} at sample {start + i}", path)
+            if float_limit is not None:
+                over = (np.abs(flat) > float_limit).any(axis=1)
+                if over.any():
+                    raise BadDataError(
+                        f"array {name!r} sample {start + int(np.argmax(over))} overflows {target}", path
+                    )
+        elif int_range is not None and flat.size:
+            over = ((flat < int_range[0]) | (flat > int_range[1])).any(axis=1)
+            if over.any():
+                raise BadDataError(f"array {name!r} sample {start + int(np.argmax(over))} does not fit {target}", path)
+
+
+def _check_labels(labels: np.ndarray, n: int, path: Path) -> None:
+    if labels.dtype.kind not in "iu":
+        raise BadDataError(f"'labels' must be integer class ids, got dtype {labels.dtype}", path)
+    if labels.ndim != 1 or len(labels) != n:
+        raise BadDataError(f"'labels' must be 1-D with {n} entries, got shape {tuple(labels.shape)}", path)
+    if labels.dtype.kind == "i":
+        for start, chunk in _chunks(labels, rows_hint=1 << 20):
+            neg = chunk < 0
+            if neg.any():
+                raise BadDataError(f"'labels' has a negative class id at sample {start + int(np.argmax(neg))}", path)
+
+
+def _check_targets(targets: np.ndarray, n: int, path: Path) -> None:
+    if targets.dtype.kind not in "fiu":
+        raise BadDataError(f"'targets' must be numeric, got dtype {targets.dtype}", path)
+    if targets.ndim == 0 or len(targets) != n:
+        raise BadDataError(f"'targets' must have {n} rows, got shape {tuple(targets.shape)}", path)
+    _scan_values("targets", targets, targets.dtype, path)
+
+
+def load_dataset(
+    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False
+) -> Dataset:
+    """Open an .npz / .npy-folder data set and validate it against the model inputs ``specs``.
+
+    ``require_labels`` demands a ``labels`` array. Values are scanned for NaN/Inf/overflow in one
+    streaming pass. Raises BadDataError.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise BadDataError("no such file or folder", path)
+    if not specs:
+        raise BadDataError("the model has no inputs to feed", path)
+    raw = read_folder(path) if path.is_dir() else read_npz(path)
+    labels, targets = raw.get("labels"), raw.get("targets")
+    if require_labels and labels is None:
+        raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
+    arrays, names = _match_names(raw, specs, path)
+    dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in specs}
+    for name, arr in arrays.items():
+        if arr.ndim == 0:
+            raise BadDataError(f"array {names[name]!r} is a scalar; expected a first axis of samples", path)
+    counts = {names[name]: arr.shape[0] for name, arr in arrays.items()}
+    for extra_name, extra in (("labels", labels), ("targets", targets)):
+        if extra is not None and extra.ndim:
+            counts[extra_name] = extra.shape[0]
+    if len(set(counts.values())) > 1:
+        listed = ", ".join(f"{k}={v}" for k, v in counts.items())
+        raise BadDataError(f"sample counts differ across arrays ({listed})", path)
+    _check_shapes(arrays, specs, names, path)
+    n = next(iter(counts.values()))
+    if n < 1:
+        raise BadDataError("no samples", path)
+    if labels is not None:
+        _check_labels(labels, n, path)
+    if targets is not None:
+        _check_targets(targets, n, path)
+    for s in specs:
+        _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
+    logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
+    return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
+                   max_batch=fixed_batch_size(specs))
+
+
+# ---------------------------------------------------------------- iteration and views
+
+
+def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterator[Batch]:
+    """Yield samples in order, ``batch_size`` at a time (the last may be short), up to ``limit``.
+
+    Each batch owns fresh contiguous copies in the model's dtypes; nothing else is held. A model
+    with a static batch dimension gets batches of at most that size, whatever ``batch_size`` asks.
+    """
+    if batch_size < 1:
+        raise ValueError("batch_size must be >= 1")
+    batch_size = min(batch_size, ds.max_batch or batch_size)
+    total = ds.n if limit is None else max(0, min(int(limit), ds.n))
+    for start in range(0, total, batch_size):
+        stop = min(start + batch_size, total)
+        feeds = {
+            name: np.array(arr[start:stop], dtype=ds.dtypes.get(name, arr.dtype), order="C", copy=True)
+            for name, arr in ds.arrays.items()
+        }
+        labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
+        targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
+        yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
+
+
+def replicate(ds: Dataset, times: int) -> Dataset:
+    """A lazy view of ``ds`` repeated ``times`` times (sample i = original i % n); no data is copied."""
+    if times < 1:
+        raise ValueError("times must be >= 1")
+    n = ds.n * int(times)
+    return Dataset(
+        path=ds.path,
+        arrays={k: cycle(v, n) for k, v in ds.arrays.items()},
+        labels=cycle(ds.labels, n),
+        targets=cycle(ds.targets, n),
+        n=n,
+        dtypes=dict(ds.dtypes),
+        max_batch=ds.max_batch,
+    )
+
+
+def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
+    """The first ``n`` samples (a view), or with ``seed`` a random ``n`` kept in original order (a copy)."""
+    if n < 1:
+        raise ValueError("n must be >= 1")
+    n = min(int(n), ds.n)
+    if seed is None:
+        take = lambda a: head(a, n)  # noqa: E731 - views, nothing copied
+    else:
+        idx = np.sort(np.random.default_rng(seed).choice(ds.n, size=n, replace=False))
+        take = lambda a: None if a is None else np.asarray(a[idx])  # noqa: E731
+    return Dataset(
+        path=ds.path,
+        arrays={k: take(v) for k, v in ds.arrays.items()},
+        labels=take(ds.labels),
+        targets=take(ds.targets),
+        n=n,
+        dtypes=dict(ds.dtypes),
+        max_batch=ds.max_batch,
+    )

@@ -1,0 +1,23 @@
+"""The function registry: every activation swapper knows, and the surrogate parametrisation.
+
+    registry.py   Function, REGISTRY, DEFAULT_TARGET, get(), target_params()
+    formulas.py   float64 numpy references and derivatives
+    emitters.py   ONNX emitters (standard ops at the model's opset)
+    pwl.py        the piecewise-linear surrogate
+    costs.py      measured relative cost per function (op_costs.json)
+    params.py     PARAMS and NEUTRAL of y = a·g(b·x + c) + d (a leaf: no imports)
+
+``from swapper import functions; functions.get("silu")`` is the usual way in.
+"""
+from swapper.functions import costs
+from swapper.functions.registry import (
+    DEFAULT_TARGET,
+    REGISTRY,
+    Function,
+    get,
+    sources,
+    surrogates,
+    target_params,
+)
+
+__all__ = ["DEFAULT_TARGET", "REGISTRY", "Function", "costs", "get", "sources", "surrogates", "target_params"]

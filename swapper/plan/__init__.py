@@ -1,0 +1,1 @@
+"""Deciding the swap: which sites, which surrogate, and where each parameter lives (placement)."""

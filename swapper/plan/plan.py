@@ -1,0 +1,248 @@
+"""The swap plan: which sites get which surrogate, with which parameters.
+
+A plan is plain data (JSON round-trips) so it can be written into the model's
+metadata and the report, edited by hand, and re-applied.
+
+Per swapped site, the surrogate computes, per channel c,
+
+    y = a_c · g(b_c · x + c_c) + d_c
+
+and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
+
+- ``"producer"``  folded into the Conv/Gemm/MatMul(+Add)/BatchNormalization that feeds x;
+- ``"consumers"`` folded into the linear layers that read y, directly or behind
+                  ops that commute with it (average pools, channel-keeping reshapes;
+                  a also through a gate Mul, d only where no zero padding is averaged);
+- ``"consumers+"`` (a only) as "consumers", but a max pool is on the way: exact
+                  only for a >= 0, so the fitter keeps a > 0 (a negative a is
+                  emitted as a node instead);
+- ``"inner"``     (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
+- ``"nodes"``     emitted as per-channel Mul/Add nodes (adds nodes, always exact);
+- ``"held"``      kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
+- ``"approx"``    (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders).
+"""
+from __future__ import annotations
+
+import json
+import logging
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from swapper.functions.params import NEUTRAL, PARAMS
+from swapper.plan.placement import FOLD_POLICIES, POSITIVE_A
+
+logger = logging.getLogger(__name__)
+
+
+@dataclass
+class SiteSwap:
+    site_id: str
+    source: str
+    source_params: dict
+    target: str
+    target_params: dict
+    channel_axis: int | None
+    channels: int  # 1 when the channel axis is unknown (one scalar set)
+    a: np.ndarray
+    b: np.ndarray
+    c: np.ndarray
+    d: np.ndarray
+    placement: dict  # param -> "producer" | "consumers" | "consumers+" | "inner" | "nodes" | "held" | "approx"
+    notes: list[str] = field(default_factory=list)
+
+    def free(self) -> tuple[str, ...]:
+        """The parameters a fitter may move."""
+        return tuple(p for p in PARAMS if self.placement.get(p) != "held")
+
+    def positive_a(self) -> bool:
+        """Whether the fitter must keep a > 0.
+
+        "inner" always (a moves inside g); "consumers+" while every a is already
+        positive (a passes a MaxPool only when positive; once some a is not, the
+        rewriter emits a as a node instead and the sign is free).
+        """
+        place = self.placement.get("a")
+        return place == "inner" or (place in POSITIVE_A and bool(np.all(np.asarray(self.a) > 0)))
+
+    def surrogate(self):
+        """(g, dg) of the surrogate with its own parameters fixed."""
+        from swapper import functions
+
+        return functions.get(self.target).bind(self.target_params)
+
+    def params(self) -> dict[str, np.ndarray]:
+        return {p: getattr(self, p) for p in PARAMS}
+
+    def set_params(self, **values: np.ndarray) -> None:
+        for p, v in values.items():
+            setattr(self, p, np.asarray(v, dtype=np.float64).reshape(self.channels))
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        for p in PARAMS:
+            d[p] = [float(v) for v in np.asarray(getattr(self, p), dtype=np.float64).ravel()]
+        return d
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "SiteSwap":
+        d = dict(d)
+        for p in PARAMS:  # a summary (model metadata) carries no values: read them as neutral
+            d[p] = np.asarray(d.get(p, [NEUTRAL[p]] * d["channels"]), dtype=np.float64)
+        return cls(**d)
+
+
+@dataclass
+class Skipped:
+    site_id: str
+    function: str
+    reason: str
+
+
+@dataclass
+class Plan:
+    fold: str  # one of FOLD_POLICIES
+    swaps: list[SiteSwap]
+    skipped: list[Skipped] = field(default_factory=list)
+
+    def by_site(self) -> dict[str, SiteSwap]:
+        return {s.site_id: s for s in self.swaps}
+
+    def to_dict(self) -> dict:
+        return {
+            "fold": self.fold,
+            "swaps": [s.to_dict() for s in self.swaps],
+            "skipped": [asdict(s) for s in self.skipped],
+        }
+
+    def summary_json(self) -> str:
+        """The plan without per-channel values (they are folded into the graph): small enough for model metadata."""
+        d = self.to_dict()
+        for s in d["swaps"]:
+            for p in PARAMS:
+                del s[p]
+        return json.dumps(d, sort_keys=True, separators=(",", ":"))
+
+    @classmethod
+    def from_dict(cls, d: dict) -> "Plan":
+        return cls(
+            fold=d["fold"],
+            swaps=[SiteSwap.from_dict(s) for s in d["swaps"]],
+            skipped=[Skipped(**s) for s in d.get("skipped", [])],
+        )
+
+    @classmethod
+    def from_json(cls, text: str) -> "Plan":
+        return cls.from_dict(json.loads(text))
+
+
+_STARTS: dict[tuple, tuple[float, float, float, float]] = {}
+
+
+def _starting_params(source: str, source_params: dict, target: str, target_params: dict,
+                     free: str, positive_a: bool) -> tuple[float, float, float, float]:
+    """Least-squares best a, b, c, d of the surrogate to the source over a standard input range (memoised)."""
+    from swapper import functions
+    from swapper.fit.channel import starting_params
+
+    key = (source, json.dumps(source_params, sort_keys=True), target, json.dumps(target_params, sort_keys=True),
+           free, positive_a)
+    if key not in _STARTS:
+        f, _ = functions.get(source).bind(source_params)
+        g, dg = functions.get(target).bind(target_params)
+        _STARTS[key] = starting_params(f, g, free=free, positive_a=positive_a, dg=dg)
+    return _STARTS[key]
+
+
+def make_plan(
+    model,
+    sites: list,
+    *,
+    to: str | None = None,
+    site_ids: list[str] | None = None,
+    only: str | None = None,
+    include_gates: bool = False,
+    include_outputs: bool = False,
+    fold: str = "exact",
+) -> Plan:
+    """Choose sites and surrogates; set each swap's starting parameters and placement.
+
+    Default: every supported *pointwise* site whose function is costly; gates only
+    with ``include_gates``; graph outputs only with ``include_outputs``.
+    ``site_ids`` and ``only`` (a source function name) narrow the choice.
+    """
+    from swapper import functions
+    from swapper.core.graph import GraphIndex
+    from swapper.errors import UsageError
+    from swapper.plan.placement import decide_placement
+
+    if fold not in FOLD_POLICIES:
+        raise UsageError(f"unknown fold policy {fold!r}; valid: {', '.join(FOLD_POLICIES)}")
+    if to is not None:
+        functions.get(to)  # raises with the valid names
+    if only is not None:
+        functions.get(only)
+    known = {s.id for s in sites}
+    if site_ids:
+        unknown = [i for i in site_ids if i not in known]
+        if unknown:
+            raise UsageError(
+                f"no site with id {', '.join(unknown)}; valid ids: {', '.join(s.id for s in sites) or 'none'}"
+            )
+    index = GraphIndex.of(model)
+    swaps, skipped = [], []
+    for site in sites:
+        if site_ids and site.id not in site_ids:
+            continue
+        if only and site.function != only:
+            continue
+        explicit = bool(site_ids)
+
+        def skip(reason: str) -> None:
+            skipped.append(Skipped(site.id, site.function, reason))
+
+        if not site.supported:
+            skip(site.reason or "not supported")
+            continue
+        fn = functions.REGISTRY.get(site.function)
+        if fn is None:
+            skip(f"no registry entry for {site.function}")
+            continue
+        if fn.is_cheap and not explicit:
+            skip(f"{site.function} is already cheap")
+            continue
+        if site.role == "gate" and not (include_gates or explicit):
+            skip("gate (its output multiplies another tensor); use --include-gates")
+            continue
+        if site.role == "output" and not (include_outputs or explicit):
+            skip("graph output; use --include-outputs")
+            continue
+        target = to or functions.DEFAULT_TARGET.get(site.function)
+        if target is None:
+            skip(f"no default surrogate for {site.function}; name one with --to")
+            continue
+        if target == site.function and to is None:
+            skip("already its own surrogate")
+            continue
+        target_fn = functions.get(target)
+        tparams = functions.target_params(site.function, site.params, target)
+        placement, notes = decide_placement(index, site, target_fn, fold)
+        channels = site.channels or 1
+        swap = SiteSwap(
+            site_id=site.id,
+            source=site.function,
+            source_params=dict(site.params),
+            target=target,
+            target_params=tparams,
+            channel_axis=site.channel_axis if site.channels else None,
+            channels=channels,
+            **{p: np.full(channels, NEUTRAL[p]) for p in PARAMS},
+            placement=placement,
+            notes=list(notes),
+        )
+        # before any value exists, a placement in POSITIVE_A asks for a positive start
+        start = _starting_params(site.function, site.params, target, tparams, "".join(swap.free()),
+                                 placement.get("a") in POSITIVE_A)
+        swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
+        swaps.append(swap)
+    return Plan(fold=fold, swaps=swaps, skipped=skipped)

@@ -1,0 +1,1 @@
+"""Outputs for people and scripts: report.json, report.html, terminal tables."""

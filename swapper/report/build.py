@@ -1,0 +1,173 @@
+"""report.json and report.html: what was swapped, what it cost, and the verdict.
+
+report.json (schema ``swapper.report.build/1``; every key is always present, ``null``
+when a part did not run):
+
+- ``schema``: "swapper.report/1"; ``created_utc``: ISO 8601 time.
+- ``tool``: versions of swapper, python, onnx, onnxruntime, numpy, scipy, scikit-learn.
+- ``inputs``: ``original``, ``candidate``, ``calibration``, ``validation``: each
+  ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written).
+- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`.
+- ``sites``: one entry per swapped site: ``site_id, source, target, placement
+  {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
+  bias_corrected, notes`` (mse values null without calibration).
+- ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
+  with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
+- ``comparison``: see ``swapper.check.compare.Comparison.to_dict``; ``budget``:
+  ``{"max_drop_pp", "strict", "min_agreement"}``; ``verdict``: ``{"approved",
+  "reason", "rule"}``; ``latency``: per model ``{median_ms, p10_ms, p90_ms,
+  runs}`` plus ``ratio``, ``batch_size``, ``threads``; ``size``: per model
+  ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
+  figures for quantized versions or null. All null when no validation ran.
+- ``caution``: the safety caution, verbatim.
+
+report.html is self-contained (styles inline, plots as data: URIs): the verdict
+and its reason first, then accuracy and agreement, latency and size side by
+side, the per-site table, and plots when matplotlib (the ``plots`` extra) is
+installed.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import platform
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from swapper.core.model_io import atomic_write_bytes, sha256_file
+from swapper.errors import BadOutputError
+from swapper.report.html import render_html
+
+logger = logging.getLogger(__name__)
+
+SCHEMA = "swapper.report/1"
+CAUTION = (
+    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
+    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
+    "and licensed practice."
+)
+
+
+TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
+            "verdict", "latency", "size", "int8", "caution")
+
+
+SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
+             "level", "bias_corrected", "notes")
+
+
+def _versions() -> dict:
+    import onnx
+    import onnxruntime
+    import scipy
+    import sklearn
+
+    from swapper import __version__
+
+    return {"swapper": __version__, "python": platform.python_version(), "onnx": onnx.__version__,
+            "onnxruntime": onnxruntime.__version__, "numpy": np.__version__, "scipy": scipy.__version__,
+            "scikit-learn": sklearn.__version__}
+
+
+def _file_entry(path) -> dict | None:
+    if path is None:
+        return None
+    p = Path(path)
+    if p.is_dir():  # a folder of .npy files: hash the sorted file list and contents
+        import hashlib
+
+        digest = hashlib.sha256()
+        total = 0
+        for f in sorted(p.glob("*.npy")):
+            digest.update(f.name.encode())
+            digest.update(bytes.fromhex(sha256_file(f)))
+            total += f.stat().st_size
+        return {"path": str(p), "sha256": digest.hexdigest(), "bytes": total}
+    return {"path": str(p), "sha256": sha256_file(p), "bytes": p.stat().st_size}
+
+
+def site_rows(plan, records, calibration) -> list[dict]:
+    """One summary per swapped site: what was fitted, where its parameters live, what it cost.
+
+    The ``sites`` entries of report.json, also what the terminal table shows.
+    """
+    by_record = {r.site_id: r for r in records or []}
+    fits = {c.site_id: c for c in calibration.sites} if calibration is not None else {}
+    rows = []
+    for s in plan.swaps:
+        rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
+        rows.append({
+            "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
+            "nodes_added": rec.nodes_added if rec else None,
+            "folded_into": list(rec.folded_into) if rec else [],
+            "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
+            "level": fit.level if fit else None,
+            "bias_corrected": list(fit.bias_corrected) if fit else [],
+            # plan, rewrite and fit may each record the same fact; keep the first of each, in order
+            "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
+                                        + (list(fit.notes) if fit else []))),
+        })
+    return rows
+
+
+def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
+                 calib_path=None) -> dict:
+    """Assemble the report.json payload (see the module docstring for its schema)."""
+    from swapper.core.jsonable import json_safe
+
+    sites = site_rows(swap.plan, swap.rewrite.records, swap.calibration) if swap is not None else []
+    payload = {
+        "schema": SCHEMA,
+        "created_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        "tool": _versions(),
+        "inputs": {"original": _file_entry(original.path), "candidate": _file_entry(candidate_path),
+                   "calibration": _file_entry(calib_path), "validation": _file_entry(val_path)},
+        "plan": swap.plan.to_dict() if swap is not None else None,
+        "sites": sites,
+        "calibration": swap.calibration.to_dict() if swap is not None and swap.calibration else None,
+        "comparison": check.comparison.to_dict() if check else None,
+        "budget": dict(check.budget.__dict__) if check else None,
+        "verdict": check.verdict.to_dict() if check else None,
+        "latency": check.latency if check else None,
+        "size": check.size if check else None,
+        "int8": check.int8 if check else None,
+        "caution": CAUTION,
+    }
+    return json_safe(payload, [], "report")
+
+
+def validate_report(payload: dict) -> None:
+    """Raise ValueError if ``payload`` does not follow schema swapper.report/1."""
+    if payload.get("schema") != SCHEMA:
+        raise ValueError(f"schema is {payload.get('schema')!r}, expected {SCHEMA!r}")
+    missing = [k for k in TOP_KEYS if k not in payload]
+    if missing:
+        raise ValueError(f"missing keys: {missing}")
+    for key in ("original", "candidate", "calibration", "validation"):
+        entry = payload["inputs"].get(key, "absent")
+        if entry == "absent" or (entry is not None and set(entry) != {"path", "sha256", "bytes"}):
+            raise ValueError(f"inputs.{key} malformed")
+    for site in payload["sites"]:
+        if set(site) != set(SITE_KEYS):
+            raise ValueError(f"site entry keys {sorted(site)} differ from {sorted(SITE_KEYS)}")
+    if payload["verdict"] is not None and set(payload["verdict"]) != {"approved", "reason", "rule"}:
+        raise ValueError("verdict malformed")
+    if payload["verdict"] is not None and not isinstance(payload["verdict"]["approved"], bool):
+        raise ValueError("verdict.approved must be a boolean")
+    json.dumps(payload, allow_nan=False)  # strict JSON: no NaN / Infinity
+
+
+def write_report(folder, **parts) -> tuple[Path, Path]:
+    """Write report.json and report.html into ``folder`` (created); return both paths."""
+    folder = Path(folder)
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise BadOutputError(f"cannot create report folder: {exc.strerror or exc}", folder) from None
+    payload = build_report(**parts)
+    validate_report(payload)
+    json_path = atomic_write_bytes(json.dumps(payload, indent=2, allow_nan=False).encode(), folder / "report.json")
+    html_path = atomic_write_bytes(render_html(payload).encode(), folder / "report.html")
+    return json_path, html_path

@@ -1,0 +1,173 @@
+"""report.html: a self-contained page rendered from the report.json payload."""
+from __future__ import annotations
+
+import base64
+import html
+import io
+import logging
+
+import numpy as np
+
+from swapper import functions
+from swapper.report.numbers import pct
+
+logger = logging.getLogger(__name__)
+
+_CSS = """
+body{font-family:system-ui,sans-serif;margin:2rem auto;max-width:64rem;color:#1d2433;line-height:1.4}
+h1{font-size:1.5rem} h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px solid #d6dbe4}
+.verdict{padding:1rem 1.25rem;border-radius:.5rem;font-size:1.1rem}
+.ok{background:#e7f5ec;border:1px solid #7cc49a} .no{background:#fbeaea;border:1px solid #d98c8c}
+.none{background:#eef1f6;border:1px solid #b8c0cc}
+table{border-collapse:collapse;margin:.5rem 0;font-size:.9rem} td,th{padding:.25rem .6rem;border-bottom:1px solid #e3e7ee;text-align:left}
+td.n{text-align:right;font-variant-numeric:tabular-nums} .side{display:flex;gap:2rem;flex-wrap:wrap}
+.side>div{flex:1 1 22rem;min-width:0}
+.caution{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
+"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x))
+
+
+def _num(x, fmt="{:.4g}") -> str:
+    return "–" if x is None else fmt.format(x)
+
+
+def _table(header: list[str], rows: list[list], numeric: set[int] = frozenset()) -> str:
+    head = "".join(f"<th>{_e(h)}</th>" for h in header)
+    body = "".join(
+        "<tr>" + "".join(f"<td class='n'>{_e(v)}</td>" if i in numeric else f"<td>{_e(v)}</td>"
+                         for i, v in enumerate(r)) + "</tr>" for r in rows)
+    return f"<table><tr>{head}</tr>{body}</table>"
+
+
+def _plots(payload: dict) -> list[tuple[str, str]]:
+    """(caption, data-URI PNG) pairs; empty when matplotlib is missing."""
+    try:
+        import matplotlib
+
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+    except ImportError:
+        return []
+    out = []
+    sites = [s for s in payload["sites"] if s["mse_fit"] is not None]
+    if sites:
+        fig, ax = plt.subplots(figsize=(7, 3))
+        idx = np.arange(len(sites))
+        ax.bar(idx - 0.2, [s["mse_start"] for s in sites], 0.4, label="starting parameters")
+        ax.bar(idx + 0.2, [s["mse_fit"] for s in sites], 0.4, label="calibrated")
+        ax.set_xticks(idx, [s["site_id"] for s in sites])
+        ax.set_yscale("log")
+        ax.set_ylabel("site output MSE")
+        ax.legend()
+        out.append(("Per-site error on the calibration data, before and after fitting", _png(fig, plt)))
+    plan = payload.get("plan") or {"swaps": []}
+    ranges = {c["site_id"]: c for c in (payload.get("calibration") or {}).get("sites", [])}
+    worst = sorted(sites, key=lambda s: -s["mse_fit"])[:3]
+    for s in worst:
+        swap = next(w for w in plan["swaps"] if w["site_id"] == s["site_id"])
+        rng = ranges.get(s["site_id"], {})
+        f, g = functions.get(swap["source"]), functions.get(swap["target"])
+        fig, ax = plt.subplots(figsize=(7, 3))
+        for ch in range(min(4, len(swap["a"]))):
+            lo = (rng.get("x_min") or [-6.0] * len(swap["a"]))[ch]
+            hi = (rng.get("x_max") or [6.0] * len(swap["a"]))[ch]
+            x = np.linspace(lo, hi, 200) if hi > lo else np.linspace(lo - 1, lo + 1, 200)
+            line, = ax.plot(x, f.ref(x, **swap["source_params"]), lw=2, alpha=0.5)
+            ax.plot(x, swap["a"][ch] * g.ref(swap["b"][ch] * x + swap["c"][ch], **swap["target_params"])
+                    + swap["d"][ch], "--", color=line.get_color(), label=f"channel {ch}")
+        ax.set_xlabel("site input (recorded range)")
+        ax.legend(fontsize=7)
+        out.append((f"{s['site_id']}: {swap['source']} (solid) vs fitted {swap['target']} (dashed)", _png(fig, plt)))
+    return out
+
+
+def _png(fig, plt) -> str:
+    buf = io.BytesIO()
+    fig.tight_layout()
+    fig.savefig(buf, format="png", dpi=90, metadata={"Software": None})
+    plt.close(fig)
+    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+
+
+def render_html(payload: dict) -> str:
+    """The report for a person, as one self-contained HTML page."""
+    v = payload["verdict"]
+    model = (payload["inputs"]["original"] or {}).get("path", "model")
+    if v is None:
+        banner = "<div class='verdict none'><b>No verdict</b>: no validation set was given.</div>"
+    else:
+        cls, word = ("ok", "APPROVED") if v["approved"] else ("no", "REJECTED")
+        banner = (f"<div class='verdict {cls}'><b>{word}</b>: {_e(v['reason'])}"
+                  f"<br><small>Rule: {_e(v['rule'])}</small></div>")
+    parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>swapper report: {_e(model)}</title>"
+             f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner]
+    c = payload["comparison"]
+    if c is not None:
+        rows = [["samples", c["n"], ""], ["top-1 accuracy", pct(c["top1_original"]), pct(c["top1_candidate"])]]
+        if c.get("top5_original") is not None:
+            rows.append(["top-5 accuracy", pct(c["top5_original"]), pct(c["top5_candidate"])])
+        acc = _table(["", "original", "candidate"], rows)
+        extra = []
+        if c.get("delta_pp") is not None:
+            iv = c.get("interval") or {}
+            extra.append(["accuracy delta", f"{c['delta_pp']:+.2f} pp"])
+            if iv:
+                extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
+            extra.append(["McNemar exact p", f"{_num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
+        if c.get("agreement") is not None:
+            extra.append(["top-1 agreement", pct(c["agreement"])])
+        for name, errs in (c.get("output_errors") or {}).items():
+            extra.append([f"output {name}", f"max |Δ| {_num(errs.get('max_abs'))}, RMSE {_num(errs.get('rmse'))}, "
+                                            f"cosine {_num(errs.get('cosine'), '{:.6f}')}, SQNR {_num(errs.get('sqnr_db'), '{:.1f}')} dB"])
+        lat, size = payload["latency"], payload["size"]
+        speed = _table(["", "original", "candidate"], [
+            ["median latency (ms)", _num(lat["original"]["median_ms"]), _num(lat["candidate"]["median_ms"])],
+            ["p10–p90 (ms)", f"{_num(lat['original']['p10_ms'])}–{_num(lat['original']['p90_ms'])}",
+             f"{_num(lat['candidate']['p10_ms'])}–{_num(lat['candidate']['p90_ms'])}"],
+            ["latency ratio", "", f"{lat['ratio']:.3f}"],
+            ["serialized bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
+            ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]],
+        ], numeric={1, 2})
+        parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)
+                     + f"</div><div>{speed}<small>batch {lat['batch_size']}, {lat['threads']} thread(s), "
+                       f"median of {lat['original']['runs']} interleaved runs</small></div></div>")
+        ops = sorted(set(size["original"]["op_counts"]) | set(size["candidate"]["op_counts"]))
+        parts.append("<h2>Operators</h2>" + _table(
+            ["op", "original", "candidate"],
+            [[op, size["original"]["op_counts"].get(op, 0), size["candidate"]["op_counts"].get(op, 0)] for op in ops],
+            numeric={1, 2}))
+        if payload["int8"]:
+            q = payload["int8"]
+            parts.append("<h2>int8 view</h2>" + _table(["", "original", "candidate"], [
+                ["top-1 accuracy", pct(q["comparison"].get("top1_original")), pct(q["comparison"].get("top1_candidate"))],
+                ["median latency (ms)", _num(q["latency"]["original"]["median_ms"]), _num(q["latency"]["candidate"]["median_ms"])],
+                ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
+            ]) + f"<small>{_e(q['quantization'])}</small>")
+            for w in q.get("lossy_weights") or []:
+                parts.append(f"<p>Warning: int8 weights of {_e(w['op_type'])} {_e(w['node'])} lose "
+                             f"{100 * w['median_input_error']:.0f}% of the median input channel; input channel "
+                             f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
+                             f"output channels.</p>")
+    if payload["sites"]:
+        rows = [[s["site_id"], f"{s['source']} → {s['target']}",
+                 " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
+                 _num(s["mse_start"]), _num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
+        parts.append("<h2>Swapped sites</h2>" + _table(
+            ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted", "notes"],
+            rows, numeric={3, 4, 5}))
+    skipped = (payload.get("plan") or {}).get("skipped", [])
+    if skipped:
+        parts.append("<h2>Left alone</h2>" + _table(["site", "function", "reason"],
+                                                    [[s["site_id"], s["function"], s["reason"]] for s in skipped]))
+    plots = _plots(payload)
+    if plots:
+        parts.append("<h2>Plots</h2>" + "".join(f"<figure><img alt='{_e(t)}' src='{uri}'><figcaption>{_e(t)}"
+                                                 f"</figcaption></figure>" for t, uri in plots))
+    tool = payload["tool"]
+    parts.append(f"<p class='caution'>{_e(payload['caution'])}</p><p class='caution'>swapper {_e(tool['swapper'])}, "
+                 f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."
+                 f"</p></body></html>")
+    return "\n".join(parts)

@@ -1,0 +1,337 @@
+"""Apply a swap plan to a copy of a model.
+
+Transformation: for every swapped site, the site's nodes are replaced by
+``y = a·g(b·x + c) + d`` where ``g`` is the registry emitter of the target and
+each of a, b, c, d is placed as the plan says: folded into the producer of ``x``
+(its output channels scaled/shifted), folded into the linear layers that read
+``y``, directly or behind pools/reshapes/gates (their input-channel weights
+scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool, valid
+for a >= 0, else a is emitted as a node), moved inside ``g`` (a > 0,
+homogeneous g), or emitted as per-channel Mul/Add nodes. Parameters equal to
+their neutral value add nothing. The output tensor name of every site is kept,
+so consumers and graph outputs are untouched. The input model is never
+mutated, and folded weights always get a new initializer (the model's own
+initializers may be shared by other nodes). The graph surgery itself (placing
+nodes, dropping what died) is :mod:`swapper.core.surgery`.
+"""
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+
+import numpy as np
+import onnx
+from onnx import helper, numpy_helper
+
+from swapper import functions
+from swapper.core.emit import Emitter
+from swapper.core.graph import GraphIndex, attr
+from swapper.core.surgery import (
+    all_names,
+    copy_model,
+    copy_name,
+    input_at,
+    rewire,
+    site_positions,
+    splice,
+    used_names,
+)
+from swapper.errors import BadModelError, UsageError
+from swapper.functions.params import NEUTRAL, PARAMS
+from swapper.plan.placement import (
+    ConsumerFold,
+    ProducerFold,
+    consumer_folds,
+    producer_fold,
+    site_rank,
+)
+from swapper.plan.plan import Plan, SiteSwap
+from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
+from swapper.scan.sites import Site
+
+logger = logging.getLogger(__name__)
+
+PLAN_KEY = "swapper.plan"
+PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx")
+IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
+FOLDING = ("producer", "consumers", "consumers+", "approx", "inner")  # placements that need the fold analysis
+
+
+@dataclass
+class SiteRecord:
+    site_id: str
+    source: str
+    target: str
+    placement: dict
+    folded_into: list[str]  # names of the nodes whose weights or bias changed
+    nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
+    notes: list[str] = field(default_factory=list)
+
+
+@dataclass
+class RewriteResult:
+    model: onnx.ModelProto
+    nodes_before: int
+    nodes_after: int
+    records: list[SiteRecord]
+
+
+# ------------------------------------------------------------- weight copies
+class _Weights:
+    """Folded copies of weight tensors, in float64 until written out.
+
+    Each (node, input) that gets folded is rewired once to a fresh tensor that
+    only it reads (named by :func:`swapper.core.surgery.copy_name`, added by
+    :func:`swapper.core.surgery.splice`); later folds into the same input update
+    that copy, so two sites folding into one layer compose.
+    """
+
+    def __init__(self, index: GraphIndex, taken: set[str]):
+        self.index = index
+        self.taken = taken
+        self.values: dict[str, np.ndarray] = {}
+        self.dtypes: dict[str, np.dtype] = {}
+
+    def read(self, node: onnx.NodeProto, slot: int) -> np.ndarray | None:
+        name = input_at(node, slot)
+        if not name:
+            return None
+        if name in self.values:
+            return self.values[name].copy()
+        value = self.index.const(name)
+        return None if value is None else value.astype(np.float64)
+
+    def dtype(self, node: onnx.NodeProto, slot: int) -> np.dtype:
+        """dtype of the tensor in ``slot``; a missing bias takes the weight's (slot 1) dtype."""
+        name = input_at(node, slot)
+        if name in self.dtypes:
+            return self.dtypes[name]
+        value = self.index.const(name) if name else None
+        if value is None:
+            return self.dtype(node, 1) if slot != 1 else np.dtype(np.float32)
+        return value.dtype
+
+    def write(self, node: onnx.NodeProto, slot: int, value: np.ndarray, em: Emitter) -> None:
+        """Set input ``slot`` of ``node``; its first write rewires it to a new tensor under ``em``'s prefix."""
+        name = input_at(node, slot)
+        if name in self.values:
+            self.values[name] = np.asarray(value, dtype=np.float64)
+            return
+        dtype = self.dtype(node, slot)
+        new = copy_name(node, slot, self.taken, em.prefix)
+        rewire(node, slot, new)
+        self.values[new] = np.asarray(value, dtype=np.float64)
+        self.dtypes[new] = np.dtype(dtype)
+
+    def tensors(self) -> list[onnx.TensorProto]:
+        return [numpy_helper.from_array(self.values[n].astype(self.dtypes[n]), n) for n in sorted(self.values)]
+
+
+def _neutral(p: str, v: np.ndarray) -> bool:
+    return bool(np.all(v == NEUTRAL[p]))
+
+
+def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray, em: Emitter) -> list[str]:
+    """Fold b (scale) and c (shift) into the layer that produces x. Returns the touched node names."""
+    node, bias_node = pf.node, pf.bias_node
+    bias = None if bias_node is None else w.read(bias_node, pf.bias_slot)
+    new_w, new_bias = scale_shift_output(pf.kind, node, w.read(node, 1), bias, b, c)
+    touched = []
+    if not _neutral("b", b):
+        w.write(node, 1, new_w, em)
+        touched.append(node.name)
+    if bias_node is not None and (not _neutral("c", c) or (bias is not None and not _neutral("b", b))):
+        w.write(bias_node, pf.bias_slot, new_bias, em)
+        touched.append(bias_node.name)
+    return touched
+
+
+def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.ndarray | None,
+                    em: Emitter) -> list[str]:
+    """Fold y -> a·y + d into one linear consumer. d uses the weights before the a scaling."""
+    node = f.node
+    weight = w.read(node, 1)
+    touched = []
+    if d is not None:
+        offset = input_offset(f.kind, node, weight, d)
+        if f.kind == "gemm":  # C is scaled by beta inside Gemm
+            offset = offset / float(attr(node, "beta", 1.0))
+        bias = w.read(f.bias_node, f.bias_slot)
+        w.write(f.bias_node, f.bias_slot, (0.0 if bias is None else bias) + offset, em)
+        touched.append(f.bias_node.name)
+    if a is not None:
+        w.write(node, 1, input_scale(f.kind, node, weight, a), em)
+        touched.append(node.name)
+    return touched
+
+
+# ----------------------------------------------------------- one site swap
+def _vectors(swap: SiteSwap) -> dict[str, np.ndarray]:
+    vals = {p: np.asarray(getattr(swap, p), dtype=np.float64).ravel() for p in PARAMS}
+    sizes = {v.size for v in vals.values()} - {1}
+    if len(sizes) > 1 or any(v.size == 0 for v in vals.values()):
+        raise UsageError(f"site {swap.site_id}: parameters a, b, c, d have inconsistent lengths")
+    if not all(np.all(np.isfinite(v)) for v in vals.values()):
+        raise UsageError(f"site {swap.site_id}: parameters are not all finite")
+    return vals
+
+
+def _param_shape(index: GraphIndex, site: Site, swap: SiteSwap, n: int) -> tuple[int, ...]:
+    """Broadcastable shape of a per-channel constant: [C, 1, 1] for NCHW axis 1, [C] for the last axis."""
+    if n == 1:
+        return ()
+    axis = swap.channel_axis if swap.channel_axis is not None else site.channel_axis
+    if axis is None:
+        raise UsageError(f"site {site.id}: {n} parameters per set but no channel axis")
+    if axis < 0:
+        return (n,) + (1,) * (-axis - 1)
+    rank = site_rank(index, site)
+    if rank is None:
+        raise BadModelError(f"site {site.id}: rank of {site.input!r} is unknown; cannot place per-channel nodes")
+    return (n,) + (1,) * (rank - 1 - axis)
+
+
+def _check_placement(site: Site, swap: SiteSwap, fn: functions.Function, vals: dict) -> dict[str, str]:
+    place = {p: swap.placement.get(p, "held") for p in PARAMS}
+    for p, where in place.items():
+        if where not in PLACEMENTS or (where in ("inner", "consumers+") and p != "a") \
+                or (where == "approx" and p != "d"):
+            raise UsageError(f"site {site.id}: invalid placement {where!r} for {p}")
+        if where == "held" and not _neutral(p, vals[p]):
+            raise UsageError(f"site {site.id}: {p} is held but not neutral ({NEUTRAL[p]})")
+    if place["a"] == "inner":
+        if not fn.homogeneous:
+            raise UsageError(f"site {site.id}: a is placed inside {fn.name}, which is not homogeneous")
+        if np.any(vals["a"] <= 0):
+            raise UsageError(f"site {site.id}: a is placed inside {fn.name} but is not > 0 everywhere")
+        if place["b"] not in ("producer", "nodes"):
+            raise UsageError(f"site {site.id}: a inside g needs b in the producer or as a node")
+    if place["c"] == "producer" and place["b"] == "nodes":
+        raise UsageError(f"site {site.id}: c in the producer with b as a node would shift before scaling")
+    return place
+
+
+def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap, em: Emitter,
+               analysis: tuple | None) -> SiteRecord:
+    """Emit one site's surrogate into ``em`` and fold its parameters; ``analysis`` is
+    ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
+    plan folds nothing of this site)."""
+    fn = functions.get(swap.target)
+    vals = _vectors(swap)
+    place = _check_placement(site, swap, fn, vals)
+    notes = list(swap.notes)
+    if place["a"] == "consumers+" and np.any(vals["a"] < 0):
+        # max(a·y) = a·max(y) only for a >= 0: a negative channel cannot cross the max pool
+        place["a"] = "nodes"
+        notes.append("a emitted as a node: a < 0 on some channel cannot pass the max pool before the consumers")
+    if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
+        vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
+    need = {p: not _neutral(p, vals[p]) for p in PARAMS}
+    n = max(v.size for v in vals.values())
+    np_dtype = helper.tensor_dtype_to_np_dtype(index.dtypes.get(site.input, onnx.TensorProto.FLOAT))
+
+    def const(p: str, v: np.ndarray) -> str:
+        """A per-channel constant shaped to broadcast along the channel axis (asked for only when emitted)."""
+        if v.size == 1:
+            return em.const(v.reshape(()), p, np_dtype)
+        return em.const(np.broadcast_to(v, (n,)).reshape(_param_shape(index, site, swap, n)), p, np_dtype)
+
+    folded: list[str] = []
+    in_b, in_c = place["b"] == "producer" and need["b"], place["c"] == "producer" and need["c"]
+    if in_b or in_c:
+        pf, why = analysis[0]
+        if pf is None or (in_c and not pf.can_shift):
+            raise UsageError(f"site {site.id}: plan folds b/c into the producer but {why or pf.reason}")
+        folded += _apply_producer(weights, pf, vals["b"] if in_b else np.ones(1),
+                                  vals["c"] if in_c else np.zeros(1), em)
+    x = site.input
+    if place["b"] == "nodes" and need["b"]:
+        x = em.node("Mul", [x, const("b", vals["b"])])
+    if place["c"] == "nodes" and need["c"]:
+        x = em.node("Add", [x, const("c", vals["c"])])
+
+    a_cons = place["a"] in IN_CONSUMERS and need["a"]
+    d_cons = place["d"] in ("consumers", "approx") and need["d"]
+    a_node, d_node = place["a"] == "nodes" and need["a"], place["d"] == "nodes" and need["d"]
+    d_emit = vals["d"]
+    if a_cons and d_node:
+        # The consumers will scale the Add's output by a: emit d/a so they see a·g + d.
+        if np.any((vals["a"] == 0) & (vals["d"] != 0)):
+            a_cons, a_node, place["a"] = False, True, "nodes"
+            notes.append("a emitted as a node: a = 0 where d != 0 cannot stay in the consumers")
+        else:
+            d_emit = np.divide(vals["d"], vals["a"], out=np.zeros(n), where=vals["a"] != 0)
+    if a_cons or d_cons:
+        folds, why = analysis[1]
+        if folds is None:
+            raise UsageError(f"site {site.id}: plan folds a/d into the consumers but {why}")
+        ok = (lambda f: f.d_exact) if place["d"] == "consumers" else (lambda f: f.d_exact or f.d_approx)
+        if d_cons and not all(ok(f) and not f.d_block for f in folds):
+            raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
+        if a_cons and place["a"] == "consumers" and any(f.a_positive for f in folds):
+            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers+")
+        for f in folds:
+            folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
+                                      vals["d"] if d_cons else None, em)
+
+    g_out = em.fresh("g") if (a_node or d_node) else site.output
+    fn.emit(em, x, g_out, dict(swap.target_params))
+    if a_node:
+        em.node("Mul", [g_out, const("a", vals["a"])], None if d_node else site.output)
+    if d_node:
+        em.node("Add", [em.nodes[-1].output[0], const("d", d_emit)], site.output)
+    if not em.nodes or em.nodes[-1].output[0] != site.output:
+        raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
+    return SiteRecord(site.id, site.function, swap.target, dict(place), sorted(set(folded)), len(em.nodes), notes)
+
+
+# ------------------------------------------------------------------ public
+def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteResult:
+    """A copy of ``model`` with every site of ``plan`` replaced by its surrogate, parameters placed."""
+    out = copy_model(model)
+    index = GraphIndex.of(out)
+    if index.opset <= 0:
+        raise BadModelError("model imports no default-domain opset")
+    by_id = {s.id: s for s in sites}
+    missing = [s.site_id for s in plan.swaps if s.site_id not in by_id]
+    if missing:
+        raise UsageError(f"plan names unknown site {', '.join(missing)}; valid ids: {', '.join(sorted(by_id))}")
+    chosen = [by_id[s.site_id] for s in plan.swaps]
+    positions = site_positions(out, chosen)
+    used_before = used_names(out)
+    taken = all_names(out)
+    weights = _Weights(index, taken)
+    # Analyse on the untouched copy (folds rewire weights to new tensors), and only the sites whose
+    # plan folds something: an all-"nodes" plan (refit's) needs no analysis at all.
+    analyses = {s.site_id: (producer_fold(index, by_id[s.site_id]), consumer_folds(index, by_id[s.site_id]))
+                for s in plan.swaps if set(s.placement.values()) & set(FOLDING)}
+    inserts, emitted, records = {}, [], []
+    for swap in plan.swaps:
+        site = by_id[swap.site_id]
+        if swap.source != site.function:
+            raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
+        em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken)
+        records.append(_swap_site(index, weights, site, swap, em, analyses.get(site.id)))
+        inserts[site.id] = list(em.nodes)
+        emitted.extend(em.initializers)
+    splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
+    kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
+    del out.metadata_props[:]
+    out.metadata_props.extend(kept)
+    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
+    logger.info("rewrote %d sites: %d -> %d nodes", len(records), len(model.graph.node), len(out.graph.node))
+    return RewriteResult(out, len(model.graph.node), len(out.graph.node), records)
+
+
+def rewrite_identity_floor(model: onnx.ModelProto, sites: list[Site]) -> onnx.ModelProto:
+    """A copy of ``model`` with each site replaced by Identity: the speed floor of any swap."""
+    out = copy_model(model)
+    positions = site_positions(out, sites)
+    taken = all_names(out)
+    inserts, opset = {}, GraphIndex.of(out).opset
+    for site in sites:
+        em = Emitter(prefix=f"swapper/{site.id}", opset=opset, taken=taken)
+        em.identity(site.input, site.output)
+        inserts[site.id] = em.nodes
+    splice(out, sites, positions, inserts, [], used_names(out))
+    return out
