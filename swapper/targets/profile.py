@@ -82,7 +82,6 @@ in one object is an error (JSON parsers otherwise keep the last silently).
 from __future__ import annotations
 
 import logging
-import math
 import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -193,30 +192,40 @@ class TargetProfile:
     def cost_of(self, ops: Sequence[str], after: str | None = None) -> float | None:
         """Cost per element of the chain ``ops`` (execution order) placed right after a node of type ``after``.
 
-        Each op costs its own ``cost``, except where a fusion covers a run of
-        ops: a fusion listing ``after`` among its producers may cover the ops
-        at the head of the chain, a fusion with after "*" may cover any run.
-        The cheapest covering is returned (runtimes fuse greedily, so where two
-        fusions overlap this is the optimistic reading). None when any op is
+        Fusions are applied the way a runtime's pattern matcher does, whether
+        or not the fused form is cheaper: walking the chain from its head, the
+        longest fusion pattern that matches at the current position covers
+        those ops at the fusion's cost (a fusion listing ``after`` among its
+        producers only at the head, one with after "*" anywhere; on equal
+        length the producer's own fusion wins, then the earlier entry); an op
+        no fusion covers costs its own ``cost``. None when any op is
         unsupported; 0.0 for an empty chain.
         """
         chain = _op_list(ops)
         if any(self.cost(op) is None for op in chain):
             return None
-        # best[i] = cheapest cost of chain[:i]; a shortest-path over positions
-        best = [math.inf] * (len(chain) + 1)
-        best[0] = 0.0
-        for i, op in enumerate(chain):
-            if best[i] == math.inf:
+        total, i = 0.0, 0
+        while i < len(chain):
+            fusion = self._longest_fusion(chain, i, after if i == 0 else None)
+            if fusion is None:
+                total += self.cost(chain[i])
+                i += 1
+            else:
+                total += fusion.cost
+                i += len(fusion.ops)
+        return total
+
+    def _longest_fusion(self, chain: list[str], i: int, producer: str | None) -> Fusion | None:
+        best: Fusion | None = None
+        for fusion in self.fusions:
+            if not (fusion.anywhere or (producer is not None and producer in fusion.after)):
                 continue
-            best[i + 1] = min(best[i + 1], best[i] + self.cost(op))
-            for fusion in self.fusions:
-                end = i + len(fusion.ops)
-                if tuple(chain[i:end]) != fusion.ops:
-                    continue
-                if fusion.anywhere or (i == 0 and after is not None and after in fusion.after):
-                    best[end] = min(best[end], best[i] + fusion.cost)
-        return best[-1]
+            if tuple(chain[i:i + len(fusion.ops)]) != fusion.ops:
+                continue
+            if best is None or len(fusion.ops) > len(best.ops) or (
+                    len(fusion.ops) == len(best.ops) and best.anywhere and not fusion.anywhere):
+                best = fusion
+        return best
 
     def accepts_opset(self, opset: int) -> bool:
         """Whether a model of default-domain ``opset`` is accepted by this target."""
