@@ -189,24 +189,32 @@ class TargetProfile:
                 bad.append(op)
         return not bad, bad
 
-    def cost_of(self, ops: Sequence[str], after: str | None = None) -> float | None:
+    def cost_of(self, ops: Sequence[str], after: str | None = None, *, linear: bool = False) -> float | None:
         """Cost per element of the chain ``ops`` (execution order) placed right after a node of type ``after``.
 
-        Fusions are applied the way a runtime's pattern matcher does, whether
-        or not the fused form is cheaper: walking the chain from its head, the
-        longest fusion pattern that matches at the current position covers
-        those ops at the fusion's cost (a fusion listing ``after`` among its
-        producers only at the head, one with after "*" anywhere; on equal
-        length the producer's own fusion wins, then the earlier entry); an op
-        no fusion covers costs its own ``cost``. None when any op is
-        unsupported; 0.0 for an empty chain.
+        ``ops`` are the nodes between the producer and the next layer, in
+        execution order. Fusions are applied the way a runtime's pattern
+        matcher does, whether or not the fused form is cheaper: walking the
+        chain from its head, the longest fusion pattern that matches at the
+        current position covers those ops at the fusion's cost, and an op no
+        fusion covers costs its own ``cost``. A fusion with after "*" may match
+        anywhere. A fusion listing ``after`` among its producers may match only
+        at the head and, by default, only when it covers the whole chain: a
+        producer can absorb its activation only if nothing else reads the
+        producer's output, and in x*HardSigmoid(x) the Mul reads it again.
+        Pass ``linear=True`` when each op reads only the previous op's output
+        (and constants), e.g. Relu then a per-channel Mul; then a producer
+        fusion may cover a head prefix. On equal length the producer's own
+        fusion wins, then the earlier entry. None when any op is unsupported;
+        0.0 for an empty chain.
         """
         chain = _op_list(ops)
         if any(self.cost(op) is None for op in chain):
             return None
         total, i = 0.0, 0
         while i < len(chain):
-            fusion = self._longest_fusion(chain, i, after if i == 0 else None)
+            producer = after if i == 0 else None
+            fusion = self._longest_fusion(chain, i, producer, whole=not linear)
             if fusion is None:
                 total += self.cost(chain[i])
                 i += 1
@@ -215,12 +223,15 @@ class TargetProfile:
                 i += len(fusion.ops)
         return total
 
-    def _longest_fusion(self, chain: list[str], i: int, producer: str | None) -> Fusion | None:
+    def _longest_fusion(self, chain: list[str], i: int, producer: str | None, whole: bool) -> Fusion | None:
         best: Fusion | None = None
         for fusion in self.fusions:
-            if not (fusion.anywhere or (producer is not None and producer in fusion.after)):
+            at_producer = producer is not None and producer in fusion.after
+            if not (fusion.anywhere or at_producer):
                 continue
             if tuple(chain[i:i + len(fusion.ops)]) != fusion.ops:
+                continue
+            if not fusion.anywhere and whole and len(fusion.ops) != len(chain):
                 continue
             if best is None or len(fusion.ops) > len(best.ops) or (
                     len(fusion.ops) == len(best.ops) and best.anywhere and not fusion.anywhere):
