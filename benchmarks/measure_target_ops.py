@@ -347,6 +347,20 @@ def _show(ops: list[str]) -> str:
     return ", ".join(ops)
 
 
+def noise_note(costs: dict) -> str:
+    """How noisy the fused costs are, judged from two fusions that do the same work (a clamp in the Conv)."""
+    try:
+        ref = costs[("ref", None, None)]
+        conv = costs[("producer", "Conv", None)]
+        relu, clip = ((costs[("fused", "Conv", p)] - conv) / ref for p in ("Relu", "Clip"))
+    except KeyError:  # this onnxruntime fused neither into the Conv
+        return "A fused cost is the difference of two medians (producer + pattern, producer alone), clamped at 0."
+    return (f"A fused cost is the difference of two ~{conv * 1e3:.2f} ms medians, in units of a standalone Relu on "
+            f"the same 262144 elements ({ref * 1e3:.3f} ms), clamped at 0. Conv+Relu and Conv+Clip(0, 6) fold the "
+            f"same clamp into the Conv yet came out at {relu:.2f} and {clip:.2f}: differences of that size are "
+            "noise on this machine.")
+
+
 def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms: dict, opsets: tuple[int, int],
                    meta: dict) -> tuple[dict, dict]:
     """The two profile objects (swapper.target/1) from this run's numbers and facts."""
@@ -442,9 +456,7 @@ def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms:
         [(f"Costs of {', '.join(op for op in OP_COSTS_FORMS)} come from op_costs.json, measured on "
           f"{table['measured']['cpu']}; the others from this run on {meta['cpu']}. This run's own values for the "
           f"op_costs.json ops (cross-check; ratios move between CPUs and under load): {', '.join(cross)}."),
-         ("A fused cost is the difference of two medians of ~0.3 ms runs, in units of a standalone Relu on the "
-          "same 262144 elements (~0.03 ms): Conv+Relu came out below the Conv alone (clamped to 0), which shows "
-          "the noise; read fused costs under ~1 as nearly free.")])
+         noise_note(costs)])
     q = profile(
         "ort-cpu-int8", "int8",
         "onnxruntime CPUExecutionProvider, QDQ int8 (uint8 activations, int8 per-channel weights), one thread",
