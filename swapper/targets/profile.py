@@ -56,7 +56,11 @@ produces their input, for free (cost 0) or at the stated cost::
      "source": "...", "note": "...", "from_memory": false}
 
 Every op of a pattern must itself be supported in ``ops`` (or by
-``default``); the same (producer, ops) pair may not be listed twice.
+``default``); the same (producer, ops) pair may not be listed twice. A
+producer's fusion absorbs its pattern only when nothing else reads the
+producer's output; :meth:`TargetProfile.cost_of` spells out how a chain is
+matched (longest pattern first, as a runtime's matcher does, even when the
+fused form is dearer).
 
 ``sources`` entries: ``{"title", "url" (http/https), "supports" (what this
 document supports in the file), "note"?}``.
@@ -126,6 +130,8 @@ class Fusion:
 
 @dataclass(frozen=True)
 class Quantization:
+    """How a measured int8 profile quantizes a model before timing it."""
+
     format: str
     activations: str
     weights: str
@@ -145,6 +151,8 @@ class Measurement:
 
 @dataclass(frozen=True)
 class Source:
+    """A document the profile's facts come from."""
+
     title: str
     url: str
     supports: str
@@ -153,6 +161,8 @@ class Source:
 
 @dataclass(frozen=True)
 class TargetProfile:
+    """One deployment target as its profile file describes it (read-only; ``ops`` is a read-only mapping)."""
+
     name: str
     description: str
     precision: str
