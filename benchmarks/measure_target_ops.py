@@ -13,7 +13,7 @@ What it measures, on this machine, with the installed onnxruntime:
    machine other processes inflate even CPU time through caches and memory
    bandwidth), divided by the same statistic of the Relu graph of the same
    precision. float32 costs
-   that swapper/resources/op_costs.json already has are taken from there (it
+   that the project's op_costs.json (swapper/resources/) already has are taken from there (it
    is the project's measured table); this run's own values for those ops are
    kept in the profile notes as a cross-check.
 2. Fusion facts. Each activation pattern after each producer (Conv,
@@ -73,7 +73,7 @@ OPS = {
     "Min": (2, {}, [], "any"), "Where": (2, {}, [], "any"), "Abs": (1, {}, [], "any"),
     "Neg": (1, {}, [], "any"), "Sqrt": (1, {}, [], "positive"), "Reciprocal": (1, {}, [], "any"),
 }
-# op type -> (function, form) in swapper/resources/op_costs.json
+# op type -> (function, form) in the project's op_costs.json
 OP_COSTS_FORMS = {
     "Relu": ("relu", "op"), "LeakyRelu": ("leaky_relu", "op"), "PRelu": ("prelu", "op"),
     "Sigmoid": ("sigmoid", "op"), "Tanh": ("tanh", "op"), "Elu": ("elu", "op"), "Selu": ("selu", "op"),
@@ -328,6 +328,14 @@ def accepted_opsets() -> tuple[int, int]:
     return min(ok), max(v for v in ok if all(u in ok for u in range(min(ok), v + 1)))
 
 
+def op_costs_path() -> Path:
+    """The project's measured cost table (swapper/resources/ or, after the package moves, swapper/functions/)."""
+    found = sorted(ROOT.glob("swapper/**/op_costs.json"))
+    if not found:
+        raise SystemExit("op_costs.json not found under swapper/; run benchmarks/measure_op_costs.py first")
+    return found[0]
+
+
 def timing_base(producer: str | None) -> str | None:
     """The graph a fused pattern's time is compared with: the producer alone (MatMul for MatMul+Add)."""
     return "MatMul" if producer == "MatMul+Add" else producer
@@ -364,11 +372,11 @@ def noise_note(costs: dict) -> str:
 def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms: dict, opsets: tuple[int, int],
                    meta: dict) -> tuple[dict, dict]:
     """The two profile objects (swapper.target/1) from this run's numbers and facts."""
-    table = json.loads((ROOT / "swapper/resources/op_costs.json").read_text())
+    table = json.loads(op_costs_path().read_text())
     today, ver = meta["date"], ort.__version__
     how = (f"benchmarks/measure_target_ops.py, {today}, onnxruntime {ver}, {meta['cpu']}: single-op graph on "
            f"{list(SHAPE)}, ORT_ENABLE_ALL, 1 thread, least per-sweep median thread CPU time / the Relu graph's")
-    table_src = (f"swapper/resources/op_costs.json (benchmarks/measure_op_costs.py, {table['measured']['date']}, "
+    table_src = (f"{op_costs_path().relative_to(ROOT)} (benchmarks/measure_op_costs.py, {table['measured']['date']}, "
                  f"onnxruntime {table['measured']['onnxruntime']})")
     relu32, relu8 = costs[("float32", "Relu")], costs[("int8", "Relu")]
     fp_ops, q_ops, cross = {}, {}, []
