@@ -12,9 +12,9 @@ What it measures, on this machine, with the installed onnxruntime:
    per-sweep medians of thread CPU time (the least disturbed sweep: on a shared
    machine other processes inflate even CPU time through caches and memory
    bandwidth), divided by the same statistic of the Relu graph of the same
-   precision. float32 costs
-   that the project's op_costs.json (swapper/resources/) already has are taken from there (it
-   is the project's measured table); this run's own values for those ops are
+   precision. float32 costs that the project's op_costs.json already has
+   (swapper/resources/, or wherever the package keeps it) are taken from there
+   (it is the project's measured table); this run's own values for those ops are
    kept in the profile notes as a cross-check.
 2. Fusion facts. Each activation pattern after each producer (Conv,
    ConvTranspose, Gemm, MatMul, MatMul+Add), and alone, is optimised by
