@@ -33,7 +33,7 @@ What it measures, on this machine, with the installed onnxruntime:
 Writes swapper/targets/builtin/ort-cpu.json and ort-cpu-int8.json (``--out``
 to write elsewhere).
 
-Run:  python benchmarks/measure_target_ops.py [--repeats 20] [--sweeps 5] [--out DIR]
+Run:  python benchmarks/measure_target_ops.py [--repeats 20] [--sweeps 7] [--all-measured] [--out DIR]
 """
 from __future__ import annotations
 
@@ -370,7 +370,7 @@ def noise_note(costs: dict) -> str:
 
 
 def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms: dict, opsets: tuple[int, int],
-                   meta: dict) -> tuple[dict, dict]:
+                   meta: dict, all_measured: bool = False) -> tuple[dict, dict]:
     """The two profile objects (swapper.target/1) from this run's numbers and facts."""
     table = json.loads(op_costs_path().read_text())
     today, ver = meta["date"], ort.__version__
@@ -383,7 +383,7 @@ def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms:
     for op in OPS:
         fn_form = OP_COSTS_FORMS.get(op)
         here = round(costs[("float32", op)] / relu32, 3)
-        if fn_form and fn_form[1] in table["forms"].get(fn_form[0], {}):
+        if not all_measured and fn_form and fn_form[1] in table["forms"].get(fn_form[0], {}):
             fp_ops[op] = {"support": "native", "cost": table["forms"][fn_form[0]][fn_form[1]], "source": table_src}
             cross.append(f"{op} {here:g}")
         else:
@@ -463,7 +463,11 @@ def build_profiles(costs: dict, rows: list[dict], int8_forms: dict, float_forms:
         fp_ops, fp_fusions, docs,
         [(f"Costs of {', '.join(op for op in OP_COSTS_FORMS)} come from op_costs.json, measured on "
           f"{table['measured']['cpu']}; the others from this run on {meta['cpu']}. This run's own values for the "
-          f"op_costs.json ops (cross-check; ratios move between CPUs and under load): {', '.join(cross)}."),
+          f"op_costs.json ops (cross-check; ratios move between CPUs and under load): {', '.join(cross)}. "
+          f"The float32 Relu baseline took {relu32 * 1e3:.3f} ms here against "
+          f"{table['median_ms']['relu']['op']:.3f} ms in op_costs.json, so ratios from the two tables do not "
+          "mix exactly (run with --all-measured for one machine's numbers throughout)."
+          if not all_measured else "All float32 costs are from this run (--all-measured)."),
          noise_note(costs)])
     q = profile(
         "ort-cpu-int8", "int8",
@@ -489,6 +493,8 @@ def main() -> None:
     ap.add_argument("--sweeps", type=int, default=7, help="passes over all models")
     ap.add_argument("--warmup", type=int, default=3)
     ap.add_argument("--out", type=Path, default=ROOT / "swapper/targets/builtin")
+    ap.add_argument("--all-measured", action="store_true",
+                    help="use this run's float32 costs for every op instead of op_costs.json's where it has them")
     args = ap.parse_args()
     logging.basicConfig(level=logging.INFO, format="%(message)s")
     ort.set_default_logger_severity(3)
@@ -526,7 +532,7 @@ def main() -> None:
             "load": (load_before, os.getloadavg()[0])}
     for key, sec in sorted(costs.items(), key=lambda kv: str(kv[0])):
         logger.info("%-45s %9.4f ms", " ".join(str(k) for k in key if k), sec * 1e3)
-    fp, q = build_profiles(costs, rows, int8_forms, float_forms, accepted_opsets(), meta)
+    fp, q = build_profiles(costs, rows, int8_forms, float_forms, accepted_opsets(), meta, args.all_measured)
     args.out.mkdir(parents=True, exist_ok=True)
     for prof in (fp, q):
         path = args.out / f"{prof['name']}.json"
