@@ -104,7 +104,7 @@ class ResBlock(nn.Module):
 
 
 class MeterResNet(nn.Module):
-    """Stem Conv 1->16, 3 blocks at 16 ch (8x8), 1 block to 32 ch with stride 2 (4x4), 2 blocks at 32 ch, GAP, Linear."""
+    """Stem Conv 1->16; 3 blocks at 16 ch (8x8); 1 block to 32 ch, stride 2 (4x4); 2 blocks at 32 ch; GAP, Linear."""
 
     def __init__(self):
         super().__init__()

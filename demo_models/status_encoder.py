@@ -27,7 +27,6 @@ import torch
 from sklearn.metrics import accuracy_score
 from sklearn.neighbors import NearestCentroid
 from torch import nn
-from torch.nn import functional as F
 
 from status_messages import MAX_LEN, StatusSplits  # sibling in demo_models/
 
@@ -92,7 +91,10 @@ class StatusEncoder(nn.Module):
         x = self.norm(x)
         weights = keep[:, :, None]
         pooled = (x * weights).sum(dim=1) / weights.sum(dim=1).clamp(min=1.0)  # mean over real tokens
-        return F.normalize(self.proj(pooled), dim=-1)
+        y = self.proj(pooled)
+        # y / max(|y|, eps) as F.normalize computes it, written with a keepdim norm so the
+        # exported Div broadcasts [batch, 1] and shape inference keeps the output at [batch, 32]
+        return y / y.norm(p=2, dim=-1, keepdim=True).clamp(min=1e-12)
 
 
 class StatusClassifier(nn.Module):
