@@ -66,7 +66,7 @@ from .bench_memory import memory_ratios, memory_section
 from .bench_report import write_markdown, write_plots
 from .bench_targets import check_targets
 from .data import Dataset, batches, subset
-from .demo import DEMO_DIR
+from .demo import DEMO_DIR, demo_inputs
 from .errors import SwapperError, UsageError
 from .evaluate import Reference
 from .model_io import LoadedModel, atomic_write_bytes, load_model, save_model
@@ -197,10 +197,7 @@ def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None
     """(model, calib, val) per model to benchmark."""
     todo = []
     if demo:
-        found = sorted(DEMO_DIR.glob("*.onnx"))
-        if not found:
-            raise UsageError(f"no demo models in {DEMO_DIR} (run from a source checkout)")
-        todo += [(m, DEMO_DIR / "calib.npz", DEMO_DIR / "val.npz") for m in found]
+        todo += demo_inputs(DEMO_DIR)  # each model with the data files manifest.json names for it
     if models:
         if calib is None:
             raise UsageError("benchmarking your own models needs a calibration set (--calib)")
