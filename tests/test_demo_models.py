@@ -99,7 +99,7 @@ def test_model_names_its_own_hashed_data_files(name):
 def test_model_file_matches_manifest_hash_and_size(name):
     data = (DEMO / name).read_bytes()
     assert hashlib.sha256(data).hexdigest() == MANIFEST["models"][name]["sha256"]
-    assert len(data) < 1_000_000  # demo budget from the brief; common practice, no source
+    assert len(data) < 1_000_000  # demo size budget (README "Models": well under 1 MB); common practice, no source
 
 
 @pytest.mark.parametrize("name", MODELS)
@@ -160,7 +160,7 @@ def test_val_accuracy_equals_manifest(name):
     # source: sklearn.metrics.accuracy_score as the reference accuracy
     acc = accuracy_score(val["labels"], pred)
     assert abs(acc - MANIFEST["models"][name]["val_accuracy"]) <= 1e-9
-    assert acc > 0.93  # the brief's expectation for 8x8 digits; common practice, no source
+    assert acc > 0.93  # expected level for 8x8 digits; common practice, no source
 
 
 @pytest.mark.parametrize("name", MODELS)
