@@ -232,10 +232,14 @@ def write_status_data(out: Path, data: StatusSplits) -> None:
                                          "attention_mask": data.attention_mask["calib"]})
     write_npz(out / "status_val.npz", {"input_ids": data.input_ids["val"],
                                        "attention_mask": data.attention_mask["val"], "classes": data.classes["val"]})
-    provenance = {"vocab": np.array(data.vocab), "class_names": np.array(CLASS_NAMES),
-                  "train_input_ids": data.input_ids["train"], "train_attention_mask": data.attention_mask["train"]}
+    # strings as fixed-width UTF-8 bytes: they load without pickle at a quarter of numpy's unicode size;
+    # the training ids are not stored, the documented tokenizer makes them from train_text and vocab
+    def utf8(strings: list[str]) -> np.ndarray:
+        return np.array([t.encode("utf-8") for t in strings])
+
+    provenance = {"vocab": utf8(data.vocab), "class_names": utf8(CLASS_NAMES)}
     for part in ("train", "calib", "val"):
-        provenance[f"{part}_text"] = np.array(data.texts[part])  # fixed-width unicode: loads without pickle
+        provenance[f"{part}_text"] = utf8(data.texts[part])
         provenance[f"{part}_classes"] = data.classes[part]
     write_npz(out / "status_splits.npz", provenance)
 
