@@ -24,7 +24,8 @@ from typer.testing import CliRunner
 from swapper.cli.app import app
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
-MODELS = ("meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_mish_gelutanh", "meter_mlp_tanh_sigmoid")
+# the digit models (input pixels, output logits); the status encoder's interface differs
+MODELS = ("meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_mish_gelutanh", "meter_mlp_tanh_sigmoid", "meter_resnet_silu")
 MANIFEST = json.loads((DEMO / "manifest.json").read_text())
 
 # Site inventory per model, in graph order: (function, role, channels).
@@ -39,6 +40,8 @@ EXPECTED_SITES = {
     "meter_mlp_mish_gelutanh": [("mish", "pointwise", 48), ("gelu_tanh", "pointwise", 32)],
     # Gemm 64->48 -> Tanh -> Gemm 48->32 -> Sigmoid
     "meter_mlp_tanh_sigmoid": [("tanh", "pointwise", 48), ("sigmoid", "pointwise", 32)],
+    # stem SiLU (16), 3 blocks at 16 ch and 3 at 32 ch, each with a SiLU after its first Conv and after its Add
+    "meter_resnet_silu": [("silu", "pointwise", 16)] * 7 + [("silu", "pointwise", 32)] * 6,
 }
 # manifest.json "activations" pattern name -> (registry function, role, decomposed?)
 # source: demo_models/README.md "manifest.json" section (pattern names) and "Models" table (forms).
@@ -56,6 +59,7 @@ COSTLY_LEFT = {
     "meter_gelu_mlp": {"Erf": 0, "Div": 0, "Sigmoid": 0, "Tanh": 0},
     "meter_mlp_mish_gelutanh": {"Softplus": 0, "Tanh": 0, "Erf": 0, "Sigmoid": 0},
     "meter_mlp_tanh_sigmoid": {"Tanh": 0, "Sigmoid": 0, "Erf": 0},
+    "meter_resnet_silu": {"Sigmoid": 0, "Erf": 0, "Tanh": 0},
 }
 
 runner = CliRunner()
@@ -102,6 +106,8 @@ def _out_channels(model: onnx.ModelProto, tensor: str) -> int:
     """Channel count of ``tensor`` read from its producer's weights in the graph itself."""
     inits = {t.name: numpy_helper.to_array(t) for t in model.graph.initializer}
     node = next(n for n in model.graph.node if tensor in n.output)
+    if node.op_type == "Add":  # residual Add of two same-shaped maps (source: ONNX operator spec, Add)
+        return _out_channels(model, node.input[0])
     attrs = {a.name: onnx.helper.get_attribute_value(a) for a in node.attribute}
     w = inits[node.input[1]]
     if node.op_type == "Conv":  # source: ONNX operator spec, Conv: W is (M, C/group, kH, kW), M = output channels
@@ -344,9 +350,14 @@ def test_not_an_onnx_file(tmp_path):
 def test_demo_writes_one_report_per_model(tmp_path):
     out = tmp_path / "demo"
     result = invoke("demo", "--out", out)
-    assert result.exit_code == 0, result.output
+    # swapper cannot gate the status encoder yet: its status_val.npz has a `classes` array (not a model input)
+    unsupported = "status_encoder_gelu"
+    text = one_line_error(result)  # README "Exit codes": 2, one line, after all other models have run
+    assert f"{unsupported}.onnx" in text
+    assert f"{unsupported}.onnx" in result.stdout and "status_val.npz" in result.stdout  # named in the summary
     reports = sorted(out.glob("*/report.json"))
-    assert sorted(p.parent.name.rsplit("-", 1)[0] for p in reports) == sorted(MODELS)
+    ran = sorted(Path(name).stem for name in MANIFEST["models"] if Path(name).stem != unsupported)
+    assert sorted(p.parent.name.rsplit("-", 1)[0] for p in reports) == ran
     for path in reports:
         payload = json.loads(path.read_text())
         assert payload["schema"] == "swapper.report/1"
@@ -358,5 +369,5 @@ def test_demo_writes_one_report_per_model(tmp_path):
         assert written.exists() == payload["verdict"]["approved"]
         # the demo reads the checkout's demo models; they must stay as built
         assert payload["inputs"]["original"]["sha256"] == MANIFEST["models"][f"{name}.onnx"]["sha256"]
-    for name in MODELS:
+    for name in ran:
         assert name in result.stdout

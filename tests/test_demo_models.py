@@ -1,10 +1,12 @@
 """Checks on the committed demo models and data (demo_models/), without torch.
 
-Each committed model must be a valid ONNX file that onnxruntime runs on
-val.npz with exactly the accuracy manifest.json records; the activation
-subgraphs the manifest claims must be present and must compute the published
-functions; calib.npz and val.npz must be disjoint rows of scikit-learn's copy
-of the UCI digits.
+Each committed model must be a valid ONNX file that onnxruntime runs on the
+validation file manifest.json names for it, with exactly the figure the manifest
+records (top-1 accuracy for the digit classifiers, nearest-class-centroid
+accuracy for the status encoder); the activation subgraphs the manifest claims
+must be present and must compute the published functions; calib.npz and val.npz
+must be disjoint rows of scikit-learn's copy of the UCI digits; the status files
+must be the documented tokenization of disjoint message sets.
 """
 from __future__ import annotations
 
@@ -24,10 +26,14 @@ from onnx.reference import ReferenceEvaluator
 from scipy import special
 from sklearn.datasets import load_digits
 from sklearn.metrics import accuracy_score
+from sklearn.neighbors import NearestCentroid
+from sklearn.preprocessing import normalize
 
 DEMO = Path(__file__).resolve().parent.parent / "demo_models"
 MANIFEST = json.loads((DEMO / "manifest.json").read_text())
 MODELS = sorted(MANIFEST["models"])
+CLASSIFIERS = [m for m in MODELS if MANIFEST["models"][m]["task"] == "classification"]
+ENCODERS = [m for m in MODELS if MANIFEST["models"][m]["task"] == "embedding"]
 
 
 @functools.lru_cache(maxsize=None)
@@ -56,19 +62,44 @@ def _logits(name: str, pixels: np.ndarray) -> np.ndarray:
     return _session(name).run(["logits"], {"pixels": pixels})[0]
 
 
+def _val_feeds(name: str) -> dict[str, np.ndarray]:
+    """The model's inputs, read from the validation file manifest.json names for it."""
+    val = _npz(MANIFEST["models"][name]["val"])
+    return {i.name: val[i.name] for i in _model(name).graph.input}
+
+
+def _run(name: str, feeds: dict[str, np.ndarray]) -> np.ndarray:
+    return _session(name).run(None, feeds)[0]
+
+
+def _embed(name: str, ids: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    return _session(name).run(["embedding"], {"input_ids": ids, "attention_mask": mask})[0]
+
+
 # ---------------------------------------------------------------- files and manifest
 
 
 def test_manifest_lists_every_committed_model():
     assert sorted(p.name for p in DEMO.glob("*.onnx")) == MODELS
     assert len(MODELS) >= 3
+    assert sorted(CLASSIFIERS + ENCODERS) == MODELS  # every model has a known task
+
+
+@pytest.mark.parametrize("name", MODELS)
+def test_model_names_its_own_hashed_data_files(name):
+    entry = MANIFEST["models"][name]
+    for key in ("calib", "val"):
+        assert entry[key] in MANIFEST["data"] and (DEMO / entry[key]).is_file()
+    # calibration data is unlabelled: its arrays are exactly the model's inputs
+    inputs = sorted(i.name for i in _model(name).graph.input)
+    assert sorted(_npz(entry["calib"])) == inputs == sorted(entry["inputs"])
 
 
 @pytest.mark.parametrize("name", MODELS)
 def test_model_file_matches_manifest_hash_and_size(name):
     data = (DEMO / name).read_bytes()
     assert hashlib.sha256(data).hexdigest() == MANIFEST["models"][name]["sha256"]
-    assert len(data) < 1_000_000  # demo budget from the brief; common practice, no source
+    assert len(data) < 1_000_000  # demo size budget (README "Models": well under 1 MB); common practice, no source
 
 
 @pytest.mark.parametrize("name", MODELS)
@@ -78,7 +109,7 @@ def test_model_passes_full_onnx_check(name):
 
 
 @pytest.mark.parametrize("name", MODELS)
-def test_model_interface_and_opset(name):
+def test_model_opset_domain_and_op_counts(name):
     model = _model(name)
     opset = _opset(model)
     # Gelu became a default-domain op in opset 20 (source: ONNX operator spec, Gelu
@@ -86,6 +117,13 @@ def test_model_interface_and_opset(name):
     assert 13 <= opset <= 18
     assert opset == MANIFEST["models"][name]["opset"]
     assert {e.domain for e in model.opset_import} <= {"", "ai.onnx"}
+    counts = Counter(n.op_type for n in model.graph.node)
+    assert dict(sorted(counts.items())) == MANIFEST["models"][name]["op_types"]
+
+
+@pytest.mark.parametrize("name", CLASSIFIERS)
+def test_classifier_interface(name):
+    model = _model(name)
     (inp,), (out,) = model.graph.input, model.graph.output
     assert inp.name == "pixels" and out.name == "logits"
     assert inp.type.tensor_type.elem_type == onnx.TensorProto.FLOAT
@@ -94,39 +132,91 @@ def test_model_interface_and_opset(name):
     assert in_dims[0].dim_param and not in_dims[0].HasField("dim_value")  # dynamic batch
     assert [d.dim_value for d in in_dims[1:]] == [1, 8, 8]
     assert out_dims[0].dim_param and [d.dim_value for d in out_dims[1:]] == [10]
-    counts = Counter(n.op_type for n in model.graph.node)
-    assert dict(sorted(counts.items())) == MANIFEST["models"][name]["op_types"]
+
+
+@pytest.mark.parametrize("name", ENCODERS)
+def test_encoder_interface(name):
+    # source: demo_models/README.md "The status encoder" (interface) and manifest.json inputs/outputs
+    model = _model(name)
+    assert [i.name for i in model.graph.input] == ["input_ids", "attention_mask"]
+    for inp in model.graph.input:
+        dims = inp.type.tensor_type.shape.dim
+        assert inp.type.tensor_type.elem_type == onnx.TensorProto.INT64
+        assert dims[0].dim_param and not dims[0].HasField("dim_value")  # dynamic batch
+        assert [d.dim_value for d in dims[1:]] == [16]
+    (out,) = model.graph.output
+    dims = out.type.tensor_type.shape.dim
+    assert out.name == "embedding" and out.type.tensor_type.elem_type == onnx.TensorProto.FLOAT
+    assert dims[0].dim_param and [d.dim_value for d in dims[1:]] == [32]
 
 
 # ---------------------------------------------------------------- accuracy
 
 
-@pytest.mark.parametrize("name", MODELS)
+@pytest.mark.parametrize("name", CLASSIFIERS)
 def test_val_accuracy_equals_manifest(name):
-    val = _npz("val.npz")
+    val = _npz(MANIFEST["models"][name]["val"])
     pred = _logits(name, val["pixels"]).argmax(axis=1)
     # source: sklearn.metrics.accuracy_score as the reference accuracy
     acc = accuracy_score(val["labels"], pred)
     assert abs(acc - MANIFEST["models"][name]["val_accuracy"]) <= 1e-9
-    assert acc > 0.93  # the brief's expectation for 8x8 digits; common practice, no source
+    assert acc > 0.93  # expected level for 8x8 digits; common practice, no source
 
 
 @pytest.mark.parametrize("name", MODELS)
 def test_onnxruntime_agrees_with_reference_evaluator(name):
-    pixels = _npz("val.npz")["pixels"][:24]
+    feeds = {k: v[:24] for k, v in _val_feeds(name).items()}
     # source: onnx.reference.ReferenceEvaluator, the ONNX spec's Python implementation
-    ref = ReferenceEvaluator(_model(name)).run(["logits"], {"pixels": pixels})[0]
-    np.testing.assert_allclose(_logits(name, pixels), ref, rtol=1e-4, atol=1e-4)
+    ref = ReferenceEvaluator(_model(name)).run(None, feeds)[0]
+    np.testing.assert_allclose(_run(name, feeds), ref, rtol=1e-4, atol=1e-4)
 
 
 @settings(max_examples=12, deadline=None)
-@given(name=st.sampled_from(MODELS), start=st.integers(0, 400), size=st.integers(1, 49))
-def test_dynamic_batch_gives_rowwise_identical_logits(name, start, size):
-    pixels = _npz("val.npz")["pixels"]
-    full = _logits(name, pixels)
-    part = _logits(name, pixels[start:start + size])
-    # per-row models: a row's logits cannot depend on its batch-mates (float32 tolerance)
+@given(name=st.sampled_from(MODELS), start=st.integers(0, 350), size=st.integers(1, 49))
+def test_dynamic_batch_gives_rowwise_identical_outputs(name, start, size):
+    feeds = _val_feeds(name)
+    full = _run(name, feeds)
+    part = _run(name, {k: v[start:start + size] for k, v in feeds.items()})
+    # per-row models: a row's output cannot depend on its batch-mates (float32 tolerance)
     np.testing.assert_allclose(part, full[start:start + size], rtol=1e-5, atol=1e-5)
+
+
+# ---------------------------------------------------------------- the status encoder
+
+
+@pytest.mark.parametrize("name", ENCODERS)
+def test_embedding_has_unit_length(name):
+    emb = _run(name, _val_feeds(name))
+    # source: sklearn.preprocessing.normalize (L2 rows) as the reference normalisation
+    np.testing.assert_allclose(emb, normalize(emb.astype(np.float64)), rtol=0, atol=1e-6)
+    np.testing.assert_allclose(np.linalg.norm(emb, axis=1), 1.0, atol=1e-5)
+
+
+@pytest.mark.parametrize("name", ENCODERS)
+def test_padding_positions_do_not_change_the_embedding(name):
+    # Our own architecture (README "The status encoder"): padding keys get -1e9 before Softmax
+    # and the mean pooling skips them, so ids where attention_mask is 0 cannot matter.
+    feeds = _val_feeds(name)
+    ids, mask = feeds["input_ids"], feeds["attention_mask"]
+    assert (mask == 0).any(axis=1).all()  # every row has padding, so the check covers every row
+    rng = np.random.default_rng(11)
+    vocab = MANIFEST["status_messages"]["vocab_size"]
+    noisy = np.where(mask == 0, rng.integers(0, vocab, size=ids.shape), ids)
+    assert (noisy != ids).any()
+    np.testing.assert_allclose(_embed(name, noisy, mask), _embed(name, ids, mask), rtol=0, atol=1e-5)
+    # and the mask is read at all: counting the padding as words moves the embedding
+    assert np.abs(_embed(name, ids, np.ones_like(mask)) - _embed(name, ids, mask)).max() > 1e-3
+
+
+@pytest.mark.parametrize("name", ENCODERS)
+def test_nearest_centroid_accuracy_equals_manifest(name):
+    splits, val = _npz("status_splits.npz"), _npz(MANIFEST["models"][name]["val"])
+    train = _embed(name, *_tokenize(splits["train_text"], splits["vocab"]))
+    # source: sklearn.neighbors.NearestCentroid (class means of the training embeddings) and accuracy_score
+    pred = NearestCentroid().fit(train, splits["train_classes"]).predict(_run(name, _val_feeds(name)))
+    acc = accuracy_score(val["classes"], pred)
+    assert abs(acc - MANIFEST["models"][name]["val_nearest_centroid_accuracy"]) <= 1e-9
+    assert acc > 0.9  # template messages are easy to tell apart; common practice, no source
 
 
 # ---------------------------------------------------------------- activation subgraphs
@@ -225,8 +315,11 @@ def test_claimed_activation_patterns_are_in_the_graph(name):
     ops = Counter(n.op_type for n in model.graph.node)
     claimed = MANIFEST["models"][name]["activations"]
     assert dict(found) == {k: v for k, v in claimed.items() if k in REFERENCE}
-    assert claimed.get("relu", 0) == ops["Relu"]
-    assert claimed.get("batchnorm", 0) == ops["BatchNormalization"]
+    single = {"relu": "Relu", "batchnorm": "BatchNormalization", "layernorm": "LayerNormalization",
+              "softmax": "Softmax"}  # manifest names of single ops (README "manifest.json")
+    assert set(claimed) <= set(REFERENCE) | set(single)
+    for key, op in single.items():
+        assert claimed.get(key, 0) == ops[op]
     assert sum(found.values()) >= 1
 
 
@@ -293,3 +386,61 @@ def test_calib_and_val_are_disjoint_rows_of_load_digits_with_true_labels():
     assert len(train) + len(calib_rows) + len(val_rows) == len(target)
     # stratified: every digit appears in both sets
     assert set(target[calib_rows]) == set(range(10)) == set(val["labels"])
+
+
+# ---------------------------------------------------------------- status messages
+
+
+def _words(text: bytes) -> list[str]:
+    return text.decode("utf-8").lower().split()  # source: demo_models/README.md, tokenizer rule
+
+
+def _tokenize(texts: np.ndarray, vocab: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The README's tokenizer, written again here: ids and mask, int64 [N, 16]."""
+    index = {w.decode("utf-8"): i for i, w in enumerate(vocab)}
+    ids = np.zeros((len(texts), 16), dtype=np.int64)
+    for row, text in enumerate(texts):
+        toks = [index.get(w, 1) for w in _words(text)]  # unknown word -> [UNK] = 1
+        ids[row, :len(toks)] = toks  # words first, then [PAD] = 0 on the right
+    lengths = np.array([len(_words(t)) for t in texts])
+    return ids, (np.arange(16) < lengths[:, None]).astype(np.int64)
+
+
+def test_status_vocabulary_follows_the_documented_rule():
+    splits = _npz("status_splits.npz")
+    counts = Counter(w for t in splits["train_text"] for w in _words(t))
+    # source: README "Status messages": [PAD], [UNK], then training words seen >= 2 times,
+    # most frequent first, ties alphabetical
+    kept = sorted((w for w, c in counts.items() if c >= 2), key=lambda w: (-counts[w], w))
+    assert splits["vocab"].astype(str).tolist() == ["[PAD]", "[UNK]", *kept]
+    assert len(splits["vocab"]) == MANIFEST["status_messages"]["vocab_size"]
+    assert splits["class_names"].astype(str).tolist() == MANIFEST["status_messages"]["classes"]
+
+
+@pytest.mark.parametrize("part", ["calib", "val"])
+def test_status_ids_are_the_documented_tokenization_of_the_texts(part):
+    splits, stored = _npz("status_splits.npz"), _npz(f"status_{part}.npz")
+    ids, mask = _tokenize(splits[f"{part}_text"], splits["vocab"])
+    np.testing.assert_array_equal(stored["input_ids"], ids)
+    np.testing.assert_array_equal(stored["attention_mask"], mask)
+    assert stored["input_ids"].dtype == stored["attention_mask"].dtype == np.int64
+    lengths = mask.sum(axis=1)
+    assert lengths.max() < 16 and len(set(lengths.tolist())) >= 5  # padding everywhere, varied lengths
+    assert (stored["input_ids"] == 1).any()  # some words are unknown to the vocabulary ([UNK] is used)
+
+
+def test_status_files_layout_and_disjoint_sets():
+    splits = _npz("status_splits.npz")
+    calib, val = _npz("status_calib.npz"), _npz("status_val.npz")
+    assert sorted(calib) == ["attention_mask", "input_ids"]  # unlabelled: only what the model reads
+    assert sorted(val) == ["attention_mask", "classes", "input_ids"]
+    sizes = MANIFEST["status_messages"]["splits"]
+    texts = {part: splits[f"{part}_text"].tolist() for part in ("train", "calib", "val")}
+    assert {part: len(t) for part, t in texts.items()} == sizes
+    all_texts = [t for part in texts.values() for t in part]
+    assert len(set(all_texts)) == len(all_texts)  # no message in two sets (or twice in one)
+    np.testing.assert_array_equal(val["classes"], splits["val_classes"])
+    n_classes = len(MANIFEST["status_messages"]["classes"])
+    for part in ("train", "calib", "val"):
+        counts = np.bincount(splits[f"{part}_classes"], minlength=n_classes)
+        assert len(counts) == n_classes and counts.max() - counts.min() <= 1  # stratified, balanced classes

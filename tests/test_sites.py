@@ -223,6 +223,8 @@ def demo(name, expected):
     demo("meter_gelu_mlp.onnx", [("gelu", "pointwise")] * 2),
     demo("meter_mlp_tanh_sigmoid.onnx", [("tanh", "pointwise"), ("sigmoid", "pointwise")]),
     demo("meter_mlp_mish_gelutanh.onnx", [("mish", "pointwise"), ("gelu_tanh", "pointwise")]),
+    demo("meter_resnet_silu.onnx", [("silu", "pointwise")] * 13),
+    demo("status_encoder_gelu.onnx", [("gelu", "pointwise")] * 2),
 ])
 def test_demo_models(name, expected):
     # expected sites: demo_models/README.md ("activations as they appear in the graph")
@@ -230,5 +232,8 @@ def test_demo_models(name, expected):
     sites = find_sites(load_model(DEMO / name).model, declines=declines)
     assert [(s.function, s.role) for s in sites] == expected
     assert declines == [] and all(s.supported for s in sites)
-    assert all(s.channel_axis == 1 and s.channels == s.shape[1] for s in sites)
+    # channels: axis 1 of the digit models' [batch, C] / [batch, C, H, W] tensors; the status encoder's
+    # GELU reads [batch, 16 tokens, 128 features] from MatMul 32->128 (README "The status encoder")
+    axis = 2 if name.startswith("status_") else 1
+    assert all(s.channel_axis == axis and s.channels == s.shape[axis] for s in sites)
     assert math.isclose(sum(s.cost_share for s in sites), 1.0)

@@ -84,7 +84,7 @@ from swapper.core.model_io import (
     save_model,
 )
 from swapper.data.dataset import Dataset, batches, subset
-from swapper.data.demo import DEMO_DIR
+from swapper.data.demo import DEMO_DIR, demo_inputs
 from swapper.errors import SwapperError, UsageError
 from swapper.plan.plan import Plan, make_plan
 from swapper.report.paths import utc_stamp
@@ -212,10 +212,7 @@ def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None
     """(model, calib, val) per model to benchmark."""
     todo = []
     if demo:
-        found = sorted(DEMO_DIR.glob("*.onnx"))
-        if not found:
-            raise UsageError(f"no demo models in {DEMO_DIR} (run from a source checkout)")
-        todo += [(m, DEMO_DIR / "calib.npz", DEMO_DIR / "val.npz") for m in found]
+        todo += demo_inputs(DEMO_DIR)  # each model with the data files manifest.json names for it
     if models:
         if calib is None:
             raise UsageError("benchmarking your own models needs a calibration set (--calib)")
