@@ -15,14 +15,11 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 from scipy.optimize import least_squares
 
 logger = logging.getLogger(__name__)
-
-Func = Callable[[np.ndarray], np.ndarray]
 
 BOX = 1e3  # bound on |β| and |γ| (units of g's argument), widened to 2x the start if needed
 DEGENERATE = 1e-6  # std below this fraction of the RMS = constant (float32 resolves ~1e-7)

@@ -33,15 +33,13 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
+from swapper.fit.common import Func
 from swapper.fit.varpro import apply_g, slope_rows
 
 logger = logging.getLogger(__name__)
-
-Func = Callable[[np.ndarray], np.ndarray]
 
 MAX_ITER = 40  # per row; the test models converge in 5-20 (measured on the demo and scale models)
 FTOL = 1e-10  # relative cost decrease that counts as converged
