@@ -23,8 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from swapper.fit.common import Func
-from swapper.fit.varpro import apply_g
+from swapper.fit.common import Func, apply_g
 
 logger = logging.getLogger(__name__)
 
