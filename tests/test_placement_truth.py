@@ -21,12 +21,14 @@ import onnx.parser
 import onnxruntime as ort
 import pytest
 from onnx import numpy_helper
+from scipy.optimize import minimize_scalar
 
 from swapper import api, functions
 from swapper.calibrate.loop import calibrate
 from swapper.core.model_io import load_model
 from swapper.data.dataset import Dataset
 from swapper.errors import UsageError
+from swapper.fit.channel import outer_fit
 from swapper.fit.observe import ChannelObserver
 from swapper.fit.site import fit_channels
 from swapper.functions.params import NEUTRAL, PARAMS
@@ -212,3 +214,23 @@ def test_zero_a_value_is_refused_when_d_is_a_node(tmp_path):
     plan.swaps[0].a[0], plan.swaps[0].d[0] = 0.0, 1.0  # a hand edit the placement does not allow
     with pytest.raises(UsageError, match="a != 0; channel 0 "):
         rewrite(loaded.model, sites, plan)
+
+
+@pytest.mark.parametrize("eps", [0.1, -0.1])
+def test_nonzero_a_gives_the_best_a_away_from_zero(eps):
+    # y = 1e6·(z² − 1/3) + eps·z on a symmetric z: a large part uncorrelated with z makes the floor on |a|
+    # (1e-6 of sqrt(var y / var z), about 0.5) larger than the true slope eps, so the bound is active
+    z = np.linspace(-1.0, 1.0, 101)
+    y = 1e6 * (z * z - 1.0 / 3.0) + eps * z
+    free_a, _ = outer_fit(z, y)
+    a, d = outer_fit(z, y, nonzero_a=True)
+    assert abs(free_a - eps) < 1e-6 and abs(a) > abs(eps) and np.sign(a) == np.sign(eps)
+
+    def mse(s: float) -> float:  # d eliminated: the best offset for slope s (uniform least squares)
+        return float(np.mean((y - s * z - np.mean(y - s * z)) ** 2))
+
+    # source: scipy.optimize.minimize_scalar, bounded, on each side of the excluded interval (-|a|, |a|)
+    sides = [minimize_scalar(mse, bounds=b, method="bounded", options={"xatol": 1e-9})
+             for b in ((abs(a), 10.0), (-10.0, -abs(a)))]
+    assert mse(a) <= min(s.fun for s in sides) * (1 + 1e-14)
+    np.testing.assert_allclose(d, np.mean(y - a * z), rtol=1e-12)
