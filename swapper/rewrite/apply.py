@@ -231,7 +231,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     d_cons = place["d"] in ("consumers", "approx") and need["d"]
     a_node, d_node = place["a"] == "nodes" and need["a"], place["d"] == "nodes" and need["d"]
     # The consumers will scale the Add's output by a: emit d/a so they see a·g + d (a != 0 is checked above).
-    d_emit = vals["d"] / vals["a"] if a_cons and d_node else vals["d"]
+    d_emit = np.divide(vals["d"], vals["a"], out=np.zeros(n)) if a_cons and d_node else vals["d"]
     if a_cons or d_cons:
         folds, why = analysis[1]
         if folds is None:
