@@ -211,18 +211,15 @@ def test_d_blocked_goes_to_a_node_under_nodes_policy(case, tmp_path):
 
 
 # ------------------------------------------------------------------ declines
-def test_negative_a_through_max_pool_falls_back_to_a_node(tmp_path):
+def test_negative_a_through_max_pool_is_refused(tmp_path):
     nodes, inits, outs, extra = _maxpool()
     model = _load(nodes, inits, outs, tmp_path, extra)
     sites = find_sites(model)
-    plan, explicit = _plans(model, sites, "exact", np.random.default_rng(11), a_low=-1.0)
+    plan, _ = _plans(model, sites, "exact", np.random.default_rng(11), a_low=-1.0)
     plan.swaps[0].a[0] = -0.7  # max(-x) = -min(x): the pool does not commute with this channel
-    explicit.swaps[0].a[0] = -0.7
     assert plan.swaps[0].placement["a"] == "consumers+"
-    folded = rewrite(model, sites, plan)
-    rec = folded.records[0]
-    assert rec.placement["a"] == "nodes" and any("max pool" in n for n in rec.notes)
-    _agree(folded.model, rewrite(model, sites, explicit).model, _feeds(model))
+    with pytest.raises(UsageError, match="max pool needs a > 0; channel 0"):  # not re-placed as a node
+        rewrite(model, sites, plan)
 
 
 @pytest.mark.parametrize("build, why", [

@@ -268,31 +268,18 @@ def test_approximate_d_differs_only_at_borders():
     assert approx.nodes_after < exact.nodes_after
 
 
-def test_zero_a_with_d_as_node_falls_back_to_a_node():
-    # a in the consumers and d as a node is emitted as Add(d/a); a = 0 with d != 0 cannot be
+@pytest.mark.parametrize("scalar_d", [False, True])
+def test_zero_a_with_d_as_node_is_refused(scalar_d):
+    # a in the consumers and d as a node is emitted as Add(d/a); the placement asks a != 0, and the
+    # rewriter refuses values that break it instead of moving a (tests/test_placement_truth.py)
     model, site = conv_chain("silu", pads2=1)
     place = {"a": "consumers", "b": "producer", "c": "producer", "d": "nodes"}
     swap = _swap(site, "hard_swish", place, np.random.default_rng(2))
     swap.a[1], swap.d[1] = 0.0, 0.3
-    result = _checked(model, [site], Plan("nodes", [swap]))
-    assert result.records[0].placement["a"] == "nodes" and result.records[0].notes
-    feeds = _feeds(model)
-    # source: the surrogate formula a·g(b·x + c) + d (numpy) fed through the original tail
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
-
-
-def test_zero_a_with_one_scalar_d_falls_back_to_a_per_channel_node():
-    # the fallback makes a a per-channel node although the only other node (d) is a scalar
-    model, site = conv_chain("silu", pads2=1)
-    place = {"a": "consumers", "b": "producer", "c": "producer", "d": "nodes"}
-    swap = _swap(site, "hard_swish", place, np.random.default_rng(4))
-    swap.a[2] = 0.0
-    swap.d = np.array([0.3])
-    result = _checked(model, [site], Plan("nodes", [swap]))
-    assert result.records[0].placement["a"] == "nodes"
-    feeds = _feeds(model)
-    # source: the surrogate formula a·g(b·x + c) + d (numpy) fed through the original tail
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
+    if scalar_d:
+        swap.d = np.array([0.3])
+    with pytest.raises(UsageError, match="a != 0; channel 1 "):
+        rewrite(model, [site], Plan("nodes", [swap]))
 
 
 def test_folded_relu_adds_no_nodes_and_keeps_model():

@@ -11,6 +11,7 @@ from pathlib import Path
 
 from swapper.bench.measure import RUNGS
 from swapper.core.model_io import atomic_write_bytes
+from swapper.report.numbers import num
 
 logger = logging.getLogger(__name__)
 
@@ -24,10 +25,6 @@ def _pct(x) -> str:
 
 def _pp(x) -> str:
     return "–" if x is None else f"{x:+.2f}"
-
-
-def _num(x, spec: str = ".2f") -> str:
-    return "–" if x is None else format(x, spec)
 
 
 def _table(header: list[str], rows: list[list[str]]) -> list[str]:
@@ -75,7 +72,7 @@ def _cost_cells(cost: dict | None) -> list[str]:
         value = cost.get(key)
         if key == "plain_pass_s" and value is not None:
             value = 1e3 * value  # one pass is milliseconds, not seconds
-        cells.append(_num(value, spec))
+        cells.append(num(value, spec))
     return cells
 
 
@@ -101,8 +98,8 @@ def _memory(results: dict) -> list[str]:
             r = mem.get(str(k), {})
             cells.append(f"{r['samples']}: +{r['delta_kib'] / 1024:.1f} MiB, {r['wall_s']:.2f} s"
                          if "delta_kib" in r else r.get("error", "–"))
-        cells += [_num(mem["ratio_last_1"], ".3f"), _num(mem["peak_ratio_last_1"], ".3f"),
-                  _num(mem["time_ratio_last_1"], ".2f")]
+        cells += [num(mem["ratio_last_1"], ".3f"), num(mem["peak_ratio_last_1"], ".3f"),
+                  num(mem["time_ratio_last_1"], ".2f")]
         rows.append(cells)
     head = ["model"] + [f"{k}× (samples: peak−baseline, time)" for k in factors] + [
         f"mem {factors[-1]}×/1×", f"peak RSS {factors[-1]}×/1×", f"time {factors[-1]}×/1×"]
@@ -115,15 +112,15 @@ def _speed(results: dict) -> list[str]:
     for m in results["models"]:
         for f in m["families"]:
             for bs, s in f["speed"].items():
-                rows.append([_model_label(m), f["family"], bs, _num(s["original_ms"], ".4f"),
-                             _num(s["swapped_ms"], ".4f"), _num(s["floor_ms"], ".4f"), _num(s["ratio"], ".3f"),
-                             _num(s["saving_fraction"], ".2f") if s["saving_fraction"] is not None else "– (noise)"])
+                rows.append([_model_label(m), f["family"], bs, num(s["original_ms"], ".4f"),
+                             num(s["swapped_ms"], ".4f"), num(s["floor_ms"], ".4f"), num(s["ratio"], ".3f"),
+                             num(s["saving_fraction"], ".2f") if s["saving_fraction"] is not None else "– (noise)"])
             q = f.get("int8")
             if q:
                 for bs, s in q["speed"].items():
                     qrows.append([_model_label(m), f["family"], bs, q["metric"], _pct(q["original"]),
-                                  _pct(q["swapped"]), _pp(q["delta_pp"]), _num(s["original_ms"], ".4f"),
-                                  _num(s["swapped_ms"], ".4f"), _num(s["ratio"], ".3f")])
+                                  _pct(q["swapped"]), _pp(q["delta_pp"]), num(s["original_ms"], ".4f"),
+                                  num(s["swapped_ms"], ".4f"), num(s["ratio"], ".3f")])
     head = ["model", "family", "batch", "original ms", "swapped ms", "floor ms", "swapped/original",
             "saving achieved"]
     lines = ["## Model speed", "", "Median latency, onnxruntime CPU, full graph optimisation, 1 thread, "

@@ -14,13 +14,17 @@ model's mean again. This is the bias correction of Nagel et al. 2019,
 measured on the recorded student (swapped) and teacher (original) site
 outputs instead of being derived from batch-norm statistics.
 
+The layers are those of :func:`swapper.plan.layers.linear_layer` (Conv,
+ConvTranspose, Gemm, MatMul), reached by the same walk placement uses.
+
 Two ways to the expectation. When every step and the layer are linear (no
 max pool) E[L(Δ)] = L(E[Δ]): :class:`DeltaSum` collects Σ Δ while the student
 output is computed, the steps run once on E[Δ] and the layer is applied in
-float64 numpy (exact to float64, where a float32 Conv on every batch is not).
-Otherwise (max pools, Gemm with transA, steps onnxruntime cannot run on one
-sample) a small difference model runs batch by batch on the cached student
-and teacher outputs.
+float64 numpy (exact to float64, where a float32 Conv on every batch is not;
+a ConvTranspose, whose border outputs gather fewer taps, runs in onnxruntime
+with the steps). Otherwise (max pools, Gemm with transA, steps onnxruntime
+cannot run on one sample) a small difference model runs batch by batch on
+the cached student and teacher outputs.
 """
 from __future__ import annotations
 
@@ -49,7 +53,6 @@ from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-LINEAR_CONSUMERS = ("Conv", "Gemm", "MatMul")
 _TMP = "swapper::bias_correction/"  # tensor names of the difference model (never a model's own)
 
 
@@ -199,12 +202,14 @@ def _from_mean(work, index, site, reach, delta: DeltaSum, in_numpy):
     """The same mean change from E[Δ]: the linear steps once on one mean sample, the layer in float64 numpy.
 
     Returns the mean change at the layer input (numpy layers: Gemm, 2-D MatMul)
-    or at its output (Conv, batched MatMul); None when a step reads a run-time
+    or at its output (Conv, ConvTranspose, batched MatMul); None when a step reads a run-time
     tensor, NotImplemented when onnxruntime cannot run the steps on one sample.
     """
     x = delta.mean()
-    if reach.steps:
-        model = _difference_model(work, index, site, reach, False, with_layer=False)
+    node = reach.node
+    in_ort = node.op_type == "ConvTranspose"  # no numpy twin here: onnxruntime runs it with the steps
+    if reach.steps or in_ort:
+        model = _difference_model(work, index, site, reach, False, with_layer=in_ort)
         if model is None:
             return None
         # E[Δ] in float64 as two samples of the model's dtype, hi + lo (hi rounded, lo the rest):
@@ -217,7 +222,9 @@ def _from_mean(work, index, site, reach, delta: DeltaSum, in_numpy):
             logger.debug("bias correction of %s from the mean failed (%s); batch by batch", site.id, exc)
             return NotImplemented
         x = out[:1] + out[1:]
-    node = reach.node
+    if in_ort:  # the mean change at the layer output, over its output positions
+        sums, k = _channel_sums(x, 1)
+        return sums / max(k, 1)
     w = index.const(node.input[1]).astype(np.float64)
     if in_numpy:
         sums, k = _channel_sums(x, -1)
@@ -233,8 +240,8 @@ def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Rea
                 delta: DeltaSum | None = None) -> np.ndarray | None:
     """E[layer(student path) − layer(teacher path)] per output channel, bias cancelled (None: cannot run).
 
-    The layer is linear: Gemm and 2-D MatMul get W·mean(Δ) in numpy, Conv (and
-    batched MatMul) run on Δ, not on both inputs. With ``delta`` (and no max
+    The layer is linear: Gemm and 2-D MatMul get W·mean(Δ) in numpy, Conv,
+    ConvTranspose (and batched MatMul) run on Δ, not on both inputs. With ``delta`` (and no max
     pool on the way, no transA) the linear path runs once, on E[Δ]; otherwise
     batch by batch from the cached student and teacher outputs.
     """
@@ -264,16 +271,13 @@ def correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student:
     notes = [f"no bias correction: {why}" for why in dead_ends]
     for reach in reached:
         node = reach.node
-        if node.op_type not in LINEAR_CONSUMERS:
-            notes.append(f"no bias correction through {node.op_type} {node.name}")
-            continue
         layer, why = linear_layer(index, node, reach.tensor)
         why = f"{node.name} {why}" if layer is None else _no_correction(index, layer)
         if why:
             notes.append(f"no bias correction: {why}")
             continue
         beta = float(attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
-        axis = 1 if layer.kind == "conv" else -1  # where the output channels run
+        axis = 1 if layer.axis == "first" else -1  # where the output channels run
         shift = _mean_shift(work, index, site, reach, cache, student, teacher, ds, batch_size, axis, delta)
         if shift is None:
             notes.append(f"no bias correction: the way to {node.name} reads a run-time tensor")

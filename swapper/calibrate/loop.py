@@ -143,8 +143,9 @@ def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
 def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
     """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
     g, dg = swap.surrogate()
-    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()),
-                          positive_a=swap.positive_a(), dg=dg)
+    swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
+    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()), dg=dg,
+                          **swap.a_bounds())
     swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
     return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 

@@ -60,7 +60,7 @@ from onnxruntime.quantization import (
 from onnxruntime.quantization.shape_inference import quant_pre_process
 
 from swapper.core.graph import subgraphs
-from swapper.core.model_io import default_opset
+from swapper.core.model_io import PROTOBUF_LIMIT, default_opset
 from swapper.errors import BadDataError, BadModelError, first_line
 
 logger = logging.getLogger(__name__)
@@ -70,7 +70,6 @@ WEIGHT_TYPE = QuantType.QInt8  # S8 weights: the U8S8 integer GEMM path
 # Per-channel QDQ needs DequantizeLinear's `axis` attribute, added in opset 13
 # (ONNX operator spec, DequantizeLinear-13).
 MIN_PER_CHANNEL_OPSET = 13
-PROTOBUF_LIMIT = 2**31 - 1
 # Warn when the median input channel of a weight loses more than this (relative L2) to int8.
 # Per-channel int8 weights of the demo models lose 0.5-0.6% (measured); 5% is a clear outlier
 # (common practice, no source).

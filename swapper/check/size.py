@@ -8,7 +8,7 @@ from collections import Counter
 import numpy as np
 import onnx
 
-from swapper.core.graph import subgraphs
+from swapper.core.graph import DEFAULT_DOMAINS, subgraphs
 
 logger = logging.getLogger(__name__)
 
@@ -38,7 +38,7 @@ def model_summary(model: onnx.ModelProto) -> dict:
     init_bytes = 0
     for graph in [model.graph, *subgraphs(model.graph)]:
         for node in graph.node:
-            key = node.op_type if node.domain in ("", "ai.onnx") else f"{node.domain}.{node.op_type}"
+            key = node.op_type if node.domain in DEFAULT_DOMAINS else f"{node.domain}.{node.op_type}"
             counts[key] += 1
         init_bytes += sum(_tensor_bytes(t) for t in graph.initializer)
         init_bytes += sum(_tensor_bytes(s.values) + _tensor_bytes(s.indices) for s in graph.sparse_initializer)

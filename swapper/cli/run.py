@@ -35,7 +35,7 @@ def _print_check(console, result: api.CheckResult) -> None:
     console.print(f"{word}: {v.reason}")
     console.print(f"  rule: {v.rule}", highlight=False)
     if c.top1_original is not None and c.top1_candidate is not None:
-        line = (f"  top-1 original {100 * c.top1_original:.2f}%  candidate {100 * c.top1_candidate:.2f}%"
+        line = (f"  top-1 original {pct(c.top1_original)}  candidate {pct(c.top1_candidate)}"
                 f"  delta {c.delta_pp:+.2f} pp")
         if c.interval is not None:
             line += f" [{c.interval.lo:+.2f}, {c.interval.hi:+.2f}] (95%, {c.interval.method})"
@@ -43,7 +43,7 @@ def _print_check(console, result: api.CheckResult) -> None:
             line += f"  McNemar p={c.mcnemar_p:.3g} (n01={c.n01}, n10={c.n10})"
         console.print(line, highlight=False)
     if c.agreement is not None:
-        console.print(f"  top-1 agreement {100 * c.agreement:.2f}% on {c.n} samples", highlight=False)
+        console.print(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples", highlight=False)
     lat = result.latency
     console.print(
         f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "

@@ -14,6 +14,14 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
+# The default (ONNX) operator domain: an empty string, or its long spelling (ONNX spec, "Operator Sets").
+DEFAULT_DOMAINS = ("", "ai.onnx")
+
+
+def is_op(node: onnx.NodeProto | None, *op_types: str) -> bool:
+    """True when ``node`` is one of the default-domain ops ``op_types`` (another domain's "Conv" is not)."""
+    return node is not None and node.op_type in op_types and node.domain in DEFAULT_DOMAINS
+
 
 def attr(node: onnx.NodeProto, name: str, default=None):
     """Value of attribute ``name`` of ``node`` (ints, floats, strings, lists, tensors) or ``default``."""
@@ -45,7 +53,7 @@ def subgraphs(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
 def _is_constant(node: onnx.NodeProto | None) -> bool:
     # Constant is a default-domain op (ONNX operator spec); another domain's
     # "Constant" is an unknown op whose output we cannot know.
-    return node is not None and node.op_type == "Constant" and node.domain in ("", "ai.onnx")
+    return is_op(node, "Constant")
 
 
 @dataclass

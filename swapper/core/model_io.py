@@ -17,7 +17,7 @@ from pathlib import Path
 import onnx
 from google.protobuf.message import DecodeError, EncodeError
 
-from swapper.core.graph import subgraphs
+from swapper.core.graph import DEFAULT_DOMAINS, subgraphs
 from swapper.errors import BadModelError, BadOutputError, first_line
 
 logger = logging.getLogger(__name__)
@@ -45,7 +45,7 @@ class LoadedModel:
 def default_opset(model: onnx.ModelProto) -> int | None:
     """The version of the default-domain (ai.onnx) opset the model imports, None if it imports none."""
     for entry in model.opset_import:
-        if entry.domain in ("", "ai.onnx"):
+        if entry.domain in DEFAULT_DOMAINS:
             return entry.version
     return None
 

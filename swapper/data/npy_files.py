@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 from numpy.lib import format as npy_format
 
-from swapper.errors import BadDataError
+from swapper.errors import BadDataError, first_line
 
 _ZIP_LOCAL_MAGIC = b"PK\x03\x04"
 _ZIP_EMPTY_MAGIC = b"PK\x05\x06"
@@ -30,7 +30,7 @@ def _read_header(fh, where: str, path: Path) -> tuple[tuple, bool, np.dtype]:
         reader = npy_format.read_array_header_1_0 if version == (1, 0) else npy_format.read_array_header_2_0
         shape, fortran, dtype = reader(fh)
     except (ValueError, EOFError, OSError, SyntaxError) as exc:
-        raise BadDataError(f"{where} is not a valid .npy array ({_first_line(exc)})", path) from None
+        raise BadDataError(f"{where} is not a valid .npy array ({first_line(exc)})", path) from None
     if dtype.hasobject:
         raise BadDataError(f"{where} contains pickled objects (refused)", path)
     return tuple(shape), bool(fortran), dtype
@@ -54,7 +54,7 @@ def _open_npy(path: Path, where: str) -> np.ndarray:
     except OSError as exc:
         raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
     except ValueError as exc:
-        raise BadDataError(f"{where} cannot be loaded ({_first_line(exc)})", path) from None
+        raise BadDataError(f"{where} cannot be loaded ({first_line(exc)})", path) from None
 
 
 def _zip_member(path: Path, zf: zipfile.ZipFile, info: zipfile.ZipInfo, where: str) -> np.ndarray:
@@ -105,7 +105,7 @@ def read_npz(path: Path) -> dict[str, np.ndarray]:
                 key = info.filename[: -len(".npy")]
                 arrays[key] = _zip_member(path, zf, info, f"array {key!r}")
     except (zipfile.BadZipFile, zipfile.LargeZipFile, EOFError, OSError, ValueError, struct.error) as exc:
-        raise BadDataError(f"not a valid .npz (truncated or corrupt zip: {_first_line(exc)})", path) from None
+        raise BadDataError(f"not a valid .npz (truncated or corrupt zip: {first_line(exc)})", path) from None
     if not arrays:
         raise BadDataError("the archive holds no arrays", path)
     return arrays
@@ -117,8 +117,3 @@ def read_folder(path: Path) -> dict[str, np.ndarray]:
     if not files:
         raise BadDataError("folder contains no .npy files", path)
     return {f.stem: _open_npy(f, f"array {f.stem!r}") for f in files}
-
-
-def _first_line(exc: BaseException) -> str:
-    text = str(exc).strip().splitlines()
-    return text[0] if text else type(exc).__name__

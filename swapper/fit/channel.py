@@ -17,10 +17,14 @@ over the *free* parameters; held ones keep their initial value exactly.
   optimised in standardised form β = b·std(x), γ = c + b·mean(x), so the
   search is scale-free, and are boxed to |β|, |γ| ≤ 1e3 (or twice the start)
   so degenerate channels cannot run off to huge values.
-- ``positive_a``: a is moved inside g later, so it must stay > 0. Once d is
-  eliminated the mse is a convex quadratic in a, so the constrained optimum
-  is the unconstrained one clamped to a small positive floor (1e-6 of the
-  natural slope scale); the reported mse is that of the clamped a.
+- ``positive_a``: a is moved inside g or folded through a max pool later, so
+  it must stay > 0. Once d is eliminated the mse is a convex quadratic in a,
+  so the constrained optimum is the unconstrained one clamped to a small
+  positive floor (1e-6 of the natural slope scale); the reported mse is that
+  of the clamped a. ``nonzero_a``: d will be emitted as d/a (a folded into
+  the consumers, d a node), so a must stay away from 0: |a| is clamped to the
+  same floor, on the side of the unconstrained a (the nearer bound of the
+  same parabola).
 - Never worse than the start: the initial parameters, the closed-form refit
   of (a, d) at the initial (b, c), and the projected optimum are all scored
   on the given data and the lowest mse wins (the start on ties).
@@ -71,6 +75,7 @@ from swapper.fit.common import (
     Z_FLOOR,
     ChannelFit,
     Func,
+    apply_g,
     check_free,
     g_scale,
     normalised_weights,
@@ -81,7 +86,7 @@ from swapper.fit.param_scale import (
     is_homogeneous,
     linear_pieces,
 )
-from swapper.fit.varpro import DEGENERATE, Projected, apply_g, outer_solve
+from swapper.fit.varpro import DEGENERATE, Projected, outer_solve
 from swapper.fit.varpro_rows import score_rows
 
 logger = logging.getLogger(__name__)
@@ -95,20 +100,23 @@ def outer_fit(
     free: str = "ad",
     weights: np.ndarray | None = None,
     positive_a: bool = False,
+    nonzero_a: bool = False,
 ) -> tuple[float, float]:
     """Closed-form (a, d) minimising Σ w·(y − a·z − d)² over the free ones of a, d.
 
     ``init`` = (a0, d0) are the values of held parameters and the fallback
     slope when z is constant (then d = mean(y) − a0·mean(z)). With
     ``positive_a`` the slope is clamped to a small positive floor (exact
-    constrained optimum, the problem being a convex quadratic in a).
+    constrained optimum, the problem being a convex quadratic in a); with
+    ``nonzero_a`` |a| is clamped to that floor.
     """
     z = np.asarray(z, dtype=np.float64).reshape(-1)
     y = np.asarray(y, dtype=np.float64).reshape(-1)
     if z.shape != y.shape or z.size == 0:
         raise ValueError(f"z and y must be non-empty and the same size, got {z.size}, {y.size}")
     a0, d0 = float(init[0]), float(init[1])
-    a, d, _ = outer_solve(z, y, normalised_weights(weights, z.size), a0, d0, "a" in free, "d" in free, positive_a)
+    a, d, _ = outer_solve(z, y, normalised_weights(weights, z.size), a0, d0, "a" in free, "d" in free, positive_a,
+                          nonzero_a=nonzero_a)
     return a, d
 
 
@@ -122,6 +130,7 @@ def fit_channel(
     positive_a: bool = False,
     dg: Func | None = None,
     weights: np.ndarray | None = None,
+    nonzero_a: bool = False,
 ) -> ChannelFit:
     """Fit y ≈ a·g(b·x + c) + d on one channel; never worse than ``init`` on this data.
 
@@ -129,7 +138,7 @@ def fit_channel(
     value exactly). ``dg`` is g's derivative (faster, exact Jacobian
     direction); without it the Jacobian is finite-differenced. ``weights`` are
     per-sample, non-negative. Raises ``ValueError`` on empty or non-finite
-    data, or a non-positive initial a with ``positive_a``.
+    data, or a non-positive initial a with ``positive_a`` (a zero one with ``nonzero_a``).
     """
     check_free(free)
     x = np.asarray(x, dtype=np.float64).reshape(-1)
@@ -143,6 +152,8 @@ def fit_channel(
         raise ValueError(f"initial parameters must be finite, got {init}")
     if positive_a and a0 <= 0:
         raise ValueError(f"positive_a needs a positive initial a, got {a0}")
+    if nonzero_a and a0 == 0:
+        raise ValueError("nonzero_a needs a non-zero initial a")
     w = normalised_weights(weights, x.size)
     fa, fd = "a" in free, "d" in free
     z_floor = Z_FLOOR * g_scale(g)
@@ -162,7 +173,7 @@ def fit_channel(
             z = apply_g(g, b * x + c)
             if not np.isfinite(z).all():
                 return
-            a, d, _ = outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor)
+            a, d, _ = outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor, nonzero_a=nonzero_a)
         m = score(a, b, c, d)
         if m < best[0]:
             best = (m, (a, b, c, d), note)
@@ -173,7 +184,7 @@ def fit_channel(
         mx = float(w @ x)
         sx = float(np.sqrt(w @ (x - mx) ** 2))
         if sx > DEGENERATE * np.hypot(mx, sx):
-            problem = Projected(x, y, w, g, dg, (a0, b0, c0, d0), free, positive_a, mx, sx, z_floor)
+            problem = Projected(x, y, w, g, dg, (a0, b0, c0, d0), free, positive_a, mx, sx, z_floor, nonzero_a)
             for b, c in problem.solve():
                 consider(float(b), float(c), f"projected ({problem.nfev} evaluations)")
         else:
@@ -250,6 +261,7 @@ def starting_params(
     lo: float = -6.0,
     hi: float = 6.0,
     n: int = 2001,
+    nonzero_a: bool = False,
 ) -> tuple[float, float, float, float]:
     """Best (a, b, c, d) for a·g(b·x + c) + d ≈ f(x) before any calibration data.
 
@@ -266,7 +278,7 @@ def starting_params(
         raise ValueError("f is not finite on the grid")
     r = fit_channel(
         x, y, g, init=(1.0, 1.0, 0.0, 0.0), free=free, positive_a=positive_a, dg=dg,
-        weights=np.exp(-0.5 * x * x),
+        weights=np.exp(-0.5 * x * x), nonzero_a=nonzero_a,
     )
     logger.debug("starting params %s: weighted mse %.3g -> %.3g", r.note, r.mse_init, r.mse)
     return r.a, r.b, r.c, r.d

@@ -7,7 +7,6 @@ from typing import Callable
 
 import numpy as np
 
-from swapper.fit.varpro import apply_g
 from swapper.functions.params import PARAMS
 
 logger = logging.getLogger(__name__)
@@ -15,6 +14,12 @@ logger = logging.getLogger(__name__)
 Func = Callable[[np.ndarray], np.ndarray]
 Z_FLOOR = 1e-12  # z with std below this fraction of g's own output scale = constant too
 SAME_MSE = 1e-9  # a rescaled fit may score this much (relative) above the one it replaces: rounding only
+
+
+def apply_g(g: Func, u: np.ndarray) -> np.ndarray:
+    """g(u) as float64, overflow warnings silenced."""
+    with np.errstate(all="ignore"):  # overflow is caught by the callers' finiteness checks
+        return np.asarray(g(u), dtype=np.float64)
 
 
 @dataclass

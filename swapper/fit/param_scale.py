@@ -20,15 +20,12 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
-from swapper.fit.varpro import apply_g
+from swapper.fit.common import Func, apply_g
 
 logger = logging.getLogger(__name__)
-
-Func = Callable[[np.ndarray], np.ndarray]
 
 MARGIN = 0.25  # μ: canonical z ranges keep this fraction of their width clear of the piece's ends
 PIECE_RANGE, PIECE_STEP = 64.0, 1.0 / 32  # grid on which g's linear pieces are found

@@ -42,13 +42,13 @@ from swapper.fit.common import (
     Z_FLOOR,
     Func,
     SiteFit,
+    apply_g,
     check_free,
     g_scale,
     normalised_weights,
 )
 from swapper.fit.varpro import (
     DEGENERATE,
-    apply_g,
     band_box,
     band_starts,
     in_band,
@@ -90,6 +90,7 @@ def fit_rows(
     positive_a: bool = False,
     dg: Func | None = None,
     weights: np.ndarray | None = None,
+    nonzero_a: bool = False,
 ) -> SiteFit:
     """Fit y ≈ a·g(b·x + c) + d on every row of ``X``, ``Y`` (channels, n) together.
 
@@ -100,7 +101,8 @@ def fit_rows(
     move (g overflowing at the start, or no accepted step at a point that is
     not flat) are refitted one by one with :func:`fit_channel` (scipy),
     keeping whichever result scores lower. ``init`` maps "a".."d" to
-    (channels,) arrays; ``weights`` (n,) are shared by every row.
+    (channels,) arrays; ``weights`` (n,) are shared by every row. ``positive_a``
+    keeps a > 0, ``nonzero_a`` keeps a away from 0 (:func:`fit_channel`).
     """
     check_free(free)
     X = np.asarray(X, dtype=np.float64)
@@ -115,6 +117,8 @@ def fit_rows(
         raise ValueError("initial parameters must be finite")
     if positive_a and (a0 <= 0).any():
         raise ValueError("positive_a needs a positive initial a on every channel")
+    if nonzero_a and (a0 == 0).any():
+        raise ValueError("nonzero_a needs a non-zero initial a on every channel")
     w = normalised_weights(weights, n)
     fa, fd, fb, fc = ("a" in free), ("d" in free), ("b" in free), ("c" in free)
     z_floor = Z_FLOOR * g_scale(g)
@@ -128,7 +132,7 @@ def fit_rows(
         rows = rows if of is None else of[rows]
         with np.errstate(all="ignore"):
             Z = apply_g(g, b[:, None] * X[rows] + c[:, None])
-        a, d, _ = outer_solve_rows(Z, Y[rows], w, a0[rows], d0[rows], fa, fd, positive_a, z_floor)
+        a, d, _ = outer_solve_rows(Z, Y[rows], w, a0[rows], d0[rows], fa, fd, positive_a, z_floor, nonzero_a)
         m = _mse_rows(Z, Y[rows], w, a, d)
         better = m < best["mse"][rows]
         r = rows[better]
@@ -147,8 +151,8 @@ def fit_rows(
         notes[~ok] = ["constant x, " + t for t in notes[~ok]]
         rows = np.nonzero(ok)[0]
         if rows.size:
-            _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, positive_a, z_floor, consider,
-                          best, notes)
+            _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, (positive_a, nonzero_a), z_floor,
+                          consider, best, notes)
     well_scaled(X, Y, w, g, best, mse_init, notes, free, ok)
     return SiteFit(a=best["a"], b=best["b"], c=best["c"], d=best["d"], mse_init=mse_init, mse=best["mse"],
                    notes=[str(t) for t in notes])
@@ -163,8 +167,12 @@ def _subsample(n: int, w: np.ndarray):
     return keep, ws / ws.sum()
 
 
-def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes) -> None:
-    """The projected search of :func:`fit_rows` on the channels ``rows`` (non-constant x)."""
+def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, consider, best, notes) -> None:
+    """The projected search of :func:`fit_rows` on the channels ``rows`` (non-constant x).
+
+    ``bounds``: (positive_a, nonzero_a) of :func:`fit_rows`.
+    """
+    positive_a, nonzero_a = bounds
     a0, b0, c0, d0 = (v[rows] for v in start)
     fb, fc = "b" in free, "c" in free
     # the coordinates, second start and box of swapper.fit.varpro.Projected: u = q0·v + q1;
@@ -172,7 +180,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     std = standardise(X[rows], b0, c0, mx[rows], sx[rows], fb, fc)
     V, q0, q1, second, half, to_bc = std.V, std.q0, std.q1, std.second, std.half, std.to_bc
     Yr = Y[rows]
-    opts = dict(fa="a" in free, fd="d" in free, positive_a=positive_a, z_floor=z_floor)
+    opts = dict(fa="a" in free, fd="d" in free, positive_a=positive_a, z_floor=z_floor, nonzero_a=nonzero_a)
     keep, ws = _subsample(V.shape[1], w)
     Vs, Ys = (V, Yr) if keep is None else (V[:, keep], Yr[:, keep])
 
@@ -237,7 +245,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     for i in np.nonzero(needs_scipy)[0]:
         ch = rows[i]
         r = fit_channel(X[ch], Y[ch], g, init=(a0[i], b0[i], c0[i], d0[i]), free=free,
-                        positive_a=positive_a, dg=dg, weights=w)
+                        positive_a=positive_a, dg=dg, weights=w, nonzero_a=nonzero_a)
         if r.mse < best["mse"][ch]:
             best["a"][ch], best["b"][ch], best["c"][ch], best["d"][ch], best["mse"][ch] = r.a, r.b, r.c, r.d, r.mse
             notes[ch] = f"scipy fallback: {r.note}"

@@ -21,12 +21,14 @@ def fit_channels(
     free: str = "abcd",
     positive_a: bool = False,
     dg: Func | None = None,
+    nonzero_a: bool = False,
 ) -> SiteFit:
     """Fit every channel of ``observer`` on its reservoir sample (all channels at once, :func:`fit_rows`).
 
     ``init`` maps "a".."d" to per-channel arrays (or scalars); missing keys
     start neutral (a = b = 1, c = d = 0). Raises ``BadDataError`` when the
-    observer has seen no data.
+    observer has seen no data. ``positive_a`` keeps a > 0, ``nonzero_a`` keeps
+    a away from 0 (what the placement of the site asks for).
     """
     check_free(free)
     C = observer.channels
@@ -44,7 +46,7 @@ def fit_channels(
     )
 
     X, Y = observer.all_samples()
-    out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg)
+    out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
     logger.debug(
         "fitted %d channels on %d samples each: mse %.3g -> %.3g",
         C, observer.held, float(out.mse_init.mean()), float(out.mse.mean()),

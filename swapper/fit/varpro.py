@@ -15,18 +15,17 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 from scipy.optimize import least_squares
 
-logger = logging.getLogger(__name__)
+from swapper.fit.common import apply_g
 
-Func = Callable[[np.ndarray], np.ndarray]
+logger = logging.getLogger(__name__)
 
 BOX = 1e3  # bound on |β| and |γ| (units of g's argument), widened to 2x the start if needed
 DEGENERATE = 1e-6  # std below this fraction of the RMS = constant (float32 resolves ~1e-7)
-A_FLOOR = 1e-6  # with positive_a: a >= A_FLOOR x the natural slope scale sqrt(var y / var z)
+A_FLOOR = 1e-6  # with positive_a (nonzero_a): a (|a|) >= A_FLOOR x the natural slope scale sqrt(var y / var z)
 MAX_NFEV = 200  # per channel; converged fits take far fewer
 BAD_RESIDUAL = 1e50  # residual returned where g overflows, so the optimiser backs off
 # Fitted (b, c) keep BETA_MIN <= |β| = |b|·std(x): the cheap functions'
@@ -40,12 +39,6 @@ BETA_MIN = 0.1
 BETA_MAX = 100.0
 
 
-def apply_g(g: Func, u: np.ndarray) -> np.ndarray:
-    """g(u) as float64, overflow warnings silenced."""
-    with np.errstate(all="ignore"):  # overflow is caught by the callers' finiteness checks
-        return np.asarray(g(u), dtype=np.float64)
-
-
 def y_stats(y, w):
     """Weighted mean of y, w·(y − mean) and the variance: fixed across a channel's iterations."""
     my = float(w @ y)
@@ -53,7 +46,7 @@ def y_stats(y, w):
     return my, wdy, float(wdy @ (y - my))
 
 
-def outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None):
+def outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None, nonzero_a=False):
     """Weighted LS of y on [z, 1] over the free ones of (a, d). Returns (a, d, a_solved).
 
     The one-row case of :func:`slope_rows` (which states the rules for a);
@@ -73,13 +66,13 @@ def outer_solve(z, y, w, a0, d0, fa, fd, positive_a, z_floor=0.0, ystats=None):
         szz, syy = float(w @ (z * z)), float(w @ ((y - d0) ** 2))
         szy = float(w @ (z * (y - d0)))
         rms2 = szz
-    a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor)
+    a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor, nonzero_a)
     a = float(a)
     d = my - a * mz if fd else d0
     return a, float(d), bool(solved)
 
 
-def slope_rows(szz, szy, syy, rms2, a0, positive_a: bool, z_floor: float):
+def slope_rows(szz, szy, syy, rms2, a0, positive_a: bool, z_floor: float, nonzero_a: bool = False):
     """The slope a of the weighted LS of y on [z, 1] from its moments, per row, and whether it was solved.
 
     ``szz``, ``szy``, ``syy`` are the weighted (co)variances of z and y
@@ -88,17 +81,24 @@ def slope_rows(szz, szy, syy, rms2, a0, positive_a: bool, z_floor: float):
     its spread is below ``DEGENERATE`` of its RMS or below ``z_floor``: a
     tiny-but-varying z (e.g. b ≈ 0) would otherwise need an astronomically
     large a. With ``positive_a`` a is clamped to ``A_FLOOR`` × the natural
-    slope scale sqrt(syy / szz) (× |a0| where that is undefined); a clamped
-    a counts as not solved (active bound: a no longer moves with (b, c)).
+    slope scale sqrt(syy / szz) (× |a0| where that is undefined); with
+    ``nonzero_a`` |a| is, to the one of ±floor nearer the unconstrained slope
+    (the sign of a0 when that is 0): the mse is a parabola in a about that
+    slope, so the nearer bound is the constrained optimum. A clamped a counts
+    as not solved (active bound: a no longer moves with (b, c)).
     """
     with np.errstate(all="ignore"):  # constant or overflowing rows are caught by `solved`/finiteness
         solved = (szz > (DEGENERATE**2) * rms2) & (szz > z_floor**2) & (szz > 0)
         a = np.where(solved, szy / np.where(solved, szz, 1.0), a0)
-        if positive_a:
+        if positive_a or nonzero_a:
             ok = solved & (syy > 0)
             floor = A_FLOOR * np.where(ok, np.sqrt(np.where(ok, syy / np.where(ok, szz, 1.0), 0.0)), np.abs(a0))
-            low = a < floor
-            a = np.where(low, floor, a)
+            if positive_a:
+                low = a < floor
+                a = np.where(low, floor, a)
+            else:
+                low = np.abs(a) < floor
+                a = np.where(low, np.where(a != 0, np.sign(a), np.sign(a0)) * floor, a)
             solved = solved & ~low
     return a, solved
 
@@ -106,11 +106,11 @@ def slope_rows(szz, szy, syy, rms2, a0, positive_a: bool, z_floor: float):
 class Projected:
     """The variable-projection problem of one channel over its free (b, c)."""
 
-    def __init__(self, x, y, w, g, dg, init, free, positive_a, mx, sx, z_floor):
+    def __init__(self, x, y, w, g, dg, init, free, positive_a, mx, sx, z_floor, nonzero_a=False):
         self.y, self.w, self.sw, self.g, self.dg = y, w, np.sqrt(w), g, dg
         self.z_floor = z_floor
         self.a0, self.b0, self.c0, self.d0 = init
-        self.fa, self.fd, self.positive_a = "a" in free, "d" in free, positive_a
+        self.fa, self.fd, self.positive_a, self.nonzero_a = "a" in free, "d" in free, positive_a, nonzero_a
         self.free_b = "b" in free  # then p[0] is β
         b0, c0 = self.b0, self.c0
         # p: the free ones of the standardised (β, γ); solve() descends from
@@ -160,7 +160,7 @@ class Projected:
                 with np.errstate(all="ignore"):
                     a, d, solved = outer_solve(
                         z, self.y, self.w, self.a0, self.d0, self.fa, self.fd, self.positive_a,
-                        self.z_floor, self.ystats,
+                        self.z_floor, self.ystats, self.nonzero_a,
                     )
                 if np.isfinite([a, d]).all():
                     self._val = (u, z, a, d, solved)

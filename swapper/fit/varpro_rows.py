@@ -33,15 +33,13 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
-from swapper.fit.varpro import apply_g, slope_rows
+from swapper.fit.common import Func, apply_g
+from swapper.fit.varpro import slope_rows
 
 logger = logging.getLogger(__name__)
-
-Func = Callable[[np.ndarray], np.ndarray]
 
 MAX_ITER = 40  # per row; the test models converge in 5-20 (measured on the demo and scale models)
 FTOL = 1e-10  # relative cost decrease that counts as converged
@@ -53,12 +51,13 @@ FD_STEP = 1e-6  # central-difference step (relative to max(1, |u|)) when g' is n
 CONVERGED, FLAT, CAPPED, BAD_START = 0, 1, 2, 3
 
 
-def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_floor: float = 0.0):
+def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_floor: float = 0.0,
+                     nonzero_a: bool = False):
     """Row-wise weighted LS of Y on [Z, 1] over the free ones of (a, d). Returns (a, d, solved), each (rows,).
 
     The rules for a are :func:`swapper.fit.varpro.slope_rows`: a is kept at ``a0``
     where z is constant (spread below 1e-6 of its RMS or below ``z_floor``);
-    with ``positive_a`` a is clamped to its floor (then counted as not solved).
+    with ``positive_a`` (``nonzero_a``) a (|a|) is clamped to its floor (then counted as not solved).
     """
     rows = Z.shape[0]
     if not fa:
@@ -78,7 +77,7 @@ def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_fl
             wz = Z * w
             szz, szy, syy = (wz * Z).sum(axis=1), (wz * yd).sum(axis=1), (yd * yd) @ w
             rms2 = szz
-        a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor)
+        a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor, nonzero_a)
         d = my - a * mz if fd else d0.copy()
     return a, d, solved
 
@@ -117,10 +116,11 @@ class _Problem:
     only steer the search, never the reported mse.
     """
 
-    def __init__(self, V, Y, w, g, dg, a0, d0, fa, fd, positive_a, z_floor):
+    def __init__(self, V, Y, w, g, dg, a0, d0, fa, fd, positive_a, z_floor, nonzero_a=False):
         self.V, self.g, self.dg = V, g, dg
         self.a0, self.d0 = a0, d0
         self.fa, self.fd, self.positive_a, self.z_floor = fa, fd, positive_a, z_floor
+        self.nonzero_a = nonzero_a
         # uniform weights (every calibration fit) need no weighting pass at all
         self.w = w
         self.uniform = bool(np.all(w == w[0]))
@@ -152,7 +152,8 @@ class _Problem:
             szy = self.wdot(Z, self.Yc)  # the targets are centred when d is solved
             szz = zz - mz * mz if self.fd else zz
             if self.fa:
-                a, solved = slope_rows(szz, szy, self.syy, zz, self.a0, self.positive_a, self.z_floor)
+                a, solved = slope_rows(szz, szy, self.syy, zz, self.a0, self.positive_a, self.z_floor,
+                                       self.nonzero_a)
             else:
                 a, solved = self.a0, np.zeros(Z.shape[0], dtype=bool)
             cost = np.maximum(self.syy - 2 * a * szy + a * a * szz, 0.0)
@@ -195,7 +196,8 @@ class _Problem:
 
 
 def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool], lo, hi, a0, d0, *,
-                 fa: bool, fd: bool, positive_a: bool, z_floor: float, max_iter: int = MAX_ITER,
+                 fa: bool, fd: bool, positive_a: bool, z_floor: float, nonzero_a: bool = False,
+                 max_iter: int = MAX_ITER,
                  lam0: float | np.ndarray = LAMBDA0, ftol: float = FTOL) -> LMResult:
     """Levenberg–Marquardt on the projected residual of every row of u = q₀·V + q₁.
 
@@ -213,7 +215,8 @@ def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool],
     lo, hi = np.asarray(lo, dtype=np.float64), np.asarray(hi, dtype=np.float64)
     lam = np.array(np.broadcast_to(np.asarray(lam0, dtype=np.float64), (rows,)))
     status = np.full(rows, CAPPED)
-    prob = _Problem(V, Y, w, g, dg, np.asarray(a0, float), np.asarray(d0, float), fa, fd, positive_a, z_floor)
+    prob = _Problem(V, Y, w, g, dg, np.asarray(a0, float), np.asarray(d0, float), fa, fd, positive_a, z_floor,
+                    nonzero_a)
     cost, H, grad = prob.evaluate(q)
     status[~np.isfinite(cost)] = BAD_START  # g overflows at the start: left to the scipy path
     active = np.isfinite(cost)

@@ -14,6 +14,7 @@ import logging
 from functools import lru_cache
 from pathlib import Path
 
+from swapper.core.graph import DEFAULT_DOMAINS
 from swapper.errors import UsageError
 
 logger = logging.getLogger(__name__)
@@ -32,7 +33,7 @@ def load_costs() -> dict:
 
 def form_key(form: str, domain: str = "") -> str:
     """The key a site's (form, domain) has in the table's ``forms``: "op", "op:com.microsoft" or the pattern name."""
-    if form == "op" and domain not in ("", "ai.onnx"):
+    if form == "op" and domain not in DEFAULT_DOMAINS:
         return f"op:{domain}"
     return form
 

@@ -1,8 +1,10 @@
 """The linear layers that read a swapped site: reached, and seen as a regression θ = [W; bias].
 
-Layers (:func:`linear_layer`): a Conv / ConvTranspose / Gemm / MatMul that
-reads a tensor as its data input only, with constant weights; its bias is
-input 2, or for a MatMul the constant operand of the Add that alone reads it.
+Layers (:func:`linear_layer`, the one test placement, bias correction and
+refit share): a Conv / ConvTranspose / Gemm / MatMul (``LINEAR``) that reads a
+tensor as its data input only, with constant weights; its bias is input 2, or
+for a MatMul the constant operand of the Add that alone reads it; its channels
+come from the weight layout (:func:`layer_widths`, ONNX operator spec).
 
 Reaching (:func:`reach_linear`): from a site output, walk forward through
 ops that commute with a per-channel map y -> a·y + d (ONNX operator spec
@@ -34,14 +36,13 @@ import numpy as np
 import onnx
 
 from swapper.core.conv import pads_input
-from swapper.core.graph import GraphIndex, attr
+from swapper.core.graph import GraphIndex, attr, is_op
 from swapper.core.surgery import all_names, input_at, set_const_input
 from swapper.scan.match import other_operand
 from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-_DEFAULT = ("", "ai.onnx")
 LINEAR = ("Conv", "ConvTranspose", "Gemm", "MatMul")
 MAX_POOLS = ("MaxPool", "GlobalMaxPool")
 AVG_POOLS = ("AveragePool", "GlobalAveragePool")
@@ -64,8 +65,7 @@ def sole_bias_add(index: GraphIndex, mm: onnx.NodeProto) -> onnx.NodeProto | Non
     """The constant-bias Add that alone reads a MatMul's output, if any."""
     out = mm.output[0]
     users = index.users(out)
-    if index.is_graph_output(out) or len(users) != 1 or users[0].op_type != "Add" \
-            or users[0].domain not in _DEFAULT:
+    if index.is_graph_output(out) or len(users) != 1 or not is_op(users[0], "Add"):
         return None
     add = users[0]
     if list(add.input).count(out) != 1:
@@ -93,11 +93,33 @@ class Layer:
         """The bias tensor ("" when the layer has none)."""
         return input_at(self.bias_node, self.bias_slot) if self.bias_node is not None else ""
 
+    @property
+    def axis(self) -> str:
+        """Where its input and output channels run: "first" (axis 1) or "last"."""
+        return "first" if self.kind in ("conv", "convtranspose") else "last"
+
+    def widths(self) -> tuple[int, int]:
+        """(input channels it reads, output channels it writes), from the weight layout (module docstring)."""
+        return layer_widths(self.kind, self.node, self.weight)
+
+
+def layer_widths(kind: str, node: onnx.NodeProto, w: np.ndarray) -> tuple[int, int]:
+    """(input, output) channels of a ``kind`` layer with weight ``w``: Conv W [M, C/group, k...],
+    ConvTranspose W [C, M/group, k...], Gemm B [K, N] (transB: [N, K]), MatMul B [..., K, N] (1-D: [K])."""
+    group = int(attr(node, "group", 1))
+    if kind == "conv":
+        return w.shape[1] * group, w.shape[0]
+    if kind == "convtranspose":
+        return w.shape[0], w.shape[1] * group
+    if kind == "gemm":
+        return (w.shape[1], w.shape[0]) if attr(node, "transB", 0) else (w.shape[0], w.shape[1])
+    return (w.shape[-2], w.shape[-1]) if w.ndim >= 2 else (w.shape[0], 1)
+
 
 def linear_layer(index: GraphIndex, node: onnx.NodeProto, tensor: str) -> tuple[Layer | None, str]:
     """``node`` as a linear layer reading ``tensor`` as its data input only, with constant weights and
     bias; or None and why not (a phrase to follow the node's label: "is not a linear layer", ...)."""
-    if node.domain not in _DEFAULT or node.op_type not in LINEAR:
+    if not is_op(node, *LINEAR):
         return None, "is not a linear layer"
     if [i for i, t in enumerate(node.input) if t == tensor] != [0]:
         return None, f"does not read {tensor!r} as its data input only"
@@ -193,8 +215,7 @@ def _step(index: GraphIndex, node: onnx.NodeProto, tensor: str, axis: int | None
     outs = [o for o in node.output if o]
     out_shape = index.shape(outs[0]) if outs else None
     out_rank = len(out_shape) if out_shape is not None else None
-    if node.domain not in _DEFAULT or op not in MAX_POOLS + AVG_POOLS + RESHAPES + ("Mul",) \
-            or (op == "Mul" and not gates):
+    if not is_op(node, *MAX_POOLS, *AVG_POOLS, *RESHAPES, "Mul") or (op == "Mul" and not gates):
         ways = "pool, reshape or gate Mul" if gates else "pool or reshape"
         return None, None, None, f"{label} is not a linear layer (nor a {ways} the parameters pass through)"
     if len(outs) != 1:  # e.g. MaxPool's Indices: they would have to stay valid too
@@ -248,7 +269,7 @@ def reach_linear(index: GraphIndex, start: str, axis: int | None, rank: int | No
             if node.name in seen:
                 continue  # read through two carried tensors: caught below
             seen[node.name] = node
-            if node.domain in _DEFAULT and node.op_type in LINEAR:
+            if is_op(node, *LINEAR):
                 reached.append(Reach(node, tensor, steps, ax, rk))
                 continue
             if len(steps) >= limit:
@@ -318,8 +339,7 @@ def _why_not_refit(layer: Layer, blocked: set[str]) -> str:
         if int(attr(node, "transA", 0)) or float(attr(node, "alpha", 1.0)) == 0.0 \
                 or float(attr(node, "beta", 1.0)) == 0.0:
             return "transA=1, alpha=0 or beta=0"
-        width = w.shape[0] if attr(node, "transB", 0) else w.shape[1]
-        if layer.bias is not None and not _along_last(layer.bias, width):
+        if layer.bias is not None and not _along_last(layer.bias, layer.widths()[1]):
             return "C is not a per-output-channel bias"
     if layer.kind == "matmul":
         if w.ndim != 2 or layer.add is None or layer.add.name in blocked:

@@ -14,12 +14,16 @@ and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
                   ops that commute with it (average pools, channel-keeping reshapes;
                   a also through a gate Mul, d only where no zero padding is averaged);
 - ``"consumers+"`` (a only) as "consumers", but a max pool is on the way: exact
-                  only for a >= 0, so the fitter keeps a > 0 (a negative a is
-                  emitted as a node instead);
+                  only for a >= 0, so the fitter keeps a > 0;
 - ``"inner"``     (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
 - ``"nodes"``     emitted as per-channel Mul/Add nodes (adds nodes, always exact);
 - ``"held"``      kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
 - ``"approx"``    (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders).
+
+The placement is decided once, in :mod:`swapper.plan.placement`, which also
+says what it asks of the values of a (:func:`swapper.plan.placement.a_rule`);
+calibration keeps to it and the rewriter carries it out unchanged, so the
+plan written into the model and the report is what the graph holds.
 """
 from __future__ import annotations
 
@@ -30,7 +34,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from swapper.functions.params import NEUTRAL, PARAMS
-from swapper.plan.placement import FOLD_POLICIES, POSITIVE_A
+from swapper.plan.placement import FOLD_POLICIES, a_rule, check_placement
 
 logger = logging.getLogger(__name__)
 
@@ -55,15 +59,23 @@ class SiteSwap:
         """The parameters a fitter may move."""
         return tuple(p for p in PARAMS if self.placement.get(p) != "held")
 
-    def positive_a(self) -> bool:
-        """Whether the fitter must keep a > 0.
+    def a_bounds(self) -> dict[str, bool]:
+        """What the fitter must keep true of a, as its options ``positive_a`` and ``nonzero_a``.
 
-        "inner" always (a moves inside g); "consumers+" while every a is already
-        positive (a passes a MaxPool only when positive; once some a is not, the
-        rewriter emits a as a node instead and the sign is free).
+        From the placement alone (:func:`swapper.plan.placement.a_rule`), never
+        from the current values: a > 0 for "inner" and "consumers+", a != 0 for
+        "consumers" while d is a node.
         """
-        place = self.placement.get("a")
-        return place == "inner" or (place in POSITIVE_A and bool(np.all(np.asarray(self.a) > 0)))
+        rule = a_rule(self.placement)
+        return {"positive_a": rule == "positive", "nonzero_a": rule == "nonzero"}
+
+    def check(self) -> dict[str, str]:
+        """The placement with every parameter named; UsageError if the current values break it
+        (:func:`swapper.plan.placement.check_placement`: e.g. a hand-edited a < 0 behind a max pool)."""
+        from swapper import functions
+
+        values = {p: np.asarray(getattr(self, p), dtype=np.float64).ravel() for p in PARAMS}
+        return check_placement(self.site_id, self.placement, values, functions.get(self.target))
 
     def surrogate(self):
         """(g, dg) of the surrogate with its own parameters fixed."""
@@ -140,17 +152,17 @@ _STARTS: dict[tuple, tuple[float, float, float, float]] = {}
 
 
 def _starting_params(source: str, source_params: dict, target: str, target_params: dict,
-                     free: str, positive_a: bool) -> tuple[float, float, float, float]:
+                     free: str, positive_a: bool, nonzero_a: bool) -> tuple[float, float, float, float]:
     """Least-squares best a, b, c, d of the surrogate to the source over a standard input range (memoised)."""
     from swapper import functions
     from swapper.fit.channel import starting_params
 
     key = (source, json.dumps(source_params, sort_keys=True), target, json.dumps(target_params, sort_keys=True),
-           free, positive_a)
+           free, positive_a, nonzero_a)
     if key not in _STARTS:
         f, _ = functions.get(source).bind(source_params)
         g, dg = functions.get(target).bind(target_params)
-        _STARTS[key] = starting_params(f, g, free=free, positive_a=positive_a, dg=dg)
+        _STARTS[key] = starting_params(f, g, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
     return _STARTS[key]
 
 
@@ -240,9 +252,9 @@ def make_plan(
             placement=placement,
             notes=list(notes),
         )
-        # before any value exists, a placement in POSITIVE_A asks for a positive start
+        # the start keeps to what the placement asks of a, as every later fit does
         start = _starting_params(site.function, site.params, target, tparams, "".join(swap.free()),
-                                 placement.get("a") in POSITIVE_A)
+                                 **swap.a_bounds())
         swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
         swaps.append(swap)
     return Plan(fold=fold, swaps=swaps, skipped=skipped)

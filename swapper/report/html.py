@@ -9,7 +9,7 @@ import logging
 import numpy as np
 
 from swapper import functions
-from swapper.report.numbers import pct
+from swapper.report.numbers import num, pct
 
 logger = logging.getLogger(__name__)
 
@@ -28,10 +28,6 @@ td.n{text-align:right;font-variant-numeric:tabular-nums} .side{display:flex;gap:
 
 def _e(x) -> str:
     return html.escape(str(x))
-
-
-def _num(x, fmt="{:.4g}") -> str:
-    return "–" if x is None else fmt.format(x)
 
 
 def _table(header: list[str], rows: list[list], numeric: set[int] = frozenset()) -> str:
@@ -116,17 +112,17 @@ def render_html(payload: dict) -> str:
             extra.append(["accuracy delta", f"{c['delta_pp']:+.2f} pp"])
             if iv:
                 extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
-            extra.append(["McNemar exact p", f"{_num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
+            extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
         if c.get("agreement") is not None:
             extra.append(["top-1 agreement", pct(c["agreement"])])
         for name, errs in (c.get("output_errors") or {}).items():
-            extra.append([f"output {name}", f"max |Δ| {_num(errs.get('max_abs'))}, RMSE {_num(errs.get('rmse'))}, "
-                                            f"cosine {_num(errs.get('cosine'), '{:.6f}')}, SQNR {_num(errs.get('sqnr_db'), '{:.1f}')} dB"])
+            extra.append([f"output {name}", f"max |Δ| {num(errs.get('max_abs'))}, RMSE {num(errs.get('rmse'))}, "
+                                            f"cosine {num(errs.get('cosine'), '.6f')}, SQNR {num(errs.get('sqnr_db'), '.1f')} dB"])
         lat, size = payload["latency"], payload["size"]
         speed = _table(["", "original", "candidate"], [
-            ["median latency (ms)", _num(lat["original"]["median_ms"]), _num(lat["candidate"]["median_ms"])],
-            ["p10–p90 (ms)", f"{_num(lat['original']['p10_ms'])}–{_num(lat['original']['p90_ms'])}",
-             f"{_num(lat['candidate']['p10_ms'])}–{_num(lat['candidate']['p90_ms'])}"],
+            ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],
+            ["p10–p90 (ms)", f"{num(lat['original']['p10_ms'])}–{num(lat['original']['p90_ms'])}",
+             f"{num(lat['candidate']['p10_ms'])}–{num(lat['candidate']['p90_ms'])}"],
             ["latency ratio", "", f"{lat['ratio']:.3f}"],
             ["serialized bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
             ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]],
@@ -143,7 +139,7 @@ def render_html(payload: dict) -> str:
             q = payload["int8"]
             parts.append("<h2>int8 view</h2>" + _table(["", "original", "candidate"], [
                 ["top-1 accuracy", pct(q["comparison"].get("top1_original")), pct(q["comparison"].get("top1_candidate"))],
-                ["median latency (ms)", _num(q["latency"]["original"]["median_ms"]), _num(q["latency"]["candidate"]["median_ms"])],
+                ["median latency (ms)", num(q["latency"]["original"]["median_ms"]), num(q["latency"]["candidate"]["median_ms"])],
                 ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
             ]) + f"<small>{_e(q['quantization'])}</small>")
             for w in q.get("lossy_weights") or []:
@@ -154,7 +150,7 @@ def render_html(payload: dict) -> str:
     if payload["sites"]:
         rows = [[s["site_id"], f"{s['source']} → {s['target']}",
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
-                 _num(s["mse_start"]), _num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
+                 num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
         parts.append("<h2>Swapped sites</h2>" + _table(
             ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted", "notes"],
             rows, numeric={3, 4, 5}))

@@ -2,13 +2,16 @@
 
 Transformation: for every swapped site, the site's nodes are replaced by
 ``y = a·g(b·x + c) + d`` where ``g`` is the registry emitter of the target and
-each of a, b, c, d is placed as the plan says: folded into the producer of ``x``
-(its output channels scaled/shifted), folded into the linear layers that read
-``y``, directly or behind pools/reshapes/gates (their input-channel weights
-scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool, valid
-for a >= 0, else a is emitted as a node), moved inside ``g`` (a > 0,
-homogeneous g), or emitted as per-channel Mul/Add nodes. Parameters equal to
-their neutral value add nothing. The output tensor name of every site is kept,
+each of a, b, c, d is placed exactly as the plan says: folded into the producer
+of ``x`` (its output channels scaled/shifted), folded into the linear layers
+that read ``y``, directly or behind pools/reshapes/gates (their input-channel
+weights scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool),
+moved inside ``g`` (homogeneous g), or emitted as per-channel Mul/Add nodes.
+The rewriter never moves a parameter: a plan whose values break what its
+placement asks (:func:`swapper.plan.placement.check_placement`, e.g. a < 0
+behind a max pool), or whose folds the graph does not allow, is refused with
+a UsageError, so the plan stored in the model is what the graph holds.
+Parameters equal to their neutral value add nothing. The output tensor name of every site is kept,
 so consumers and graph outputs are untouched. The input model is never
 mutated, and folded weights always get a new initializer (the model's own
 initializers may be shared by other nodes). The graph surgery itself (placing
@@ -38,13 +41,14 @@ from swapper.core.surgery import (
 )
 from swapper.errors import BadModelError, UsageError
 from swapper.functions.params import NEUTRAL, PARAMS
-from swapper.plan.placement import (
+from swapper.plan.fold_targets import (
     ConsumerFold,
     ProducerFold,
     consumer_folds,
     producer_fold,
     site_rank,
 )
+from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
 from swapper.scan.sites import Site
@@ -52,9 +56,6 @@ from swapper.scan.sites import Site
 logger = logging.getLogger(__name__)
 
 PLAN_KEY = "swapper.plan"
-PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx")
-IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
-FOLDING = ("producer", "consumers", "consumers+", "approx", "inner")  # placements that need the fold analysis
 
 
 @dataclass
@@ -62,7 +63,7 @@ class SiteRecord:
     site_id: str
     source: str
     target: str
-    placement: dict
+    placement: dict  # the plan's placement, as carried out (every parameter named)
     folded_into: list[str]  # names of the nodes whose weights or bias changed
     nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
     notes: list[str] = field(default_factory=list)
@@ -149,18 +150,19 @@ def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray,
 def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.ndarray | None,
                     em: Emitter) -> list[str]:
     """Fold y -> a·y + d into one linear consumer. d uses the weights before the a scaling."""
-    node = f.node
+    layer = f.layer
+    node = layer.node
     weight = w.read(node, 1)
     touched = []
     if d is not None:
-        offset = input_offset(f.kind, node, weight, d)
-        if f.kind == "gemm":  # C is scaled by beta inside Gemm
+        offset = input_offset(layer.kind, node, weight, d)
+        if layer.kind == "gemm":  # C is scaled by beta inside Gemm
             offset = offset / float(attr(node, "beta", 1.0))
-        bias = w.read(f.bias_node, f.bias_slot)
-        w.write(f.bias_node, f.bias_slot, (0.0 if bias is None else bias) + offset, em)
-        touched.append(f.bias_node.name)
+        bias = w.read(layer.bias_node, layer.bias_slot)
+        w.write(layer.bias_node, layer.bias_slot, (0.0 if bias is None else bias) + offset, em)
+        touched.append(layer.bias_node.name)
     if a is not None:
-        w.write(node, 1, input_scale(f.kind, node, weight, a), em)
+        w.write(node, 1, input_scale(layer.kind, node, weight, a), em)
         touched.append(node.name)
     return touched
 
@@ -191,39 +193,14 @@ def _param_shape(index: GraphIndex, site: Site, swap: SiteSwap, n: int) -> tuple
     return (n,) + (1,) * (rank - 1 - axis)
 
 
-def _check_placement(site: Site, swap: SiteSwap, fn: functions.Function, vals: dict) -> dict[str, str]:
-    place = {p: swap.placement.get(p, "held") for p in PARAMS}
-    for p, where in place.items():
-        if where not in PLACEMENTS or (where in ("inner", "consumers+") and p != "a") \
-                or (where == "approx" and p != "d"):
-            raise UsageError(f"site {site.id}: invalid placement {where!r} for {p}")
-        if where == "held" and not _neutral(p, vals[p]):
-            raise UsageError(f"site {site.id}: {p} is held but not neutral ({NEUTRAL[p]})")
-    if place["a"] == "inner":
-        if not fn.homogeneous:
-            raise UsageError(f"site {site.id}: a is placed inside {fn.name}, which is not homogeneous")
-        if np.any(vals["a"] <= 0):
-            raise UsageError(f"site {site.id}: a is placed inside {fn.name} but is not > 0 everywhere")
-        if place["b"] not in ("producer", "nodes"):
-            raise UsageError(f"site {site.id}: a inside g needs b in the producer or as a node")
-    if place["c"] == "producer" and place["b"] == "nodes":
-        raise UsageError(f"site {site.id}: c in the producer with b as a node would shift before scaling")
-    return place
-
-
 def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap, em: Emitter,
                analysis: tuple | None) -> SiteRecord:
-    """Emit one site's surrogate into ``em`` and fold its parameters; ``analysis`` is
+    """Emit one site's surrogate into ``em`` and fold its parameters as the plan places them; ``analysis`` is
     ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
-    plan folds nothing of this site)."""
+    plan folds nothing of this site). Raises UsageError where the plan cannot be carried out as it stands."""
     fn = functions.get(swap.target)
     vals = _vectors(swap)
-    place = _check_placement(site, swap, fn, vals)
-    notes = list(swap.notes)
-    if place["a"] == "consumers+" and np.any(vals["a"] < 0):
-        # max(a·y) = a·max(y) only for a >= 0: a negative channel cannot cross the max pool
-        place["a"] = "nodes"
-        notes.append("a emitted as a node: a < 0 on some channel cannot pass the max pool before the consumers")
+    place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
     if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not _neutral(p, vals[p]) for p in PARAMS}
@@ -253,22 +230,16 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     a_cons = place["a"] in IN_CONSUMERS and need["a"]
     d_cons = place["d"] in ("consumers", "approx") and need["d"]
     a_node, d_node = place["a"] == "nodes" and need["a"], place["d"] == "nodes" and need["d"]
-    d_emit = vals["d"]
-    if a_cons and d_node:
-        # The consumers will scale the Add's output by a: emit d/a so they see a·g + d.
-        if np.any((vals["a"] == 0) & (vals["d"] != 0)):
-            a_cons, a_node, place["a"] = False, True, "nodes"
-            notes.append("a emitted as a node: a = 0 where d != 0 cannot stay in the consumers")
-        else:
-            d_emit = np.divide(vals["d"], vals["a"], out=np.zeros(n), where=vals["a"] != 0)
+    # The consumers will scale the Add's output by a: emit d/a so they see a·g + d (a != 0 is checked above).
+    d_emit = np.divide(vals["d"], vals["a"], out=np.zeros(n)) if a_cons and d_node else vals["d"]
     if a_cons or d_cons:
         folds, why = analysis[1]
         if folds is None:
             raise UsageError(f"site {site.id}: plan folds a/d into the consumers but {why}")
         ok = (lambda f: f.d_exact) if place["d"] == "consumers" else (lambda f: f.d_exact or f.d_approx)
-        if d_cons and not all(ok(f) and not f.d_block for f in folds):
+        if d_cons and not all(ok(f) and not f.reach.d_block for f in folds):
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
-        if a_cons and place["a"] == "consumers" and any(f.a_positive for f in folds):
+        if a_cons and place["a"] == "consumers" and any(f.reach.a_positive for f in folds):
             raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers+")
         for f in folds:
             folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
@@ -282,7 +253,8 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         em.node("Add", [em.nodes[-1].output[0], const("d", d_emit)], site.output)
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
-    return SiteRecord(site.id, site.function, swap.target, dict(place), sorted(set(folded)), len(em.nodes), notes)
+    return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes),
+                      list(swap.notes))
 
 
 # ------------------------------------------------------------------ public

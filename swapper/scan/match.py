@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import onnx
 
 from swapper import functions
-from swapper.core.graph import GraphIndex, attr
+from swapper.core.graph import GraphIndex, attr, is_op
 
 RTOL = 1e-3  # tolerance on pattern constants (exporters round √2, √(2/π), ... differently)
 
@@ -84,7 +84,7 @@ def sole_user(ix: GraphIndex, tensor: str) -> onnx.NodeProto | None:
 
 def produced_by(ix: GraphIndex, tensor: str, *op_types: str) -> onnx.NodeProto | None:
     node = ix.producer.get(tensor)
-    if node is not None and node.op_type in op_types and node.domain in ("", "ai.onnx"):
+    if is_op(node, *op_types):
         return node
     return None
 
@@ -111,7 +111,7 @@ def add_one(ix: GraphIndex, tensor: str, what: str) -> tuple[onnx.NodeProto | No
     if user is None:
         adds = [u for u in ix.users(tensor) if u.op_type == "Add"]
         return None, (private_reason(ix, tensor) if adds else None)
-    if user.op_type != "Add" or user.domain not in ("", "ai.onnx"):
+    if not is_op(user, "Add"):
         return None, None
     one = ix.scalar(other_operand(user, tensor))
     if not close(one, 1.0):
@@ -134,7 +134,7 @@ def close_product(
             if have_x:  # x is in, only the constant is off
                 break
             return private_reason(ix, cur) or f"{cur!r} has no reader"
-        if user.op_type not in ("Mul", "Div") or user.domain not in ("", "ai.onnx"):
+        if not is_op(user, "Mul", "Div"):
             break
         other = other_operand(user, cur)
         if user.op_type == "Div":

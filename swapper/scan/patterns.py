@@ -30,7 +30,7 @@ import logging
 
 import onnx
 
-from swapper.core.graph import GraphIndex, attr
+from swapper.core.graph import DEFAULT_DOMAINS, GraphIndex, attr
 from swapper.functions.formulas import QUICK_GELU_BETA
 from swapper.scan.decomposed import PATTERNS
 from swapper.scan.match import Decline, Match, close, node_params
@@ -52,7 +52,7 @@ SINGLE_OPS: dict[tuple[str, str], str] = {
 
 def _single(node: onnx.NodeProto) -> tuple[str, dict] | tuple[None, None]:
     """(function, params) for a single activation op, or (None, None)."""
-    domain = "" if node.domain in ("", "ai.onnx") else node.domain
+    domain = "" if node.domain in DEFAULT_DOMAINS else node.domain
     function = SINGLE_OPS.get((domain, node.op_type))
     if function is None:
         return None, None
@@ -101,7 +101,7 @@ def match_graph(ix: GraphIndex) -> tuple[list[Match], list[Decline]]:
     declines: list[Decline] = []
     nodes = list(ix.graph.node)
     for node in nodes:
-        if node.domain not in ("", "ai.onnx") or node.name in claimed:
+        if node.domain not in DEFAULT_DOMAINS or node.name in claimed:
             continue
         reasons = []
         for pattern in PATTERNS:

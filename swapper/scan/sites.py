@@ -57,7 +57,7 @@ from typing import Literal
 
 import onnx
 
-from swapper.core.graph import GraphIndex, node_subgraphs
+from swapper.core.graph import GraphIndex, is_op, node_subgraphs
 from swapper.functions.costs import relative_cost
 from swapper.scan.match import Decline, Match
 from swapper.scan.patterns import match_graph
@@ -159,7 +159,7 @@ def role_of(ix: GraphIndex, y: str) -> str:
     if ix.is_graph_output(y):
         return "output"
     for user in ix.users(y):
-        if user.op_type in ("Mul", "Div") and user.domain in ("", "ai.onnx") and len(user.input) == 2:
+        if is_op(user, "Mul", "Div") and len(user.input) == 2:
             others = [t for t in user.input if t != y]
             # the feature map a squeeze-excite gate multiplies is gated, not a gate
             if others and ix.is_dynamic(others[0]) and not _strictly_broadcast(ix.shape(others[0]), ix.shape(y)):
