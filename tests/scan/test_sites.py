@@ -16,7 +16,7 @@ from swapper.functions.costs import known_functions, load_costs, relative_cost
 from swapper.scan.decomposed import PATTERNS
 from swapper.scan.sites import SCHEMA, find_sites, sites_to_json
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 SITE_FUNCTIONS = ["sigmoid", "tanh", "relu", "leaky_relu", "prelu", "elu", "selu", "celu", "softplus", "softsign",
                   "hard_sigmoid", "hard_swish", "gelu", "gelu_tanh", "mish", "silu", "swish", "quick_gelu"]
 

@@ -22,7 +22,7 @@ from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-DEMO = Path(__file__).resolve().parents[1] / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 MODELS = sorted(p.name for p in DEMO.glob("*.onnx"))
 PIXELS = np.load(DEMO / "val.npz")["pixels"][:64]
 

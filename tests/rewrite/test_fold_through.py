@@ -40,7 +40,7 @@ from swapper.scan.sites import find_sites
 
 OPSET = 17
 C = 4
-DEMO = Path(__file__).resolve().parents[1] / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 
 
 # ------------------------------------------------------------------ helpers

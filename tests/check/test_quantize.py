@@ -22,7 +22,7 @@ from swapper.check.int8 import (
 )
 from swapper.errors import BadDataError
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 
 
 def _cnn(opset: int = 17) -> onnx.ModelProto:
@@ -188,12 +188,12 @@ def test_package_never_imports_torch():
     # would pull it in (measured), so run a quantization in a fresh interpreter.
     code = (
         "import sys, numpy as np\n"
-        "sys.path.insert(0, %r)\n"
+        "sys.path[:0] = %r\n"
         "from test_quantize import _silu_block, _calib\n"
         "from swapper.check.int8 import quantize_int8\n"
         "quantize_int8(_silu_block(), _calib(n_batches=1))\n"
         "assert 'torch' not in sys.modules, 'torch was imported'\n"
-    ) % str(Path(__file__).resolve().parent)
+    ) % [str(Path(__file__).resolve().parent), str(Path(__file__).resolve().parents[1])]  # the file, its helpers
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert done.returncode == 0, done.stderr[-2000:]
 

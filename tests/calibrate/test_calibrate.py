@@ -34,7 +34,7 @@ from swapper.plan.plan import Plan, SiteSwap, make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "demo_models"
 DEMO_MODELS = ["meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_tanh_sigmoid", "meter_mlp_mish_gelutanh"]
 OPSET = 17

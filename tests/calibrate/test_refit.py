@@ -40,7 +40,7 @@ from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
 OPSET = 17
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 
 
 # ------------------------------------------------------------------ helpers

@@ -23,7 +23,7 @@ from typer.testing import CliRunner
 
 from swapper.cli.app import app
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
+DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 MODELS = ("meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_mish_gelutanh", "meter_mlp_tanh_sigmoid")
 MANIFEST = json.loads((DEMO / "manifest.json").read_text())
 
