@@ -10,9 +10,7 @@ from __future__ import annotations
 
 import functools
 import hashlib
-import json
 from collections import Counter
-from pathlib import Path
 
 import numpy as np
 import onnx
@@ -24,9 +22,9 @@ from onnx.reference import ReferenceEvaluator
 from scipy import special
 from sklearn.datasets import load_digits
 from sklearn.metrics import accuracy_score
+from testkit import DEMO, manifest
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
-MANIFEST = json.loads((DEMO / "manifest.json").read_text())
+MANIFEST = manifest()
 MODELS = sorted(MANIFEST["models"])
 
 

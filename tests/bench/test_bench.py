@@ -6,20 +6,17 @@ from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
-from typer.testing import CliRunner
+from testkit import CALIB, DEMO, VAL, run
 
 from swapper.bench.markdown import COST_COLUMNS, _cost
 from swapper.bench.memory import memory_ratios
 from swapper.bench.scale_model import INPUT_NAME, build_scale_model, scale_inputs
-from swapper.cli.app import app
-from swapper.data.demo import DEMO_DIR
 from swapper.scan.sites import find_sites
 
-SMALLEST = min(DEMO_DIR.glob("*.onnx"), key=lambda p: p.stat().st_size)
+SMALLEST = min(DEMO.glob("*.onnx"), key=lambda p: p.stat().st_size)
 
 # The fields the module docstring of swapper/bench/run.py documents for schema swapper.bench/1.
 TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
@@ -39,19 +36,19 @@ TARGET = {"target", "where", "measured", "met"}
 
 
 def _tiny_sets(folder: Path) -> tuple[Path, Path]:
-    with np.load(DEMO_DIR / "calib.npz") as c, np.load(DEMO_DIR / "val.npz") as v:
+    with np.load(CALIB) as c, np.load(VAL) as v:
         np.savez(folder / "calib.npz", pixels=c["pixels"][:24])
         np.savez(folder / "val.npz", pixels=v["pixels"][:40], labels=v["labels"][:40])
     return folder / "calib.npz", folder / "val.npz"
 
 
 @pytest.fixture(scope="module")
-def quick_run(tmp_path_factory):
+def quick_run(cli, tmp_path_factory):
     tmp = tmp_path_factory.mktemp("bench")
     calib, val = _tiny_sets(tmp)
     out = tmp / "out"
-    result = CliRunner().invoke(app, ["bench", str(SMALLEST), "--calib", str(calib), "--val", str(val),
-                                      "--quick", "--no-scale", "--out", str(out), "--repeats", "2"])
+    result = cli("bench", SMALLEST, "--calib", calib, "--val", val, "--quick", "--no-scale", "--out", out,
+                 "--repeats", 2)
     assert result.exit_code == 0, result.output
     folders = sorted(p for p in out.iterdir() if p.is_dir())
     assert len(folders) == 1
@@ -95,8 +92,7 @@ def test_ladder_original_matches_independent_accuracy(quick_run):
     data = json.loads((folder / "results.json").read_text())
     with np.load(val) as v:
         pixels, labels = v["pixels"], v["labels"]
-    sess = ort.InferenceSession(str(SMALLEST), providers=["CPUExecutionProvider"])
-    pred = sess.run(None, {sess.get_inputs()[0].name: pixels})[0].argmax(axis=1)
+    pred = run(SMALLEST, {"pixels": pixels})[0].argmax(axis=1)
     # source: scikit-learn accuracy_score (fraction of exact label matches) on onnxruntime's predictions
     assert data["models"][0]["families"][0]["ladder"]["original"] == pytest.approx(accuracy_score(labels, pred))
 
@@ -113,8 +109,7 @@ def test_scale_model_is_valid_onnx_with_16_silu_sites():
 def test_scale_model_runs_as_the_onnx_reference_evaluator_says():
     model = build_scale_model(blocks=4, size=8)
     x = scale_inputs(4, size=8, seed=3)
-    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    got = sess.run(None, {INPUT_NAME: x})[0]
+    got = run(model, {INPUT_NAME: x})[0]
     # source: onnx.reference.ReferenceEvaluator executes the ONNX operator spec (Conv, Sigmoid, Mul, GAP, Gemm)
     want = ReferenceEvaluator(model).run(None, {INPUT_NAME: x})[0]
     np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-4)
@@ -122,8 +117,7 @@ def test_scale_model_runs_as_the_onnx_reference_evaluator_says():
 
 def test_scale_model_spreads_predictions_over_classes():
     model = build_scale_model()
-    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    pred = sess.run(None, {INPUT_NAME: scale_inputs(128, seed=2)})[0].argmax(axis=1)
+    pred = run(model, {INPUT_NAME: scale_inputs(128, seed=2)})[0].argmax(axis=1)
     # common practice, no source: agreement only says something if the original's top-1 varies across samples
     assert len(np.unique(pred)) >= 4
     assert np.bincount(pred).max() <= 0.6 * len(pred)

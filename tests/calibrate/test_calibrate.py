@@ -2,7 +2,7 @@
 
 References: onnxruntime and ``onnx.reference.ReferenceEvaluator`` execute the
 ONNX operator spec (the original model's tensors, and the rewritten model's
-tensors cut out with ``expose``); the surrogate formulas are written out in
+tensors read as extra graph outputs); the surrogate formulas are written out in
 numpy from the ONNX operator spec; top-1 agreement is scored with
 ``sklearn.metrics.accuracy_score``; bias correction follows Nagel et al. 2019
 (Data-Free Quantization, section on bias correction: subtract the expected
@@ -11,7 +11,6 @@ output shift E[W·(x̃ − x)] from the layer's bias).
 from __future__ import annotations
 
 import copy
-from pathlib import Path
 
 import numpy as np
 import onnx
@@ -21,63 +20,38 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
+from testkit import CALIB, CHEAP, DEMO, OPSET, VAL, float_model, in_memory, init, run
 
 import swapper.calibrate.bias_correction as bias_correction
 import swapper.calibrate.loop as cal
 from swapper import api
 from swapper.core.graph import GraphIndex
 from swapper.core.model_io import load_model
-from swapper.core.session import expose, open_session
+from swapper.core.session import open_session
 from swapper.core.tensor_cache import TensorCache
 from swapper.data.dataset import Dataset, batches, replicate, subset
 from swapper.plan.plan import Plan, SiteSwap, make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-ROOT = Path(__file__).resolve().parents[2]
-DEMO = ROOT / "demo_models"
 DEMO_MODELS = ["meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_tanh_sigmoid", "meter_mlp_mish_gelutanh"]
-OPSET = 17
 
 
 # ------------------------------------------------------------------ helpers
-def _init(name: str, arr) -> onnx.TensorProto:
-    return numpy_helper.from_array(np.asarray(arr, dtype=np.float32), name)
-
-
-def _load(model: onnx.ModelProto, tmp_path: Path, name: str = "m.onnx") -> onnx.ModelProto:
-    """Through the project's loader (named nodes, inferred shapes), as the CLI would see it."""
-    path = tmp_path / name
-    onnx.save(model, path)
-    return load_model(path).model
-
-
 def _model(nodes, inputs, outputs, inits) -> onnx.ModelProto:
-    graph = helper.make_graph(
-        nodes, "g",
-        [helper.make_tensor_value_info(n, TensorProto.FLOAT, ["N", d]) for n, d in inputs],
-        [helper.make_tensor_value_info(n, TensorProto.FLOAT, ["N", d]) for n, d in outputs],
-        initializer=inits,
-    )
-    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-
-
-def _dataset(x: np.ndarray, name: str = "x") -> Dataset:
-    return Dataset(path=Path("<inline>"), arrays={name: x}, labels=None, targets=None, n=len(x),
-                   dtypes={name: np.dtype(np.float32)})
+    """A batch of vectors in, vectors out: (name, width) pairs become float inputs / outputs [N, width]."""
+    return float_model(nodes, [(n, ["N", d]) for n, d in inputs], [(n, ["N", d]) for n, d in outputs], inits,
+                       ir_version=None)
 
 
 def _demo(name: str):
     loaded = load_model(DEMO / f"{name}.onnx")
-    return loaded, api.load_data(DEMO / "calib.npz", loaded)
+    return loaded, api.load_data(CALIB, loaded)
 
 
 def _run(model: onnx.ModelProto, ds: Dataset, names: list[str]) -> dict[str, np.ndarray]:
-    """Tensors ``names`` of ``model`` over the whole data set, by onnxruntime (cut with expose)."""
-    session = open_session(expose(model, names))
-    outs = [o.name for o in session.get_outputs()]
-    parts = [dict(zip(outs, session.run(None, b.feeds))) for b in batches(ds, 128)]
-    return {n: np.concatenate([p[n] for p in parts]) for n in names}
+    """Tensors ``names`` of ``model`` over the whole data set, by onnxruntime."""
+    return dict(zip(names, run(model, ds.arrays, names)))
 
 
 @pytest.fixture
@@ -135,7 +109,7 @@ def spy(monkeypatch):
 # ------------------------------------------------------------- site levels
 def _chain():
     # x -> Tanh (s1) -> MatMul -> Sigmoid (s2) -> MatMul -> Tanh (s3) -> MatMul -> y
-    W = _init("W", np.eye(4))
+    W = init("W", np.eye(4))
     nodes = [
         helper.make_node("Tanh", ["x"], ["t1"], name="n1"),
         helper.make_node("MatMul", ["t1", "W"], ["m1"], name="n2"),
@@ -149,7 +123,7 @@ def _chain():
 
 def _parallel():
     # x -> MatMul A -> Tanh (s1) ; x -> MatMul B -> Sigmoid (s2) ; Add -> Tanh (s3) -> MatMul -> y
-    A, B = _init("A", np.eye(4)), _init("B", -np.eye(4))
+    A, B = init("A", np.eye(4)), init("B", -np.eye(4))
     nodes = [
         helper.make_node("MatMul", ["x", "A"], ["a"], name="n1"),
         helper.make_node("Tanh", ["a"], ["ta"], name="n2"),
@@ -164,7 +138,7 @@ def _parallel():
 
 def _residual():
     # x -> MatMul A -> Tanh (s1) = h ; h -> MatMul B -> Sigmoid (s2) = g ; Add(h, g) -> Tanh (s3) -> MatMul -> y
-    A, B = _init("A", np.eye(4)), _init("B", 0.5 * np.eye(4))
+    A, B = init("A", np.eye(4)), init("B", 0.5 * np.eye(4))
     nodes = [
         helper.make_node("MatMul", ["x", "A"], ["a"], name="n1"),
         helper.make_node("Tanh", ["a"], ["h"], name="n2"),
@@ -194,34 +168,28 @@ LEVEL_CASES = [
 
 
 @pytest.mark.parametrize("build, swapped, expected", LEVEL_CASES)
-def test_site_levels_hand_built(build, swapped, expected, tmp_path):
-    model = _load(build(), tmp_path)
+def test_site_levels_hand_built(build, swapped, expected, through_loader):
+    model = through_loader(build())
     sites = find_sites(model)
     assert [s.function for s in sites][:2] in (["tanh", "sigmoid"], ["tanh", "tanh"])
     assert cal.site_levels(GraphIndex.of(model), sites, swapped) == expected
 
 
 # ------------------------------------------------------- surrogate formula
-# source: ONNX operator spec — Relu: max(0, x); HardSigmoid: max(0, min(1, alpha·x + beta));
-# HardSwish: x·max(0, min(1, x/6 + 1/2)); Clip(min=-1, max=1) for hard tanh
-G = {
-    "relu": (lambda z, p: np.maximum(z, 0.0), {}),
-    "hard_sigmoid": (lambda z, p: np.maximum(0.0, np.minimum(1.0, p["alpha"] * z + p["beta"])),
-                     {"alpha": 0.2, "beta": 0.5}),
-    "hard_swish": (lambda z, p: z * np.maximum(0.0, np.minimum(1.0, z / 6.0 + 0.5)), {}),
-    "hard_tanh": (lambda z, p: np.clip(z, -1.0, 1.0), {}),
-}
+# the cheap functions from their ONNX operator spec definitions (testkit.CHEAP), with the target
+# parameters the plan gives them (HardSigmoid: the ONNX defaults alpha 0.2, beta 0.5)
+TARGETS = {"relu": {}, "hard_sigmoid": {"alpha": 0.2, "beta": 0.5}, "hard_swish": {}, "hard_tanh": {}}
 
 
 def _swap_for(target: str, axis, channels: int, rng) -> SiteSwap:
     params = {p: rng.normal(size=channels) for p in "abcd"}
-    return SiteSwap(site_id="s1", source="tanh", source_params={}, target=target, target_params=dict(G[target][1]),
+    return SiteSwap(site_id="s1", source="tanh", source_params={}, target=target, target_params=dict(TARGETS[target]),
                     channel_axis=axis, channels=channels, placement={p: "nodes" for p in "abcd"}, **params)
 
 
 @settings(max_examples=40, deadline=None)
 @given(
-    target=st.sampled_from(sorted(G)),
+    target=st.sampled_from(sorted(TARGETS)),
     ndim=st.integers(2, 4),
     where=st.sampled_from(["axis1", "last", "minus1", "none"]),
     dims=st.lists(st.integers(1, 5), min_size=4, max_size=4),
@@ -234,14 +202,14 @@ def test_surrogate_output_matches_per_channel_formula(target, ndim, where, dims,
     channels = shape[axis] if axis is not None else 1
     swap = _swap_for(target, axis, channels, rng)
     x = (3 * rng.normal(size=shape)).astype(np.float32)
-    g, p = G[target]
+    g, p = CHEAP[target], TARGETS[target]
     expected = np.empty(shape)
     for k in range(channels):  # one channel at a time, no broadcasting tricks
         idx = [slice(None)] * ndim
         if axis is not None:
             idx[axis] = k
         xs = x[tuple(idx)].astype(np.float64)
-        expected[tuple(idx)] = swap.a[k] * g(swap.b[k] * xs + swap.c[k], p) + swap.d[k]
+        expected[tuple(idx)] = swap.a[k] * g(swap.b[k] * xs + swap.c[k], **p) + swap.d[k]
     got = cal.surrogate_output(swap, x)
     assert got.dtype == np.float32 and got.shape == shape
     np.testing.assert_allclose(got, expected.astype(np.float32), rtol=1e-6, atol=1e-6)
@@ -283,10 +251,10 @@ def test_reported_mse_equals_independent_recomputation():
     for swap, sc in zip(plan.swaps, result.sites):
         x = ref[by_id[swap.site_id].input].astype(np.float64)
         y = ref[by_id[swap.site_id].output].astype(np.float64)
-        g, p = G[swap.target]
+        g, p = CHEAP[swap.target], TARGETS[swap.target]
 
         def mse(par):
-            return float(np.mean(np.mean((y - (par["a"] * g(par["b"] * x + par["c"], p) + par["d"])) ** 2, axis=0)))
+            return float(np.mean(np.mean((y - (par["a"] * g(par["b"] * x + par["c"], **p) + par["d"])) ** 2, axis=0)))
 
         assert sc.mse_start == pytest.approx(mse(start[swap.site_id]), rel=1e-3)
         assert sc.mse_fit == pytest.approx(mse(swap.params()), rel=1e-3)
@@ -298,7 +266,7 @@ def test_reported_mse_equals_independent_recomputation():
 # ------------------------------------------------- end-to-end on the demo CNN
 def test_cnn_silu_to_relu_calibrated_agrees_far_more_than_naive():
     loaded, calib = _demo("meter_cnn_silu")
-    val = api.load_data(DEMO / "val.npz", loaded, require_labels=True)
+    val = api.load_data(VAL, loaded, require_labels=True)
 
     def top1(model):
         session = open_session(model)
@@ -345,25 +313,25 @@ def test_sequential_level2_input_comes_from_partially_swapped_model(spy):
 def _gemm_tanh_gemm(beta: float = 1.0, shared: bool = False, seed: int = 0) -> onnx.ModelProto:
     """x -> Gemm(W1, b1) -> Tanh -> Gemm(W2, b2, beta) -> y; with ``shared``, b2 also biases z = Gemm(x, W3, b2)."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(4, 6))), _init("b1", rng.normal(size=6)),
-             _init("W2", rng.normal(size=(6, 3))), _init("b2", rng.normal(size=3))]
+    inits = [init("W1", rng.normal(size=(4, 6))), init("b1", rng.normal(size=6)),
+             init("W2", rng.normal(size=(6, 3))), init("b2", rng.normal(size=3))]
     nodes = [helper.make_node("Gemm", ["x", "W1", "b1"], ["h"], name="g1"),
              helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
              helper.make_node("Gemm", ["t", "W2", "b2"], ["y"], name="g2", beta=beta)]
     outputs = [("y", 3)]
     if shared:
-        inits.append(_init("W3", rng.normal(size=(4, 3))))
+        inits.append(init("W3", rng.normal(size=(4, 3))))
         nodes.append(helper.make_node("Gemm", ["x", "W3", "b2"], ["z"], name="g3"))
         outputs.append(("z", 3))
     return _model(nodes, [("x", 4)], outputs, inits)
 
 
 @pytest.mark.parametrize("beta", [1.0, 0.5])
-def test_bias_correction_restores_consumer_mean(beta, tmp_path):
-    model = _load(_gemm_tanh_gemm(beta=beta), tmp_path)
+def test_bias_correction_restores_consumer_mean(beta, through_loader):
+    model = through_loader(_gemm_tanh_gemm(beta=beta))
     sites = find_sites(model)
     x = (2 * np.random.default_rng(1).normal(size=(512, 4))).astype(np.float32)
-    ds = _dataset(x)
+    ds = in_memory({"x": x})
     means = {}
     for corrected in (False, True):
         # a small reservoir fits on a subsample, so the surrogate leaves a real mean shift behind
@@ -379,12 +347,12 @@ def test_bias_correction_restores_consumer_mean(beta, tmp_path):
     np.testing.assert_allclose(means[True], target, rtol=0, atol=1e-4)
 
 
-def test_bias_correction_leaves_shared_bias_alone(tmp_path):
-    model = _load(_gemm_tanh_gemm(shared=True), tmp_path)
+def test_bias_correction_leaves_shared_bias_alone(through_loader):
+    model = through_loader(_gemm_tanh_gemm(shared=True))
     pristine = model.SerializeToString()
     sites = find_sites(model)
     assert [s.function for s in sites] == ["tanh"]
-    ds = _dataset((2 * np.random.default_rng(2).normal(size=(256, 4))).astype(np.float32))
+    ds = in_memory({"x": (2 * np.random.default_rng(2).normal(size=(256, 4))).astype(np.float32)})
     plan = make_plan(model, sites, fold="off", to="relu")
     result = cal.calibrate(model, sites, plan, ds, reservoir=16)
     assert result.sites[0].bias_corrected == ["g2"]
@@ -450,9 +418,9 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
 # ------------------------------------------------------------ determinism
 def test_swap_twice_same_seed_is_byte_identical():
     path = DEMO / "meter_cnn_silu.onnx"
-    first = api.swap(path, calib=DEMO / "calib.npz", seed=3)
-    second = api.swap(path, calib=DEMO / "calib.npz", seed=3)
-    other = api.swap(path, calib=DEMO / "calib.npz", seed=4)
+    first = api.swap(path, calib=CALIB, seed=3)
+    second = api.swap(path, calib=CALIB, seed=3)
+    other = api.swap(path, calib=CALIB, seed=4)
     one = first.candidate.SerializeToString(deterministic=True)
     assert one == second.candidate.SerializeToString(deterministic=True)
     # the seed does reach the reservoir sampler (more pairs than the reservoir holds here),
@@ -463,8 +431,8 @@ def test_swap_twice_same_seed_is_byte_identical():
 # ------------------------------------------------------------- tricky graphs
 def _tanh_sigmoid_back_to_back(seed: int = 0) -> onnx.ModelProto:
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(4, 6))), _init("b1", rng.normal(size=6)),
-             _init("W2", rng.normal(size=(6, 3))), _init("b2", rng.normal(size=3))]
+    inits = [init("W1", rng.normal(size=(4, 6))), init("b1", rng.normal(size=6)),
+             init("W2", rng.normal(size=(6, 3))), init("b2", rng.normal(size=3))]
     nodes = [helper.make_node("Gemm", ["x", "W1", "b1"], ["h"], name="g1"),
              helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
              helper.make_node("Sigmoid", ["t"], ["s"], name="sig"),
@@ -473,11 +441,11 @@ def _tanh_sigmoid_back_to_back(seed: int = 0) -> onnx.ModelProto:
 
 
 @pytest.mark.parametrize("mode", cal.MODES)
-def test_site_reading_another_site_output(mode, spy, tmp_path):
-    model = _load(_tanh_sigmoid_back_to_back(), tmp_path)
+def test_site_reading_another_site_output(mode, spy, through_loader):
+    model = through_loader(_tanh_sigmoid_back_to_back())
     sites = find_sites(model)
     assert [(s.function, s.input, s.output) for s in sites] == [("tanh", "h", "t"), ("sigmoid", "t", "s")]
-    ds = _dataset((1.5 * np.random.default_rng(4).normal(size=(100, 4))).astype(np.float32))
+    ds = in_memory({"x": (1.5 * np.random.default_rng(4).normal(size=(100, 4))).astype(np.float32)})
     plan = make_plan(model, sites, fold="off")
     result = cal.calibrate(model, sites, plan, ds, mode=mode, batch_size=32)
     assert [r.level for r in result.sites] == ([1, 2] if mode == "sequential" else [1, 1])
@@ -503,16 +471,16 @@ def test_site_reading_another_site_output(mode, spy, tmp_path):
 
 
 @pytest.mark.parametrize("mode", cal.MODES)
-def test_site_reading_a_graph_input(mode, spy, tmp_path):
+def test_site_reading_a_graph_input(mode, spy, through_loader):
     rng = np.random.default_rng(5)
     raw = _model([helper.make_node("Tanh", ["x"], ["t"], name="tanh"),
                   helper.make_node("Gemm", ["t", "W", "b"], ["y"], name="g")],
-                 [("x", 4)], [("y", 2)], [_init("W", rng.normal(size=(4, 2))), _init("b", rng.normal(size=2))])
-    model = _load(raw, tmp_path)
+                 [("x", 4)], [("y", 2)], [init("W", rng.normal(size=(4, 2))), init("b", rng.normal(size=2))])
+    model = through_loader(raw)
     sites = find_sites(model)
     assert [(s.input, s.producer) for s in sites] == [("x", None)]
     x = (2 * rng.normal(size=(90, 4))).astype(np.float32)
-    ds = _dataset(x)
+    ds = in_memory({"x": x})
     plan = make_plan(model, sites, fold="off")
     result = cal.calibrate(model, sites, plan, ds, mode=mode, batch_size=32)
     np.testing.assert_array_equal(np.concatenate(spy["x"]["s1"]), x)  # fed straight from the data set
@@ -523,11 +491,11 @@ def test_site_reading_a_graph_input(mode, spy, tmp_path):
 
 
 # ------------------------------------------------ schedule, discards, cache budget
-def test_schedule_last_reads_hand_built(tmp_path):
+def test_schedule_last_reads_hand_built(through_loader):
     # _chain with all three swapped (levels 1, 2, 3), worked out by hand from the drawing: each level
     # runs the original from the previous site output (its teacher value) to this site's output, and
     # the swapped model from the previous swapped output to this site's input
-    model = _load(_chain(), tmp_path)
+    model = through_loader(_chain())
     sites = find_sites(model)
     by_id = {s.id: s for s in sites}
     index = GraphIndex.of(model)
@@ -634,24 +602,21 @@ def test_delta_sum_is_the_mean_difference(sizes, seed):
 def _conv_pool_conv(pool: str, seed: int = 0) -> onnx.ModelProto:
     """x[N,2,8,8] -> Conv(W1, b1) -> Tanh -> {Average,Max}Pool 2x2 -> Conv(W2, b2, pads 1) -> y."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(4, 2, 3, 3))), _init("b1", rng.normal(size=4)),
-             _init("W2", rng.normal(size=(3, 4, 3, 3))), _init("b2", rng.normal(size=3))]
+    inits = [init("W1", rng.normal(size=(4, 2, 3, 3))), init("b1", rng.normal(size=4)),
+             init("W2", rng.normal(size=(3, 4, 3, 3))), init("b2", rng.normal(size=3))]
     nodes = [helper.make_node("Conv", ["x", "W1", "b1"], ["h"], name="c1", kernel_shape=[3, 3], pads=[1, 1, 1, 1]),
              helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
              helper.make_node(pool, ["t"], ["p"], name="pool", kernel_shape=[2, 2], strides=[2, 2]),
              helper.make_node("Conv", ["p", "W2", "b2"], ["y"], name="c2", kernel_shape=[3, 3], pads=[1, 1, 1, 1])]
-    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 2, 8, 8])],
-                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 3, 4, 4])],
-                              initializer=inits)
-    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
+    return float_model(nodes, [("x", ["N", 2, 8, 8])], [("y", ["N", 3, 4, 4])], inits, ir_version=None)
 
 
 @pytest.mark.parametrize("pool", ["AveragePool", "MaxPool"])
-def test_bias_correction_through_pooling_restores_conv_mean(pool, tmp_path, monkeypatch):
-    model = _load(_conv_pool_conv(pool), tmp_path)
+def test_bias_correction_through_pooling_restores_conv_mean(pool, through_loader, monkeypatch):
+    model = through_loader(_conv_pool_conv(pool))
     sites = find_sites(model)
     assert [s.function for s in sites] == ["tanh"]
-    ds = _dataset((np.random.default_rng(3).normal(size=(200, 2, 8, 8))).astype(np.float32))
+    ds = in_memory({"x": np.random.default_rng(3).normal(size=(200, 2, 8, 8)).astype(np.float32)})
     biases = {}
     for path in ("mean", "per_batch"):
         with monkeypatch.context() as m:

@@ -9,17 +9,16 @@ from __future__ import annotations
 
 import math
 import tracemalloc
-from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.linear_model import Ridge
+from testkit import CALIB, DEMO, float_model, in_memory, init, run
 
 from swapper.calibrate.loop import calibrate
 from swapper.calibrate.refit import accumulate_level, refit_consumers
@@ -32,48 +31,32 @@ from swapper.calibrate.ridge import (
 )
 from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
-from swapper.data.dataset import Dataset, replicate
+from swapper.data.dataset import replicate
 from swapper.plan.layers import find_consumers
 from swapper.plan.plan import make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-OPSET = 17
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
-
 
 # ------------------------------------------------------------------ helpers
-def _init(name, value):
-    return numpy_helper.from_array(np.asarray(value, dtype=np.float32), name)
-
-
 def _model(nodes, inits, x_shape, outs=("Y",)):
-    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("X", TensorProto.FLOAT, list(x_shape))],
-                              [helper.make_tensor_value_info(o, TensorProto.FLOAT, None) for o in outs], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = 8
-    return onnx.shape_inference.infer_shapes(model)
+    return float_model(nodes, [("X", list(x_shape))], [(o, None) for o in outs], inits, infer=True)
 
 
 def _dataset(x):
-    x = np.asarray(x, dtype=np.float32)
-    return Dataset(path=Path("<memory>"), arrays={"X": x}, labels=None, targets=None, n=len(x),
-                   dtypes={"X": np.dtype(np.float32)})
+    return in_memory({"X": np.asarray(x, dtype=np.float32)})
 
 
 def _run(model, x):
-    so = ort.SessionOptions()
-    so.intra_op_num_threads = 1
-    sess = ort.InferenceSession(model.SerializeToString(), so, providers=["CPUExecutionProvider"])
-    return sess.run(["Y"], {"X": np.asarray(x, dtype=np.float32)})[0].astype(np.float64)
+    return run(model, {"X": np.asarray(x, dtype=np.float32)}, ["Y"])[0].astype(np.float64)
 
 
 def mlp(consumer="gemm", k=6, h=16, m=5, seed=0):
     """X[N, k] -> Gemm -> Tanh -> (Gemm | MatMul + Add) -> Y."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(h, k)) * 0.8), _init("B1", rng.normal(size=h) * 0.3),
-             _init("W2", rng.normal(size=(h, m)) * 0.6), _init("B2", rng.normal(size=m) * 0.2)]
+    inits = [init("W1", rng.normal(size=(h, k)) * 0.8), init("B1", rng.normal(size=h) * 0.3),
+             init("W2", rng.normal(size=(h, m)) * 0.6), init("B2", rng.normal(size=m) * 0.2)]
     nodes = [helper.make_node("Gemm", ["X", "W1", "B1"], ["h"], name="fc1", transB=1),
              helper.make_node("Tanh", ["h"], ["a"], name="act")]
     if consumer == "gemm":
@@ -87,8 +70,8 @@ def mlp(consumer="gemm", k=6, h=16, m=5, seed=0):
 def conv_chain(c_in=2, ch=6, seed=0, group2=1):
     """X[N, c_in, 7, 7] -> Conv -> SiLU (x·Sigmoid(x)) -> Conv(pads=1) -> Y."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(ch, c_in, 3, 3)) * 0.5), _init("B1", rng.normal(size=ch) * 0.3),
-             _init("W2", rng.normal(size=(4, ch // group2, 3, 3)) * 0.3), _init("B2", rng.normal(size=4) * 0.1)]
+    inits = [init("W1", rng.normal(size=(ch, c_in, 3, 3)) * 0.5), init("B1", rng.normal(size=ch) * 0.3),
+             init("W2", rng.normal(size=(4, ch // group2, 3, 3)) * 0.3), init("B2", rng.normal(size=4) * 0.1)]
     nodes = [helper.make_node("Conv", ["X", "W1", "B1"], ["h"], name="conv1", pads=[1, 1, 1, 1]),
              helper.make_node("Sigmoid", ["h"], ["s"], name="sig"),
              helper.make_node("Mul", ["h", "s"], ["a"], name="mul"),
@@ -197,17 +180,13 @@ def test_im2col_conv_matches_onnxruntime(data):
     else:
         attrs["auto_pad"] = auto_pad
     node = helper.make_node("Conv", ["X", "W", "B"], ["Y"], name="conv", **attrs)
-    graph = helper.make_graph([node], "g", [helper.make_tensor_value_info("X", TensorProto.FLOAT, None)],
-                              [helper.make_tensor_value_info("Y", TensorProto.FLOAT, None)],
-                              [numpy_helper.from_array(w, "W"), numpy_helper.from_array(b, "B")])
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = 8
+    model = float_model([node], [("X", None)], [("Y", None)], [init("W", w), init("B", b)])
     # source: ONNX operator spec, Conv (pads/strides/dilations/auto_pad), executed by onnxruntime;
     # onnxruntime refuses dilation with SAME_* padding, so there onnx.reference.ReferenceEvaluator runs it
     if auto_pad.startswith("SAME") and max(dilations) > 1:
         ref = ReferenceEvaluator(model).run(None, {"X": x})[0].astype(np.float64)
     else:
-        ref = _run(model, x)
+        ref = run(model, {"X": x})[0].astype(np.float64)
     begin, end, s, dl, out = conv_geometry(node, tuple(kernel), tuple(spatial))
     assert list(ref.shape[2:]) == out
     rows = im2col(x.astype(np.float64), kernel, s, dl, begin, end)
@@ -260,9 +239,9 @@ def test_refit_reduces_held_out_error_conv_silu_to_relu():
 def conv_two_level(seed=0, ch=6):
     """X -> Conv -> SiLU -> Conv -> SiLU -> Conv -> Y, all 3x3 with pads=1 (two levels of sites)."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(ch, 2, 3, 3)) * 0.5), _init("B1", rng.normal(size=ch) * 0.3),
-             _init("W2", rng.normal(size=(ch, ch, 3, 3)) * 0.3), _init("B2", rng.normal(size=ch) * 0.3),
-             _init("W3", rng.normal(size=(3, ch, 3, 3)) * 0.3), _init("B3", rng.normal(size=3) * 0.1)]
+    inits = [init("W1", rng.normal(size=(ch, 2, 3, 3)) * 0.5), init("B1", rng.normal(size=ch) * 0.3),
+             init("W2", rng.normal(size=(ch, ch, 3, 3)) * 0.3), init("B2", rng.normal(size=ch) * 0.3),
+             init("W3", rng.normal(size=(3, ch, 3, 3)) * 0.3), init("B3", rng.normal(size=3) * 0.1)]
     nodes = []
     for i, (x, w, b, y) in enumerate([("X", "W1", "B1", "h1"), ("a1", "W2", "B2", "h2")], start=1):
         nodes += [helper.make_node("Conv", [x, w, b], [y], name=f"conv{i}", pads=[1] * 4),
@@ -366,12 +345,12 @@ def test_gram_memory_does_not_grow_with_the_dataset():
 
 
 # ------------------------------------------------------------- end to end
-@pytest.mark.skipif(not (DEMO / "meter_cnn_silu.onnx").exists() or not (DEMO / "calib.npz").exists(),
+@pytest.mark.skipif(not (DEMO / "meter_cnn_silu.onnx").exists() or not CALIB.exists(),
                     reason="demo models not built")
 def test_demo_swap_with_refit_passes_checker():
     from swapper.api import swap
 
-    result = swap(DEMO / "meter_cnn_silu.onnx", calib=DEMO / "calib.npz", to="relu", refit_consumers=True)
+    result = swap(DEMO / "meter_cnn_silu.onnx", calib=CALIB, to="relu", refit_consumers=True)
     # source: ONNX checker
     onnx.checker.check_model(result.candidate, full_check=True)
     onnx.checker.check_model(result.calibration.model, full_check=True)

@@ -4,24 +4,23 @@ from __future__ import annotations
 import json
 import math
 from contextlib import contextmanager
-from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
-from onnx import TensorProto, helper, numpy_helper
+from onnx import TensorProto, helper
 from sklearn.metrics import (
     accuracy_score,
     mean_absolute_error,
     mean_squared_error,
     top_k_accuracy_score,
 )
+from testkit import in_memory, init, run
 
 from swapper.check import stats
 from swapper.check.compare import Comparison, compare, reference
 from swapper.check.gate import Budget, decide
-from swapper.data.dataset import Dataset, input_specs, load_dataset
+from swapper.data.dataset import input_specs, load_dataset
 from swapper.errors import BadDataError, BadModelError, UsageError
 
 FEATURES, CLASSES, N = 8, 12, 203  # N not a multiple of the batch size: the last batch is short
@@ -32,10 +31,9 @@ def _gemm_model(weight: np.ndarray, bias: np.ndarray, *, out_name: str = "logits
     """x (N, FEATURES) -> Gemm -> [optional tail op] -> out_name (N, classes)."""
     classes = weight.shape[1]
     nodes = [helper.make_node("Gemm", ["x", "W", "B"], ["z" if tail else out_name])]
-    inits = [numpy_helper.from_array(weight.astype(np.float32), "W"),
-             numpy_helper.from_array(bias.astype(np.float32), "B")]
+    inits = [init("W", weight), init("B", bias)]
     if tail == "div0":  # z / 0 -> ±inf (IEEE 754), a non-finite candidate
-        inits.append(numpy_helper.from_array(np.zeros(1, np.float32), "zero"))
+        inits.append(init("zero", np.zeros(1)))
         nodes.append(helper.make_node("Div", ["z", "zero"], [out_name]))
     elif tail == "double":  # same values, dtype float64: a changed signature
         nodes.append(helper.make_node("Cast", ["z"], [out_name], to=TensorProto.DOUBLE))
@@ -64,21 +62,11 @@ def setup():
     return {"w": w, "b": b, "x": x, "labels": labels, "original": original, "perturbed": perturbed}
 
 
-def _dataset(x, labels=None, targets=None) -> Dataset:
-    return Dataset(path=Path("<memory>"), arrays={"x": x}, labels=labels, targets=targets,
-                   n=len(x), dtypes={"x": np.dtype(np.float32)})
-
-
-def _run_direct(model: onnx.ModelProto, x: np.ndarray) -> np.ndarray:
-    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    return sess.run(None, {"x": x})[0]
-
-
 # ----------------------------------------------------------------------------- compare()
 
 
 def test_identical_models(setup):
-    ds = _dataset(setup["x"], setup["labels"])
+    ds = in_memory({"x": setup["x"]}, setup["labels"])
     comp = compare(setup["original"], setup["original"].SerializeToString(), ds, batch_size=32)
     assert comp.n == N and comp.task == "classification"
     assert comp.agreement == 1.0
@@ -93,11 +81,11 @@ def test_identical_models(setup):
 
 
 def test_different_models_match_direct_onnxruntime(setup):
-    ds = _dataset(setup["x"], setup["labels"])
+    ds = in_memory({"x": setup["x"]}, setup["labels"])
     comp = compare(setup["original"], setup["perturbed"], ds, batch_size=37)
     # reference: run both models in one go with onnxruntime and count by hand
-    ref_o = _run_direct(setup["original"], setup["x"])
-    ref_c = _run_direct(setup["perturbed"], setup["x"])
+    ref_o = run(setup["original"], {"x": setup["x"]})[0]
+    ref_c = run(setup["perturbed"], {"x": setup["x"]})[0]
     y = setup["labels"]
     co, cc = ref_o.argmax(1) == y, ref_c.argmax(1) == y
     assert comp.n01 == int(np.sum(~co & cc))
@@ -123,7 +111,7 @@ def test_different_models_match_direct_onnxruntime(setup):
 
 
 def test_reference_gives_the_same_comparison_as_the_model(setup):
-    ds = _dataset(setup["x"], setup["labels"])
+    ds = in_memory({"x": setup["x"]}, setup["labels"])
     direct = compare(setup["original"], setup["perturbed"], ds, batch_size=37)
     ref = reference(setup["original"], ds, batch_size=37)
     # the original's outputs are stored once and stand in for running it again: identical figures
@@ -132,11 +120,11 @@ def test_reference_gives_the_same_comparison_as_the_model(setup):
     with pytest.raises(UsageError, match="batch size"):
         compare(ref, setup["perturbed"], ds, batch_size=32)
     with pytest.raises(UsageError, match="dataset"):
-        compare(ref, setup["perturbed"], _dataset(setup["x"], setup["labels"]), batch_size=37)
+        compare(ref, setup["perturbed"], in_memory({"x": setup["x"]}, setup["labels"]), batch_size=37)
 
 
 def test_to_dict_is_json_safe_with_notes(setup):
-    ds = _dataset(setup["x"], setup["labels"])
+    ds = in_memory({"x": setup["x"]}, setup["labels"])
     comp = compare(setup["original"], setup["original"], ds)
     d = json.loads(json.dumps(comp.to_dict(), allow_nan=False))
     assert d["output_errors"]["logits"]["sqnr_db"] is None
@@ -145,9 +133,9 @@ def test_to_dict_is_json_safe_with_notes(setup):
 
 
 def test_agreement_only_without_labels(setup):
-    comp = compare(setup["original"], setup["perturbed"], _dataset(setup["x"]), batch_size=50)
-    ref_o = _run_direct(setup["original"], setup["x"])
-    ref_c = _run_direct(setup["perturbed"], setup["x"])
+    comp = compare(setup["original"], setup["perturbed"], in_memory({"x": setup["x"]}), batch_size=50)
+    ref_o = run(setup["original"], {"x": setup["x"]})[0]
+    ref_c = run(setup["perturbed"], {"x": setup["x"]})[0]
     assert comp.task == "agreement"
     assert comp.top1_original is None and comp.n01 is None and comp.interval is None
     assert comp.agreement == pytest.approx(np.mean(ref_o.argmax(1) == ref_c.argmax(1)))
@@ -156,9 +144,9 @@ def test_agreement_only_without_labels(setup):
 def test_regression_targets(setup):
     rng = np.random.default_rng(1)
     targets = rng.normal(size=(N, CLASSES)).astype(np.float32)
-    comp = compare(setup["original"], setup["perturbed"], _dataset(setup["x"], targets=targets), batch_size=64)
+    comp = compare(setup["original"], setup["perturbed"], in_memory({"x": setup["x"]}, targets=targets), batch_size=64)
     assert comp.task == "regression" and comp.agreement is None
-    ref_c = _run_direct(setup["perturbed"], setup["x"])
+    ref_c = run(setup["perturbed"], {"x": setup["x"]})[0]
     # source: scikit-learn mean_absolute_error / mean_squared_error
     assert comp.regression["candidate"]["mae"] == pytest.approx(mean_absolute_error(targets, ref_c), rel=1e-6)
     assert comp.regression["candidate"]["rmse"] == pytest.approx(
@@ -184,7 +172,7 @@ def test_loaded_dataset_and_progress(setup, tmp_path):
 
 def test_nonfinite_candidate(setup):
     bad = _gemm_model(setup["w"], setup["b"], tail="div0")
-    comp = compare(setup["original"], bad, _dataset(setup["x"], setup["labels"]))
+    comp = compare(setup["original"], bad, in_memory({"x": setup["x"]}, setup["labels"]))
     assert comp.has_nonfinite
     v = decide(comp, Budget(max_drop_pp=100.0))
     assert not v.approved and "NaN or Inf" in v.reason
@@ -199,7 +187,7 @@ def test_signature_change_detected(setup, variant):
         cand = _gemm_model(setup["w"], setup["b"], tail="double", out_type=TensorProto.DOUBLE)
     else:
         cand = _gemm_model(setup["w"][:, :-1], setup["b"][:-1])
-    comp = compare(setup["original"], cand, _dataset(setup["x"]))
+    comp = compare(setup["original"], cand, in_memory({"x": setup["x"]}))
     assert comp.signature_changed and comp.signature_reason
     v = decide(comp, Budget(max_drop_pp=100.0))
     assert not v.approved and "signature" in v.reason
@@ -207,13 +195,13 @@ def test_signature_change_detected(setup, variant):
 
 def test_bad_inputs(setup):
     with pytest.raises(BadModelError):
-        compare(b"not a model", setup["original"], _dataset(setup["x"]))
+        compare(b"not a model", setup["original"], in_memory({"x": setup["x"]}))
     with pytest.raises(BadDataError):  # labels outside the 12 classes
-        compare(setup["original"], setup["original"], _dataset(setup["x"], np.full(N, CLASSES)))
+        compare(setup["original"], setup["original"], in_memory({"x": setup["x"]}, np.full(N, CLASSES)))
     with pytest.raises(BadDataError):  # wrong feature width reaches onnxruntime
-        compare(setup["original"], setup["original"], _dataset(np.zeros((4, 3), np.float32)))
+        compare(setup["original"], setup["original"], in_memory({"x": np.zeros((4, 3), np.float32)}))
     with pytest.raises(UsageError):
-        compare(setup["original"], setup["original"], _dataset(setup["x"]), batch_size=0)
+        compare(setup["original"], setup["original"], in_memory({"x": setup["x"]}), batch_size=0)
 
 
 # ----------------------------------------------------------------------------- decide()

@@ -22,16 +22,14 @@ from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
-from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
 from sklearn.metrics import accuracy_score
+from testkit import CALIB, DEMO, VAL, one_line_error, run, sha256
 
 
 def predict(path: Path) -> np.ndarray:
     """Top-1 classes on val.npz, computed here with onnxruntime."""
-    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
-    return sess.run(None, {"pixels": np.load(VAL)["pixels"]})[0].argmax(axis=1)
+    return run(path, {"pixels": np.load(VAL)["pixels"]})[0].argmax(axis=1)
 
 
 def top1(path: Path) -> float:
@@ -63,12 +61,12 @@ def inputs_unchanged(ws):
         assert sha256(path) == ws["hashes"][name], name
 
 
-def _swap_cnn(ws, label: str, *options):
+def _swap_cnn(cli, ws, label: str, *options):
     """`swapper swap` of meter_cnn_silu with --calib/--val and ``options``; (result, output path, report folder)."""
     out = ws["root"] / f"{label}.onnx"
     rep = ws["root"] / f"rep-{label}"
-    result = invoke("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, *options,
-                    "--report", rep)
+    result = cli("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, *options,
+                 "--report", rep)
     return result, out, rep
 
 
@@ -77,18 +75,18 @@ CRUDE = ("--to", "relu", "--no-bias-correction", "--mode", "local")
 
 
 @pytest.fixture(scope="module")
-def approved(ws):
-    return _swap_cnn(ws, "approved")
+def approved(cli, ws):
+    return _swap_cnn(cli, ws, "approved")
 
 
 @pytest.fixture(scope="module")
-def rejected(ws):
-    return _swap_cnn(ws, "rejected", *CRUDE)
+def rejected(cli, ws):
+    return _swap_cnn(cli, ws, "rejected", *CRUDE)
 
 
 @pytest.fixture(scope="module")
-def forced(ws):
-    return _swap_cnn(ws, "forced", *CRUDE, "--force")
+def forced(cli, ws):
+    return _swap_cnn(cli, ws, "forced", *CRUDE, "--force")
 
 
 def test_approved_swap_exits_0_and_writes_the_model(ws, approved):
@@ -139,13 +137,13 @@ def test_force_writes_a_rejected_model_with_its_verdict(ws, forced, rejected):
     assert top1(out) == pytest.approx(c["top1_candidate"])
 
 
-def test_strict_zero_budget_rejects_what_the_point_rule_approves(ws, tmp_path):
+def test_strict_zero_budget_rejects_what_the_point_rule_approves(cli, ws, tmp_path):
     model = ws["models"]["meter_mlp_tanh_sigmoid"]
     common = ("--no-calibrate", "--to", "hard_tanh", "--val", VAL)
-    loose = invoke("swap", model, "-o", tmp_path / "a.onnx", *common, "--report", tmp_path / "ra")
+    loose = cli("swap", model, "-o", tmp_path / "a.onnx", *common, "--report", tmp_path / "ra")
     assert loose.exit_code == 0, loose.output
-    strict = invoke("swap", model, "-o", tmp_path / "b.onnx", *common, "--budget", 0, "--strict",
-                    "--report", tmp_path / "rb")
+    strict = cli("swap", model, "-o", tmp_path / "b.onnx", *common, "--budget", 0, "--strict",
+                 "--report", tmp_path / "rb")
     assert strict.exit_code == 1, strict.output
     assert not (tmp_path / "b.onnx").exists()
     payload = json.loads((tmp_path / "rb" / "report.json").read_text())
@@ -156,10 +154,10 @@ def test_strict_zero_budget_rejects_what_the_point_rule_approves(ws, tmp_path):
     assert payload["budget"] == {"max_drop_pp": 0.0, "strict": True, "min_agreement": None}
 
 
-def test_min_agreement_above_measured_agreement_rejects(ws, approved, tmp_path):
+def test_min_agreement_above_measured_agreement_rejects(cli, ws, approved, tmp_path):
     # README: --min-agreement also applies with labels. Measured agreement of the approved CNN: 99.78%.
-    result = invoke("check", ws["models"]["meter_cnn_silu"], approved[1], "--val", VAL, "--min-agreement", 1.0,
-                    "--report", tmp_path / "r")
+    result = cli("check", ws["models"]["meter_cnn_silu"], approved[1], "--val", VAL, "--min-agreement", 1.0,
+                 "--report", tmp_path / "r")
     payload = json.loads((tmp_path / "r" / "report.json").read_text())
     # agreement = share of samples with the same top-1 class, recomputed here (README "The gate")
     agreement = float(np.mean(predict(ws["models"]["meter_cnn_silu"]) == predict(approved[1])))
@@ -170,7 +168,7 @@ def test_min_agreement_above_measured_agreement_rejects(ws, approved, tmp_path):
 
 
 @pytest.mark.parametrize("case", ["nan", "shape", "missing", "short-labels"])
-def test_bad_validation_data_exits_2(ws, tmp_path, case):
+def test_bad_validation_data_exits_2(cli, ws, tmp_path, case):
     pixels = np.load(VAL)["pixels"]
     labels = np.load(VAL)["labels"]
     val = tmp_path / "val.npz"
@@ -189,22 +187,20 @@ def test_bad_validation_data_exits_2(ws, tmp_path, case):
         np.savez(val, pixels=pixels, labels=labels[:-3])
         expect = ("labels",)
     out = tmp_path / "o.onnx"
-    result = invoke("swap", ws["models"]["meter_mlp_tanh_sigmoid"], "-o", out, "--no-calibrate", "--val", val,
-                    "--report", tmp_path / "r")
-    assert result.exit_code == 2, result.output
-    text = result.stderr.strip()
-    assert "\n" not in text and all(e in text for e in expect), text
+    result = cli("swap", ws["models"]["meter_mlp_tanh_sigmoid"], "-o", out, "--no-calibrate", "--val", val,
+                 "--report", tmp_path / "r")
+    one_line_error(result, *expect)
     assert not out.exists()
 
 
 # ----------------------------------------------------------------------------- swapper check
 
 
-def test_check_exit_codes_follow_the_verdict(ws, approved, forced, tmp_path):
+def test_check_exit_codes_follow_the_verdict(cli, ws, approved, forced, tmp_path):
     original = ws["models"]["meter_cnn_silu"]
-    ok = invoke("check", original, approved[1], "--val", VAL, "--report", tmp_path / "ok")
+    ok = cli("check", original, approved[1], "--val", VAL, "--report", tmp_path / "ok")
     assert ok.exit_code == 0, ok.output
-    no = invoke("check", original, forced[1], "--val", VAL, "--report", tmp_path / "no")
+    no = cli("check", original, forced[1], "--val", VAL, "--report", tmp_path / "no")
     assert no.exit_code == 1, no.output
     for folder, approved_flag, cand in (("ok", True, approved[1]), ("no", False, forced[1])):
         payload = json.loads((tmp_path / folder / "report.json").read_text())
@@ -216,18 +212,18 @@ def test_check_exit_codes_follow_the_verdict(ws, approved, forced, tmp_path):
         assert payload["comparison"]["top1_candidate"] == pytest.approx(top1(cand), abs=1e-12)
 
 
-def test_check_a_model_against_itself_is_approved_with_no_change(ws, tmp_path):
+def test_check_a_model_against_itself_is_approved_with_no_change(cli, ws, tmp_path):
     model = ws["models"]["meter_mlp_tanh_sigmoid"]
-    result = invoke("check", model, model, "--val", VAL, "--budget", 0, "--report", tmp_path / "r")
+    result = cli("check", model, model, "--val", VAL, "--budget", 0, "--report", tmp_path / "r")
     assert result.exit_code == 0, result.output
     c = json.loads((tmp_path / "r" / "report.json").read_text())["comparison"]
     # identical models: no discordant pairs, full agreement, zero delta (definition of McNemar's table)
     assert (c["n01"], c["n10"], c["agreement"], c["delta_pp"]) == (0, 0, 1.0, 0.0)
 
 
-def test_check_int8_adds_the_int8_section(ws, approved, tmp_path):
-    result = invoke("check", ws["models"]["meter_cnn_silu"], approved[1], "--val", VAL, "--int8",
-                    "--calib", CALIB, "--report", tmp_path / "r")
+def test_check_int8_adds_the_int8_section(cli, ws, approved, tmp_path):
+    result = cli("check", ws["models"]["meter_cnn_silu"], approved[1], "--val", VAL, "--int8",
+                 "--calib", CALIB, "--report", tmp_path / "r")
     assert result.exit_code in (0, 1), result.output
     payload = json.loads((tmp_path / "r" / "report.json").read_text())
     q = payload["int8"]
@@ -243,11 +239,11 @@ def test_check_int8_adds_the_int8_section(ws, approved, tmp_path):
     assert "int8" in (tmp_path / "r" / "report.html").read_text()
 
 
-def test_check_bad_input_exits_2(ws, approved, tmp_path):
+def test_check_bad_input_exits_2(cli, ws, approved, tmp_path):
     original = ws["models"]["meter_cnn_silu"]
-    result = invoke("check", original, tmp_path / "nope.onnx", "--val", VAL, "--report", tmp_path / "r")
+    result = cli("check", original, tmp_path / "nope.onnx", "--val", VAL, "--report", tmp_path / "r")
     assert result.exit_code == 2 and "nope.onnx" in result.stderr
     flat = tmp_path / "flat.npz"
     np.savez(flat, pixels=np.load(VAL)["pixels"].reshape(450, 64), labels=np.load(VAL)["labels"])
-    result = invoke("check", original, approved[1], "--val", flat, "--report", tmp_path / "r2")
+    result = cli("check", original, approved[1], "--val", flat, "--report", tmp_path / "r2")
     assert result.exit_code == 2 and "flat.npz" in result.stderr

@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
-from small_models import conv_classifier  # tests/ helper
+from testkit import conv_classifier
 
 from swapper.check.latency import (
     LatencyStats,

@@ -12,7 +12,7 @@ import onnxruntime as ort
 import pytest
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
-from small_models import conv_classifier  # tests/ helper
+from testkit import CALIB, DEMO, VAL, conv_classifier, float_model, init, run
 
 from swapper.check.int8 import (
     LOSSY_WEIGHT,
@@ -21,8 +21,6 @@ from swapper.check.int8 import (
     weight_losses,
 )
 from swapper.errors import BadDataError
-
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 
 
 def _cnn(opset: int = 17) -> onnx.ModelProto:
@@ -42,11 +40,6 @@ def _cnn(opset: int = 17) -> onnx.ModelProto:
 def _calib(n_batches: int = 8, batch: int = 8, seed: int = 3) -> list[dict[str, np.ndarray]]:
     rng = np.random.default_rng(seed)
     return [{"x": rng.normal(size=(batch, 3, 16, 16)).astype(np.float32)} for _ in range(n_batches)]
-
-
-def _run(model: onnx.ModelProto, feeds: dict) -> np.ndarray:
-    session = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    return session.run(None, feeds)[0]
 
 
 @pytest.fixture(scope="module")
@@ -101,8 +94,8 @@ def test_activations_are_unsigned_int8(int8):
 
 
 def test_outputs_close_to_fp32(fp32, int8, test_x):
-    ref = _run(fp32, {"x": test_x})
-    got = _run(int8, {"x": test_x})
+    ref = run(fp32, {"x": test_x})[0]
+    got = run(int8, {"x": test_x})[0]
     rel = np.linalg.norm(got - ref) / np.linalg.norm(ref)
     # Measured 0.0167 relative L2 error on this model (onnxruntime 1.32, x86-64 with VNNI);
     # 8-bit steps through 3 quantized layers. Assert with 3x headroom (other CPUs take
@@ -117,7 +110,7 @@ def test_onnxruntime_int8_kernels_match_reference_qdq_semantics(int8, test_x):
     # same graph literally (dequantize, float op, quantize), per the ONNX operator spec.
     # The two may differ by requantization rounding only, so they must be much closer
     # to each other than int8 is to fp32.
-    got = _run(int8, {"x": test_x})
+    got = run(int8, {"x": test_x})[0]
     # This onnx's reference implements DequantizeLinear from opset 19 on; 13 -> 19 keeps
     # the same int8 semantics (ONNX operator spec changelog: 19 added float8 types).
     as_19 = onnx.version_converter.convert_version(int8, 19)
@@ -148,10 +141,7 @@ def test_cpu_provider_fuses_into_integer_kernels(int8, tmp_path):
 def _silu_block() -> onnx.ModelProto:
     """Conv -> x*Sigmoid(x) (SiLU as exporters decompose it) -> MaxPool -> Conv."""
     rng = np.random.default_rng(5)
-    inits = [
-        numpy_helper.from_array(rng.normal(0, 0.3, (8, 3, 3, 3)).astype(np.float32), "w1"),
-        numpy_helper.from_array(rng.normal(0, 0.3, (4, 8, 1, 1)).astype(np.float32), "w2"),
-    ]
+    inits = [init("w1", rng.normal(0, 0.3, (8, 3, 3, 3))), init("w2", rng.normal(0, 0.3, (4, 8, 1, 1)))]
     nodes = [
         helper.make_node("Conv", ["x", "w1"], ["c"], pads=[1, 1, 1, 1]),
         helper.make_node("Sigmoid", ["c"], ["s"]),
@@ -159,15 +149,7 @@ def _silu_block() -> onnx.ModelProto:
         helper.make_node("MaxPool", ["m"], ["p"], kernel_shape=[2, 2], strides=[2, 2]),
         helper.make_node("Conv", ["p", "w2"], ["y"]),
     ]
-    graph = helper.make_graph(
-        nodes, "silu",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 3, 16, 16])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 4, 8, 8])],
-        inits,
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
-    model.ir_version = 8
-    return model
+    return float_model(nodes, [("x", ["N", 3, 16, 16])], [("y", ["N", 4, 8, 8])], inits, name="silu")
 
 
 def test_silu_block_fuses_completely(tmp_path):
@@ -229,7 +211,7 @@ def test_calibration_from_generator_with_extra_keys(fp32, test_x):
             yield dict(b, labels=np.zeros(len(b["x"]), np.int64))
 
     quantized = quantize_int8(fp32, batches())
-    assert _run(quantized, {"x": test_x[:4]}).shape == (4, 5)
+    assert run(quantized, {"x": test_x[:4]})[0].shape == (4, 5)
 
 
 def test_bad_calibration_data(fp32):
@@ -240,25 +222,25 @@ def test_bad_calibration_data(fp32):
 
 
 @pytest.mark.skipif(
-    not (DEMO / "meter_cnn_silu.onnx").exists() or not (DEMO / "val.npz").exists(),
+    not (DEMO / "meter_cnn_silu.onnx").exists() or not VAL.exists(),
     reason="demo model or validation set not built",
 )
 def test_demo_cnn_int8_agrees_with_fp32(tmp_path):
     model = onnx.load(str(DEMO / "meter_cnn_silu.onnx"))
-    val = np.load(DEMO / "val.npz")
+    val = np.load(VAL)
     held_out = val["pixels"].astype(np.float32)
     assert "labels" in val.files
     name = next(i.name for i in model.graph.input if i.name not in {t.name for t in model.graph.initializer})
     # Calibrate on the separate calibration set when it is there, else on the first 128 val rows.
-    if (DEMO / "calib.npz").exists():
-        calib = np.load(DEMO / "calib.npz")["pixels"].astype(np.float32)
+    if CALIB.exists():
+        calib = np.load(CALIB)["pixels"].astype(np.float32)
     else:
         calib, held_out = held_out[:128], held_out[128:]
     batches = [{name: calib[i : i + 32]} for i in range(0, len(calib), 32)]
     quantized = quantize_int8(model, batches)
     onnx.checker.check_model(quantized)
-    ref = _run(model, {name: held_out})
-    got = _run(quantized, {name: held_out})
+    ref = run(model, {name: held_out})[0]
+    got = run(quantized, {name: held_out})[0]
     agreement = float(np.mean(ref.argmax(1) == got.argmax(1)))
     # Measured 0.998 (449/450) with calib.npz; common practice, no source: static int8
     # PTQ of a small CNN keeps top-1 decisions almost everywhere. Assert with headroom.
@@ -289,26 +271,13 @@ def _two_gemms(k: float, column: int = 5) -> onnx.ModelProto:
     w1[column] /= k
     b1[column] /= k
     w2[:, column] *= k
-    inits = [
-        numpy_helper.from_array(w1.astype(np.float32), "w1"),
-        numpy_helper.from_array(b1.astype(np.float32), "b1"),
-        numpy_helper.from_array(w2.astype(np.float32), "w2"),
-        numpy_helper.from_array(np.zeros(6, np.float32), "b2"),
-    ]
+    inits = [init("w1", w1), init("b1", b1), init("w2", w2), init("b2", np.zeros(6))]
     nodes = [
         helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
         helper.make_node("Relu", ["h"], ["r"], name="relu"),
         helper.make_node("Gemm", ["r", "w2", "b2"], ["y"], transB=1, name="fc2"),
     ]
-    graph = helper.make_graph(
-        nodes, "two_gemms",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 16])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 6])],
-        inits,
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
-    model.ir_version = 8
-    return model
+    return float_model(nodes, [("x", ["N", 16])], [("y", ["N", 6])], inits, name="two_gemms")
 
 
 def _gemm_calib(n_batches: int = 4, seed: int = 8) -> list[dict[str, np.ndarray]]:
@@ -357,14 +326,14 @@ def test_inflated_input_channel_is_flagged_and_costs_int8_accuracy(inflated, cap
     balanced = _two_gemms(1.0)
     x = np.random.default_rng(13).normal(size=(256, 16)).astype(np.float32)
     # Both are the same float function (Relu homogeneity, see _two_gemms) ...
-    ref = _run(balanced, {"x": x})
-    np.testing.assert_allclose(_run(model, {"x": x}), ref, rtol=1e-4, atol=1e-4)
+    ref = run(balanced, {"x": x})[0]
+    np.testing.assert_allclose(run(model, {"x": x})[0], ref, rtol=1e-4, atol=1e-4)
     # ... but the int8 copy of the inflated one is far worse: each row's int8 step is set
     # by column 5, leaving the other 7 inputs a handful of levels (the weight-loss cause).
     with caplog.at_level("WARNING", logger="swapper.check.int8"):
         q_balanced = quantize_int8(balanced, _gemm_calib())
     assert not [r for r in caplog.records if "lose" in r.getMessage()]
-    err = {name: np.linalg.norm(_run(q, {"x": x}) - ref) / np.linalg.norm(ref)
+    err = {name: np.linalg.norm(run(q, {"x": x})[0] - ref) / np.linalg.norm(ref)
            for name, q in (("balanced", q_balanced), ("inflated", quantized))}
     # Measured 0.070 vs 0.72 here (onnxruntime 1.32, x86-64 with VNNI); assert a 5x gap.
     assert err["inflated"] > 5 * err["balanced"]

@@ -8,24 +8,19 @@ themselves, not from swapper.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import shutil
 from pathlib import Path
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from onnx import numpy_helper
 from onnx.reference import ReferenceEvaluator
-from typer.testing import CliRunner
+from testkit import CALIB, DEMO, VAL, manifest, one_line_error, run, sha256
 
-from swapper.cli.app import app
-
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 MODELS = ("meter_cnn_silu", "meter_gelu_mlp", "meter_mlp_mish_gelutanh", "meter_mlp_tanh_sigmoid")
-MANIFEST = json.loads((DEMO / "manifest.json").read_text())
+MANIFEST = manifest()
 
 # Site inventory per model, in graph order: (function, role, channels).
 # source: demo_models/README.md "Models" table (architectures and the activations as written in the graph).
@@ -58,26 +53,6 @@ COSTLY_LEFT = {
     "meter_mlp_tanh_sigmoid": {"Tanh": 0, "Sigmoid": 0, "Erf": 0},
 }
 
-runner = CliRunner()
-
-
-def sha256(path: Path) -> str:
-    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
-
-
-def invoke(*args) -> object:
-    return runner.invoke(app, [str(a) for a in args])
-
-
-def one_line_error(result) -> str:
-    """The CLI contract for bad input: exit 2, one line on stderr (README 'Exit codes')."""
-    assert result.exit_code == 2, (result.exit_code, result.stdout, result.stderr)
-    text = result.stderr.strip()
-    assert text and "\n" not in text, repr(result.stderr)
-    assert "Traceback" not in result.output
-    return text
-
-
 @pytest.fixture(scope="module")
 def workspace(tmp_path_factory) -> Path:
     """Copies of the demo models (so a bug cannot touch the checkout); their hashes are checked at the end."""
@@ -92,7 +67,7 @@ def workspace(tmp_path_factory) -> Path:
 
 @pytest.fixture(scope="module")
 def val_x() -> np.ndarray:
-    return np.load(DEMO / "val.npz")["pixels"][:32]
+    return np.load(VAL)["pixels"][:32]
 
 
 # ----------------------------------------------------------------------------- scan
@@ -114,9 +89,9 @@ def _out_channels(model: onnx.ModelProto, tensor: str) -> int:
 
 
 @pytest.mark.parametrize("name", MODELS)
-def test_scan_json_lists_the_documented_sites(workspace, name):
+def test_scan_json_lists_the_documented_sites(cli, workspace, name):
     path = workspace / f"{name}.onnx"
-    result = invoke("scan", path, "--json")
+    result = cli("scan", path, "--json")
     assert result.exit_code == 0, result.output
     doc = json.loads(result.stdout)
     model = onnx.load(str(path))
@@ -184,8 +159,8 @@ def test_scan_json_lists_the_documented_sites(workspace, name):
 
 
 @pytest.mark.parametrize("name", MODELS)
-def test_scan_table_names_every_site(workspace, name):
-    result = invoke("scan", workspace / f"{name}.onnx")
+def test_scan_table_names_every_site(cli, workspace, name):
+    result = cli("scan", workspace / f"{name}.onnx")
     assert result.exit_code == 0, result.output
     lines = result.stdout.splitlines()
     for i, (function, role, channels) in enumerate(EXPECTED_SITES[name], start=1):
@@ -193,8 +168,8 @@ def test_scan_table_names_every_site(workspace, name):
         assert function in row and role in row and f" {channels} " in row, row
 
 
-def test_scan_missing_model_is_bad_input(tmp_path):
-    text = one_line_error(invoke("scan", tmp_path / "nothing.onnx"))
+def test_scan_missing_model_is_bad_input(cli, tmp_path):
+    text = one_line_error(cli("scan", tmp_path / "nothing.onnx"))
     assert "nothing.onnx" in text
 
 
@@ -203,14 +178,13 @@ def test_scan_missing_model_is_bad_input(tmp_path):
 
 @pytest.mark.parametrize("to", SURROGATES)
 @pytest.mark.parametrize("name", MODELS)
-def test_uncalibrated_swap_writes_a_valid_model(workspace, tmp_path, val_x, name, to):
+def test_uncalibrated_swap_writes_a_valid_model(cli, workspace, tmp_path, val_x, name, to):
     out = tmp_path / "out.onnx"
-    result = invoke("swap", workspace / f"{name}.onnx", "-o", out, "--no-calibrate", "--to", to)
+    result = cli("swap", workspace / f"{name}.onnx", "-o", out, "--no-calibrate", "--to", to)
     assert result.exit_code == 0, result.output
     model = onnx.load(str(out))
     onnx.checker.check_model(model, full_check=True)  # source: ONNX checker (spec conformance + shape inference)
-    sess = ort.InferenceSession(str(out), providers=["CPUExecutionProvider"])
-    y = sess.run(None, {"pixels": val_x})[0]
+    y = run(out, {"pixels": val_x})[0]
     assert y.shape == (len(val_x), 10) and y.dtype == np.float32  # README: output logits float32 [batch,10]
     assert np.isfinite(y).all()
     # source: ONNX operator spec as executed by onnx.reference.ReferenceEvaluator; the written graph must mean
@@ -226,17 +200,17 @@ def test_uncalibrated_swap_writes_a_valid_model(workspace, tmp_path, val_x, name
 # ----------------------------------------------------------------------------- determinism
 
 
-def test_calibrated_swap_is_byte_identical_for_the_same_seed(workspace, tmp_path):
+def test_calibrated_swap_is_byte_identical_for_the_same_seed(cli, workspace, tmp_path):
     # README "Calibration": same inputs and --seed give the same output bytes
     model = workspace / "meter_cnn_silu.onnx"
     a, b = tmp_path / "a.onnx", tmp_path / "b.onnx"
     for out in (a, b):
-        result = invoke("swap", model, "-o", out, "--calib", DEMO / "calib.npz", "--seed", 7)
+        result = cli("swap", model, "-o", out, "--calib", CALIB, "--seed", 7)
         assert result.exit_code == 0, result.output
     assert a.read_bytes() == b.read_bytes()
     # and calibration did change the parameters (the comparison above is not trivially true)
     c = tmp_path / "c.onnx"
-    assert invoke("swap", model, "-o", c, "--no-calibrate").exit_code == 0
+    assert cli("swap", model, "-o", c, "--no-calibrate").exit_code == 0
     assert c.read_bytes() != a.read_bytes()
 
 
@@ -246,7 +220,7 @@ def test_calibrated_swap_is_byte_identical_for_the_same_seed(workspace, tmp_path
 @pytest.fixture(scope="module")
 def bad_data(tmp_path_factory) -> dict:
     root = tmp_path_factory.mktemp("bad")
-    pixels = np.load(DEMO / "calib.npz")["pixels"]
+    pixels = np.load(CALIB)["pixels"]
     nan = pixels.copy()
     nan[37, 0, 3, 4] = np.nan
     np.savez(root / "nan.npz", pixels=nan)
@@ -255,32 +229,32 @@ def bad_data(tmp_path_factory) -> dict:
     return {"nan": root / "nan.npz", "short": root / "short.npz", "flat": root / "flat.npz"}
 
 
-def test_unknown_surrogate_lists_valid_names(workspace, tmp_path):
+def test_unknown_surrogate_lists_valid_names(cli, workspace, tmp_path):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_gelu_mlp.onnx", "-o", out, "--no-calibrate",
-                                 "--to", "relu7"))
+    text = one_line_error(cli("swap", workspace / "meter_gelu_mlp.onnx", "-o", out, "--no-calibrate",
+                              "--to", "relu7"))
     assert "relu7" in text
     for name in SURROGATES:
         assert name in text
     assert not out.exists()
 
 
-def test_unknown_site_id_names_the_valid_ids(workspace, tmp_path):
+def test_unknown_site_id_names_the_valid_ids(cli, workspace, tmp_path):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--no-calibrate",
-                                 "--sites", "s1,s9"))
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--no-calibrate",
+                              "--sites", "s1,s9"))
     assert "s9" in text
     assert all(f"s{i}" in text for i in range(1, 6))  # the CNN has sites s1..s5
     assert not out.exists()
 
 
-def test_missing_output_folder(workspace, tmp_path):
+def test_missing_output_folder(cli, workspace, tmp_path):
     out = tmp_path / "no" / "such" / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_gelu_mlp.onnx", "-o", out, "--no-calibrate"))
+    text = one_line_error(cli("swap", workspace / "meter_gelu_mlp.onnx", "-o", out, "--no-calibrate"))
     assert "does not exist" in text and str(tmp_path / "no" / "such") in text
 
 
-def test_output_equal_to_input_is_refused(tmp_path):
+def test_output_equal_to_input_is_refused(cli, tmp_path):
     model = tmp_path / "model.onnx"
     shutil.copyfile(DEMO / "meter_gelu_mlp.onnx", model)
     before = sha256(model)
@@ -289,51 +263,51 @@ def test_output_equal_to_input_is_refused(tmp_path):
     link.symlink_to(model)
     # the same file, spelled three ways
     for out in (model, tmp_path / "sub" / ".." / "model.onnx", link):
-        text = one_line_error(invoke("swap", model, "-o", out, "--no-calibrate"))
+        text = one_line_error(cli("swap", model, "-o", out, "--no-calibrate"))
         assert "overwrite the input" in text
         assert sha256(model) == before
 
 
-def test_nan_in_calibration_names_array_and_sample(workspace, tmp_path, bad_data):
+def test_nan_in_calibration_names_array_and_sample(cli, workspace, tmp_path, bad_data):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib", bad_data["nan"]))
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib", bad_data["nan"]))
     assert "'pixels'" in text and "NaN" in text and "37" in text and "nan.npz" in text
     assert not out.exists()
 
 
 @pytest.mark.parametrize("which", ["short", "flat"])
-def test_calibration_with_wrong_shape(workspace, tmp_path, bad_data, which):
+def test_calibration_with_wrong_shape(cli, workspace, tmp_path, bad_data, which):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib", bad_data[which]))
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib", bad_data[which]))
     assert "'pixels'" in text and "shape" in text and f"{which}.npz" in text
     assert not out.exists()
 
 
-def test_calib_and_no_calibrate_exclude_each_other(workspace, tmp_path):
+def test_calib_and_no_calibrate_exclude_each_other(cli, workspace, tmp_path):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib",
-                                 DEMO / "calib.npz", "--no-calibrate"))
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", out, "--calib",
+                              CALIB, "--no-calibrate"))
     assert "--calib" in text and "--no-calibrate" in text
     assert not out.exists()
 
 
-def test_neither_calib_nor_no_calibrate(workspace, tmp_path):
+def test_neither_calib_nor_no_calibrate(cli, workspace, tmp_path):
     out = tmp_path / "o.onnx"
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", out))
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", out))
     assert "--calib" in text and "--no-calibrate" in text
     assert not out.exists()
 
 
-def test_missing_calibration_file(workspace, tmp_path):
-    text = one_line_error(invoke("swap", workspace / "meter_cnn_silu.onnx", "-o", tmp_path / "o.onnx",
-                                 "--calib", tmp_path / "absent.npz"))
+def test_missing_calibration_file(cli, workspace, tmp_path):
+    text = one_line_error(cli("swap", workspace / "meter_cnn_silu.onnx", "-o", tmp_path / "o.onnx",
+                              "--calib", tmp_path / "absent.npz"))
     assert "absent.npz" in text
 
 
-def test_not_an_onnx_file(tmp_path):
+def test_not_an_onnx_file(cli, tmp_path):
     bogus = tmp_path / "bogus.onnx"
     bogus.write_bytes(b"this is not a protobuf")
-    text = one_line_error(invoke("swap", bogus, "-o", tmp_path / "o.onnx", "--no-calibrate"))
+    text = one_line_error(cli("swap", bogus, "-o", tmp_path / "o.onnx", "--no-calibrate"))
     assert "bogus.onnx" in text
     assert bogus.read_bytes() == b"this is not a protobuf"
 
@@ -341,9 +315,9 @@ def test_not_an_onnx_file(tmp_path):
 # ----------------------------------------------------------------------------- demo
 
 
-def test_demo_writes_one_report_per_model(tmp_path):
+def test_demo_writes_one_report_per_model(cli, tmp_path):
     out = tmp_path / "demo"
-    result = invoke("demo", "--out", out)
+    result = cli("demo", "--out", out)
     assert result.exit_code == 0, result.output
     reports = sorted(out.glob("*/report.json"))
     assert sorted(p.parent.name.rsplit("-", 1)[0] for p in reports) == sorted(MODELS)

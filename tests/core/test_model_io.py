@@ -8,43 +8,23 @@ import numpy as np
 import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
-from typer.testing import CliRunner
+from testkit import float_model, init, one_line_error
 
-from swapper.cli.app import app
 from swapper.core.model_io import MAX_OPSET, MIN_OPSET, load_model, save_model
 from swapper.errors import BadModelError, BadOutputError
-
-runner = CliRunner()
 
 
 def tiny_model(opset: int = 17, act: str = "Sigmoid") -> onnx.ModelProto:
     # y = act(x @ W): built with onnx.helper so the graph is visible here
-    w = numpy_helper.from_array(np.arange(12, dtype=np.float32).reshape(4, 3) / 10, "W")
     nodes = [helper.make_node("MatMul", ["x", "W"], ["h"], name="mm"), helper.make_node(act, ["h"], ["y"], name="act")]
-    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 4])],
-                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 3])], [w])
-    return helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
+    return float_model(nodes, [("x", ["N", 4])], [("y", ["N", 3])],
+                       [init("W", np.arange(12, dtype=np.float32).reshape(4, 3) / 10)], opset=opset, ir_version=None)
 
 
 def write(tmp_path, model, name="m.onnx"):
     path = tmp_path / name
     path.write_bytes(model.SerializeToString())
     return path
-
-
-def scan_error(path) -> tuple[int, str]:
-    result = runner.invoke(app, ["scan", str(path)])
-    return result.exit_code, result.output
-
-
-def assert_one_line_error(path, code, output, *fragments):
-    assert code == 2, output
-    lines = [line for line in output.strip().splitlines() if line.strip()]
-    assert len(lines) == 1, output  # one line, no traceback
-    assert "Traceback" not in output
-    assert str(path) in " ".join(output.split())
-    for fragment in fragments:
-        assert fragment in output
 
 
 def test_loads_a_valid_model_and_infers_shapes(tmp_path):
@@ -57,38 +37,37 @@ def test_loads_a_valid_model_and_infers_shapes(tmp_path):
     assert [d.dim_value for d in shapes["h"].type.tensor_type.shape.dim][1] == 3
 
 
-def test_missing_file(tmp_path):
+def test_missing_file(cli, tmp_path):
     path = tmp_path / "absent.onnx"
-    assert_one_line_error(path, *scan_error(path), "no such file")
+    one_line_error(cli("scan", path), str(path), "no such file")
 
 
-def test_directory(tmp_path):
-    assert_one_line_error(tmp_path, *scan_error(tmp_path), "is a directory")
+def test_directory(cli, tmp_path):
+    one_line_error(cli("scan", tmp_path), str(tmp_path), "is a directory")
 
 
-def test_empty_file(tmp_path):
+def test_empty_file(cli, tmp_path):
     path = tmp_path / "empty.onnx"
     path.write_bytes(b"")
-    assert_one_line_error(path, *scan_error(path), "empty")
+    one_line_error(cli("scan", path), str(path), "empty")
 
 
 @pytest.mark.parametrize("payload", [b"this is plain text, not a model\n" * 10, os.urandom(257)])
-def test_not_a_protobuf(tmp_path, payload):
+def test_not_a_protobuf(cli, tmp_path, payload):
     path = tmp_path / "junk.onnx"
     path.write_bytes(payload)
-    code, out = scan_error(path)
-    assert code == 2 and "Traceback" not in out and str(path) in " ".join(out.split())
+    result = cli("scan", path)
+    assert result.exit_code == 2 and "Traceback" not in result.output and str(path) in " ".join(result.output.split())
 
 
-def test_truncated_model(tmp_path):
+def test_truncated_model(cli, tmp_path):
     data = tiny_model().SerializeToString()
     path = tmp_path / "cut.onnx"
     path.write_bytes(data[: len(data) // 2])
-    code, out = scan_error(path)
-    assert code == 2 and len(out.strip().splitlines()) == 1 and "Traceback" not in out
+    one_line_error(cli("scan", path))
 
 
-def test_pickle_is_not_unpickled(tmp_path):
+def test_pickle_is_not_unpickled(cli, tmp_path):
     marker = tmp_path / "pwned"
 
     class Hostile:
@@ -97,34 +76,33 @@ def test_pickle_is_not_unpickled(tmp_path):
 
     path = tmp_path / "model.onnx"
     path.write_bytes(pickle.dumps(Hostile()))
-    code, out = scan_error(path)
-    assert code == 2 and not marker.exists()
+    assert cli("scan", path).exit_code == 2 and not marker.exists()
 
 
-def test_invalid_graph(tmp_path):
+def test_invalid_graph(cli, tmp_path):
     model = tiny_model()
     model.graph.node[1].input[0] = "undefined_tensor"  # ONNX IR spec: inputs must be defined before use
     path = write(tmp_path, model)
-    assert_one_line_error(path, *scan_error(path), "invalid graph")
+    one_line_error(cli("scan", path), str(path), "invalid graph")
 
 
 @pytest.mark.parametrize("opset", [MIN_OPSET - 4, MAX_OPSET + 3])
-def test_opset_outside_range(tmp_path, opset):
+def test_opset_outside_range(cli, tmp_path, opset):
     model = tiny_model()
     model.opset_import[0].version = opset
     path = write(tmp_path, model)
-    assert_one_line_error(path, *scan_error(path), f"opset {opset}", f"{MIN_OPSET}..{MAX_OPSET}")
+    one_line_error(cli("scan", path), str(path), f"opset {opset}", f"{MIN_OPSET}..{MAX_OPSET}")
 
 
 def _with_external(tmp_path, location: str) -> onnx.ModelProto:
     model = tiny_model()
-    init = model.graph.initializer[0]
-    raw = numpy_helper.to_array(init).tobytes()
-    init.ClearField("float_data")
-    init.ClearField("raw_data")
-    init.data_location = TensorProto.EXTERNAL
+    weight = model.graph.initializer[0]
+    raw = numpy_helper.to_array(weight).tobytes()
+    weight.ClearField("float_data")
+    weight.ClearField("raw_data")
+    weight.data_location = TensorProto.EXTERNAL
     for key, value in (("location", location), ("offset", "0"), ("length", str(len(raw)))):
-        init.external_data.add(key=key, value=value)
+        weight.external_data.add(key=key, value=value)
     return model, raw
 
 
@@ -139,24 +117,24 @@ def test_external_data_beside_the_model_loads(tmp_path):
 
 
 @pytest.mark.parametrize("location", ["../outside.bin", "/etc/passwd", "sub/../../x.bin"])
-def test_external_data_path_traversal_refused(tmp_path, location):
+def test_external_data_path_traversal_refused(cli, tmp_path, location):
     inner = tmp_path / "models"
     inner.mkdir()
     model, raw = _with_external(inner, location)
     (tmp_path / "outside.bin").write_bytes(raw)
     path = write(inner, model)
-    assert_one_line_error(path, *scan_error(path), "outside the model's folder")
+    one_line_error(cli("scan", path), str(path), "outside the model's folder")
 
 
-def test_external_data_missing(tmp_path):
+def test_external_data_missing(cli, tmp_path):
     model, _ = _with_external(tmp_path, "gone.bin")
     path = write(tmp_path, model)
-    assert_one_line_error(path, *scan_error(path), "missing")
+    one_line_error(cli("scan", path), str(path), "missing")
 
 
-def test_model_without_sites_is_not_an_error(tmp_path):
+def test_model_without_sites_is_not_an_error(cli, tmp_path):
     path = write(tmp_path, tiny_model(act="Identity"))
-    result = runner.invoke(app, ["scan", str(path)])
+    result = cli("scan", path)
     assert result.exit_code == 0
     assert "no activation sites found" in result.output
 

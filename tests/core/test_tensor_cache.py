@@ -11,35 +11,26 @@ import onnx
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper
 from onnx.reference import ReferenceEvaluator
+from testkit import float_model, held_arrays, init
 
 from swapper.core.session import expose, open_session
 from swapper.core.tensor_cache import TensorCache
-
-OPSET = 17
 
 
 def _small_model() -> onnx.ModelProto:
     """x[N,4] -> MatMul W -> Add b -> Tanh -> Mul x2 -> y, with every intermediate named."""
     rng = np.random.default_rng(3)
-    W = numpy_helper.from_array(rng.normal(size=(4, 5)).astype(np.float32), "W")
-    b = numpy_helper.from_array(rng.normal(size=5).astype(np.float32), "b")
-    two = numpy_helper.from_array(np.array(2.0, dtype=np.float32), "two")
     nodes = [
         helper.make_node("MatMul", ["x", "W"], ["mm"], name="mm"),
         helper.make_node("Add", ["mm", "b"], ["pre"], name="add"),
         helper.make_node("Tanh", ["pre"], ["act"], name="tanh"),
         helper.make_node("Mul", ["act", "two"], ["y"], name="mul"),
     ]
-    graph = helper.make_graph(
-        nodes, "small",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 4])],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 5])],
-        initializer=[W, b, two],
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    return onnx.shape_inference.infer_shapes(model)
+    inits = [init("W", rng.normal(size=(4, 5))), init("b", rng.normal(size=5)), init("two", 2.0)]
+    return float_model(nodes, [("x", ["N", 4])], [("y", ["N", 5])], inits, ir_version=None, infer=True,
+                       name="small")
 
 
 def test_expose_matches_reference_intermediates():
@@ -119,26 +110,6 @@ def test_cache_keeps_tensors_apart_and_rejects_changes():
     assert not root.exists()  # the context manager removes the spill folder
 
 
-def _held_arrays(obj, seen=None) -> list:
-    """Every numpy array reachable from ``obj`` through dicts, lists, tuples and instance __dict__s."""
-    seen = set() if seen is None else seen
-    if id(obj) in seen:
-        return []
-    seen.add(id(obj))
-    if isinstance(obj, np.ndarray):
-        return [obj]
-    found = []
-    if isinstance(obj, dict):
-        for k, v in obj.items():
-            found += _held_arrays(k, seen) + _held_arrays(v, seen)
-    elif isinstance(obj, (list, tuple, set)):
-        for v in obj:
-            found += _held_arrays(v, seen)
-    elif hasattr(obj, "__dict__") and not isinstance(obj, type) and type(obj).__module__.startswith("swapper"):
-        found += _held_arrays(vars(obj), seen)
-    return found
-
-
 def test_cache_footprint_does_not_grow_with_batches():
     batch = np.random.default_rng(2).normal(size=(64, 16, 8, 8)).astype(np.float32)  # 256 KiB a batch
     small = batch[:, :4]  # 64 KiB a batch
@@ -150,7 +121,7 @@ def test_cache_footprint_does_not_grow_with_batches():
                 cache.append("y", small)
             assert cache.rows("x") == 64 * n_batches
             assert cache.nbytes() == n_batches * (batch.nbytes + small.nbytes)
-            held = sum(a.nbytes for a in _held_arrays(cache))
+            held = sum(a.nbytes for a in held_arrays(cache))
             assert held == cache.memory_bytes() <= budget
             state = {"attributes": sorted(vars(cache)), "files": len(cache._files),
                      "meta": {k: (v[0], v[1]) for k, v in cache._meta.items()}}  # without the row counters

@@ -10,46 +10,28 @@ import itertools
 
 import numpy as np
 import pytest
-from cheap_functions import dhard_swish, drelu, hard_swish, relu  # noqa: E402  (tests/ helper)
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
 from sklearn.linear_model import LinearRegression, Ridge
+from testkit import (
+    dhard_swish,
+    dhard_tanh,
+    drelu,
+    hard_sigmoid,
+    hard_swish,
+    hard_tanh,
+    relu,
+    sigmoid,
+    silu,
+    wmse,
+)
 
 from swapper.calibrate.ridge import GramAccumulator
 from swapper.errors import BadDataError
 from swapper.fit.channel import fit_channel, outer_fit, starting_params
 from swapper.fit.observe import ChannelObserver
 from swapper.fit.site import fit_channels
-
-
-# -- cheap functions, written from their definitions --------------------------
-def tanh_clip(z):
-    # hard tanh: clip(z, -1, 1), what Clip(min=-1, max=1) computes (ONNX operator spec, Clip)
-    return np.clip(z, -1.0, 1.0)
-
-
-def dtanh_clip(z):
-    return ((z > -1) & (z < 1)).astype(np.float64)
-
-
-def hard_sigmoid(z):
-    # source: ONNX operator spec, HardSigmoid (alpha=0.2, beta=0.5 defaults): max(0, min(1, 0.2x+0.5))
-    return np.clip(0.2 * z + 0.5, 0.0, 1.0)
-
-
-def sigmoid(z):
-    return 1.0 / (1.0 + np.exp(-z))
-
-
-def silu(z):
-    # source: Elfwing et al. 2018 / ONNX function spec of Swish with alpha=1: x*sigmoid(x)
-    return z * sigmoid(z)
-
-
-def wmse(y, yhat, w=None):
-    w = np.ones_like(y) if w is None else w
-    return float(np.sum(w * (y - yhat) ** 2) / np.sum(w))
 
 
 def surrogate(g, p, x):
@@ -104,7 +86,7 @@ TOL = 0.02
     "g,dg,true",
     [
         (hard_swish, dhard_swish, (1.5, 0.7, 0.4, -0.2)),
-        (tanh_clip, dtanh_clip, (2.0, 0.6, -0.3, 0.5)),
+        (hard_tanh, dhard_tanh, (2.0, 0.6, -0.3, 0.5)),
     ],
 )
 def test_fit_channel_recovers_known_parameters(g, dg, true, with_dg):
@@ -113,7 +95,7 @@ def test_fit_channel_recovers_known_parameters(g, dg, true, with_dg):
     y = surrogate(g, true, x) + rng.normal(scale=0.01, size=x.size)
     r = fit_channel(x, y, g, dg=dg if with_dg else None)
     got = np.array([r.a, r.b, r.c, r.d])
-    if g is tanh_clip and got[1] < 0:  # clip is odd: (a, b, c) and (-a, -b, -c) are the same curve
+    if g is hard_tanh and got[1] < 0:  # clip is odd: (a, b, c) and (-a, -b, -c) are the same curve
         got[:3] *= -1
     np.testing.assert_allclose(got, true, atol=TOL, rtol=TOL)
     assert r.mse < 2 * 0.01**2  # down to the noise floor (expected mse = sigma^2)
@@ -158,7 +140,7 @@ def test_fit_channels_per_channel_recovery_from_observer():
 
 
 # -- never worse than the start ----------------------------------------------
-G_CHOICES = [(relu, drelu), (hard_swish, dhard_swish), (tanh_clip, dtanh_clip), (np.tanh, None)]
+G_CHOICES = [(relu, drelu), (hard_swish, dhard_swish), (hard_tanh, dhard_tanh), (np.tanh, None)]
 
 
 @settings(max_examples=40, deadline=None)
@@ -242,9 +224,9 @@ def test_scales_are_learned_not_clipped():
 def test_holds_keep_neutral_values_exactly(free):
     rng = np.random.default_rng(8)
     x = rng.normal(size=800)
-    y = 1.3 * tanh_clip(0.7 * x + 0.2) - 0.4 + 0.01 * rng.normal(size=800)
+    y = 1.3 * hard_tanh(0.7 * x + 0.2) - 0.4 + 0.01 * rng.normal(size=800)
     neutral = (1.0, 1.0, 0.0, 0.0)  # source: swapper/plan/plan.py NEUTRAL ("held" placement)
-    r = fit_channel(x, y, tanh_clip, init=neutral, free=free, dg=dtanh_clip)
+    r = fit_channel(x, y, hard_tanh, init=neutral, free=free, dg=dhard_tanh)
     for i, p in enumerate("abcd"):
         if p not in free:
             assert getattr(r, p) == neutral[i]

@@ -12,13 +12,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from cheap_functions import dhard_swish, drelu, hard_swish, relu  # noqa: E402  (tests/ helper)
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper
-from onnx.reference import ReferenceEvaluator
 from scipy.optimize import approx_fprime, least_squares
 from sklearn.linear_model import LinearRegression
+from testkit import dhard_swish, drelu, hard_swish, reference_op, relu
 
 import swapper.fit.observe as observe_mod
 from swapper.fit.channel import fit_channel
@@ -28,24 +26,15 @@ from swapper.fit.site import fit_channels
 from swapper.fit.varpro_rows import _Problem, outer_solve_rows
 
 
-def onnx_op(op: str, u: np.ndarray) -> np.ndarray:
-    """``op`` applied to ``u`` by onnx's reference evaluator (the ONNX operator spec in numpy)."""
-    node = helper.make_node(op, ["u"], ["z"])
-    graph = helper.make_graph([node], "g", [helper.make_tensor_value_info("u", TensorProto.DOUBLE, None)],
-                              [helper.make_tensor_value_info("z", TensorProto.DOUBLE, None)])
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
-    return ReferenceEvaluator(model).run(None, {"u": np.asarray(u, dtype=np.float64)})[0]
-
-
 def neutral(C):
     return {"a": np.ones(C), "b": np.ones(C), "c": np.zeros(C), "d": np.zeros(C)}
 
 
 def test_cheap_functions_match_onnx_spec():
     u = np.linspace(-8, 8, 161)
-    np.testing.assert_allclose(relu(u), onnx_op("Relu", u), rtol=0, atol=0)
+    np.testing.assert_allclose(relu(u), reference_op("Relu")(u), rtol=0, atol=0)
     # the reference evaluator holds alpha = 1/6 as a float32 constant: agreement to ~1e-7
-    np.testing.assert_allclose(hard_swish(u), onnx_op("HardSwish", u), rtol=1e-6, atol=1e-7)
+    np.testing.assert_allclose(hard_swish(u), reference_op("HardSwish")(u), rtol=1e-6, atol=1e-7)
 
 
 def test_outer_solve_rows_matches_sklearn_and_lstsq():
@@ -105,7 +94,7 @@ def test_fit_rows_recovers_parameters_of_onnx_generated_targets(op, g, dg, true,
     rng = np.random.default_rng(2)
     a, b, c, d = (np.array(t)[:, None] for t in true)
     X = rng.normal(scale=2.5, size=(3, 4096))
-    Y = a * onnx_op(op, b * X + c) + d + 0.01 * rng.normal(size=X.shape)
+    Y = a * reference_op(op)(b * X + c) + d + 0.01 * rng.normal(size=X.shape)
     free = "abcd" if op == "HardSwish" else "acd"  # relu: b is not identified (positive homogeneity)
     r = fit_rows(X, Y, g, init=neutral(3), free=free, dg=dg if with_dg else None)
     got = np.stack([r.a, r.b, r.c, r.d], axis=1)

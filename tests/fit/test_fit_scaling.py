@@ -11,9 +11,8 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper
-from onnx.reference import ReferenceEvaluator
 from sklearn.linear_model import LinearRegression
+from testkit import dhard_swish, drelu, hard_sigmoid, hard_swish, leaky_relu, reference_op, relu, wmse
 
 from swapper.fit.channel import fit_channel
 from swapper.fit.param_scale import (
@@ -27,54 +26,13 @@ from swapper.fit.rows import fit_rows
 from swapper.fit.varpro import BETA_MAX, BETA_MIN, in_band
 
 
-def onnx_op(op: str, **attrs):
-    """g(z) computed by onnx.reference for a one-node ONNX graph (float64 in, float32 inside)."""
-    node = helper.make_node(op, ["z"], ["y"], **attrs)
-    graph = helper.make_graph([node], "g", [helper.make_tensor_value_info("z", TensorProto.FLOAT, None)],
-                              [helper.make_tensor_value_info("y", TensorProto.FLOAT, None)])
-    sess = ReferenceEvaluator(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]))
-    return lambda z: sess.run(None, {"z": np.asarray(z, np.float32)})[0].astype(np.float64)
-
-
-def hard_swish(z):
-    # source: ONNX operator spec, HardSwish: x * max(0, min(1, x/6 + 1/2))
-    return z * np.clip(z / 6.0 + 0.5, 0.0, 1.0)
-
-
-def dhard_swish(z):
-    return np.where(z < -3, 0.0, np.where(z > 3, 1.0, (2 * z + 3) / 6.0))
-
-
-def relu(z):
-    # source: ONNX operator spec, Relu: max(0, x)
-    return np.maximum(z, 0.0)
-
-
-def drelu(z):
-    return (z > 0).astype(np.float64)
-
-
-def leaky(z):
-    # source: ONNX operator spec, LeakyRelu (alpha = 0.01): x if x >= 0 else alpha*x
-    return np.where(z >= 0, z, 0.01 * z)
-
-
-def hard_sigmoid(z):
-    # source: ONNX operator spec, HardSigmoid (alpha=0.2, beta=0.5 defaults): max(0, min(1, 0.2x+0.5))
-    return np.clip(0.2 * z + 0.5, 0.0, 1.0)
-
-
-def wmse(y, yhat):
-    return float(np.mean((y - yhat) ** 2))
-
-
 # -- the cheap functions' pieces, against the ONNX operator spec ---------------
 def test_linear_pieces_match_the_onnx_spec():
     # source: ONNX operator spec via onnx.reference: HardSwish is 0 for x <= -3 and x for x >= 3;
     # HardSigmoid (0.2, 0.5) is 0.2x + 0.5 on [-2.5, 2.5]; Relu is x on [0, inf)
     pieces = linear_pieces(hard_swish)
     assert [(p.lo, p.hi, p.slope, p.intercept) for p in pieces] == [(-np.inf, -3.0, 0.0, 0.0), (3.0, np.inf, 1.0, 0.0)]
-    hs, hsig = onnx_op("HardSwish"), onnx_op("HardSigmoid", alpha=0.2, beta=0.5)
+    hs, hsig = reference_op("HardSwish", np.float32), reference_op("HardSigmoid", np.float32, alpha=0.2, beta=0.5)
     for p in pieces:  # the ONNX op (float32) agrees with each found line
         z = np.linspace(max(p.lo, -60.0), min(p.hi, 60.0), 50)
         np.testing.assert_allclose(hs(z), p.slope * z + p.intercept, rtol=1e-6, atol=1e-6)
@@ -83,7 +41,7 @@ def test_linear_pieces_match_the_onnx_spec():
     z = np.linspace(-2.5, 2.5, 11)
     np.testing.assert_allclose(hsig(z), mid[0].slope * z + mid[0].intercept, rtol=1e-6, atol=1e-7)
     # positively homogeneous (g(kz) = k g(z), k > 0): Relu and LeakyRelu yes, HardSwish no
-    assert is_homogeneous(relu) and is_homogeneous(leaky) and not is_homogeneous(hard_swish)
+    assert is_homogeneous(relu) and is_homogeneous(leaky_relu) and not is_homogeneous(hard_swish)
     assert linear_pieces(np.tanh) == []  # no affine stretch of at least 1/4 unit (tanh'' != 0 off 0)
 
 
@@ -104,7 +62,7 @@ def test_affine_params_are_exact_on_the_range_and_balanced(s, t, lo, width, gi):
     assert z.min() >= piece.lo + MARGIN * R * (1 - 1e-9) - 1e-9 and z.max() <= piece.hi
     # exact: the surrogate is the line s·x + t on the range (float64 formula), and the ONNX op agrees
     np.testing.assert_allclose(a * g(z) + d, s * x + t, rtol=1e-9, atol=1e-9 * (1 + abs(t) + abs(s) * abs(x).max()))
-    ref = onnx_op(name, **attrs)
+    ref = reference_op(name, np.float32, **attrs)  # float32, as the op runs in a model
     zz = z.astype(np.float32).astype(np.float64)  # what the float32 op sees
     np.testing.assert_allclose(ref(zz), g(zz), rtol=1e-6, atol=1e-6)
     # scale-free form: a = 1/|m| (consumer weights keep their size), |b| = |s| (the slope goes to the
@@ -153,7 +111,7 @@ def test_fit_on_one_linear_piece_is_well_scaled(g, dg, lo):
 @given(a=st.floats(0.01, 1e3), b=st.floats(1e-3, 1e3), c=st.floats(-10, 10), d=st.floats(-5, 5),
        sign=st.sampled_from([1.0, -1.0]), leaky_g=st.booleans())
 def test_homogeneous_rescaling_is_exact_and_balances(a, b, c, d, sign, leaky_g):
-    g = leaky if leaky_g else relu
+    g = leaky_relu if leaky_g else relu
     x = np.linspace(-3.0, 3.0, 61)
     z = sign * b * x + c
     if not ((z < 0).any() and (z > 0).any()):

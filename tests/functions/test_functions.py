@@ -6,17 +6,17 @@ import math
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
-from onnx import TensorProto, helper
+from onnx import helper
 from onnx.reference import ReferenceEvaluator
 from scipy.optimize import least_squares
 from scipy.special import erf, expit
 from scipy.stats import norm
 from sklearn.linear_model import LinearRegression
+from testkit import float_model, run
 
 from swapper import functions as F
 from swapper.core.emit import Emitter
@@ -31,19 +31,12 @@ OPSETS = list(range(MIN_OPSET, MAX_OPSET + 1))
 
 
 def _model(nodes, initializers, opset):
-    graph = helper.make_graph(
-        nodes, "g",
-        [helper.make_tensor_value_info("x", TensorProto.FLOAT, SHAPE)],
-        [helper.make_tensor_value_info("y", TensorProto.FLOAT, SHAPE)],
-        initializers,
-    )
-    imports = [helper.make_opsetid("", opset)]
-    return helper.make_model(graph, opset_imports=imports, ir_version=helper.find_min_ir_version_for(imports))
+    ir_version = helper.find_min_ir_version_for([helper.make_opsetid("", opset)])  # the oldest IR that has ``opset``
+    return float_model(nodes, [("x", SHAPE)], [("y", SHAPE)], initializers, opset=opset, ir_version=ir_version)
 
 
 def _ort(model, x):
-    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    return sess.run(None, {"x": x})[0]
+    return run(model, {"x": x})[0]
 
 
 def _emitted(name, opset, params):

@@ -7,12 +7,11 @@ on x must equal the original layer's output with the affine map applied.
 from __future__ import annotations
 
 import numpy as np
-import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper
+from testkit import float_model, init, run
 
 from swapper import functions
 from swapper.core.graph import GraphIndex
@@ -21,21 +20,9 @@ from swapper.plan.placement import decide_placement
 from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
 from swapper.scan.sites import Site
 
-OPSET = 17
-
-
-def _init(name, value):
-    return numpy_helper.from_array(np.asarray(value, dtype=np.float32), name)
-
 
 def _model(nodes, inits, x_shape, outs, extra_inputs=()):
-    inputs = [helper.make_tensor_value_info("X", TensorProto.FLOAT, list(x_shape))]
-    inputs += [helper.make_tensor_value_info(n, TensorProto.FLOAT, list(s)) for n, s in extra_inputs]
-    graph = helper.make_graph(nodes, "g", inputs, [helper.make_tensor_value_info(o, TensorProto.FLOAT, None)
-                                                   for o in outs], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = 8
-    return onnx.shape_inference.infer_shapes(model)
+    return float_model(nodes, [("X", list(x_shape)), *extra_inputs], [(o, None) for o in outs], inits, infer=True)
 
 
 def _site(model, x, y, nodes, axis=1, channels=4):
@@ -51,12 +38,12 @@ def _silu(x, y):
 
 def conv_model(pads=1, bias2=True, residual=False, bn=False, y_is_output=False, after=None):
     rng = np.random.default_rng(0)
-    inits = [_init("W1", rng.normal(size=(4, 3, 3, 3))), _init("B1", np.zeros(4)),
-             _init("W2", rng.normal(size=(2, 4, 3, 3))), _init("B2", np.zeros(2))]
+    inits = [init("W1", rng.normal(size=(4, 3, 3, 3))), init("B1", np.zeros(4)),
+             init("W2", rng.normal(size=(2, 4, 3, 3))), init("B2", np.zeros(2))]
     nodes = [helper.make_node("Conv", ["X", "W1", "B1"], ["h"], name="c1", pads=[1] * 4)]
     x = "h"
     if bn:
-        inits += [_init(n, np.ones(4)) for n in ("g", "bt", "mu", "var")]
+        inits += [init(n, np.ones(4)) for n in ("g", "bt", "mu", "var")]
         nodes.append(helper.make_node("BatchNormalization", ["h", "g", "bt", "mu", "var"], ["hb"], name="bn"))
         x = "hb"
     nodes += _silu(x, "a")
@@ -70,14 +57,14 @@ def conv_model(pads=1, bias2=True, residual=False, bn=False, y_is_output=False, 
     if residual:
         nodes.append(helper.make_node("Add", [x, "X2"], ["R"], name="res"))
         outs.append("R")
-    model = _model(nodes, inits, (1, 3, 5, 5), outs, [("X2", (1, 4, 5, 5))] if residual else [])
+    model = _model(nodes, inits, (1, 3, 5, 5), outs, [("X2", [1, 4, 5, 5])] if residual else [])
     return model, _site(model, x, "a", ["sig", "mul"])
 
 
 def mm_model(with_add=True, mm_shared=False, consumer_transA=False, channel_axis=2):
     """X[1, 3, 5] -> MatMul(+Add) -> SiLU -> MatMul -> Y, or -> Gemm when ``consumer_transA``."""
     rng = np.random.default_rng(1)
-    inits = [_init("W1", rng.normal(size=(5, 4))), _init("B1", np.zeros(4)), _init("W2", rng.normal(size=(4, 2)))]
+    inits = [init("W1", rng.normal(size=(5, 4))), init("B1", np.zeros(4)), init("W2", rng.normal(size=(4, 2)))]
     nodes = [helper.make_node("MatMul", ["X", "W1"], ["p"], name="mm1")]
     x = "p"
     outs = ["Y"]
@@ -189,17 +176,12 @@ def test_unknown_policy_is_a_usage_error():
 # ------------------------------------------------------------- arithmetic
 def _run_node(node, inits, feeds):
     names = [i for i in node.input if i and i not in {t.name for t in inits}]
-    graph = helper.make_graph(
-        [node], "g", [helper.make_tensor_value_info(n, TensorProto.FLOAT, list(feeds[n].shape)) for n in names],
-        [helper.make_tensor_value_info(node.output[0], TensorProto.FLOAT, None)], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = 8
-    sess = ort.InferenceSession(model.SerializeToString(), providers=["CPUExecutionProvider"])
-    return sess.run(None, feeds)[0].astype(np.float64)
+    model = float_model([node], [(n, list(feeds[n].shape)) for n in names], [(node.output[0], None)], inits)
+    return run(model, feeds)[0].astype(np.float64)
 
 
 def _conv(op, w, bias, x, **attrs):
-    inits = [_init("W", w)] + ([_init("B", bias)] if bias is not None else [])
+    inits = [init("W", w)] + ([init("B", bias)] if bias is not None else [])
     node = helper.make_node(op, ["X", "W"] + (["B"] if bias is not None else []), ["Y"], **attrs)
     return _run_node(node, inits, {"X": x.astype(np.float32)})
 
@@ -249,7 +231,7 @@ def test_gemm_folds_match_onnxruntime(trans_b):
     node = helper.make_node("Gemm", ["X", "W", "C"], ["Y"], transB=trans_b, alpha=0.7, beta=1.3)
 
     def gemm(w_, c_, x_):
-        return _run_node(node, [_init("W", w_), _init("C", c_)], {"X": x_.astype(np.float32)})
+        return _run_node(node, [init("W", w_), init("C", c_)], {"X": x_.astype(np.float32)})
 
     b, c = rng.normal(size=n), rng.normal(size=n)
     new_w, new_c = scale_shift_output("gemm", node, w, cb, b, c)
@@ -266,7 +248,7 @@ def test_matmul_folds_match_numpy():
     w, x = rng.normal(size=(5, 3)), rng.normal(size=(2, 4, 5))
     a, d = rng.normal(size=5), rng.normal(size=5)
     node = helper.make_node("MatMul", ["X", "W"], ["Y"])
-    got = _run_node(node, [_init("W", input_scale("matmul", node, w, a))], {"X": x.astype(np.float32)})
+    got = _run_node(node, [init("W", input_scale("matmul", node, w, a))], {"X": x.astype(np.float32)})
     got = got + input_offset("matmul", node, w, d)
-    want = _run_node(node, [_init("W", w)], {"X": (x * a + d).astype(np.float32)})
+    want = _run_node(node, [init("W", w)], {"X": (x * a + d).astype(np.float32)})
     np.testing.assert_allclose(got, want, rtol=1e-4, atol=1e-4)

@@ -23,20 +23,19 @@ import numpy as np
 import onnx
 import onnxruntime as ort
 import pytest
-from demo_cli import CALIB, DEMO, VAL, invoke, sha256  # tests/ helper
 from sklearn.metrics import accuracy_score
 from statsmodels.stats.contingency_tables import mcnemar
+from testkit import CALIB, DEMO, VAL, run, sha256
 
 from swapper.report.build import validate_report
 
 
 def logits(path: Path) -> np.ndarray:
-    sess = ort.InferenceSession(str(path), providers=["CPUExecutionProvider"])
-    return sess.run(None, {"pixels": np.load(VAL)["pixels"]})[0]
+    return run(path, {"pixels": np.load(VAL)["pixels"]})[0]
 
 
 @pytest.fixture(scope="module")
-def runs(tmp_path_factory):
+def runs(cli, tmp_path_factory):
     """Three CLI runs: calibrated + gated (approved), gated rejection, and no validation at all."""
     root = tmp_path_factory.mktemp("report")
     cnn = root / "meter_cnn_silu.onnx"
@@ -44,20 +43,20 @@ def runs(tmp_path_factory):
     shutil.copyfile(DEMO / "meter_cnn_silu.onnx", cnn)
     shutil.copyfile(DEMO / "meter_mlp_tanh_sigmoid.onnx", mlp)
     out = {}
-    r = invoke("swap", cnn, "-o", root / "cnn.onnx", "--calib", CALIB, "--val", VAL, "--report", root / "gated")
+    r = cli("swap", cnn, "-o", root / "cnn.onnx", "--calib", CALIB, "--val", VAL, "--report", root / "gated")
     assert r.exit_code == 0, r.output  # measured: drop 0.22 pp, budget 1 pp
     out["gated"] = {"original": cnn, "candidate": root / "cnn.onnx", "dir": root / "gated"}
     # measured: 96.22% -> 96.67%, interval lower end -0.57 pp, so --budget 0 --strict rejects
-    r = invoke("swap", mlp, "-o", root / "rej.onnx", "--no-calibrate", "--to", "hard_tanh", "--val", VAL,
-               "--budget", 0, "--strict", "--report", root / "rejected")
+    r = cli("swap", mlp, "-o", root / "rej.onnx", "--no-calibrate", "--to", "hard_tanh", "--val", VAL,
+            "--budget", 0, "--strict", "--report", root / "rejected")
     assert r.exit_code == 1, r.output
     out["rejected"] = {"original": mlp, "candidate": None, "dir": root / "rejected"}
-    r = invoke("swap", mlp, "-o", root / "plain.onnx", "--no-calibrate", "--report", root / "plain")
+    r = cli("swap", mlp, "-o", root / "plain.onnx", "--no-calibrate", "--report", root / "plain")
     assert r.exit_code == 0, r.output
     out["plain"] = {"original": mlp, "candidate": root / "plain.onnx", "dir": root / "plain"}
-    for run in out.values():
-        run["json"] = json.loads((run["dir"] / "report.json").read_text())
-        run["html"] = (run["dir"] / "report.html").read_text()
+    for entry in out.values():
+        entry["json"] = json.loads((entry["dir"] / "report.json").read_text())
+        entry["html"] = (entry["dir"] / "report.html").read_text()
     return out
 
 
@@ -196,8 +195,8 @@ def test_rejected_report_has_no_candidate_entry(runs):
 
 @pytest.mark.parametrize("which", ["gated", "rejected", "plain"])
 def test_input_hashes_match_the_files(runs, which):
-    run, p = runs[which], runs[which]["json"]
-    expected = {"original": run["original"], "candidate": run["candidate"],
+    files, p = runs[which], runs[which]["json"]
+    expected = {"original": files["original"], "candidate": files["candidate"],
                 "calibration": CALIB if which == "gated" else None,
                 "validation": VAL if which != "plain" else None}
     for key, path in expected.items():
@@ -211,9 +210,9 @@ def test_input_hashes_match_the_files(runs, which):
 
 
 def test_accuracy_figures_match_an_independent_computation(runs):
-    run, c = runs["gated"], runs["gated"]["json"]["comparison"]
+    files, c = runs["gated"], runs["gated"]["json"]["comparison"]
     labels = np.load(VAL)["labels"]
-    y_o, y_c = logits(run["original"]), logits(run["candidate"])
+    y_o, y_c = logits(files["original"]), logits(files["candidate"])
     pred_o, pred_c = y_o.argmax(axis=1), y_c.argmax(axis=1)
     # source: scikit-learn accuracy_score of onnxruntime argmax predictions
     assert c["top1_original"] == pytest.approx(accuracy_score(labels, pred_o), abs=1e-12)

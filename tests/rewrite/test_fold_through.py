@@ -15,22 +15,20 @@ from __future__ import annotations
 
 import copy
 import dataclasses
-from pathlib import Path
 
 import numpy as np
-import onnx
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper
 from onnx.reference import ReferenceEvaluator
+from testkit import DEMO, OPSET, VAL, conv_tanh, in_memory, init
 
 import swapper.calibrate.loop as cal
 from swapper import functions
 from swapper.core.emit import Emitter
 from swapper.core.model_io import load_model
 from swapper.core.session import expose, open_session
-from swapper.data.dataset import Dataset
 from swapper.errors import UsageError
 from swapper.functions.params import PARAMS
 from swapper.plan.layers import channel_after_reshape
@@ -38,36 +36,14 @@ from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-OPSET = 17
-C = 4
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
+C = 4  # channels of the Tanh site in front of every tail (testkit.conv_tanh)
 
 
 # ------------------------------------------------------------------ helpers
-def _init(name, value, dtype=np.float32):
-    return numpy_helper.from_array(np.asarray(value, dtype=dtype), name)
-
-
-def _load(nodes, inits, outs, tmp_path, extra_inputs=(), hw=6):
-    """X[N, 4, hw, hw] -> Conv(c1) -> Tanh -> ``nodes``; through the project's loader (names, shapes)."""
-    rng = np.random.default_rng(0)
-    head = [helper.make_node("Conv", ["X", "W1", "B1"], ["h"], name="c1", pads=[1] * 4),
-            helper.make_node("Tanh", ["h"], ["y"], name="act")]
-    inits = [_init("W1", rng.normal(size=(C, 3, 3, 3)) * 0.5), _init("B1", rng.normal(size=C) * 0.2)] + inits
-    inputs = [helper.make_tensor_value_info("X", TensorProto.FLOAT, ["N", 3, hw, hw])]
-    inputs += [helper.make_tensor_value_info(n, TensorProto.FLOAT, s) for n, s in extra_inputs]
-    graph = helper.make_graph(head + nodes, "g", inputs,
-                              [helper.make_tensor_value_info(o, TensorProto.FLOAT, None) for o in outs], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    model.ir_version = 8
-    onnx.save(onnx.shape_inference.infer_shapes(model), tmp_path / "m.onnx")  # fills the output shapes
-    return load_model(tmp_path / "m.onnx").model
-
-
 def _conv2(src, pads=0, name="c2", out="Y"):
     rng = np.random.default_rng(1)
     return ([helper.make_node("Conv", [src, "W2", "B2"], [out], name=name, pads=[pads] * 4)],
-            [_init("W2", rng.normal(size=(3, C, 3, 3)) * 0.4), _init("B2", rng.normal(size=3) * 0.1)])
+            [init("W2", rng.normal(size=(3, C, 3, 3)) * 0.4), init("B2", rng.normal(size=3) * 0.1)])
 
 
 def _maxpool(pads=0, kernel=2, stride=2):
@@ -89,7 +65,7 @@ def _gap_flatten_gemm():
     nodes = [helper.make_node("GlobalAveragePool", ["y"], ["g"], name="gap"),
              helper.make_node("Flatten", ["g"], ["f"], name="flat", axis=1),
              helper.make_node("Gemm", ["f", "Wg", "Bg"], ["Y"], name="fc", transB=1)]
-    return nodes, [_init("Wg", rng.normal(size=(5, C))), _init("Bg", rng.normal(size=5))], ["Y"], ()
+    return nodes, [init("Wg", rng.normal(size=(5, C))), init("Bg", rng.normal(size=5))], ["Y"], ()
 
 
 def _gap_reshape_matmul():
@@ -98,8 +74,8 @@ def _gap_reshape_matmul():
              helper.make_node("Reshape", ["g", "shape"], ["r"], name="reshape"),
              helper.make_node("MatMul", ["r", "Wm"], ["mm"], name="mm"),
              helper.make_node("Add", ["mm", "Bm"], ["Y"], name="bias")]
-    inits = [_init("shape", [-1, C], np.int64), _init("Wm", rng.normal(size=(C, 5))),
-             _init("Bm", rng.normal(size=5))]
+    inits = [init("shape", [-1, C], np.int64), init("Wm", rng.normal(size=(C, 5))),
+             init("Bm", rng.normal(size=5))]
     return nodes, inits, ["Y"], ()
 
 
@@ -115,7 +91,7 @@ def _flatten_mixing():
     rng = np.random.default_rng(4)
     nodes = [helper.make_node("Flatten", ["y"], ["f"], name="flat", axis=1),
              helper.make_node("Gemm", ["f", "Wg", "Bg"], ["Y"], name="fc", transB=1)]
-    return nodes, [_init("Wg", rng.normal(size=(5, C * 36))), _init("Bg", rng.normal(size=5))], ["Y"], ()
+    return nodes, [init("Wg", rng.normal(size=(5, C * 36))), init("Bg", rng.normal(size=5))], ["Y"], ()
 
 
 def _pool_output_too():
@@ -179,10 +155,10 @@ THROUGH = {
 
 
 @pytest.mark.parametrize("case", sorted(THROUGH))
-def test_fold_through_equals_explicit_nodes(case, tmp_path):
+def test_fold_through_equals_explicit_nodes(case, through_loader):
     build, a_where, d_where = THROUGH[case]
     nodes, inits, outs, extra = build()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     assert [s.function for s in sites] == ["tanh"]
     plan, explicit = _plans(model, sites, "exact", np.random.default_rng(9))
@@ -198,9 +174,9 @@ def test_fold_through_equals_explicit_nodes(case, tmp_path):
 
 
 @pytest.mark.parametrize("case", ["avgpool_pads_counted", "gate"])
-def test_d_blocked_goes_to_a_node_under_nodes_policy(case, tmp_path):
+def test_d_blocked_goes_to_a_node_under_nodes_policy(case, through_loader):
     nodes, inits, outs, extra = THROUGH[case][0]()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     plan, explicit = _plans(model, sites, "nodes", np.random.default_rng(10))
     assert plan.swaps[0].placement["a"] == "consumers" and plan.swaps[0].placement["d"] == "nodes"
@@ -211,9 +187,9 @@ def test_d_blocked_goes_to_a_node_under_nodes_policy(case, tmp_path):
 
 
 # ------------------------------------------------------------------ declines
-def test_negative_a_through_max_pool_falls_back_to_a_node(tmp_path):
+def test_negative_a_through_max_pool_falls_back_to_a_node(through_loader):
     nodes, inits, outs, extra = _maxpool()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     plan, explicit = _plans(model, sites, "exact", np.random.default_rng(11), a_low=-1.0)
     plan.swaps[0].a[0] = -0.7  # max(-x) = -min(x): the pool does not commute with this channel
@@ -230,9 +206,9 @@ def test_negative_a_through_max_pool_falls_back_to_a_node(tmp_path):
     (lambda: _gate("square"), "two paths"),  # y·y is not linear in y
     (_pool_output_too, "graph output"),  # the pooled tensor leaves the graph unchanged-by-fold
 ])
-def test_declined_paths_keep_a_and_d_held(build, why, tmp_path):
+def test_declined_paths_keep_a_and_d_held(build, why, through_loader):
     nodes, inits, outs, extra = build()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     plan, explicit = _plans(model, sites, "exact", np.random.default_rng(12))
     swap = plan.swaps[0]
@@ -241,10 +217,10 @@ def test_declined_paths_keep_a_and_d_held(build, why, tmp_path):
     _agree(rewrite(model, sites, plan).model, rewrite(model, sites, explicit).model, _feeds(model))
 
 
-def test_one_scalar_parameter_set_passes_a_channel_mixing_flatten(tmp_path):
+def test_one_scalar_parameter_set_passes_a_channel_mixing_flatten(through_loader):
     # a scalar a·y + d commutes with any reshape: only per-channel sets need the channel mapping
     nodes, inits, outs, extra = _flatten_mixing()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = [dataclasses.replace(s, channel_axis=None, channels=None) for s in find_sites(model)]
     plan, explicit = _plans(model, sites, "exact", np.random.default_rng(14))
     assert plan.swaps[0].channels == 1
@@ -254,9 +230,9 @@ def test_one_scalar_parameter_set_passes_a_channel_mixing_flatten(tmp_path):
     _agree(folded.model, rewrite(model, sites, explicit).model, _feeds(model))
 
 
-def test_plan_must_say_consumers_plus_behind_a_max_pool(tmp_path):
+def test_plan_must_say_consumers_plus_behind_a_max_pool(through_loader):
     nodes, inits, outs, extra = _maxpool()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     plan, _ = _plans(model, sites, "exact", np.random.default_rng(13))
     wrong = copy.deepcopy(plan)
@@ -316,11 +292,6 @@ def test_channel_after_reshape_with_a_symbolic_batch():
 
 
 # ----------------------------------------------------------- bias correction
-def _dataset(**arrays: np.ndarray) -> Dataset:
-    return Dataset(path=Path("<inline>"), arrays=arrays, labels=None, targets=None, n=len(next(iter(arrays.values()))),
-                   dtypes={k: np.dtype(np.float32) for k in arrays})
-
-
 POOLS = {"maxpool": dict(op_type="MaxPool", kernel_shape=[2, 2], strides=[2, 2]),
          "avgpool": dict(op_type="AveragePool", kernel_shape=[3, 3], pads=[1] * 4, count_include_pad=1)}
 
@@ -328,7 +299,7 @@ POOLS = {"maxpool": dict(op_type="MaxPool", kernel_shape=[2, 2], strides=[2, 2])
 @pytest.mark.parametrize("case, layer", [("maxpool_padded_conv", "c2"), ("avgpool_padded_conv", "c2"),
                                          ("direct_padded_conv", "c2"), ("gap_flatten_gemm", "fc"),
                                          ("gmp_reshape_matmul", "mm")])
-def test_bias_correction_reaches_layers_behind_pools(case, layer, tmp_path):
+def test_bias_correction_reaches_layers_behind_pools(case, layer, through_loader):
     if case.endswith("padded_conv"):
         pool = case.split("_")[0]
         nodes, inits = _conv2("p" if pool in POOLS else "y", pads=1)  # d cannot fold: a mean shift is left
@@ -337,10 +308,10 @@ def test_bias_correction_reaches_layers_behind_pools(case, layer, tmp_path):
         built = (nodes, inits, ["Y"], ())
     else:
         built = {"gap_flatten_gemm": _gap_flatten_gemm, "gmp_reshape_matmul": _gap_reshape_matmul}[case]()
-    model = _load(*built[:3], tmp_path, built[3])
+    model = through_loader(conv_tanh(*built[:3], extra_inputs=built[3]))
     sites = find_sites(model)
     x = (1.5 * np.random.default_rng(3).normal(size=(300, 3, 6, 6))).astype(np.float32)
-    ds = _dataset(X=x)
+    ds = in_memory({"X": x})
     means = {}
     for corrected in (False, True):
         plan = make_plan(model, sites, to="relu", fold="off")
@@ -358,13 +329,13 @@ def test_bias_correction_reaches_layers_behind_pools(case, layer, tmp_path):
     np.testing.assert_allclose(after, want, rtol=0, atol=2e-4)
 
 
-def test_bias_correction_stops_at_a_gate_with_a_note(tmp_path):
+def test_bias_correction_stops_at_a_gate_with_a_note(through_loader):
     nodes, inits, outs, extra = _gate()
-    model = _load(nodes, inits, outs, tmp_path, extra)
+    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     rng = np.random.default_rng(4)
-    ds = _dataset(X=rng.normal(size=(64, 3, 6, 6)).astype(np.float32),
-                  S=rng.uniform(size=(64, C, 1, 1)).astype(np.float32))
+    ds = in_memory({"X": rng.normal(size=(64, 3, 6, 6)).astype(np.float32),
+                    "S": rng.uniform(size=(64, C, 1, 1)).astype(np.float32)})
     plan = make_plan(model, sites, to="relu", fold="off", site_ids=["s1"])
     result = cal.calibrate(model, sites, plan, ds, reservoir=16)
     assert result.sites[0].bias_corrected == []
@@ -389,7 +360,7 @@ def test_demo_cnn_hard_swish_folds_a_through_pools_and_gate_without_nodes():
     folded = rewrite(loaded.model, sites, plan)
     removed = sum(len(s.nodes) for s in sites if s.id in place)
     assert folded.nodes_after == folded.nodes_before - removed + len(place) * _surrogate_nodes("hard_swish")
-    pixels = np.load(DEMO / "val.npz")["pixels"][:32]
+    pixels = np.load(VAL)["pixels"][:32]
     name = loaded.model.graph.input[0].name
     y_fold = open_session(folded.model).run(None, {name: pixels})[0]
     y_nodes = open_session(rewrite(loaded.model, sites, explicit).model).run(None, {name: pixels})[0]

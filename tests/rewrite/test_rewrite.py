@@ -1,22 +1,22 @@
 """Tests of swapper.rewrite.apply: folded and explicit surrogates against independent executors.
 
 References: onnxruntime and onnx.reference.ReferenceEvaluator execute the ONNX
-operator spec; the surrogate formulas below are written out in numpy from
-their published definitions; the tail of each original graph (after the
-site) is cut out with onnx.utils.Extractor and run by onnxruntime on the
-numpy surrogate output.
+operator spec; the surrogate formulas are written out in numpy from their
+published definitions (tests/testkit.py); the tail of each original graph
+(after the site) is cut out with onnx.utils.Extractor and run by onnxruntime
+on the numpy surrogate output.
 """
 from __future__ import annotations
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from onnx.utils import Extractor
+from testkit import CHEAP, float_model, init, run
 
 from swapper import functions
 from swapper.core.graph import GraphIndex
@@ -27,31 +27,10 @@ from swapper.plan.plan import Plan, SiteSwap
 from swapper.rewrite.apply import PLAN_KEY, rewrite, rewrite_identity_floor
 from swapper.scan.sites import Site
 
-OPSET = 17
-
-
-# ------------------------------------------------------------ numpy formulas
-def _sigmoid(z):
-    return 1.0 / (1.0 + np.exp(-z))  # source: ONNX operator spec, Sigmoid
-
-
-G = {
-    "relu": lambda z, p: np.maximum(z, 0.0),  # source: ONNX operator spec, Relu
-    "hard_swish": lambda z, p: z * np.clip(z + 3.0, 0.0, 6.0) / 6.0,  # source: Howard et al. 2019, h-swish
-    # source: ONNX operator spec, HardSigmoid: max(0, min(1, alpha·x + beta))
-    "hard_sigmoid": lambda z, p: np.clip(p["alpha"] * z + p["beta"], 0.0, 1.0),
-    "hard_tanh": lambda z, p: np.clip(z, -1.0, 1.0),  # source: Collobert 2004, hard tanh
-    "sigmoid": lambda z, p: _sigmoid(z),
-    "tanh": lambda z, p: np.tanh(z),  # source: ONNX operator spec, Tanh
-}
 TPARAMS = {"hard_sigmoid": {"alpha": 0.2, "beta": 0.5}}  # source: ONNX operator spec, HardSigmoid defaults
 
 
 # ------------------------------------------------------------- model helpers
-def _init(name, value):
-    return numpy_helper.from_array(np.asarray(value, dtype=np.float32), name)
-
-
 def _activation(kind, x, y, prefix):
     """The source activation as an exporter writes it; returns (nodes, node names)."""
     if kind == "silu":  # x·sigmoid(x), the decomposed form
@@ -63,11 +42,7 @@ def _activation(kind, x, y, prefix):
 
 
 def _model(nodes, inits, x_shape, out_names):
-    graph = helper.make_graph(
-        nodes, "g", [helper.make_tensor_value_info("X", TensorProto.FLOAT, list(x_shape))],
-        [helper.make_tensor_value_info(o, TensorProto.FLOAT, None) for o in out_names], inits)
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)], producer_name="test")
-    model.ir_version = 8
+    model = float_model(nodes, [("X", list(x_shape))], [(o, None) for o in out_names], inits, producer_name="test")
     model.metadata_props.add(key="owner", value="tests")
     return onnx.shape_inference.infer_shapes(model)
 
@@ -85,14 +60,14 @@ def _site(model, kind, names, x, y, axis, channels, sid="s1"):
 def conv_chain(kind="silu", c_in=3, ch=4, pads2=1, group2=1, bn=False, share=False, seed=0):
     """X -> Conv -> [BN] -> act -> Conv(pads2) -> Y. ``share``: a second conv reuses W1 (output Z)."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(ch, c_in, 3, 3)) * 0.4), _init("B1", rng.normal(size=ch) * 0.1),
-             _init("W2", rng.normal(size=(5 * group2, ch // group2, 3, 3)) * 0.3),
-             _init("B2", rng.normal(size=5 * group2) * 0.1)]
+    inits = [init("W1", rng.normal(size=(ch, c_in, 3, 3)) * 0.4), init("B1", rng.normal(size=ch) * 0.1),
+             init("W2", rng.normal(size=(5 * group2, ch // group2, 3, 3)) * 0.3),
+             init("B2", rng.normal(size=5 * group2) * 0.1)]
     nodes = [helper.make_node("Conv", ["X", "W1", "B1"], ["h"], name="conv1", pads=[1, 1, 1, 1])]
     x = "h"
     if bn:
-        inits += [_init("g", rng.uniform(0.5, 1.5, ch)), _init("beta", rng.normal(size=ch) * 0.1),
-                  _init("mu", rng.normal(size=ch) * 0.1), _init("var", rng.uniform(0.5, 2.0, ch))]
+        inits += [init("g", rng.uniform(0.5, 1.5, ch)), init("beta", rng.normal(size=ch) * 0.1),
+                  init("mu", rng.normal(size=ch) * 0.1), init("var", rng.uniform(0.5, 2.0, ch))]
         nodes.append(helper.make_node("BatchNormalization", ["h", "g", "beta", "mu", "var"], ["hb"], name="bn"))
         x = "hb"
     act, names = _activation(kind, x, "a", "act")
@@ -111,8 +86,8 @@ def gemm_chain(kind="tanh", k=5, n=6, m=4, trans=(0, 1), seed=1):
     rng = np.random.default_rng(seed)
     w1 = rng.normal(size=(k, n)) * 0.5
     w2 = rng.normal(size=(n, m)) * 0.5
-    inits = [_init("W1", w1.T if trans[0] else w1), _init("C1", rng.normal(size=n) * 0.1),
-             _init("W2", w2.T if trans[1] else w2), _init("C2", rng.normal(size=(1, m)) * 0.1)]
+    inits = [init("W1", w1.T if trans[0] else w1), init("C1", rng.normal(size=n) * 0.1),
+             init("W2", w2.T if trans[1] else w2), init("C2", rng.normal(size=(1, m)) * 0.1)]
     act, names = _activation(kind, "h", "a", "act")
     nodes = [helper.make_node("Gemm", ["X", "W1", "C1"], ["h"], name="gemm1", transB=trans[0], alpha=0.9, beta=1.1),
              *act,
@@ -124,8 +99,8 @@ def gemm_chain(kind="tanh", k=5, n=6, m=4, trans=(0, 1), seed=1):
 def matmul_chain(kind="sigmoid", k=5, n=6, m=3, seed=2, bias1=True):
     """X[2, 3, k] -> MatMul[+Add] -> act -> MatMul+Add -> Y (channels on the last axis)."""
     rng = np.random.default_rng(seed)
-    inits = [_init("W1", rng.normal(size=(k, n)) * 0.5), _init("B1", rng.normal(size=n) * 0.1),
-             _init("W2", rng.normal(size=(n, m)) * 0.5), _init("B2", rng.normal(size=m) * 0.1)]
+    inits = [init("W1", rng.normal(size=(k, n)) * 0.5), init("B1", rng.normal(size=n) * 0.1),
+             init("W2", rng.normal(size=(n, m)) * 0.5), init("B2", rng.normal(size=m) * 0.1)]
     act, names = _activation(kind, "h", "a", "act")
     first = [helper.make_node("MatMul", ["X", "W1"], ["p"], name="mm1"),
              helper.make_node("Add", ["p", "B1"], ["h"], name="add1")]
@@ -139,36 +114,26 @@ def matmul_chain(kind="sigmoid", k=5, n=6, m=3, seed=2, bias1=True):
     return model, _site(model, kind, names, "h", "a", 2, n)
 
 
-def _run(model, feeds):
-    so = ort.SessionOptions()
-    so.intra_op_num_threads = 1
-    sess = ort.InferenceSession(model.SerializeToString(), so, providers=["CPUExecutionProvider"])
-    return sess.run(None, feeds)
-
-
 def _pre_activation(model, site, feeds):
-    """The site input as the original model computes it (exposed as an extra output)."""
-    probe = onnx.ModelProto()
-    probe.CopyFrom(model)
-    probe.graph.output.append(helper.make_tensor_value_info(site.input, TensorProto.FLOAT, None))
-    return _run(probe, feeds)[-1].astype(np.float64)
+    """The site input as the original model computes it (read as an extra graph output)."""
+    return run(model, feeds, [site.input])[0].astype(np.float64)
 
 
 def _formula(site, swap, x):
-    """a·g(b·x + c) + d per channel, in float64."""
+    """a·g(b·x + c) + d per channel, in float64, g written out from its definition (testkit.CHEAP)."""
     shape = [1] * x.ndim
     axis = site.channel_axis % x.ndim
     shape[axis] = -1
     p = {q: np.asarray(getattr(swap, q), dtype=np.float64).reshape(shape if getattr(swap, q).size > 1 else ())
          for q in PARAMS}
-    return p["a"] * G[swap.target](p["b"] * x + p["c"], swap.target_params) + p["d"]
+    return p["a"] * CHEAP[swap.target](p["b"] * x + p["c"], **swap.target_params) + p["d"]
 
 
 def _expected(model, site, swap, feeds, out="Y"):
     """The original graph's tail run by onnxruntime on the numpy surrogate output."""
     y = _formula(site, swap, _pre_activation(model, site, feeds)).astype(np.float32)
     tail = Extractor(model).extract_model([site.output], [out])
-    return _run(tail, {site.output: y})[0]
+    return run(tail, {site.output: y})[0]
 
 
 def _swap(site, target, placement, rng, positive_a=False):
@@ -235,7 +200,7 @@ def test_folded_equals_explicit_nodes_and_formula(case):
     folded = _checked(model, [site], Plan("exact", [swap]))
     explicit = _checked(model, [site], Plan("off", [_with_placement(swap, {p: "nodes" for p in PARAMS})]))
     feeds = _feeds(model)
-    y_fold, y_nodes = _run(folded.model, feeds)[0], _run(explicit.model, feeds)[0]
+    y_fold, y_nodes = run(folded.model, feeds)[0], run(explicit.model, feeds)[0]
     y_ref = ReferenceEvaluator(folded.model).run(None, feeds)[0]
     expected = _expected(model, site, swap, feeds)
     # source: ONNX operator spec executed by onnxruntime vs onnx.reference (independent executor)
@@ -258,7 +223,7 @@ def test_approximate_d_differs_only_at_borders():
     approx = _checked(model, [site], Plan("approximate", [_with_placement(swap, {**exact_place, "d": "approx"})]))
     exact = _checked(model, [site], Plan("nodes", [swap]))
     feeds = _feeds(model)
-    ya, ye = _run(approx.model, feeds)[0], _run(exact.model, feeds)[0]
+    ya, ye = run(approx.model, feeds)[0], run(exact.model, feeds)[0]
     # source: ONNX operator spec, Conv: zero padding means a constant input offset d reaches
     # the border outputs through fewer taps than the interior ones
     np.testing.assert_allclose(ya[:, :, 1:-1, 1:-1], ye[:, :, 1:-1, 1:-1], rtol=1e-5, atol=1e-5)
@@ -278,7 +243,7 @@ def test_zero_a_with_d_as_node_falls_back_to_a_node():
     assert result.records[0].placement["a"] == "nodes" and result.records[0].notes
     feeds = _feeds(model)
     # source: the surrogate formula a·g(b·x + c) + d (numpy) fed through the original tail
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
 
 
 def test_zero_a_with_one_scalar_d_falls_back_to_a_per_channel_node():
@@ -292,7 +257,7 @@ def test_zero_a_with_one_scalar_d_falls_back_to_a_per_channel_node():
     assert result.records[0].placement["a"] == "nodes"
     feeds = _feeds(model)
     # source: the surrogate formula a·g(b·x + c) + d (numpy) fed through the original tail
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
 
 
 def test_folded_relu_adds_no_nodes_and_keeps_model():
@@ -309,7 +274,7 @@ def test_folded_relu_adds_no_nodes_and_keeps_model():
     assert meta["owner"] == "tests" and Plan.from_json(meta[PLAN_KEY]).swaps[0].site_id == "s1"
     assert result.model.producer_name == "test" and result.model.ir_version == model.ir_version
     feeds = _feeds(model)
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
     used = {t for n in result.model.graph.node for t in n.input}
     assert all(t.name in used for t in result.model.graph.initializer)  # unused weights dropped
 
@@ -323,7 +288,7 @@ def test_self_swap_with_identity_params_reproduces_original(kind):
     result = _checked(model, [site], Plan("off", [swap]))
     assert result.records[0].nodes_added == 1  # identity parameters emit nothing
     feeds = _feeds(model)
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _run(model, feeds)[0], atol=1e-6)
+    np.testing.assert_allclose(run(result.model, feeds)[0], run(model, feeds)[0], atol=1e-6)
 
 
 def test_shared_initializer_is_not_modified_in_place():
@@ -332,17 +297,17 @@ def test_shared_initializer_is_not_modified_in_place():
                  np.random.default_rng(3))
     result = _checked(model, [site], Plan("exact", [swap]))
     feeds = _feeds(model)
-    z_new, z_old = _run(result.model, feeds)[1], _run(model, feeds)[1]
+    z_new, z_old = run(result.model, feeds)[1], run(model, feeds)[1]
     np.testing.assert_array_equal(z_new, z_old)  # the other conv still reads the untouched W1
     conv1 = next(n for n in result.model.graph.node if n.name == "conv1")
     assert conv1.input[1] != "W1"
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(run(result.model, feeds)[0], _expected(model, site, swap, feeds), rtol=1e-5, atol=1e-5)
 
 
 def test_identity_floor_and_two_sites_fold_into_one_layer():
     # X -> Conv -> SiLU -> Conv(mid) -> Tanh -> Conv -> Y: conv "mid" takes a, d of s1 and b, c of s2.
     rng = np.random.default_rng(4)
-    inits = [_init(f"W{i}", rng.normal(size=(4, 4, 1, 1)) * 0.5) for i in range(3)]
+    inits = [init(f"W{i}", rng.normal(size=(4, 4, 1, 1)) * 0.5) for i in range(3)]
     act1, n1 = _activation("silu", "h0", "a0", "s1")
     act2, n2 = _activation("tanh", "h1", "a1", "s2")
     nodes = [helper.make_node("Conv", ["X", "W0"], ["h0"], name="c0"), *act1,
@@ -362,10 +327,10 @@ def test_identity_floor_and_two_sites_fold_into_one_layer():
     # reference: numpy surrogates chained through the original 1x1 convs (onnxruntime)
     x0 = _pre_activation(model, s1, feeds)
     y0 = _formula(s1, swaps[0], x0).astype(np.float32)
-    h1 = _run(Extractor(model).extract_model(["a0"], ["h1"]), {"a0": y0})[0].astype(np.float64)
+    h1 = run(Extractor(model).extract_model(["a0"], ["h1"]), {"a0": y0})[0].astype(np.float64)
     y1 = _formula(s2, swaps[1], h1).astype(np.float32)
-    expected = _run(Extractor(model).extract_model(["a1"], ["Y"]), {"a1": y1})[0]
-    np.testing.assert_allclose(_run(result.model, feeds)[0], expected, rtol=1e-5, atol=1e-5)
+    expected = run(Extractor(model).extract_model(["a1"], ["Y"]), {"a1": y1})[0]
+    np.testing.assert_allclose(run(result.model, feeds)[0], expected, rtol=1e-5, atol=1e-5)
 
     floor = rewrite_identity_floor(model, [s1, s2])
     onnx.checker.check_model(floor, full_check=True)
@@ -373,7 +338,7 @@ def test_identity_floor_and_two_sites_fold_into_one_layer():
     w = {t.name: numpy_helper.to_array(t) for t in model.graph.initializer}
     linear = np.einsum("ob,ba,aj,njhw->nohw", w["W2"][:, :, 0, 0], w["W1"][:, :, 0, 0], w["W0"][:, :, 0, 0],
                        feeds["X"])
-    np.testing.assert_allclose(_run(floor, feeds)[0], linear, rtol=1e-5, atol=1e-5)
+    np.testing.assert_allclose(run(floor, feeds)[0], linear, rtol=1e-5, atol=1e-5)
 
 
 def test_plan_errors_are_usage_errors():
@@ -410,5 +375,5 @@ def test_random_chains_match_formula(layer, kind, target, policy, pads, seed):
     result = _checked(model, [site], Plan(policy, [swap]))
     feeds = _feeds(model, seed)
     # source: surrogate formula in numpy through the original tail, executed by onnxruntime
-    np.testing.assert_allclose(_run(result.model, feeds)[0], _expected(model, site, swap, feeds),
+    np.testing.assert_allclose(run(result.model, feeds)[0], _expected(model, site, swap, feeds),
                                rtol=1e-5, atol=2e-5)

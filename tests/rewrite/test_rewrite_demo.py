@@ -9,11 +9,11 @@ pixels and must agree (rtol 1e-5): folding is algebra, not approximation.
 from __future__ import annotations
 
 import copy
-from pathlib import Path
 
 import numpy as np
 import onnx
 import pytest
+from testkit import DEMO, VAL
 
 from swapper.core.model_io import load_model
 from swapper.core.session import open_session
@@ -22,9 +22,8 @@ from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 MODELS = sorted(p.name for p in DEMO.glob("*.onnx"))
-PIXELS = np.load(DEMO / "val.npz")["pixels"][:64]
+PIXELS = np.load(VAL)["pixels"][:64]
 
 
 def _randomise(plan, seed: int) -> None:

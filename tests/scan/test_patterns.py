@@ -11,14 +11,13 @@ import math
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import TensorProto, helper
 from scipy.special import erf, expit
+from testkit import as_loaded, float_model, init, run
 
-from swapper.core.model_io import name_unnamed_nodes
 from swapper.scan.sites import find_sites
 
 X_SHAPE = [2, 4, 3, 3]
@@ -71,7 +70,7 @@ def make(nodes, consts=None, const_mode="init", opset=17, outputs=("Y",), ms=Fal
     consts = consts or {}
     inits, protos = [], []
     for name, value in sorted(consts.items()):
-        tensor = numpy_helper.from_array(np.asarray(value, dtype=np.float32), name)
+        tensor = init(name, value)
         if const_mode == "init":
             inits.append(tensor)
         else:
@@ -79,17 +78,11 @@ def make(nodes, consts=None, const_mode="init", opset=17, outputs=("Y",), ms=Fal
     for op, ins, out, attrs in nodes:
         domain = MS if op in ("QuickGelu", "FastGelu", "BiasGelu", "MsGelu") else ""
         protos.append(helper.make_node("Gelu" if op == "MsGelu" else op, ins, [out], domain=domain, **attrs))
-    graph = helper.make_graph(
-        protos, "t", [helper.make_tensor_value_info("X", TensorProto.FLOAT, x_shape or X_SHAPE)],
-        [helper.make_tensor_value_info(o, TensorProto.FLOAT, x_shape or X_SHAPE) for o in outputs], inits,
-    )
-    opsets = [helper.make_opsetid("", opset)] + ([helper.make_opsetid(MS, 1)] if ms else [])
-    model = helper.make_model(graph, opset_imports=opsets)
-    model.ir_version = 8
-    onnx.checker.check_model(model, full_check=True)
-    model = onnx.shape_inference.infer_shapes(model, check_type=True, data_prop=True)
-    name_unnamed_nodes(model)
-    return model
+    shape = x_shape or X_SHAPE
+    model = float_model(protos, [("X", shape)], [(o, shape) for o in outputs], inits, opset=opset, name="t")
+    if ms:
+        model.opset_import.append(helper.make_opsetid(MS, 1))
+    return as_loaded(model)
 
 
 def n(op, ins, out, **attrs):
@@ -122,8 +115,7 @@ def check_numerics(model, site, seed=0):
     """onnxruntime running the site's nodes == numpy reference of site.function (atol 1e-5)."""
     rng = np.random.default_rng(seed)
     x = (rng.standard_normal(X_SHAPE) * 3).astype(np.float32)
-    sess = ort.InferenceSession(site_model(model, site).SerializeToString(), providers=["CPUExecutionProvider"])
-    got = sess.run(None, {site.input: x})[0]
+    got = run(site_model(model, site), {site.input: x})[0]
     want = REFERENCES[site.function](x.astype(np.float64), site.params)
     np.testing.assert_allclose(got, want, atol=1e-5, rtol=1e-5)
 
@@ -394,7 +386,7 @@ def test_prelu_records_slope_tensor():
     (s,) = find_sites(m)
     assert (s.function, s.params) == ("prelu", {"slope": "slope"})
     x = np.random.default_rng(0).standard_normal(X_SHAPE).astype(np.float32)
-    got = ort.InferenceSession(site_model(m, s).SerializeToString()).run(None, {"X": x})[0]
+    got = run(site_model(m, s), {"X": x})[0]
     np.testing.assert_allclose(got, np.where(x >= 0, x, slope * x), atol=1e-6)  # source: ONNX operator spec, PRelu
 
 

@@ -3,20 +3,19 @@ from __future__ import annotations
 
 import json
 import math
-from pathlib import Path
 
 import numpy as np
 import onnx
 import pytest
 from onnx import TensorProto, helper, numpy_helper
+from testkit import DEMO, as_loaded, float_model
 
-from swapper.core.model_io import load_model, name_unnamed_nodes
+from swapper.core.model_io import load_model
 from swapper.errors import UsageError
 from swapper.functions.costs import known_functions, load_costs, relative_cost
 from swapper.scan.decomposed import PATTERNS
 from swapper.scan.sites import SCHEMA, find_sites, sites_to_json
 
-DEMO = Path(__file__).resolve().parents[2] / "demo_models"
 SITE_FUNCTIONS = ["sigmoid", "tanh", "relu", "leaky_relu", "prelu", "elu", "selu", "celu", "softplus", "softsign",
                   "hard_sigmoid", "hard_swish", "gelu", "gelu_tanh", "mish", "silu", "swish", "quick_gelu"]
 
@@ -27,17 +26,8 @@ def w(shape, seed=0):
 
 def build(nodes, inputs, outputs, inits=(), opset=17):
     """Checked, shape-inferred model as swapper.core.model_io.load_model prepares it."""
-    graph = helper.make_graph(
-        nodes, "t", [helper.make_tensor_value_info(n, TensorProto.FLOAT, s) for n, s in inputs],
-        [helper.make_tensor_value_info(n, TensorProto.FLOAT, s) for n, s in outputs],
-        [numpy_helper.from_array(v, k) for k, v in inits],
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", opset)])
-    model.ir_version = 8
-    onnx.checker.check_model(model, full_check=True)
-    model = onnx.shape_inference.infer_shapes(model, check_type=True, data_prop=True)
-    name_unnamed_nodes(model)
-    return model
+    tensors = [numpy_helper.from_array(v, k) for k, v in inits]  # any dtype (Loop trip counts, If conditions)
+    return as_loaded(float_model(nodes, inputs, outputs, tensors, opset=opset, name="t"))
 
 
 def se_block():
