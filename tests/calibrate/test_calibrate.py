@@ -1,4 +1,4 @@
-"""Tests of swapper.calibrate.loop: levels, sequential inputs, fitting, bias correction, streaming.
+"""Tests of swapper.calibrate.loop: levels, sequential inputs, fitting, streaming, the cache.
 
 References: onnxruntime and ``onnx.reference.ReferenceEvaluator`` execute the
 ONNX operator spec (the original model's tensors, and the rewritten model's
@@ -17,19 +17,18 @@ import onnx
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from onnx import TensorProto, helper, numpy_helper
+from onnx import helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
-from testkit import CALIB, CHEAP, DEMO, OPSET, VAL, float_model, in_memory, init, run
+from testkit import CALIB, CHEAP, DEMO, VAL, float_model, in_memory, init, run
 
-import swapper.calibrate.bias_correction as bias_correction
 import swapper.calibrate.loop as cal
 from swapper import api
 from swapper.core.graph import GraphIndex
 from swapper.core.model_io import load_model
 from swapper.core.session import open_session
 from swapper.core.tensor_cache import TensorCache
-from swapper.data.dataset import Dataset, batches, replicate, subset
+from swapper.data.dataset import batches, replicate, subset
 from swapper.plan.plan import Plan, SiteSwap, make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
@@ -47,11 +46,6 @@ def _model(nodes, inputs, outputs, inits) -> onnx.ModelProto:
 def _demo(name: str):
     loaded = load_model(DEMO / f"{name}.onnx")
     return loaded, api.load_data(CALIB, loaded)
-
-
-def _run(model: onnx.ModelProto, ds: Dataset, names: list[str]) -> dict[str, np.ndarray]:
-    """Tensors ``names`` of ``model`` over the whole data set, by onnxruntime."""
-    return dict(zip(names, run(model, ds.arrays, names)))
 
 
 @pytest.fixture
@@ -299,75 +293,14 @@ def test_sequential_level2_input_comes_from_partially_swapped_model(spy):
     # built from the calibrated model (which carries level 1's bias correction), cut at s2's input
     first_only = Plan(fold="off", swaps=[plan.by_site()["s1"]])
     partial = rewrite(result.model, sites, first_only).model
-    want = _run(partial, calib, [s2.input])[s2.input]
-    original = _run(loaded.model, calib, [s2.input])[s2.input]
+    want = run(partial, calib.arrays, [s2.input])[0]
+    original = run(loaded.model, calib.arrays, [s2.input])[0]
     assert recorded.shape == want.shape == (128, 32)
     np.testing.assert_allclose(recorded, want, rtol=1e-5, atol=1e-5)
     assert np.max(np.abs(recorded - original)) > 1e-2  # and it is not the original's tensor
     # level 1 still sees the original input (graph input side of the first swap)
-    np.testing.assert_allclose(np.concatenate(spy["x"]["s1"]), _run(loaded.model, calib, [s1.input])[s1.input],
+    np.testing.assert_allclose(np.concatenate(spy["x"]["s1"]), run(loaded.model, calib.arrays, [s1.input])[0],
                                rtol=1e-6, atol=1e-6)
-
-
-# --------------------------------------------------------- bias correction
-def _gemm_tanh_gemm(beta: float = 1.0, shared: bool = False, seed: int = 0) -> onnx.ModelProto:
-    """x -> Gemm(W1, b1) -> Tanh -> Gemm(W2, b2, beta) -> y; with ``shared``, b2 also biases z = Gemm(x, W3, b2)."""
-    rng = np.random.default_rng(seed)
-    inits = [init("W1", rng.normal(size=(4, 6))), init("b1", rng.normal(size=6)),
-             init("W2", rng.normal(size=(6, 3))), init("b2", rng.normal(size=3))]
-    nodes = [helper.make_node("Gemm", ["x", "W1", "b1"], ["h"], name="g1"),
-             helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
-             helper.make_node("Gemm", ["t", "W2", "b2"], ["y"], name="g2", beta=beta)]
-    outputs = [("y", 3)]
-    if shared:
-        inits.append(init("W3", rng.normal(size=(4, 3))))
-        nodes.append(helper.make_node("Gemm", ["x", "W3", "b2"], ["z"], name="g3"))
-        outputs.append(("z", 3))
-    return _model(nodes, [("x", 4)], outputs, inits)
-
-
-@pytest.mark.parametrize("beta", [1.0, 0.5])
-def test_bias_correction_restores_consumer_mean(beta, through_loader):
-    model = through_loader(_gemm_tanh_gemm(beta=beta))
-    sites = find_sites(model)
-    x = (2 * np.random.default_rng(1).normal(size=(512, 4))).astype(np.float32)
-    ds = in_memory({"x": x})
-    means = {}
-    for corrected in (False, True):
-        # a small reservoir fits on a subsample, so the surrogate leaves a real mean shift behind
-        plan = make_plan(model, sites, fold="off", to="relu")
-        result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
-        assert result.sites[0].bias_corrected == (["g2"] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
-        means[corrected] = _run(candidate, ds, ["y"])["y"].astype(np.float64).mean(axis=0)
-    target = _run(model, ds, ["y"])["y"].astype(np.float64).mean(axis=0)
-    # source: Nagel et al. 2019, bias correction: after it, E[candidate output] = E[original output]
-    # (here exactly, on the calibration set itself; float32 tolerance)
-    assert np.max(np.abs(means[False] - target)) > 0.05  # the shift was there
-    np.testing.assert_allclose(means[True], target, rtol=0, atol=1e-4)
-
-
-def test_bias_correction_leaves_shared_bias_alone(through_loader):
-    model = through_loader(_gemm_tanh_gemm(shared=True))
-    pristine = model.SerializeToString()
-    sites = find_sites(model)
-    assert [s.function for s in sites] == ["tanh"]
-    ds = in_memory({"x": (2 * np.random.default_rng(2).normal(size=(256, 4))).astype(np.float32)})
-    plan = make_plan(model, sites, fold="off", to="relu")
-    result = cal.calibrate(model, sites, plan, ds, reservoir=16)
-    assert result.sites[0].bias_corrected == ["g2"]
-    assert model.SerializeToString() == pristine  # calibrate never mutates its input
-    index = GraphIndex.of(result.model)
-    g2, g3 = index.nodes_by_name["g2"], index.nodes_by_name["g3"]
-    b2 = numpy_helper.to_array(GraphIndex.of(model).initializers["b2"])
-    assert g3.input[2] == "b2" and g2.input[2] != "b2"  # g2 got its own copy
-    np.testing.assert_array_equal(numpy_helper.to_array(index.initializers["b2"]), b2)
-    assert not np.allclose(numpy_helper.to_array(index.initializers[g2.input[2]]), b2)
-    # the other user's output is bit-identical (onnxruntime, same graph path)
-    np.testing.assert_array_equal(_run(result.model, ds, ["z"])["z"], _run(model, ds, ["z"])["z"])
-    candidate = rewrite(result.model, sites, plan).model
-    np.testing.assert_allclose(_run(candidate, ds, ["y"])["y"].mean(axis=0),
-                               _run(model, ds, ["y"])["y"].mean(axis=0), rtol=0, atol=1e-4)
 
 
 # -------------------------------------------------------------- streaming
@@ -462,11 +395,11 @@ def test_site_reading_another_site_output(mode, spy, through_loader):
     else:
         # sequential: what onnxruntime computes at t with the Tanh swapped
         partial = rewrite(result.model, sites, Plan(fold="off", swaps=[plan.by_site()["s1"]])).model
-        np.testing.assert_allclose(seen_t, _run(partial, ds, ["t"])["t"], rtol=1e-5, atol=1e-6)
+        np.testing.assert_allclose(seen_t, run(partial, ds.arrays, ["t"])[0], rtol=1e-5, atol=1e-6)
         # and with both swapped plus the consumer's correction, the output mean is the original's
         candidate = rewrite(result.model, sites, plan).model
-        np.testing.assert_allclose(_run(candidate, ds, ["y"])["y"].mean(axis=0),
-                                   _run(model, ds, ["y"])["y"].mean(axis=0), rtol=0, atol=1e-4)
+        np.testing.assert_allclose(run(candidate, ds.arrays, ["y"])[0].mean(axis=0),
+                                   run(model, ds.arrays, ["y"])[0].mean(axis=0), rtol=0, atol=1e-4)
     assert result.sites[1].bias_corrected == ["g2"]
 
 
@@ -546,92 +479,3 @@ def test_results_do_not_depend_on_the_cache_budget(monkeypatch):
         assert (result.cache["bytes_written"] > 0) == (budget < 1 << 30)
         out[budget] = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
     assert len(set(out.values())) == 1  # spilled or not, the same bytes come back
-
-
-# ------------------------------------------------ bias correction from the mean difference
-@settings(max_examples=30, deadline=None)
-@given(
-    spatial=st.sampled_from([(7,), (6, 5), (5, 7)]),
-    kernel=st.integers(1, 3),
-    stride=st.integers(1, 2),
-    dilation=st.integers(1, 2),
-    pad=st.integers(0, 2),
-    auto_pad=st.sampled_from(["NOTSET", "SAME_UPPER", "SAME_LOWER", "VALID"]),
-    group=st.sampled_from([1, 2]),
-    seed=st.integers(0, 2**16),
-)
-def test_conv_mean_matches_reference_conv(spatial, kernel, stride, dilation, pad, auto_pad, group, seed):
-    rng = np.random.default_rng(seed)
-    d = len(spatial)
-    c_in, c_out = 2 * group, 3 * group
-    attrs = {"kernel_shape": [kernel] * d, "strides": [stride] * d, "dilations": [dilation] * d, "group": group}
-    if auto_pad == "NOTSET":
-        attrs["pads"] = [pad] * (2 * d)
-    else:
-        attrs["auto_pad"] = auto_pad
-    node = helper.make_node("Conv", ["x", "W"], ["y"], **attrs)
-    w = rng.normal(size=(c_out, c_in // group) + (kernel,) * d)
-    x = rng.normal(size=(1, c_in) + spatial)
-    graph = helper.make_graph([node], "conv", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, None)],
-                              [helper.make_tensor_value_info("y", TensorProto.DOUBLE, None)],
-                              initializer=[numpy_helper.from_array(w, "W")])
-    ref_model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
-    # source: ONNX operator spec, Conv (pads / strides / dilations / auto_pad / group), as executed in float64
-    # by onnx.reference.ReferenceEvaluator; the mean over output positions per output channel
-    y = ReferenceEvaluator(ref_model).run(None, {"x": x})[0]
-    want = y.mean(axis=tuple(i for i in range(y.ndim) if i != 1))
-    np.testing.assert_allclose(bias_correction._conv_mean(node, w, x), want, rtol=1e-10, atol=1e-12)
-
-
-@settings(max_examples=20, deadline=None)
-@given(sizes=st.lists(st.integers(0, 7), min_size=1, max_size=5), seed=st.integers(0, 2**16))
-def test_delta_sum_is_the_mean_difference(sizes, seed):
-    rng = np.random.default_rng(seed)
-    s_parts = [rng.normal(size=(n, 3, 2)).astype(np.float32) for n in sizes]
-    t_parts = [(p + 0.01 * rng.normal(size=p.shape)).astype(np.float32) for p in s_parts]
-    delta = bias_correction.DeltaSum()
-    for s, t in zip(s_parts, t_parts):
-        delta.add(s, t)
-    assert delta.n == sum(sizes)
-    if delta.n:
-        # source: numpy reference, float64 mean over samples of the difference
-        want = np.mean(np.concatenate(s_parts).astype(np.float64) - np.concatenate(t_parts), axis=0)
-        np.testing.assert_allclose(delta.mean()[0], want, rtol=1e-9, atol=1e-12)
-
-
-def _conv_pool_conv(pool: str, seed: int = 0) -> onnx.ModelProto:
-    """x[N,2,8,8] -> Conv(W1, b1) -> Tanh -> {Average,Max}Pool 2x2 -> Conv(W2, b2, pads 1) -> y."""
-    rng = np.random.default_rng(seed)
-    inits = [init("W1", rng.normal(size=(4, 2, 3, 3))), init("b1", rng.normal(size=4)),
-             init("W2", rng.normal(size=(3, 4, 3, 3))), init("b2", rng.normal(size=3))]
-    nodes = [helper.make_node("Conv", ["x", "W1", "b1"], ["h"], name="c1", kernel_shape=[3, 3], pads=[1, 1, 1, 1]),
-             helper.make_node("Tanh", ["h"], ["t"], name="tanh"),
-             helper.make_node(pool, ["t"], ["p"], name="pool", kernel_shape=[2, 2], strides=[2, 2]),
-             helper.make_node("Conv", ["p", "W2", "b2"], ["y"], name="c2", kernel_shape=[3, 3], pads=[1, 1, 1, 1])]
-    return float_model(nodes, [("x", ["N", 2, 8, 8])], [("y", ["N", 3, 4, 4])], inits, ir_version=None)
-
-
-@pytest.mark.parametrize("pool", ["AveragePool", "MaxPool"])
-def test_bias_correction_through_pooling_restores_conv_mean(pool, through_loader, monkeypatch):
-    model = through_loader(_conv_pool_conv(pool))
-    sites = find_sites(model)
-    assert [s.function for s in sites] == ["tanh"]
-    ds = in_memory({"x": np.random.default_rng(3).normal(size=(200, 2, 8, 8)).astype(np.float32)})
-    biases = {}
-    for path in ("mean", "per_batch"):
-        with monkeypatch.context() as m:
-            if path == "per_batch":  # no shift sums: every consumer falls back to batch-by-batch runs
-                m.setattr(cal, "DeltaSum", lambda: None)
-            plan = make_plan(model, sites, fold="off", to="relu")
-            result = cal.calibrate(model, sites, plan, ds, reservoir=16, batch_size=48)
-        assert result.sites[0].bias_corrected == ["c2"]
-        biases[path] = numpy_helper.to_array(GraphIndex.of(result.model).initializers["b2"])
-        candidate = rewrite(result.model, sites, plan).model
-        # source: Nagel et al. 2019, bias correction: E[candidate consumer output] = E[original], here per
-        # output channel over samples and positions (float32 tolerance)
-        got = _run(candidate, ds, ["y"])["y"].astype(np.float64).mean(axis=(0, 2, 3))
-        want = _run(model, ds, ["y"])["y"].astype(np.float64).mean(axis=(0, 2, 3))
-        np.testing.assert_allclose(got, want, rtol=0, atol=1e-4)
-    before = numpy_helper.to_array(GraphIndex.of(model).initializers["b2"])
-    assert np.max(np.abs(biases["mean"] - before)) > 1e-3  # a real correction happened
-    np.testing.assert_allclose(biases["mean"], biases["per_batch"], rtol=0, atol=1e-6)

@@ -1,9 +1,10 @@
 """Tests of swapper.calibrate.refit: ridge-toward-prior consumer refit.
 
-References: scikit-learn's Ridge is the reference ridge solver; onnxruntime
-executes the ONNX Conv spec (pads, strides, dilations, auto_pad); the ONNX
-checker validates the returned models; onnxruntime runs original and
-candidate to measure the output error the refit is meant to reduce.
+References: the ONNX checker validates the returned models; onnxruntime runs
+original and candidate to measure the output error the refit is meant to
+reduce; the ridge objective's limit (λ → ∞ gives the prior). The solver itself
+is tested against scikit-learn in tests/calibrate/test_ridge.py, the Conv patch
+matrix against onnxruntime in tests/core/test_conv.py.
 """
 from __future__ import annotations
 
@@ -13,23 +14,11 @@ import tracemalloc
 import numpy as np
 import onnx
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
 from onnx import helper, numpy_helper
-from onnx.reference import ReferenceEvaluator
-from sklearn.linear_model import Ridge
 from testkit import CALIB, DEMO, float_model, in_memory, init, run
 
 from swapper.calibrate.loop import calibrate
 from swapper.calibrate.refit import accumulate_level, refit_consumers
-from swapper.calibrate.ridge import (
-    FoldedGram,
-    GramAccumulator,
-    RidgePath,
-    choose_ridge,
-    ridge_toward_prior,
-)
-from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
 from swapper.data.dataset import replicate
 from swapper.plan.layers import find_consumers
@@ -67,15 +56,15 @@ def mlp(consumer="gemm", k=6, h=16, m=5, seed=0):
     return _model(nodes, inits, ("N", k))
 
 
-def conv_chain(c_in=2, ch=6, seed=0, group2=1):
+def conv_chain(c_in=2, ch=6, seed=0):
     """X[N, c_in, 7, 7] -> Conv -> SiLU (x·Sigmoid(x)) -> Conv(pads=1) -> Y."""
     rng = np.random.default_rng(seed)
     inits = [init("W1", rng.normal(size=(ch, c_in, 3, 3)) * 0.5), init("B1", rng.normal(size=ch) * 0.3),
-             init("W2", rng.normal(size=(4, ch // group2, 3, 3)) * 0.3), init("B2", rng.normal(size=4) * 0.1)]
+             init("W2", rng.normal(size=(4, ch, 3, 3)) * 0.3), init("B2", rng.normal(size=4) * 0.1)]
     nodes = [helper.make_node("Conv", ["X", "W1", "B1"], ["h"], name="conv1", pads=[1, 1, 1, 1]),
              helper.make_node("Sigmoid", ["h"], ["s"], name="sig"),
              helper.make_node("Mul", ["h", "s"], ["a"], name="mul"),
-             helper.make_node("Conv", ["a", "W2", "B2"], ["Y"], name="conv2", pads=[1, 1, 1, 1], group=group2)]
+             helper.make_node("Conv", ["a", "W2", "B2"], ["Y"], name="conv2", pads=[1, 1, 1, 1])]
     return _model(nodes, inits, ("N", c_in, 7, 7))
 
 
@@ -94,105 +83,6 @@ def _poor_plan(model, to, seed=0):
 
 def _node_inputs(model, node_name):
     return list(GraphIndex.of(model).nodes_by_name[node_name].input)
-
-
-# ---------------------------------------------------- the solve (vs sklearn)
-@settings(max_examples=25, deadline=None)
-@given(n=st.integers(3, 60), p=st.integers(1, 8), k=st.integers(1, 4),
-       log_lam=st.floats(-3.0, 3.0), seed=st.integers(0, 2**16))
-def test_ridge_toward_prior_matches_sklearn(n, p, k, log_lam, seed):
-    rng = np.random.default_rng(seed)
-    X, Y, prior = rng.normal(size=(n, p)), rng.normal(size=(n, k)), rng.normal(size=(p, k))
-    lam = 10.0 ** log_lam
-    acc = GramAccumulator(p)
-    for s in range(0, n, 7):  # fed in batches, as the refit does
-        acc.update(X[s:s + 7], Y[s:s + 7])
-    got = ridge_toward_prior(acc, lam, prior)
-    # source: scikit-learn Ridge (alpha=λ, fit_intercept=False) minimises ||y - Xw||² + α||w||²;
-    # substituting w = β − β_prior turns the prior-centred penalty into that problem.
-    coef = Ridge(alpha=lam, fit_intercept=False, solver="cholesky").fit(X, Y - X @ prior).coef_
-    ref = np.reshape(coef, (k, p)).T + prior  # coef_ is (k, p), or (p,) for a single column
-    np.testing.assert_allclose(got, ref, rtol=1e-6, atol=1e-8)
-
-
-@settings(max_examples=15, deadline=None)
-@given(n=st.integers(2, 40), p=st.integers(1, 10), log_lam=st.floats(-4.0, 4.0), seed=st.integers(0, 2**16))
-def test_ridge_path_equals_direct_solve(n, p, log_lam, seed):
-    rng = np.random.default_rng(seed)
-    X, Y, prior = rng.normal(size=(n, p)), rng.normal(size=(n, 3)), rng.normal(size=(p, 3))
-    acc = GramAccumulator(p)
-    acc.update(X, Y)
-    lam = 10.0 ** log_lam
-    # source: the eigendecomposition identity (QΛQᵀ + λI)⁻¹ = Q(Λ + λI)⁻¹Qᵀ, checked against a direct
-    # numpy.linalg.solve of the normal equations (n < p included: XᵀX singular)
-    direct = np.linalg.solve(acc.xtx + lam * np.eye(p), acc.xty + lam * prior)
-    np.testing.assert_allclose(RidgePath(acc).solve(lam, prior), direct, rtol=1e-6, atol=1e-8)
-
-
-def test_huge_lambda_returns_prior_tiny_lambda_least_squares():
-    rng = np.random.default_rng(3)
-    X, Y, prior = rng.normal(size=(50, 4)), rng.normal(size=(50, 2)), rng.normal(size=(4, 2))
-    acc = GramAccumulator(4)
-    acc.update(X, Y)
-    # source: the ridge objective; as λ → ∞ the penalty dominates and β → β_prior
-    np.testing.assert_allclose(ridge_toward_prior(acc, 1e12, prior), prior, atol=1e-9)
-    # source: numpy.linalg.lstsq (λ → 0 recovers ordinary least squares for a full-rank X)
-    np.testing.assert_allclose(ridge_toward_prior(acc, 1e-10, prior), np.linalg.lstsq(X, Y, rcond=None)[0],
-                               atol=1e-8)
-
-
-def test_cv_picks_regularisation_on_an_underdetermined_problem():
-    # 30 rows, 40 features, true weights = prior + small noise: plain least squares overfits, so the
-    # held-out error must pick a large λ (common practice, no source: ridge helps when p > n).
-    rng = np.random.default_rng(5)
-    X = rng.normal(size=(30, 40))
-    prior = rng.normal(size=(41, 3))
-    true = prior + 0.01 * rng.normal(size=prior.shape)
-    Y = np.hstack([X, np.ones((30, 1))]) @ true + 0.05 * rng.normal(size=(30, 3))
-    gram = FoldedGram(4, 40)
-    gram.update(X, Y, np.arange(30) % 4)
-    choice = choose_ridge(gram, prior, prior + 0.5, factors=(1e-8, 1e-2, 1.0, 100.0))
-    assert choice.factor >= 1.0 and choice.accepted
-    assert np.abs(choice.theta - true).max() < np.abs(prior + 0.5 - true).max()
-
-
-# --------------------------------------------------- im2col (vs onnxruntime)
-@settings(max_examples=30, deadline=None)
-@given(data=st.data())
-def test_im2col_conv_matches_onnxruntime(data):
-    d = data.draw(st.sampled_from([1, 2, 3]), label="spatial dims")
-    c = data.draw(st.integers(1, 3))
-    m = data.draw(st.integers(1, 4))
-    kernel = [data.draw(st.integers(1, 3)) for _ in range(d)]
-    strides = [data.draw(st.integers(1, 3)) for _ in range(d)]
-    dilations = [data.draw(st.integers(1, 2)) for _ in range(d)]
-    auto_pad = data.draw(st.sampled_from(["NOTSET", "VALID", "SAME_UPPER", "SAME_LOWER"]))
-    pads = [data.draw(st.integers(0, 2)) for _ in range(2 * d)]
-    size = 5 if d == 3 else 8
-    spatial = [data.draw(st.integers(max(size - 3, (k - 1) * dl + 1), size)) for k, dl in zip(kernel, dilations)]
-    rng = np.random.default_rng(data.draw(st.integers(0, 2**16)))
-    x = rng.normal(size=[2, c] + spatial).astype(np.float32)
-    w = rng.normal(size=[m, c] + kernel).astype(np.float32)
-    b = rng.normal(size=m).astype(np.float32)
-    attrs = dict(kernel_shape=kernel, strides=strides, dilations=dilations)
-    if auto_pad == "NOTSET":
-        attrs["pads"] = pads
-    else:
-        attrs["auto_pad"] = auto_pad
-    node = helper.make_node("Conv", ["X", "W", "B"], ["Y"], name="conv", **attrs)
-    model = float_model([node], [("X", None)], [("Y", None)], [init("W", w), init("B", b)])
-    # source: ONNX operator spec, Conv (pads/strides/dilations/auto_pad), executed by onnxruntime;
-    # onnxruntime refuses dilation with SAME_* padding, so there onnx.reference.ReferenceEvaluator runs it
-    if auto_pad.startswith("SAME") and max(dilations) > 1:
-        ref = ReferenceEvaluator(model).run(None, {"X": x})[0].astype(np.float64)
-    else:
-        ref = run(model, {"X": x})[0].astype(np.float64)
-    begin, end, s, dl, out = conv_geometry(node, tuple(kernel), tuple(spatial))
-    assert list(ref.shape[2:]) == out
-    rows = im2col(x.astype(np.float64), kernel, s, dl, begin, end)
-    got = rows @ w.reshape(m, -1).T.astype(np.float64) + b
-    got = np.moveaxis(got.reshape([2] + out + [m]), -1, 1)
-    np.testing.assert_allclose(got, ref, rtol=1e-4, atol=1e-4)
 
 
 # ------------------------------------------------------ refits reduce error
@@ -308,13 +198,6 @@ def test_keeps_current_weights_when_refit_does_not_help_held_out():
                                   GraphIndex.of(base).const(_node_inputs(base, "fc2")[1]))
     notes = " ".join(calibration.sites[0].notes)
     assert "kept current weights" in notes, notes
-
-
-def test_grouped_conv_is_skipped_with_a_note():
-    model = conv_chain(group2=2)
-    sites = find_sites(model)
-    found, notes = find_consumers(GraphIndex.of(model), sites[0], set())
-    assert found == [] and any("grouped" in n for n in notes)
 
 
 # ----------------------------------------------------------------- memory

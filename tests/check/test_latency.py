@@ -10,7 +10,6 @@ import statistics
 
 import numpy as np
 import onnx
-import onnxruntime as ort
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -25,7 +24,6 @@ from swapper.check.latency import (
     time_interleaved,
 )
 from swapper.check.size import model_summary, serialized_size
-from swapper.core.session import OPTIMIZATION_LEVELS, session_options
 from swapper.errors import BadDataError, BadModelError, UsageError
 
 
@@ -124,22 +122,6 @@ def test_stats_match_python_statistics(durations_ns):
     assert stats.p90_ms == pytest.approx(deciles[-1], rel=1e-9)
     assert stats.p10_ms <= stats.median_ms <= stats.p90_ms
     assert stats.runs == len(durations_ns)
-
-
-def test_session_options_mapping():
-    # source: onnxruntime Python API, GraphOptimizationLevel enum names
-    expected = {
-        "all": ort.GraphOptimizationLevel.ORT_ENABLE_ALL,
-        "extended": ort.GraphOptimizationLevel.ORT_ENABLE_EXTENDED,
-        "basic": ort.GraphOptimizationLevel.ORT_ENABLE_BASIC,
-        "disabled": ort.GraphOptimizationLevel.ORT_DISABLE_ALL,
-    }
-    assert OPTIMIZATION_LEVELS == expected
-    for name, level in expected.items():
-        options = session_options(2, name)
-        assert options.graph_optimization_level == level
-        assert options.intra_op_num_threads == 2
-        assert options.inter_op_num_threads == 1
 
 
 @pytest.mark.parametrize("level", ["extended", "basic", "disabled"])

@@ -1,7 +1,6 @@
 """Checks of swapper.check.stats against reference implementations and published formulas."""
 from __future__ import annotations
 
-import json
 import math
 
 import numpy as np
@@ -19,7 +18,6 @@ from statsmodels.stats.contingency_tables import mcnemar
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
 from swapper.check import stats
-from swapper.core.jsonable import json_safe
 
 
 def _paired(n_both: int, n01: int, n10: int, n_neither: int, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
@@ -320,12 +318,3 @@ def test_regression_errors_match_sklearn(seed, n, split):
     acc.update(pred[split:], targ[split:])
     assert acc.compute()["rmse"] == pytest.approx(got["rmse"])
 
-
-def test_json_safe_replaces_non_finite_with_null_and_notes():
-    notes: list[str] = []
-    out = json_safe({"b": np.float32(1.5), "a": [np.int64(3), math.inf, float("nan")],
-                           "c": np.bool_(True), "d": np.arange(2)}, notes, "x")
-    # RFC 8259 JSON has no Infinity/NaN; allow_nan=False makes json.dumps enforce it
-    text = json.dumps(out, allow_nan=False)
-    assert json.loads(text) == {"a": [3, None, None], "b": 1.5, "c": True, "d": [0, 1]}
-    assert notes == ["x.a[1]: +inf written as null", "x.a[2]: NaN written as null"]

@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
-from sklearn.linear_model import LinearRegression, Ridge
+from sklearn.linear_model import LinearRegression
 from testkit import (
     dhard_swish,
     dhard_tanh,
@@ -27,7 +27,6 @@ from testkit import (
     wmse,
 )
 
-from swapper.calibrate.ridge import GramAccumulator
 from swapper.errors import BadDataError
 from swapper.fit.channel import fit_channel, outer_fit, starting_params
 from swapper.fit.observe import ChannelObserver
@@ -392,43 +391,6 @@ def test_observer_merge_equals_single_stream():
     xs, ys = a.samples(0)
     assert np.isin(xs.astype(np.float32), X[0].astype(np.float32)).all()
     np.testing.assert_allclose(ys, xs**2, rtol=1e-6)
-
-
-# -- Gram accumulator ---------------------------------------------------------
-def test_gram_solve_matches_ridge_and_lstsq():
-    rng = np.random.default_rng(12)
-    X = rng.normal(size=(300, 4))
-    y = X @ np.array([1.0, -2.0, 0.5, 3.0]) + rng.normal(scale=0.1, size=300)
-    acc = GramAccumulator(4)
-    for part in np.array_split(np.arange(300), 7):
-        acc.update(X[part], y[part])
-    assert acc.n == 300
-    # source: reference implementation, numpy.linalg.lstsq
-    np.testing.assert_allclose(acc.solve(), np.linalg.lstsq(X, y, rcond=None)[0], rtol=1e-9)
-    prior = np.array([0.5, -1.0, 0.0, 2.0])
-    for lam in (0.1, 10.0, 1000.0):
-        # source: scikit-learn Ridge: argmin ||y' - X v||^2 + alpha ||v||^2 on y' = y - X prior, beta = v + prior
-        ridge = Ridge(alpha=lam, fit_intercept=False, solver="svd").fit(X, y - X @ prior)
-        np.testing.assert_allclose(acc.solve(lam, prior), ridge.coef_ + prior, rtol=1e-8, atol=1e-10)
-    beta = acc.solve()
-    np.testing.assert_allclose(acc.sse(beta), np.sum((X @ beta - y) ** 2), rtol=1e-8)
-
-
-def test_gram_rank_deficient_multi_output_and_weights():
-    rng = np.random.default_rng(13)
-    Z = rng.normal(size=(200, 2))
-    X = np.column_stack([Z, Z[:, 0] + Z[:, 1]])  # rank 2 of 3
-    Y = rng.normal(size=(200, 3))
-    w = rng.uniform(0.5, 2.0, size=200)
-    acc = GramAccumulator(3)
-    acc.update(X[:120], Y[:120], weights=w[:120])
-    other = GramAccumulator(3)
-    other.update(X[120:], Y[120:], weights=w[120:])
-    acc.merge(other)
-    sw = np.sqrt(w)[:, None]
-    # source: numpy.linalg.lstsq returns the minimum-norm solution of the weighted problem
-    np.testing.assert_allclose(acc.solve(), np.linalg.lstsq(X * sw, Y * sw, rcond=None)[0], atol=1e-8)
-    assert np.isfinite(acc.solve()).all()
 
 
 # -- starting values ----------------------------------------------------------

@@ -1,4 +1,4 @@
-"""Folding and bias correction *through* pools, reshapes and gates.
+"""Folding *through* pools, reshapes and gates (swapper.rewrite.apply with the placements of swapper.plan).
 
 References: onnxruntime and ``onnx.reference.ReferenceEvaluator`` execute the
 ONNX operator spec; a folded graph must give the same outputs as the same
@@ -7,9 +7,9 @@ are the operator definitions: MaxPool takes a max over the window (pads count
 as -inf), so max(a·x) = a·max(x) needs a >= 0 and max(x + d) = max(x) + d;
 AveragePool is linear, and divides by the window size including pads when
 count_include_pad = 1 (so + d does not pass then); Flatten/Reshape are
-row-major (numpy semantics). Bias correction follows Nagel et al. 2019
-(Data-Free Quantization, bias correction: after it E[candidate layer output]
-= E[original layer output] on the calibration data).
+row-major (numpy semantics). Bias correction through the same tails is tested
+in tests/calibrate/test_bias_correction.py, the channel mapping through
+reshapes in tests/plan/test_layers.py.
 """
 from __future__ import annotations
 
@@ -18,20 +18,16 @@ import dataclasses
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
-from hypothesis import strategies as st
 from onnx import helper
 from onnx.reference import ReferenceEvaluator
-from testkit import DEMO, OPSET, VAL, conv_tanh, in_memory, init
+from testkit import DEMO, OPSET, VAL, conv_tanh, init
 
-import swapper.calibrate.loop as cal
 from swapper import functions
 from swapper.core.emit import Emitter
 from swapper.core.model_io import load_model
-from swapper.core.session import expose, open_session
+from swapper.core.session import open_session
 from swapper.errors import UsageError
 from swapper.functions.params import PARAMS
-from swapper.plan.layers import channel_after_reshape
 from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
@@ -243,103 +239,6 @@ def test_plan_must_say_consumers_plus_behind_a_max_pool(through_loader):
     bad.swaps[0].placement["d"] = "consumers+"  # only a can carry the sign condition
     with pytest.raises(UsageError, match="invalid placement"):
         rewrite(model, sites, bad)
-
-
-# ------------------------------------------------- reshape channel mapping
-@st.composite
-def _reshapes(draw):
-    rank = draw(st.integers(2, 4))
-    before = tuple(draw(st.lists(st.integers(1, 4), min_size=rank, max_size=rank)))
-    axis = draw(st.integers(0, rank - 1))
-    # a random regrouping of the flat size into factors: a plausible reshape target
-    total, after = int(np.prod(before)), []
-    rest = total
-    while rest > 1 and len(after) < 4:
-        divisors = [d for d in range(2, rest + 1) if rest % d == 0]
-        d = draw(st.sampled_from(divisors + [rest]))
-        after.append(d)
-        rest //= d
-    after += [1] * draw(st.integers(0, 2))
-    after = draw(st.permutations(after + [rest] if rest > 1 else after)) or [1]
-    return before, axis, tuple(after)
-
-
-@settings(max_examples=150, deadline=None)
-@given(_reshapes())
-def test_channel_after_reshape_matches_numpy_row_major(case):
-    before, axis, after = case
-    channels = before[axis]
-    shape = [1] * len(before)
-    shape[axis] = channels
-    tagged = np.broadcast_to(np.arange(channels).reshape(shape), before).reshape(after)
-    # source: ONNX Reshape/Flatten are row-major, as numpy.reshape (operator spec)
-    keeps = [k for k, dim in enumerate(after) if dim == channels and np.array_equal(
-        tagged, np.broadcast_to(np.arange(channels).reshape([-1 if j == k else 1 for j in range(len(after))]), after))]
-    got = channel_after_reshape(before, after, axis, channels)
-    if channels == 1:
-        return  # one channel: any size-1 axis would do; nothing to map
-    assert (got is not None) == bool(keeps)
-    if got is not None:
-        assert got in keeps
-
-
-def test_channel_after_reshape_with_a_symbolic_batch():
-    # [N, C, 1, 1] -> [N, C] (Flatten after a global pool) keeps the channels on axis 1
-    assert channel_after_reshape(("N", 8, 1, 1), (None, 8), 1, 8) == 1
-    assert channel_after_reshape(("N", 8, 2, 2), ("N", 32), 1, 8) is None
-    assert channel_after_reshape(("N", 8, "H", 1), ("N", 8, "H"), 1, 8) == 1  # same dims before it
-    assert channel_after_reshape(("N", 8, "H", 1), (None, 8, None), 1, 8) is None  # nothing to compare
-
-
-# ----------------------------------------------------------- bias correction
-POOLS = {"maxpool": dict(op_type="MaxPool", kernel_shape=[2, 2], strides=[2, 2]),
-         "avgpool": dict(op_type="AveragePool", kernel_shape=[3, 3], pads=[1] * 4, count_include_pad=1)}
-
-
-@pytest.mark.parametrize("case, layer", [("maxpool_padded_conv", "c2"), ("avgpool_padded_conv", "c2"),
-                                         ("direct_padded_conv", "c2"), ("gap_flatten_gemm", "fc"),
-                                         ("gmp_reshape_matmul", "mm")])
-def test_bias_correction_reaches_layers_behind_pools(case, layer, through_loader):
-    if case.endswith("padded_conv"):
-        pool = case.split("_")[0]
-        nodes, inits = _conv2("p" if pool in POOLS else "y", pads=1)  # d cannot fold: a mean shift is left
-        if pool in POOLS:
-            nodes = [helper.make_node(inputs=["y"], outputs=["p"], name="pool", **POOLS[pool])] + nodes
-        built = (nodes, inits, ["Y"], ())
-    else:
-        built = {"gap_flatten_gemm": _gap_flatten_gemm, "gmp_reshape_matmul": _gap_reshape_matmul}[case]()
-    model = through_loader(conv_tanh(*built[:3], extra_inputs=built[3]))
-    sites = find_sites(model)
-    x = (1.5 * np.random.default_rng(3).normal(size=(300, 3, 6, 6))).astype(np.float32)
-    ds = in_memory({"X": x})
-    means = {}
-    for corrected in (False, True):
-        plan = make_plan(model, sites, to="relu", fold="off")
-        result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
-        assert result.sites[0].bias_corrected == ([layer] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
-        means[corrected] = open_session(expose(candidate, ["Y"])).run(["Y"], {"X": x})[0]
-    target = open_session(model).run(["Y"], {"X": x})[0]
-    reduce = tuple(i for i in range(target.ndim) if i != 1)  # per output channel (axis 1 for Conv and Gemm)
-    before = means[False].astype(np.float64).mean(axis=reduce)
-    after = means[True].astype(np.float64).mean(axis=reduce)
-    want = target.astype(np.float64).mean(axis=reduce)
-    # source: Nagel et al. 2019, bias correction: E[candidate output] = E[original output] afterwards
-    assert np.max(np.abs(before - want)) > 1e-3  # there was a shift to remove
-    np.testing.assert_allclose(after, want, rtol=0, atol=2e-4)
-
-
-def test_bias_correction_stops_at_a_gate_with_a_note(through_loader):
-    nodes, inits, outs, extra = _gate()
-    model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
-    sites = find_sites(model)
-    rng = np.random.default_rng(4)
-    ds = in_memory({"X": rng.normal(size=(64, 3, 6, 6)).astype(np.float32),
-                    "S": rng.uniform(size=(64, C, 1, 1)).astype(np.float32)})
-    plan = make_plan(model, sites, to="relu", fold="off", site_ids=["s1"])
-    result = cal.calibrate(model, sites, plan, ds, reservoir=16)
-    assert result.sites[0].bias_corrected == []
-    assert any("Mul" in n and "gate" in n for n in result.sites[0].notes)
 
 
 # ------------------------------------------------------------ the demo CNN
