@@ -11,7 +11,8 @@ from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
 from testkit import CALIB, DEMO, VAL, run
 
-from swapper.bench.markdown import COST_COLUMNS, _cost
+from swapper.bench.markdown import COST_COLUMNS, write_markdown
+from swapper.bench.measure import RUNGS
 from swapper.bench.memory import memory_ratios
 from swapper.bench.scale_model import INPUT_NAME, build_scale_model, scale_inputs
 from swapper.scan.sites import find_sites
@@ -131,20 +132,37 @@ def _model_entry(name: str, families: list[dict], factors: list[int]) -> dict:
     return {"name": name, "synthetic": False, "families": families, "memory": memory}
 
 
-def test_cost_table_shows_dashes_for_a_family_without_cost():
+def _family(name: str, cost: dict | None) -> dict:
+    """A results.json family entry: no rung of its ladder measured, no speed rows, the given tool cost."""
+    ladder = {"metric": "top1", "original": None, **{r: None for r in RUNGS}, "delta_pp": {r: None for r in RUNGS}}
+    return {"family": name, "ladder": ladder, "speed": {}, "cost": cost}
+
+
+def _tool_cost_section(folder: Path, models: list[dict]) -> list[str]:
+    """The "## Tool cost" section of the results.md that write_markdown writes for ``models``."""
+    results = {"created_utc": "20240101T000000Z", "models": models,
+               "machine": {"cpu": "cpu", "cores": 1, "python": "3", "onnxruntime": "1", "numpy": "1"},
+               "settings": {"command": "swapper bench m.onnx", "quick": False}}
+    lines = write_markdown(results, folder / "results.md").read_text(encoding="utf-8").splitlines()
+    start = lines.index("## Tool cost")
+    end = next((i for i in range(start + 1, len(lines)) if lines[i].startswith("## ")), len(lines))
+    return lines[start:end]
+
+
+def test_cost_table_shows_dashes_for_a_family_without_cost(tmp_path):
     # a family whose ladder left no sequential + bias candidate has "cost": null (swapper/bench/run.py docstring)
-    model = _model_entry("m", [{"family": "relu", "cost": None}], [1, 2])
-    lines = _cost({"models": [model]})
+    model = _model_entry("m", [_family("relu", cost=None)], [1, 2])
+    lines = _tool_cost_section(tmp_path, [model])
     row = next(line for line in lines if line.startswith("| m | relu |"))
     assert row.count("–") == len(COST_COLUMNS)
 
 
-def test_memory_table_skips_a_model_with_nothing_to_swap():
+def test_memory_table_skips_a_model_with_nothing_to_swap(tmp_path):
     # a model with nothing to swap has "memory": {"factors": [], ...}; listed first, it must not break the table
     skipped = _model_entry("nothing", [], [])
     measured = _model_entry("m", [], [1, 4])
-    lines = _cost({"models": [skipped, measured]})
+    lines = _tool_cost_section(tmp_path, [skipped, measured])
     assert any(line.startswith("| model | 1× ") and "mem 4×/1×" in line for line in lines)
     assert any(line.startswith("| m | 10: +2.0 MiB") for line in lines)
     assert not any(line.startswith("| nothing |") for line in lines)
-    assert not [line for line in _cost({"models": [skipped]}) if "MiB" in line or "×/1×" in line]
+    assert not [line for line in _tool_cost_section(tmp_path, [skipped]) if "MiB" in line or "×/1×" in line]
