@@ -24,9 +24,10 @@ from testkit import OPSET, conv_tanh, float_model, in_memory, init, run
 import swapper.calibrate.bias_correction as bias_correction
 import swapper.calibrate.loop as cal
 from swapper.core.graph import GraphIndex
+from swapper.core.tensor_cache import TensorCache
 from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
-from swapper.scan.sites import find_sites
+from swapper.scan.sites import Site, find_sites
 
 C = 4  # channels of the Tanh site of testkit.conv_tanh
 
@@ -254,15 +255,38 @@ def test_conv_mean_matches_reference_conv(spatial, kernel, stride, dilation, pad
         attrs["pads"] = [pad] * (2 * d)
     else:
         attrs["auto_pad"] = auto_pad
-    node = helper.make_node("Conv", ["x", "W"], ["y"], **attrs)
     w = rng.normal(size=(c_out, c_in // group) + (kernel,) * d)
     x = rng.normal(size=(1, c_in) + spatial)
-    graph = helper.make_graph([node], "conv", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, None)],
+    # the Conv as the linear consumer of a Tanh site, in float64 with a zero bias
+    nodes = [helper.make_node("Tanh", ["u"], ["t"], name="tanh"),
+             helper.make_node("Conv", ["t", "W", "B"], ["y"], name="conv", **attrs)]
+    graph = helper.make_graph(nodes, "conv", [helper.make_tensor_value_info("u", TensorProto.DOUBLE, None)],
                               [helper.make_tensor_value_info("y", TensorProto.DOUBLE, None)],
-                              initializer=[numpy_helper.from_array(w, "W")])
-    ref_model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
+                              initializer=[init("W", w, np.float64), init("B", np.zeros(c_out), np.float64)])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
+    site = Site(id="s1", function="tanh", params={}, input="u", output="t", nodes=("tanh",), form="op",
+                shape=x.shape, channel_axis=1, channels=c_in, producer=None, consumers=("Conv",), role="pointwise",
+                elements=None, cost=0.0, cost_share=0.0)
+    # one recorded sample, student x and teacher 0: the mean change at the site output is x itself, so the
+    # corrected bias is 0 − (mean over output positions of the bias-free Conv of x), per output channel
+    with TensorCache() as cache:
+        cache.append("student", x)
+        cache.append("teacher", np.zeros_like(x))
+        delta = bias_correction.DeltaSum()
+        delta.add(x, np.zeros_like(x))
+        corrected, notes = bias_correction.correct_bias(model, site, cache, "student", "teacher",
+                                                        in_memory({"u": x}), 1, delta)
+    assert corrected == ["conv"], notes
+    index = GraphIndex.of(model)
+    got = -index.const(index.nodes_by_name["conv"].input[2])
     # source: ONNX operator spec, Conv (pads / strides / dilations / auto_pad / group), as executed in float64
     # by onnx.reference.ReferenceEvaluator; the mean over output positions per output channel
+    conv = helper.make_node("Conv", ["x", "W"], ["y"], **attrs)
+    ref_model = helper.make_model(
+        helper.make_graph([conv], "conv", [helper.make_tensor_value_info("x", TensorProto.DOUBLE, None)],
+                          [helper.make_tensor_value_info("y", TensorProto.DOUBLE, None)],
+                          initializer=[init("W", w, np.float64)]),
+        opset_imports=[helper.make_opsetid("", OPSET)])
     y = ReferenceEvaluator(ref_model).run(None, {"x": x})[0]
     want = y.mean(axis=tuple(i for i in range(y.ndim) if i != 1))
-    np.testing.assert_allclose(bias_correction._conv_mean(node, w, x), want, rtol=1e-10, atol=1e-12)
+    np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)

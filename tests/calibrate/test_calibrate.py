@@ -11,6 +11,7 @@ output shift E[W·(x̃ − x)] from the layer's bias).
 from __future__ import annotations
 
 import copy
+from contextlib import contextmanager
 
 import numpy as np
 import onnx
@@ -20,7 +21,7 @@ from hypothesis import strategies as st
 from onnx import helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
-from testkit import CALIB, CHEAP, DEMO, VAL, float_model, in_memory, init, run
+from testkit import CALIB, CHEAP, DEMO, VAL, float_model, held_arrays, in_memory, init, run
 
 import swapper.calibrate.loop as cal
 from swapper import api
@@ -30,6 +31,7 @@ from swapper.core.session import open_session
 from swapper.core.tensor_cache import TensorCache
 from swapper.data.dataset import batches, replicate, subset
 from swapper.plan.plan import Plan, SiteSwap, make_plan
+from swapper.progress import Silent
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
 
@@ -50,15 +52,15 @@ def _demo(name: str):
 
 @pytest.fixture
 def spy(monkeypatch):
-    """Record, per site id, every x an observer is fed and its reservoir size after each update;
-    and every TensorCache calibrate opens with the names appended to it."""
-    seen = {"x": {}, "held": {}, "res_bytes": {}, "observers": {}, "caches": []}
+    """Record, per site id, every x an observer is fed, its reservoir size and the bytes of every array it
+    keeps after each update; and every TensorCache calibrate opens with the names appended to it."""
+    seen = {"x": {}, "held": {}, "held_bytes": {}, "observers": {}, "caches": []}
     real = cal.observer_for
 
     def observer(swap, seed, reservoir):
         obs = real(swap, seed, reservoir)
         sid = swap.site_id
-        seen["x"][sid], seen["held"][sid], seen["res_bytes"][sid] = [], [], []
+        seen["x"][sid], seen["held"][sid], seen["held_bytes"][sid] = [], [], []
         seen["observers"][sid] = obs
         update = obs.update
 
@@ -66,7 +68,7 @@ def spy(monkeypatch):
             seen["x"][sid].append(np.array(x, copy=True))
             update(x, y)
             seen["held"][sid].append(obs.held)
-            seen["res_bytes"][sid].append(obs._res.nbytes)
+            seen["held_bytes"][sid].append(sum(a.nbytes for a in held_arrays(obs)))
 
         obs.update = recording_update
         return obs
@@ -327,7 +329,7 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
     loaded, calib = _demo("meter_cnn_silu")
     sites = find_sites(loaded.model)
     reservoir = 1024
-    held, res_bytes = {}, {}
+    held, held_bytes = {}, {}
     for times in (1, 8):
         big = replicate(calib, times)
         plan = make_plan(loaded.model, sites)
@@ -338,14 +340,14 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
         cache = spy["caches"][-1]
         assert cache.names and all(r == big.n for r in cache.final_rows().values())
         held[times] = {sid: max(h) for sid, h in spy["held"].items()}
-        res_bytes[times] = {sid: max(b) for sid, b in spy["res_bytes"].items()}
+        held_bytes[times] = {sid: max(b) for sid, b in spy["held_bytes"].items()}
         shapes = {s.id: s.shape for s in sites}
         for sid, obs in spy["observers"].items():  # every position of every sample was observed
             assert obs.n == big.n * int(np.prod(shapes[sid][2:]))
     # common practice, no source: a streaming observer holds at most `reservoir` pairs per channel,
     # so 8x the data must not grow what it holds (256 x 64 positions already exceeds the reservoir)
     assert held[1] == held[8] and all(v == reservoir for v in held[8].values())
-    assert res_bytes[1] == res_bytes[8]
+    assert held_bytes[1] == held_bytes[8]
 
 
 # ------------------------------------------------------------ determinism
@@ -424,20 +426,59 @@ def test_site_reading_a_graph_input(mode, spy, through_loader):
 
 
 # ------------------------------------------------ schedule, discards, cache budget
-def test_schedule_last_reads_hand_built(through_loader):
+class _Tasks(Silent):
+    """A progress reporter that remembers which task is running ("level 2: recording original", ...)."""
+
+    def __init__(self):
+        self.names: list[str] = []
+
+    @contextmanager
+    def task(self, description, total):
+        self.names.append(description)
+        with super().task(description, total) as advance:
+            yield advance
+
+
+def test_schedule_last_reads_hand_built(through_loader, monkeypatch):
     # _chain with all three swapped (levels 1, 2, 3), worked out by hand from the drawing: each level
     # runs the original from the previous site output (its teacher value) to this site's output, and
-    # the swapped model from the previous swapped output to this site's input
+    # the swapped model from the previous swapped output to this site's input; a recorded tensor is
+    # dropped as soon as the last level that reads it is done
     model = through_loader(_chain())
     sites = find_sites(model)
-    by_id = {s.id: s for s in sites}
-    index = GraphIndex.of(model)
-    levels = cal.site_levels(index, sites, {"s1", "s2", "s3"})
-    sched = cal._schedule(index, by_id, levels)
-    assert sched.last == {"x": 1, "teacher::t1": 2, "t1": 2, "m1": 2,
-                          "teacher::s1": 3, "s1": 3, "m2": 3, "teacher::t2": 3, "t2": 3}
-    assert sched.original[2].feed == {"t1": "teacher::t1"} and sched.swapped[2].feed == {"t1": "t1"}
-    assert sched.swapped[3].outputs == ["m2"] and 1 not in sched.swapped
+    tasks = _Tasks()
+    events = []  # (what, cache key, the task running)
+
+    class RecordingCache(TensorCache):
+        def append(self, name, array, **kw):
+            events.append(("append", name, tasks.names[-1]))
+            super().append(name, array, **kw)
+
+        def read(self, name, start, stop):
+            events.append(("read", name, tasks.names[-1]))
+            return super().read(name, start, stop)
+
+        def discard(self, name):
+            events.append(("discard", name, tasks.names[-1]))
+            super().discard(name)
+
+    monkeypatch.setattr(cal, "TensorCache", RecordingCache)
+    plan = make_plan(model, sites)
+    assert cal.site_levels(GraphIndex.of(model), sites, set(plan.by_site())) == {"s1": 1, "s2": 2, "s3": 3}
+    x = np.random.default_rng(0).normal(size=(20, 4)).astype(np.float32)
+    cal.calibrate(model, sites, plan, in_memory({"x": x}), batch_size=8, progress=tasks)
+
+    def keys(what, task):
+        return {key for w, key, t in events if w == what and t == task}
+
+    # discarded after the last level that reads them ("level N: ..." is the task of level N)
+    discarded = {key: int(task.split(":")[0].split()[1]) for what, key, task in events if what == "discard"}
+    assert discarded == {"x": 1, "teacher::t1": 2, "t1": 2, "m1": 2,
+                         "teacher::s1": 3, "s1": 3, "m2": 3, "teacher::t2": 3, "t2": 3}
+    assert keys("read", "level 2: recording original") == {"teacher::t1"}  # the original from t1's teacher value
+    assert keys("read", "level 2: running segment") == {"t1"}  # the swapped model from the swapped t1
+    assert keys("append", "level 3: running segment") == {"m2"}
+    assert "level 1: running segment" not in tasks.names  # level 1 reads the original's own inputs
 
 
 def _small_scale(blocks: int):
