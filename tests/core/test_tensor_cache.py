@@ -74,8 +74,9 @@ def test_cache_footprint_does_not_grow_with_batches():
             assert cache.nbytes() == n_batches * (batch.nbytes + small.nbytes)
             held = sum(a.nbytes for a in held_arrays(cache))
             assert held == cache.memory_bytes() <= budget
-            state = {"attributes": sorted(vars(cache)), "files": len(cache._files),
-                     "meta": {k: (v[0], v[1]) for k, v in cache._meta.items()}}  # without the row counters
+            first = {n: cache.read(n, 0, 1) for n in cache.names()}
+            state = {"attributes": sorted(vars(cache)), "files": sorted(p.name for p in cache.root.iterdir()),
+                     "tensors": {n: (a.dtype, a.shape[1:]) for n, a in first.items()}}  # without the row counts
             return held, state, cache.in_memory("x"), cache.in_memory("y")
 
     # common practice, no source: bounded memory means no recorded data beyond the budget kept in Python

@@ -21,6 +21,7 @@ from testkit import (
     hard_sigmoid,
     hard_swish,
     hard_tanh,
+    held_arrays,
     relu,
     sigmoid,
     silu,
@@ -327,7 +328,8 @@ def test_reservoir_never_exceeds_its_size(sizes, R):
         obs.update(x, -x)
         total += m
         xs, ys = obs.samples(1)
-        assert obs._res.shape == (2, 2, min(R, total))  # the held arrays themselves
+        assert obs.held == min(R, total) and [a.shape for a in obs.all_samples()] == [(2, min(R, total))] * 2
+        assert max(a.size for a in held_arrays(obs)) <= 2 * 2 * R  # nothing kept grows past the reservoir
         assert xs.shape == ys.shape == (min(R, total),)
         np.testing.assert_array_equal(ys, -xs)  # pairs stay together
         assert len(np.unique(xs)) == xs.size  # sampling without replacement

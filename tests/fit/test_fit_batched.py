@@ -60,6 +60,8 @@ def test_outer_solve_rows_matches_sklearn_and_lstsq():
 
 
 def test_projected_gradient_matches_finite_differences():
+    # through the private _Problem on purpose: its projected cost and Kaufman gradient are the unit here;
+    # lm_projected, the public search built on it, only shows where the steps lead, never the gradient
     # Golub & Pereyra 1973: d/dq min_{a,d} ||y - a g(u(q)) - d||_w^2 = -2 <D_perp, r>; checked
     # against scipy.optimize.approx_fprime of the reduced cost computed with numpy lstsq.
     rng = np.random.default_rng(1)
