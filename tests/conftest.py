@@ -13,7 +13,7 @@ Shared code has two homes, one definition each:
 - tests/testkit.py, as plain functions and constants, whatever is needed at
   import time or inside model builders (parametrize lists, module constants):
   the demo paths, ONNX model builders, onnxruntime / reference runners,
-  in-memory data sets, the cheap functions written from their definitions.
+  in-memory data sets, the activation functions written from their definitions.
   Use it from any subfolder with ``from testkit import DEMO, init, run``:
   ``pythonpath = ["tests"]`` in pyproject.toml puts tests/ on sys.path.
 

@@ -6,10 +6,11 @@ import time: in parametrize lists, module constants and model builders.
 Run-time conveniences that need pytest (the CLI runner, tmp folders) are the
 fixtures in tests/conftest.py.
 
-The helpers build and run models; they never decide a test's expected value.
-The references they carry are written from outside the package: the ONNX
-operator spec (executed by onnxruntime and onnx.reference.ReferenceEvaluator)
-and the published formulas of the cheap functions.
+Nothing here asks swapper for an expected value. The references carried here
+come from outside the package: the ONNX operator spec (executed by onnxruntime
+and onnx.reference.ReferenceEvaluator) and the published formulas of the cheap
+functions. swapper is used only to build a test's inputs the way the package
+receives them (a Dataset; nodes named as load_model names them).
 """
 from __future__ import annotations
 
@@ -30,8 +31,7 @@ from swapper.core.model_io import name_unnamed_nodes
 from swapper.data.dataset import Dataset
 
 # ------------------------------------------------------------ the demo models
-ROOT = Path(__file__).resolve().parents[1]
-DEMO = ROOT / "demo_models"  # built by demo_models/build.py, described in demo_models/README.md
+DEMO = Path(__file__).resolve().parents[1] / "demo_models"  # built by demo_models/build.py, see its README.md
 CALIB, VAL = DEMO / "calib.npz", DEMO / "val.npz"
 
 
@@ -98,7 +98,7 @@ def as_loaded(model: onnx.ModelProto) -> onnx.ModelProto:
     return model
 
 
-def conv_classifier(weights: dict[str, np.ndarray], *, size: int, activations=("Relu", "Relu"), opset: int = 17,
+def conv_classifier(weights: dict[str, np.ndarray], *, size: int, activations=("Relu", "Relu"), opset: int = OPSET,
                     ir_version: int = 8) -> onnx.ModelProto:
     """x [N, 3, size, size] -> Conv 3x3 (pad 1) -> act -> Conv 3x3 (pad 1) -> act -> GlobalAveragePool -> Flatten
     -> Gemm (transB) -> y [N, classes], checked with onnx.checker.
@@ -209,7 +209,7 @@ def held_arrays(obj, seen=None) -> list[np.ndarray]:
     return found
 
 
-# ------------------------------------------------------------ cheap functions from their definitions
+# ------------------------------------------------------------ activation functions from their definitions
 # Independent of swapper.functions on purpose: the tests compare the package against these.
 def relu(z):
     # source: ONNX operator spec, Relu: y = max(0, x)
@@ -221,7 +221,7 @@ def drelu(z):
 
 
 def leaky_relu(z, alpha=0.01):
-    # source: ONNX operator spec, LeakyRelu: x if x >= 0 else alpha·x (alpha 0.01, PyTorch's default)
+    # source: ONNX operator spec, LeakyRelu: x if x >= 0 else alpha·x (default alpha 0.01)
     return np.where(z >= 0, z, alpha * z)
 
 
@@ -258,9 +258,9 @@ def silu(z):
     return z * sigmoid(z)
 
 
-# name -> g(z, **params), for the surrogate formula a·g(b·x + c) + d written out in numpy
-CHEAP = {"relu": relu, "leaky_relu": leaky_relu, "hard_swish": hard_swish, "hard_sigmoid": hard_sigmoid,
-         "hard_tanh": hard_tanh, "sigmoid": sigmoid, "tanh": np.tanh, "silu": silu}
+# registry name -> g(z, **params), for the surrogate formula a·g(b·x + c) + d written out in numpy
+FORMULAS = {"relu": relu, "leaky_relu": leaky_relu, "hard_swish": hard_swish, "hard_sigmoid": hard_sigmoid,
+            "hard_tanh": hard_tanh, "sigmoid": sigmoid, "tanh": np.tanh, "silu": silu}
 
 
 def wmse(y, yhat, w=None) -> float:

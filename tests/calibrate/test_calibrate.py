@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 from onnx import helper
 from onnx.reference import ReferenceEvaluator
 from sklearn.metrics import accuracy_score
-from testkit import CALIB, CHEAP, DEMO, VAL, float_model, held_arrays, in_memory, init, run
+from testkit import CALIB, DEMO, FORMULAS, VAL, float_model, held_arrays, in_memory, init, run
 
 import swapper.calibrate.loop as cal
 from swapper import api
@@ -172,7 +172,7 @@ def test_site_levels_hand_built(build, swapped, expected, through_loader):
 
 
 # ------------------------------------------------------- surrogate formula
-# the cheap functions from their ONNX operator spec definitions (testkit.CHEAP), with the target
+# the cheap functions from their ONNX operator spec definitions (testkit.FORMULAS), with the target
 # parameters the plan gives them (HardSigmoid: the ONNX defaults alpha 0.2, beta 0.5)
 TARGETS = {"relu": {}, "hard_sigmoid": {"alpha": 0.2, "beta": 0.5}, "hard_swish": {}, "hard_tanh": {}}
 
@@ -198,7 +198,7 @@ def test_surrogate_output_matches_per_channel_formula(target, ndim, where, dims,
     channels = shape[axis] if axis is not None else 1
     swap = _swap_for(target, axis, channels, rng)
     x = (3 * rng.normal(size=shape)).astype(np.float32)
-    g, p = CHEAP[target], TARGETS[target]
+    g, p = FORMULAS[target], TARGETS[target]
     expected = np.empty(shape)
     for k in range(channels):  # one channel at a time, no broadcasting tricks
         idx = [slice(None)] * ndim
@@ -247,7 +247,7 @@ def test_reported_mse_equals_independent_recomputation():
     for swap, sc in zip(plan.swaps, result.sites):
         x = ref[by_id[swap.site_id].input].astype(np.float64)
         y = ref[by_id[swap.site_id].output].astype(np.float64)
-        g, p = CHEAP[swap.target], TARGETS[swap.target]
+        g, p = FORMULAS[swap.target], TARGETS[swap.target]
 
         def mse(par):
             return float(np.mean(np.mean((y - (par["a"] * g(par["b"] * x + par["c"], **p) + par["d"])) ** 2, axis=0)))

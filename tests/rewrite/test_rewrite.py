@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 from onnx import helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 from onnx.utils import Extractor
-from testkit import CHEAP, float_model, init, run
+from testkit import FORMULAS, float_model, init, run
 
 from swapper import functions
 from swapper.core.graph import GraphIndex
@@ -120,13 +120,13 @@ def _pre_activation(model, site, feeds):
 
 
 def _formula(site, swap, x):
-    """a·g(b·x + c) + d per channel, in float64, g written out from its definition (testkit.CHEAP)."""
+    """a·g(b·x + c) + d per channel, in float64, g written out from its definition (testkit.FORMULAS)."""
     shape = [1] * x.ndim
     axis = site.channel_axis % x.ndim
     shape[axis] = -1
     p = {q: np.asarray(getattr(swap, q), dtype=np.float64).reshape(shape if getattr(swap, q).size > 1 else ())
          for q in PARAMS}
-    return p["a"] * CHEAP[swap.target](p["b"] * x + p["c"], **swap.target_params) + p["d"]
+    return p["a"] * FORMULAS[swap.target](p["b"] * x + p["c"], **swap.target_params) + p["d"]
 
 
 def _expected(model, site, swap, feeds, out="Y"):
