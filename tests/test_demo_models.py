@@ -12,9 +12,7 @@ from __future__ import annotations
 
 import functools
 import hashlib
-import json
 from collections import Counter
-from pathlib import Path
 
 import numpy as np
 import onnx
@@ -28,9 +26,9 @@ from sklearn.datasets import load_digits
 from sklearn.metrics import accuracy_score
 from sklearn.neighbors import NearestCentroid
 from sklearn.preprocessing import normalize
+from testkit import DEMO, manifest
 
-DEMO = Path(__file__).resolve().parent.parent / "demo_models"
-MANIFEST = json.loads((DEMO / "manifest.json").read_text())
+MANIFEST = manifest()
 MODELS = sorted(MANIFEST["models"])
 CLASSIFIERS = [m for m in MODELS if MANIFEST["models"][m]["task"] == "classification"]
 ENCODERS = [m for m in MODELS if MANIFEST["models"][m]["task"] == "embedding"]
