@@ -22,8 +22,11 @@ from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
 from swapper.scan.sites import Site, find_sites
+from swapper.targets import TargetProfile, load_target
 
 logger = logging.getLogger(__name__)
+
+DEFAULT_TARGET = "ort-cpu"  # the target planned for unless told otherwise: never slower than the original there
 
 
 @dataclass
@@ -34,13 +37,43 @@ class ScanResult:
 
 @dataclass
 class SwapResult:
-    loaded: LoadedModel
-    sites: list[Site]
+    loaded: LoadedModel  # the model as given (the oracle the candidate is checked and timed against)
+    sites: list[Site]  # found in ``base``
     plan: Plan
     candidate: onnx.ModelProto
     rewrite: RewriteResult
     calibration: CalibrationResult | None
     timings: dict[str, float] = field(default_factory=dict)
+    target: TargetProfile | None = None  # the profile the plan was made for
+    base: onnx.ModelProto | None = None  # the model the plan was made on: ``loaded.model`` or its opset conversion
+
+
+def resolve_target(target: str | Path | TargetProfile | None) -> TargetProfile | None:
+    """A profile from a built-in name or a .json path (None stays None: no target)."""
+    if target is None or isinstance(target, TargetProfile):
+        return target
+    return load_target(target)
+
+
+def _sample_batches(data: Dataset | None, model: onnx.ModelProto, batch_size: int, limit: int = 256):
+    """Up to ``limit`` samples of ``data`` as feeds batches, or one random batch when there is no data."""
+    from swapper.check.on_target import random_feeds
+    from swapper.data.dataset import batches
+
+    if data is None:
+        return [random_feeds(model, batch_size)], f"random inputs (batch {batch_size}, no data given)"
+    return [b.feeds for b in batches(data, batch_size, limit=limit)], f"calibration data {data.path.name}"
+
+
+def _converted(loaded: LoadedModel, opset: int | None, calib: Dataset | None, batch_size: int):
+    """(model to plan on, conversion record or None): ``loaded`` moved to ``opset`` and checked, when asked."""
+    if opset is None or opset == loaded.opset:
+        return loaded.model, None
+    from swapper.core.opset import check_conversion, convert_opset
+
+    converted = convert_opset(loaded.model, opset)
+    batches, where = _sample_batches(calib, loaded.model, batch_size)
+    return converted, check_conversion(loaded.model, converted, opset, batches, feeds_from=where)
 
 
 def _as_loaded(model: str | Path | LoadedModel) -> LoadedModel:
@@ -76,29 +109,47 @@ def swap(
     threads: int = 1,
     progress=None,
     cache_mb: float | None = None,
+    target: str | Path | TargetProfile | None = DEFAULT_TARGET,
+    opset: int | None = None,
+    choices: dict[str, str] | None = None,
 ) -> SwapResult:
-    """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model."""
+    """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model.
+
+    ``target``: a built-in profile name, a profile .json path or a TargetProfile
+    (default ``ort-cpu``): sites, surrogates and forms are chosen to pay there
+    (:mod:`swapper.plan.choose`); None plans without a target (registry
+    defaults). ``opset``: convert the model to this default-domain opset first
+    (checked, compared on ``calib``; recorded in ``plan.conversion``).
+    ``choices``: {site id: "surrogate" or "surrogate:form"} pins single sites.
+    """
     progress = progress or Silent()
     check_mode(mode)  # also when there is nothing to calibrate: a wrong option is an error, not ignored
     loaded = _as_loaded(model)
-    sites = find_sites(loaded.model)
-    t0 = time.perf_counter()
-    plan = make_plan(loaded.model, sites, to=to, site_ids=site_ids, only=only,
-                     include_gates=include_gates, include_outputs=include_outputs, fold=fold)
-    timings = {"plan_s": time.perf_counter() - t0}
-    base = loaded.model
-    calibration = None
-    if calib is not None and plan.swaps:
+    profile = resolve_target(target)
+    if opset is not None and profile is not None and not profile.accepts_opset(opset):
+        raise UsageError(f"--opset {opset}: {profile.name} accepts opsets {profile.opset_min}..{profile.opset_max}")
+    dataset = None
+    if calib is not None:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
+    t0 = time.perf_counter()
+    work, conversion = _converted(loaded, opset, dataset, batch_size)
+    sites = find_sites(work)
+    plan = make_plan(work, sites, to=to, site_ids=site_ids, only=only, include_gates=include_gates,
+                     include_outputs=include_outputs, fold=fold, target=profile, choices=choices)
+    plan.conversion = conversion
+    timings = {"plan_s": time.perf_counter() - t0}
+    base = work
+    calibration = None
+    if dataset is not None and plan.swaps:
         t0 = time.perf_counter()
         extra = {} if cache_mb is None else {"cache_bytes": int(cache_mb * (1 << 20))}
-        calibration = calibrate(loaded.model, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
+        calibration = calibrate(work, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
                                 batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
         base = calibration.model
         if refit_consumers:
             from swapper.calibrate.refit import refit_consumers as refit
 
-            base = refit(loaded.model, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
+            base = refit(work, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
                          threads=threads, progress=progress, result=calibration, **extra)
             calibration.model = base
         timings["calibrate_s"] = time.perf_counter() - t0
@@ -108,7 +159,25 @@ def swap(
     result = rewrite(base, sites, plan)
     timings["rewrite_s"] = time.perf_counter() - t0
     return SwapResult(loaded=loaded, sites=sites, plan=plan, candidate=result.model, rewrite=result,
-                      calibration=calibration, timings=timings)
+                      calibration=calibration, timings=timings, target=profile, base=work)
+
+
+def time_on_target(original: onnx.ModelProto, candidate: onnx.ModelProto,
+                   target: str | Path | TargetProfile, *, calib: Dataset | None = None, batch_size: int = 64,
+                   repeats: int | None = None):
+    """Time ``candidate`` against ``original`` on a measured target (:mod:`swapper.check.on_target`).
+
+    The timed batch is the first ``batch_size`` samples of ``calib`` (random
+    inputs without it); an int8 profile quantizes both models on up to 256
+    samples of it first. Returns a TargetTiming (ratio < 1: the candidate is faster).
+    """
+    from swapper.check import on_target
+
+    profile = resolve_target(target)
+    batches, where = _sample_batches(calib, original, batch_size)
+    extra = {} if repeats is None else {"repeats": repeats}
+    return on_target.time_on_target(original, candidate, profile, batches[0], calib_batches=batches,
+                                    feeds_from=where, **extra)
 
 
 @dataclass
@@ -133,8 +202,15 @@ def check(
     threads: int = 1,
     latency_repeats: int = 30,
     progress=None,
+    target: str | Path | TargetProfile | None = None,
 ) -> CheckResult:
-    """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``."""
+    """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``.
+
+    With ``target``, ``latency["target"]`` says how the pair fares there: a
+    measured profile times both at its settings (int8: both quantized on
+    ``calib``, else ``val``); a declared one names the ops of each model it
+    cannot run (:mod:`swapper.check.on_target`).
+    """
     from swapper.check.compare import compare
     from swapper.check.gate import Budget, decide
     from swapper.check.size import model_summary, serialized_size
@@ -150,6 +226,10 @@ def check(
     latency = _timed(sessions, feeds, threads, latency_repeats)
     latency["batch_size"] = int(next(iter(feeds.values())).shape[0])
     latency["threads"] = threads
+    profile = resolve_target(target)
+    if profile is not None:
+        latency["target"] = _on_target(original, candidate, profile, feeds, latency,
+                                       calib if calib is not None else val, batch_size)
     size = {
         "original": {"bytes": serialized_size(original), **model_summary(original)},
         "candidate": {"bytes": serialized_size(candidate), **model_summary(candidate)},
@@ -160,6 +240,29 @@ def check(
                                batch_size=batch_size, threads=threads, repeats=latency_repeats, progress=progress)
     return CheckResult(comparison=comparison, verdict=verdict, budget=budget, latency=latency, size=size,
                        int8=int8_view)
+
+
+def _on_target(original, candidate, profile: TargetProfile, feeds: dict, latency: dict, calib: Dataset,
+               batch_size: int) -> dict:
+    """The ``latency["target"]`` entry of :func:`check` (see there)."""
+    from swapper.check import on_target
+    from swapper.data.dataset import batches
+
+    entry = {"target": profile.name, "costs_from": profile.costs_from,
+             "lacking_ops": {"original": on_target.lacking_ops(original, profile),
+                             "candidate": on_target.lacking_ops(candidate, profile)}}
+    if profile.costs_from != "measured":
+        return entry
+    m = profile.measurement
+    if m.quantization is None and m.graph_optimization_level == "all" and m.threads == latency["threads"]:
+        # the plain latency above was timed at exactly these settings: no second timing
+        entry.update(ratio=latency["ratio"], timed="the latency measured above")
+        return entry
+    calib_feeds = [b.feeds for b in batches(calib, batch_size, limit=256)]
+    timing = on_target.time_on_target(original, candidate, profile, feeds, calib_batches=calib_feeds,
+                                      feeds_from="the first validation batch")
+    entry.update(timing.to_dict())
+    return entry
 
 
 def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: int) -> dict:

@@ -37,6 +37,14 @@ def _split(value: str | None) -> list[str] | None:
     return [v.strip() for v in value.split(",") if v.strip()] if value else None
 
 
+def _target(value: str) -> str | None:
+    """``--target none`` plans without a target (registry defaults, no speed check)."""
+    return None if value.strip().lower() == "none" else value
+
+
+TARGET_HELP = "Target profile: a built-in name (see `swapper targets`) or a .json file; `none` for no target."
+
+
 @app.callback()
 def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debug details.")] = False) -> None:
     logging.basicConfig(level=logging.DEBUG if verbose else logging.WARNING, format="%(name)s: %(message)s")
@@ -74,6 +82,27 @@ def list_functions() -> None:
         out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else ""))
 
 
+@app.command("targets")
+def list_targets(
+    as_json: Annotated[bool, typer.Option("--json", help="Print the profiles as JSON.")] = False,
+) -> None:
+    """List the built-in target profiles: name, precision, where costs come from, opsets, description."""
+    from swapper.targets import builtin_targets, load_target
+
+    try:
+        rows = [load_target(name) for name in builtin_targets()]
+    except SwapperError as exc:
+        _fail(exc)
+    if as_json:
+        sys.stdout.write(json.dumps([{"name": p.name, "precision": p.precision, "costs_from": p.costs_from,
+                                      "opset": {"min": p.opset_min, "max": p.opset_max},
+                                      "description": p.description} for p in rows], indent=2) + "\n")
+        return
+    for p in rows:
+        out.print(f"{p.name:13s} {p.precision:8s} {p.costs_from:9s} opsets {p.opset_min}..{p.opset_max}  "
+                  f"{p.description}", highlight=False)
+
+
 @app.command()
 def swap(
     model: Annotated[Path, typer.Argument(help="The .onnx model to rewrite (never modified).")],
@@ -93,9 +122,11 @@ def swap(
     budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
     min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
-    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected (verdict kept in metadata).")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected or not faster on the target (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first (checked and compared; recorded in the report).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for sampling; same inputs + seed = same bytes.")] = 0,
     batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
     threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
@@ -114,7 +145,7 @@ def swap(
             include_gates=include_gates, include_outputs=include_outputs, fold=fold, mode=mode,
             bias_correction=bias_correction, refit_consumers=refit_consumers, val=val, budget=budget,
             strict=strict, min_agreement=min_agreement, force=force, int8=int8, report=report, seed=seed,
-            batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            batch_size=batch_size, threads=threads, cache_mb=cache_mb, target=_target(target), opset=opset,
         )
     except SwapperError as exc:
         _fail(exc)
@@ -134,6 +165,7 @@ def check(
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
     batch_size: Annotated[int, typer.Option(min=1)] = 64,
     threads: Annotated[int, typer.Option(min=1)] = 1,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
     """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected."""
     from swapper.cli.run import run_check
@@ -141,7 +173,7 @@ def check(
     try:
         code = run_check(original, candidate, val, console=out, budget=budget, strict=strict,
                          min_agreement=min_agreement, int8=int8, calib=calib, report=report,
-                         batch_size=batch_size, threads=threads)
+                         batch_size=batch_size, threads=threads, target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)

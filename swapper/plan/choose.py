@@ -96,7 +96,7 @@ class FormOption:
         if self.blocked is not None:
             return self.blocked
         if opset < self.form.min_opset:
-            return f"{self.form.name} needs opset {self.form.min_opset} (the model is opset {opset})"
+            return f"form {self.form.name} needs opset {self.form.min_opset} (the model is opset {opset})"
         return ""
 
 
@@ -205,13 +205,13 @@ def site_options(index: GraphIndex, site: Site, profile: TargetProfile | None, s
                 + _param_nodes(placement, False)
             blocked = None
             if held:
-                blocked = (f"{form.name} moves {', '.join(held)}, held at this site "
+                blocked = (f"form {form.name} moves {', '.join(held)}, held at this site "
                            f"({'; '.join(n for n in notes if any(n.startswith(p) for p in held)) or 'no fold'})")
             cost = None
             if profile is not None:
                 ok, missing = profile.allows(ops)
                 if not ok:
-                    blocked = blocked or f"{form.name} uses {', '.join(missing)}, which {profile.name} does not run"
+                    blocked = blocked or f"form {form.name} needs {', '.join(missing)}, which {profile.name} does not run"
                 cost = profile.cost_of(ops, after, linear=form.linear)
             options.append(FormOption(name, form, placement, list(notes), ops, cost, blocked))
     return SiteOptions(site, original_chain(index, site, profile), options,

@@ -213,7 +213,7 @@ def test_clip_form_of_hard_sigmoid_needs_b_and_c_to_move(tmp_path):
 
 def test_forced_surrogate_the_target_cannot_run_names_the_op(tmp_path):
     with pytest.raises(UsageError, match=r"site s1: hard_sigmoid cannot be used on mcu-int8: .*HardSigmoid.*"
-                                         r"mcu-int8 does not run.*Clip moves b, c, held"):
+                                         r"mcu-int8 does not run.*form Clip moves b, c, held"):
         _plan(INPUT_SIGMOID, tmp_path, "mcu-int8", to="hard_sigmoid")
     with pytest.raises(UsageError, match="HardSwish needs opset 14"):
         _plan(CONV_SILU.format(opset=13), tmp_path, "ort-cpu", choices={"s1": "hard_swish:HardSwish"})
