@@ -28,9 +28,9 @@ import onnx
 
 from swapper.core.conv import pads_input
 from swapper.core.graph import GraphIndex, attr
-from swapper.errors import UsageError
 from swapper.functions.params import PARAMS
 from swapper.functions.registry import Function
+from swapper.options import check_fold
 from swapper.plan.layers import (
     Layer,
     Reach,
@@ -44,7 +44,6 @@ from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-FOLD_POLICIES = ("exact", "nodes", "approximate", "off")
 POSITIVE_A = ("inner", "consumers+")  # placements of a that the fitter must keep > 0
 _DEFAULT = ("", "ai.onnx")
 
@@ -286,8 +285,7 @@ def _layer(index: GraphIndex, site: Site, reach: Reach) -> tuple[ConsumerFold | 
 # ----------------------------------------------------------------- placement
 def decide_placement(index: GraphIndex, site: Site, target: Function, policy: str) -> tuple[dict[str, str], list[str]]:
     """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes)."""
-    if policy not in FOLD_POLICIES:
-        raise UsageError(f"unknown fold policy {policy!r}; valid: {', '.join(FOLD_POLICIES)}")
+    check_fold(policy)
     if policy == "off":
         return {p: "nodes" for p in PARAMS}, ["fold off: every parameter is an explicit Mul/Add node"]
     rest = "nodes" if policy == "nodes" else "held"
