@@ -11,17 +11,22 @@ import logging
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import onnx
 
-from swapper.calibrate.loop import CalibrationResult, calibrate, check_mode
+from swapper.calibrate.loop import CalibrationResult, calibrate
 from swapper.core.model_io import LoadedModel, load_model
 from swapper.data.dataset import Dataset, input_specs, load_dataset
 from swapper.errors import UsageError
+from swapper.options import check_mode
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
 from swapper.scan.sites import Site, find_sites
+
+if TYPE_CHECKING:  # refit is imported when asked for (it pulls in the ridge solver)
+    from swapper.calibrate.refit import RefitResult
 
 logger = logging.getLogger(__name__)
 
@@ -36,10 +41,11 @@ class ScanResult:
 class SwapResult:
     loaded: LoadedModel
     sites: list[Site]
-    plan: Plan
+    plan: Plan  # the swaps as rewritten: fitted by calibration (and refit) when there was a calibration set
     candidate: onnx.ModelProto
     rewrite: RewriteResult
-    calibration: CalibrationResult | None
+    calibration: CalibrationResult | None  # with refit's model, plan, notes and time when it ran
+    refit: RefitResult | None = None  # the consumer refit on its own
     timings: dict[str, float] = field(default_factory=dict)
 
 
@@ -87,20 +93,20 @@ def swap(
                      include_gates=include_gates, include_outputs=include_outputs, fold=fold)
     timings = {"plan_s": time.perf_counter() - t0}
     base = loaded.model
-    calibration = None
+    calibration = refit = None
     if calib is not None and plan.swaps:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
         t0 = time.perf_counter()
         extra = {} if cache_mb is None else {"cache_bytes": int(cache_mb * (1 << 20))}
         calibration = calibrate(loaded.model, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
                                 batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
-        base = calibration.model
         if refit_consumers:
-            from swapper.calibrate.refit import refit_consumers as refit
+            from swapper.calibrate.refit import refit_consumers as refit_layers
 
-            base = refit(loaded.model, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
-                         threads=threads, progress=progress, result=calibration, **extra)
-            calibration.model = base
+            refit = refit_layers(loaded.model, calibration.model, sites, calibration.plan, dataset,
+                                 batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
+            calibration = refit.apply_to(calibration)
+        plan, base = calibration.plan, calibration.model
         timings["calibrate_s"] = time.perf_counter() - t0
     elif refit_consumers:
         raise UsageError("--refit-consumers needs a calibration set (--calib)")
@@ -108,7 +114,7 @@ def swap(
     result = rewrite(base, sites, plan)
     timings["rewrite_s"] = time.perf_counter() - t0
     return SwapResult(loaded=loaded, sites=sites, plan=plan, candidate=result.model, rewrite=result,
-                      calibration=calibration, timings=timings)
+                      calibration=calibration, refit=refit, timings=timings)
 
 
 @dataclass

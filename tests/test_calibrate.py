@@ -262,7 +262,7 @@ def test_calibrated_never_worse_than_start_on_demo_models(name):
             # fitted mse on the calibration reservoir cannot exceed the starting one
             assert np.isfinite(sc.mse_fit) and sc.mse_fit <= sc.mse_start, (name, mode, sc)
             assert sc.level >= 1 and (mode == "sequential" or sc.level == 1)
-        moved = sum(not np.allclose(before[s.site_id][p], s.params()[p]) for s in plan.swaps for p in "abcd")
+        moved = sum(not np.allclose(before[s.site_id][p], s.params()[p]) for s in result.plan.swaps for p in "abcd")
         assert moved > 0  # calibration really changed something
         # the original is never mutated
         assert loaded.model.SerializeToString() == load_model(DEMO / f"{name}.onnx").model.SerializeToString()
@@ -280,7 +280,7 @@ def test_reported_mse_equals_independent_recomputation():
     # source: ONNX operator spec as executed by onnx.reference.ReferenceEvaluator
     ref = ReferenceEvaluator(loaded.model).run(None, feeds, intermediate=True)
     by_id = {s.id: s for s in sites}
-    for swap, sc in zip(plan.swaps, result.sites):
+    for swap, sc in zip(result.plan.swaps, result.sites):
         x = ref[by_id[swap.site_id].input].astype(np.float64)
         y = ref[by_id[swap.site_id].output].astype(np.float64)
         g, p = G[swap.target]
@@ -329,7 +329,7 @@ def test_sequential_level2_input_comes_from_partially_swapped_model(spy):
     recorded = np.concatenate(spy["x"]["s2"])
     # onnxruntime on the rewritten model with only level 1 swapped (fold off: explicit nodes),
     # built from the calibrated model (which carries level 1's bias correction), cut at s2's input
-    first_only = Plan(fold="off", swaps=[plan.by_site()["s1"]])
+    first_only = Plan(fold="off", swaps=[result.plan.by_site()["s1"]])
     partial = rewrite(result.model, sites, first_only).model
     want = _run(partial, calib, [s2.input])[s2.input]
     original = _run(loaded.model, calib, [s2.input])[s2.input]
@@ -370,7 +370,7 @@ def test_bias_correction_restores_consumer_mean(beta, tmp_path):
         plan = make_plan(model, sites, fold="off", to="relu")
         result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
         assert result.sites[0].bias_corrected == (["g2"] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         means[corrected] = _run(candidate, ds, ["y"])["y"].astype(np.float64).mean(axis=0)
     target = _run(model, ds, ["y"])["y"].astype(np.float64).mean(axis=0)
     # source: Nagel et al. 2019, bias correction: after it, E[candidate output] = E[original output]
@@ -397,7 +397,7 @@ def test_bias_correction_leaves_shared_bias_alone(tmp_path):
     assert not np.allclose(numpy_helper.to_array(index.initializers[g2.input[2]]), b2)
     # the other user's output is bit-identical (onnxruntime, same graph path)
     np.testing.assert_array_equal(_run(result.model, ds, ["z"])["z"], _run(model, ds, ["z"])["z"])
-    candidate = rewrite(result.model, sites, plan).model
+    candidate = rewrite(result.model, sites, result.plan).model
     np.testing.assert_allclose(_run(candidate, ds, ["y"])["y"].mean(axis=0),
                                _run(model, ds, ["y"])["y"].mean(axis=0), rtol=0, atol=1e-4)
 
@@ -411,7 +411,7 @@ def test_batch_size_does_not_change_the_fit():
     for bs in (16, 256):
         plan = make_plan(loaded.model, sites)
         result = cal.calibrate(loaded.model, sites, plan, calib, batch_size=bs)
-        fitted[bs] = (plan, result)
+        fitted[bs] = (result.plan, result)
     (p16, r16), (p256, r256) = fitted[16], fitted[256]
     for s16, s256 in zip(p16.swaps, p256.swaps):
         for p in "abcd":
@@ -432,7 +432,7 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
         plan = make_plan(loaded.model, sites)
         result = cal.calibrate(loaded.model, sites, plan, big, reservoir=reservoir, batch_size=128)
         assert result.samples == 256 * times
-        for s in plan.swaps:
+        for s in result.plan.swaps:
             assert all(np.isfinite(v).all() for v in s.params().values())
         cache = spy["caches"][-1]
         assert cache.names and all(r == big.n for r in cache.final_rows().values())
@@ -484,7 +484,8 @@ def test_site_reading_another_site_output(mode, spy, tmp_path):
     assert all(r.mse_fit <= r.mse_start for r in result.sites)
     # no tensor is recorded twice: every cached name holds exactly one row per sample
     cache = spy["caches"][-1]
-    assert "t" in cache.names and cache.final_rows() == {n: 100 for n in cache.names}
+    assert {"original::t", "candidate::t"} <= set(cache.names)
+    assert cache.final_rows() == {n: 100 for n in cache.names}
     seen_t = np.concatenate(spy["x"]["s2"])
     assert seen_t.shape == (100, 6)
     if mode == "local":
@@ -493,10 +494,10 @@ def test_site_reading_another_site_output(mode, spy, tmp_path):
         np.testing.assert_allclose(seen_t, ref, rtol=1e-5, atol=1e-6)
     else:
         # sequential: what onnxruntime computes at t with the Tanh swapped
-        partial = rewrite(result.model, sites, Plan(fold="off", swaps=[plan.by_site()["s1"]])).model
+        partial = rewrite(result.model, sites, Plan(fold="off", swaps=[result.plan.by_site()["s1"]])).model
         np.testing.assert_allclose(seen_t, _run(partial, ds, ["t"])["t"], rtol=1e-5, atol=1e-6)
         # and with both swapped plus the consumer's correction, the output mean is the original's
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         np.testing.assert_allclose(_run(candidate, ds, ["y"])["y"].mean(axis=0),
                                    _run(model, ds, ["y"])["y"].mean(axis=0), rtol=0, atol=1e-4)
     assert result.sites[1].bias_corrected == ["g2"]
@@ -533,9 +534,10 @@ def test_schedule_last_reads_hand_built(tmp_path):
     index = GraphIndex.of(model)
     levels = cal.site_levels(index, sites, {"s1", "s2", "s3"})
     sched = cal._schedule(index, by_id, levels)
-    assert sched.last == {"x": 1, "teacher::t1": 2, "t1": 2, "m1": 2,
-                          "teacher::s1": 3, "s1": 3, "m2": 3, "teacher::t2": 3, "t2": 3}
-    assert sched.original[2].feed == {"t1": "teacher::t1"} and sched.swapped[2].feed == {"t1": "t1"}
+    assert sched.last == {"original::x": 1, "original::t1": 2, "candidate::t1": 2, "candidate::m1": 2,
+                          "original::s1": 3, "candidate::s1": 3, "candidate::m2": 3, "original::t2": 3,
+                          "candidate::t2": 3}
+    assert sched.original[2].feed == {"t1": "original::t1"} and sched.swapped[2].feed == {"t1": "candidate::t1"}
     assert sched.swapped[3].outputs == ["m2"] and 1 not in sched.swapped
 
 
@@ -561,8 +563,8 @@ def test_discards_bound_memory_by_level_not_depth_and_change_nothing(monkeypatch
             plan_kept = make_plan(model, sites, to="relu")
             result_kept = cal.calibrate(model, sites, plan_kept, ds)
         kept[blocks] = result_kept.cache["peak_bytes_in_memory"]
-        one = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
-        assert one == rewrite(result_kept.model, sites, plan_kept).model.SerializeToString(deterministic=True)
+        one = rewrite(result.model, sites, result.plan).model.SerializeToString(deterministic=True)
+        assert one == rewrite(result_kept.model, sites, result_kept.plan).model.SerializeToString(deterministic=True)
     assert peaks[3] == peaks[9] > 0
     assert kept[9] > 2 * kept[3]  # without discards the cache holds every level's tensors
 
@@ -576,7 +578,7 @@ def test_results_do_not_depend_on_the_cache_budget(monkeypatch):
         result = cal.calibrate(model, sites, plan, ds, batch_size=16, cache_bytes=budget)
         assert result.cache["peak_bytes_in_memory"] <= budget
         assert (result.cache["bytes_written"] > 0) == (budget < 1 << 30)
-        out[budget] = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
+        out[budget] = rewrite(result.model, sites, result.plan).model.SerializeToString(deterministic=True)
     assert len(set(out.values())) == 1  # spilled or not, the same bytes come back
 
 
@@ -661,7 +663,7 @@ def test_bias_correction_through_pooling_restores_conv_mean(pool, tmp_path, monk
             result = cal.calibrate(model, sites, plan, ds, reservoir=16, batch_size=48)
         assert result.sites[0].bias_corrected == ["c2"]
         biases[path] = numpy_helper.to_array(GraphIndex.of(result.model).initializers["b2"])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         # source: Nagel et al. 2019, bias correction: E[candidate consumer output] = E[original], here per
         # output channel over samples and positions (float32 tolerance)
         got = _run(candidate, ds, ["y"])["y"].astype(np.float64).mean(axis=(0, 2, 3))

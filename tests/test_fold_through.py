@@ -346,7 +346,7 @@ def test_bias_correction_reaches_layers_behind_pools(case, layer, tmp_path):
         plan = make_plan(model, sites, to="relu", fold="off")
         result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
         assert result.sites[0].bias_corrected == ([layer] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         means[corrected] = open_session(expose(candidate, ["Y"])).run(["Y"], {"X": x})[0]
     target = open_session(model).run(["Y"], {"X": x})[0]
     reduce = tuple(i for i in range(target.ndim) if i != 1)  # per output channel (axis 1 for Conv and Gemm)
