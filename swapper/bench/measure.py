@@ -36,18 +36,20 @@ from swapper.core.model_io import LoadedModel
 from swapper.core.session import open_session
 from swapper.data.dataset import Dataset, batches
 from swapper.errors import SwapperError
+from swapper.options import SwapOptions
 from swapper.rewrite.apply import rewrite_identity_floor
 
 logger = logging.getLogger(__name__)
 
 RUNGS = ("naive", "local", "sequential", "sequential_bias", "refit")
-# The options of api.swap that make each rung; calib=None for the naive swap.
+# The swap options that make each rung (the family's surrogate, seed and batch size are set per run);
+# the naive swap runs without a calibration set.
 RUNG_OPTIONS = {
-    "naive": {},
-    "local": {"mode": "local", "bias_correction": False},
-    "sequential": {"mode": "sequential", "bias_correction": False},
-    "sequential_bias": {"mode": "sequential", "bias_correction": True},
-    "refit": {"mode": "sequential", "bias_correction": True, "refit_consumers": True},
+    "naive": SwapOptions(),
+    "local": SwapOptions(mode="local", bias_correction=False),
+    "sequential": SwapOptions(mode="sequential", bias_correction=False),
+    "sequential_bias": SwapOptions(mode="sequential", bias_correction=True),
+    "refit": SwapOptions(mode="sequential", bias_correction=True, refit_consumers=True),
 }
 NOISE_FRACTION = 0.02  # t_orig - t_floor below 2% of t_orig is not a measurable saving (common practice, no source)
 THREADS = 1
@@ -80,6 +82,11 @@ def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int)
     return reference(model, val, batch_size=batch_size, threads=THREADS)
 
 
+def rung_options(rung: str, *, to: str | None, batch_size: int, seed: int = 0) -> SwapOptions:
+    """The swap options of ``rung`` for one family (surrogate ``to``), on the benchmark's one thread."""
+    return RUNG_OPTIONS[rung].replace(to=to, seed=seed, batch_size=batch_size, threads=THREADS)
+
+
 def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, to: str | None,
                    rungs: tuple[str, ...], batch_size: int, seed: int = 0, log=None) -> FamilyRun:
     """Score every rung in ``rungs`` on ``val`` against ``original``; keep the sequential + bias candidate."""
@@ -93,8 +100,8 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
             continue
         t0 = time.perf_counter()
         try:
-            result = api.swap(loaded, calib=None if rung == "naive" else calib, to=to, seed=seed,
-                              batch_size=batch_size, threads=THREADS, **RUNG_OPTIONS[rung])
+            result = api.swap(loaded, calib=None if rung == "naive" else calib,
+                              options=rung_options(rung, to=to, batch_size=batch_size, seed=seed))
         except SwapperError as exc:  # a rung the model cannot take (e.g. nothing for refit to fit)
             ladder[rung] = None
             notes.append(f"{rung}: {exc}")
