@@ -14,7 +14,7 @@ import pytest
 from typer.testing import CliRunner
 
 from swapper import api
-from swapper.bench.measure import RUNG_OPTIONS, RUNGS, rung_options
+from swapper.bench.rungs import RUNG_OPTIONS, RUNGS, family_options, rung_options
 from swapper.cli.app import app
 from swapper.core.model_io import load_model
 from swapper.data.dataset import subset
@@ -106,7 +106,7 @@ def test_bench_rungs_are_swap_options():
              "refit": ("sequential", True, True)}
     assert tuple(RUNG_OPTIONS) == RUNGS
     for rung, (mode, bias, refit) in table.items():
-        o = rung_options(rung, to="relu", batch_size=32, seed=3)
+        o = rung_options(rung, family_options("relu", batch_size=32, seed=3))
         assert isinstance(o, SwapOptions)
         assert (o.mode, o.bias_correction, o.refit_consumers) == (mode, bias, refit)
         assert (o.to, o.batch_size, o.seed, o.threads) == ("relu", 32, 3, 1)

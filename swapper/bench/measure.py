@@ -30,6 +30,7 @@ import onnx
 import onnxruntime as ort
 
 from swapper import api
+from swapper.bench.rungs import RUNGS, THREADS, rung_options
 from swapper.check.compare import Reference, compare, reference
 from swapper.check.latency import measure_latency, open_sessions
 from swapper.core.model_io import LoadedModel
@@ -41,18 +42,7 @@ from swapper.rewrite.apply import rewrite_identity_floor
 
 logger = logging.getLogger(__name__)
 
-RUNGS = ("naive", "local", "sequential", "sequential_bias", "refit")
-# The swap options that make each rung (the family's surrogate, seed and batch size are set per run);
-# the naive swap runs without a calibration set.
-RUNG_OPTIONS = {
-    "naive": SwapOptions(),
-    "local": SwapOptions(mode="local", bias_correction=False),
-    "sequential": SwapOptions(mode="sequential", bias_correction=False),
-    "sequential_bias": SwapOptions(mode="sequential", bias_correction=True),
-    "refit": SwapOptions(mode="sequential", bias_correction=True, refit_consumers=True),
-}
 NOISE_FRACTION = 0.02  # t_orig - t_floor below 2% of t_orig is not a measurable saving (common practice, no source)
-THREADS = 1
 
 
 @dataclass
@@ -82,13 +72,8 @@ def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int)
     return reference(model, val, batch_size=batch_size, threads=THREADS)
 
 
-def rung_options(rung: str, *, to: str | None, batch_size: int, seed: int = 0) -> SwapOptions:
-    """The swap options of ``rung`` for one family (surrogate ``to``), on the benchmark's one thread."""
-    return RUNG_OPTIONS[rung].replace(to=to, seed=seed, batch_size=batch_size, threads=THREADS)
-
-
-def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, to: str | None,
-                   rungs: tuple[str, ...], batch_size: int, seed: int = 0, log=None) -> FamilyRun:
+def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, family: SwapOptions,
+                   rungs: tuple[str, ...], log=None) -> FamilyRun:
     """Score every rung in ``rungs`` on ``val`` against ``original``; keep the sequential + bias candidate."""
     metric = metric_for(val)
     ladder: dict = {"metric": metric, "original": None}
@@ -101,12 +86,12 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
         t0 = time.perf_counter()
         try:
             result = api.swap(loaded, calib=None if rung == "naive" else calib,
-                              options=rung_options(rung, to=to, batch_size=batch_size, seed=seed))
+                              options=rung_options(rung, family))
         except SwapperError as exc:  # a rung the model cannot take (e.g. nothing for refit to fit)
             ladder[rung] = None
             notes.append(f"{rung}: {exc}")
             continue
-        comp = compare(original, result.candidate, val, batch_size=batch_size, threads=THREADS)
+        comp = compare(original, result.candidate, val, batch_size=family.batch_size, threads=THREADS)
         original_score, score = _score(comp, metric)
         if ladder["original"] is None:  # every rung is compared with the same stored outputs: same score
             ladder["original"] = original_score
