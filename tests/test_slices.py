@@ -13,7 +13,6 @@ from pathlib import Path
 import numpy as np
 import onnx
 import onnx.parser
-import pytest
 from onnx import numpy_helper
 from onnx.reference import ReferenceEvaluator
 
@@ -148,27 +147,50 @@ def test_last_reads_free_each_key_after_its_last_step():
     assert last.done(1) == [] and last.done(2) == ["b", "c"] and last.done(3) == ["a"]
 
 
-@pytest.mark.parametrize("dtype", [np.float32, np.float64])
-def test_bias_correction_difference_equals_numpy_float64_subtraction(dtype):
-    """The per-batch difference model forms student - teacher in float64 rounded once (Cast, Sub, Cast),
-    bit-equal to ``np.subtract(s, t, dtype=float64).astype(dtype)`` (IEEE 754 round to nearest)."""
-    from onnx import TensorProto, helper
+# x -> Conv -> Tanh (the site) -> AveragePool -> Conv (its linear consumer, behind one linear step)
+POOLED = """
+<ir_version: 8, opset_import: ["" : 17]>
+pooled (float[N, 2, 6, 6] x) => (float[N, 3, 3, 3] y) {
+    h = Conv <pads = [1, 1, 1, 1]> (x, W1, B1)
+    t = Tanh(h)
+    p = AveragePool <kernel_shape = [2, 2], strides = [2, 2]> (t)
+    y = Conv <pads = [1, 1, 1, 1]> (p, W2, B2)
+}
+"""
 
-    elem = TensorProto.FLOAT if dtype == np.float32 else TensorProto.DOUBLE
-    nodes = [helper.make_node("Cast", ["s"], ["s64"], to=TensorProto.DOUBLE),
-             helper.make_node("Cast", ["u"], ["u64"], to=TensorProto.DOUBLE),
-             helper.make_node("Sub", ["s64", "u64"], ["d64"]),
-             helper.make_node("Cast", ["d64"], ["d"], to=elem)]
-    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info(n, elem, None) for n in "su"],
-                              [helper.make_tensor_value_info("d", elem, None)])
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
-    rng = np.random.default_rng(5)
-    scale = 10.0 ** rng.uniform(-30, 30, size=(64, 8))  # wide exponent gaps: where rounding twice would show
-    s = (rng.normal(size=(64, 8)) * scale).astype(dtype)
-    u = (rng.normal(size=(64, 8)) * scale[::-1]).astype(dtype)
+
+def test_bias_correction_difference_model_subtracts_as_numpy_did(tmp_path):
+    """The per-batch difference model forms student - teacher itself (Cast to double, Sub, Cast back), so
+    it runs from the cached tensors; its output must be bit-equal to the same steps run on
+    ``np.subtract(s, t, dtype=float64).astype(float32)`` (IEEE 754: both subtract exactly-widened values
+    in float64 and round once to float32), whatever the exponents of s and t."""
+    import swapper.calibrate.bias_correction as bc
+    from swapper.core.graph import GraphIndex
+    from swapper.core.model_io import load_model
+    from swapper.core.session import open_session
+    from swapper.plan.layers import reach_linear
+    from swapper.scan.sites import find_sites
+
+    rng = np.random.default_rng(6)
+    model = onnx.parser.parse_model(POOLED)
+    for name, shape in (("W1", (2, 2, 3, 3)), ("B1", (2,)), ("W2", (3, 2, 3, 3)), ("B2", (3,))):
+        model.graph.initializer.append(numpy_helper.from_array(rng.normal(size=shape).astype(np.float32), name))
+    onnx.save(model, tmp_path / "pooled.onnx")
+    model = load_model(tmp_path / "pooled.onnx").model  # named nodes, inferred shapes, as the CLI sees it
+    index = GraphIndex.of(model)
+    site = find_sites(model)[0]
+    (reach,), _ = reach_linear(index, site.output, None, None, 1, gates=False)
+    assert [s.node.op_type for s in reach.steps] == ["AveragePool"] and reach.node.op_type == "Conv"
+    scale = 10.0 ** rng.uniform(-30, 30, size=(20, 2, 6, 6))  # s and u of very different sizes, too
+    s = (rng.normal(size=scale.shape) * scale).astype(np.float32)
+    u = (rng.normal(size=scale.shape) * scale[::-1]).astype(np.float32)
+    old = bc._difference_model(model, index, site, reach, False, with_layer=True)
+    want = open_session(old).run(None, {f"{bc._TMP}delta": np.subtract(s, u, dtype=np.float64).astype(np.float32)})[0]
+    new = bc._difference_model(model, index, site, reach, False, with_layer=True, subtract=True)
     with TensorCache() as cache:
-        cache.append("s", s)
-        cache.append("u", u)
-        got = np.concatenate([v["d"] for _, v in SliceRunner(cache, row_spans(64, 16)).stream(model, ["d"],
-                                                                                                  whole=True)])
-    assert got.tobytes() == np.subtract(s, u, dtype=np.float64).astype(dtype).tobytes()
+        cache.append("student", s)
+        cache.append("teacher", u)
+        keys = {f"{bc._TMP}student": "student", f"{bc._TMP}teacher": "teacher"}
+        got = np.concatenate([v[f"{bc._TMP}shift"] for _, v in SliceRunner(cache, row_spans(20, 8)).stream(
+            new, [f"{bc._TMP}shift"], keys=keys, whole=True)])
+    assert got.tobytes() == want.tobytes()

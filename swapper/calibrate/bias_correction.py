@@ -164,7 +164,7 @@ def _per_batch(work, index, site, reach, cached: SliceRunner, student, teacher, 
             return None
     keys = {f"{_TMP}student": student, f"{_TMP}teacher": teacher}
     if model is None:
-        runs = ((np.subtract(v[f"{_TMP}student"], v[f"{_TMP}teacher"], dtype=np.float64))
+        runs = (np.subtract(v[f"{_TMP}student"], v[f"{_TMP}teacher"], dtype=np.float64)
                 for _, v in cached.stream(None, list(keys), keys=keys))
     else:
         runs = (v[f"{_TMP}shift"] for _, v in cached.stream(model, [f"{_TMP}shift"], keys=keys, whole=True))
