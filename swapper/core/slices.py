@@ -74,7 +74,7 @@ class LastReads(dict):
 
 
 def row_spans(n: int, batch_size: int) -> Callable[[Collection[str]], Iterator[Span]]:
-    """A batch source of rows ``start:stop``, ``batch_size`` at a time, with no feeds: for models run on cached tensors only."""
+    """A batch source of rows ``start:stop``, ``batch_size`` at a time, with no feeds (every input is cached)."""
 
     def source(names: Collection[str]) -> Iterator[Span]:
         for start in range(0, n, batch_size):
