@@ -11,17 +11,22 @@ import logging
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import onnx
 
-from swapper.calibrate.loop import CalibrationResult, calibrate, check_mode
+from swapper.calibrate.loop import CalibrationResult, calibrate
 from swapper.core.model_io import LoadedModel, load_model
 from swapper.data.dataset import Dataset, input_specs, load_dataset
 from swapper.errors import UsageError
+from swapper.options import SwapOptions
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
 from swapper.scan.sites import Site, find_sites
+
+if TYPE_CHECKING:  # refit is imported when asked for (it pulls in the ridge solver)
+    from swapper.calibrate.refit import RefitResult
 
 logger = logging.getLogger(__name__)
 
@@ -36,10 +41,12 @@ class ScanResult:
 class SwapResult:
     loaded: LoadedModel
     sites: list[Site]
-    plan: Plan
+    plan: Plan  # the swaps as rewritten: fitted by calibration (and refit) when there was a calibration set
     candidate: onnx.ModelProto
     rewrite: RewriteResult
-    calibration: CalibrationResult | None
+    calibration: CalibrationResult | None  # with refit's model, plan, notes and time when it ran
+    refit: RefitResult | None = None  # the consumer refit on its own
+    options: SwapOptions = field(default_factory=SwapOptions)
     timings: dict[str, float] = field(default_factory=dict)
 
 
@@ -62,53 +69,51 @@ def swap(
     model: str | Path | LoadedModel,
     *,
     calib: str | Path | Dataset | None = None,
-    to: str | None = None,
-    site_ids: list[str] | None = None,
-    only: str | None = None,
-    include_gates: bool = False,
-    include_outputs: bool = False,
-    fold: str = "exact",
-    mode: str = "sequential",
-    bias_correction: bool = True,
-    refit_consumers: bool = False,
-    seed: int = 0,
-    batch_size: int = 64,
-    threads: int = 1,
+    options: SwapOptions | None = None,
     progress=None,
-    cache_mb: float | None = None,
+    **settings,
 ) -> SwapResult:
-    """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model."""
+    """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model.
+
+    ``options`` says what to swap and how (default ``SwapOptions()``);
+    ``settings`` are SwapOptions fields as keywords (``to="relu"``,
+    ``mode="local"``, ...), a shorthand that overrides the matching fields of
+    ``options``. The input model is never changed.
+    """
+    options = options or SwapOptions()  # checked when built: a wrong option fails even with nothing to calibrate
+    if settings:
+        options = options.replace(**settings)
     progress = progress or Silent()
-    check_mode(mode)  # also when there is nothing to calibrate: a wrong option is an error, not ignored
     loaded = _as_loaded(model)
     sites = find_sites(loaded.model)
     t0 = time.perf_counter()
-    plan = make_plan(loaded.model, sites, to=to, site_ids=site_ids, only=only,
-                     include_gates=include_gates, include_outputs=include_outputs, fold=fold)
+    plan = make_plan(loaded.model, sites, **options.plan_settings())
     timings = {"plan_s": time.perf_counter() - t0}
     base = loaded.model
-    calibration = None
+    calibration = refit = None
     if calib is not None and plan.swaps:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
         t0 = time.perf_counter()
-        extra = {} if cache_mb is None else {"cache_bytes": int(cache_mb * (1 << 20))}
-        calibration = calibrate(loaded.model, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
-                                batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
-        base = calibration.model
-        if refit_consumers:
-            from swapper.calibrate.refit import refit_consumers as refit
+        run = {"batch_size": options.batch_size, "seed": options.seed, "threads": options.threads,
+               "progress": progress}
+        if options.cache_bytes() is not None:
+            run["cache_bytes"] = options.cache_bytes()
+        calibration = calibrate(loaded.model, sites, plan, dataset, mode=options.mode,
+                                bias_correction=options.bias_correction, **run)
+        if options.refit_consumers:
+            from swapper.calibrate.refit import refit_consumers
 
-            base = refit(loaded.model, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
-                         threads=threads, progress=progress, result=calibration, **extra)
-            calibration.model = base
+            refit = refit_consumers(loaded.model, calibration.model, sites, calibration.plan, dataset, **run)
+            calibration = refit.apply_to(calibration)
+        plan, base = calibration.plan, calibration.model
         timings["calibrate_s"] = time.perf_counter() - t0
-    elif refit_consumers:
+    elif options.refit_consumers:
         raise UsageError("--refit-consumers needs a calibration set (--calib)")
     t0 = time.perf_counter()
     result = rewrite(base, sites, plan)
     timings["rewrite_s"] = time.perf_counter() - t0
     return SwapResult(loaded=loaded, sites=sites, plan=plan, candidate=result.model, rewrite=result,
-                      calibration=calibration, timings=timings)
+                      calibration=calibration, refit=refit, options=options, timings=timings)
 
 
 @dataclass

@@ -30,27 +30,19 @@ import onnx
 import onnxruntime as ort
 
 from swapper import api
+from swapper.bench.rungs import RUNGS, THREADS, rung_options
 from swapper.check.compare import Reference, compare, reference
 from swapper.check.latency import measure_latency, open_sessions
 from swapper.core.model_io import LoadedModel
 from swapper.core.session import open_session
 from swapper.data.dataset import Dataset, batches
 from swapper.errors import SwapperError
+from swapper.options import SwapOptions
 from swapper.rewrite.apply import rewrite_identity_floor
 
 logger = logging.getLogger(__name__)
 
-RUNGS = ("naive", "local", "sequential", "sequential_bias", "refit")
-# The options of api.swap that make each rung; calib=None for the naive swap.
-RUNG_OPTIONS = {
-    "naive": {},
-    "local": {"mode": "local", "bias_correction": False},
-    "sequential": {"mode": "sequential", "bias_correction": False},
-    "sequential_bias": {"mode": "sequential", "bias_correction": True},
-    "refit": {"mode": "sequential", "bias_correction": True, "refit_consumers": True},
-}
 NOISE_FRACTION = 0.02  # t_orig - t_floor below 2% of t_orig is not a measurable saving (common practice, no source)
-THREADS = 1
 
 
 @dataclass
@@ -80,8 +72,8 @@ def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int)
     return reference(model, val, batch_size=batch_size, threads=THREADS)
 
 
-def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, to: str | None,
-                   rungs: tuple[str, ...], batch_size: int, seed: int = 0, log=None) -> FamilyRun:
+def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, family: SwapOptions,
+                   rungs: tuple[str, ...], log=None) -> FamilyRun:
     """Score every rung in ``rungs`` on ``val`` against ``original``; keep the sequential + bias candidate."""
     metric = metric_for(val)
     ladder: dict = {"metric": metric, "original": None}
@@ -93,13 +85,13 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
             continue
         t0 = time.perf_counter()
         try:
-            result = api.swap(loaded, calib=None if rung == "naive" else calib, to=to, seed=seed,
-                              batch_size=batch_size, threads=THREADS, **RUNG_OPTIONS[rung])
+            result = api.swap(loaded, calib=None if rung == "naive" else calib,
+                              options=rung_options(rung, family))
         except SwapperError as exc:  # a rung the model cannot take (e.g. nothing for refit to fit)
             ladder[rung] = None
             notes.append(f"{rung}: {exc}")
             continue
-        comp = compare(original, result.candidate, val, batch_size=batch_size, threads=THREADS)
+        comp = compare(original, result.candidate, val, batch_size=family.batch_size, threads=THREADS)
         original_score, score = _score(comp, metric)
         if ladder["original"] is None:  # every rung is compared with the same stored outputs: same score
             ladder["original"] = original_score

@@ -75,6 +75,7 @@ from swapper.bench.measure import (
     tool_cost,
 )
 from swapper.bench.memory import memory_ratios, memory_section
+from swapper.bench.rungs import family_options
 from swapper.check.compare import Reference
 from swapper.core.jsonable import json_safe
 from swapper.core.model_io import (
@@ -165,8 +166,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
     int8_cache: dict = {}  # the int8 original, quantized and scored once per model
     for family, to in fams:
         flog = lambda msg, f=family: log(f"{name} [{f}] {msg}")  # noqa: E731
-        run = quality_ladder(loaded, calib, val, original=original, to=to, rungs=tuple(settings["rungs"]),
-                             batch_size=batch, seed=SEED, log=flog)
+        run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
+                             family=family_options(to, batch_size=batch, seed=SEED), log=flog)
         fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
                "notes": run.notes}
         entry["families"].append(fam)

@@ -103,19 +103,20 @@ def swap(
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
     from swapper.cli.run import run_swap
+    from swapper.options import SwapOptions
 
     try:
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
             raise UsageError("--calib and --no-calibrate exclude each other")
-        code = run_swap(
-            model, output, console=out, calib=calib, to=to, site_ids=_split(sites), only=only,
-            include_gates=include_gates, include_outputs=include_outputs, fold=fold, mode=mode,
-            bias_correction=bias_correction, refit_consumers=refit_consumers, val=val, budget=budget,
-            strict=strict, min_agreement=min_agreement, force=force, int8=int8, report=report, seed=seed,
+        options = SwapOptions(
+            to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
+            fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
             batch_size=batch_size, threads=threads, cache_mb=cache_mb,
         )
+        code = run_swap(model, output, options=options, console=out, calib=calib, val=val, budget=budget,
+                        strict=strict, min_agreement=min_agreement, force=force, int8=int8, report=report)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)

@@ -14,6 +14,7 @@ import onnx
 from swapper import api
 from swapper.check.gate import Budget
 from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model
+from swapper.options import SwapOptions
 from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
@@ -80,14 +81,17 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     return 0 if result.verdict.approved else 1
 
 
-def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Path | None = None, val: Path | None = None,
-             budget: float = 1.0, strict: bool = False, min_agreement: float | None = None, force: bool = False,
-             int8: bool = False, report: Path | None = None, batch_size: int = 64, threads: int = 1,
-             **swap_options) -> int:
+def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | None = None, console=None,
+             calib: Path | None = None, val: Path | None = None, budget: float = 1.0, strict: bool = False,
+             min_agreement: float | None = None, force: bool = False, int8: bool = False,
+             report: Path | None = None) -> int:
     """`swapper swap`: plan, calibrate, rewrite; with ``val``, gate before writing ``output``.
 
-    ``model`` is a path or an already loaded model (the demo has loaded it to show its sites).
+    ``model`` is a path or an already loaded model (the demo has loaded it to show its sites);
+    ``options`` say what to swap and how (default ``SwapOptions()``; its batch size and threads also
+    serve the check).
     """
+    options = options or SwapOptions()
     path = model.path if isinstance(model, LoadedModel) else Path(model)
     check_output_path(output, inputs=(path,))  # before any work: a bad output path is a usage error
     rule = Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement)
@@ -95,8 +99,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Pa
     calib_ds = api.load_data(calib, loaded) if calib is not None else None
     val_ds = api.load_data(val, loaded) if val is not None else None
     progress = _progress(console)
-    result = api.swap(loaded, calib=calib_ds, batch_size=batch_size, threads=threads, progress=progress,
-                      **swap_options)
+    result = api.swap(loaded, calib=calib_ds, options=options, progress=progress)
     if console is not None:
         if result.plan.swaps:
             console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
@@ -115,7 +118,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Pa
     check = None
     if val_ds is not None:
         check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
-                          batch_size=batch_size, threads=threads, progress=progress)
+                          batch_size=options.batch_size, threads=options.threads, progress=progress)
         _record_verdict(candidate, check)
         _print_check(console, check)
     approved = check is None or check.verdict.approved

@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass, field
+from collections.abc import Callable, Collection
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Iterator
 
@@ -286,6 +287,17 @@ def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterat
         labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
         targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
         yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
+
+
+def input_batches(ds: Dataset, batch_size: int) -> Callable[[Collection[str]], Iterator[Batch]]:
+    """A batch source for :class:`~swapper.core.slices.SliceRunner`: ``source(names)`` batches only the
+    arrays of ``ds`` named in ``names`` (no labels, no targets), so a slice that reads none copies none."""
+
+    def source(names: Collection[str]) -> Iterator[Batch]:
+        only = replace(ds, arrays={k: v for k, v in ds.arrays.items() if k in names}, labels=None, targets=None)
+        return batches(only, batch_size)
+
+    return source
 
 
 def replicate(ds: Dataset, times: int) -> Dataset:
