@@ -11,10 +11,10 @@ on the data should not end further from the original than the start).
 from __future__ import annotations
 
 import copy
-from pathlib import Path
 
 import numpy as np
 import pytest
+from testkit import DEMO
 
 from swapper import api
 from swapper.calibrate.loop import calibrate
@@ -26,9 +26,6 @@ from swapper.functions.params import PARAMS
 from swapper.plan.plan import Plan, make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import find_sites
-
-DEMO = Path(__file__).resolve().parents[1] / "demo_models"
-pytestmark = pytest.mark.skipif(not (DEMO / "calib.npz").exists(), reason="demo models not built")
 
 
 def _assert_same_plan(a: Plan, b: Plan) -> None:
