@@ -336,7 +336,8 @@ def compare(
             orig_nonfinite |= _nonfinite(outs_o)
             if n == 0:
                 tally.start(outs_o, dataset.targets)
-            reason = tally.update(batch, outs_o, outs_c) or reason
+            shape_change = tally.update(batch, outs_o, outs_c)  # always folds the batch in
+            reason = reason or shape_change
             n += batch.stop - batch.start
             advance(batch.stop - batch.start)
 
