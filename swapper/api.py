@@ -60,9 +60,13 @@ def scan(model: str | Path | LoadedModel) -> ScanResult:
     return ScanResult(loaded=loaded, sites=find_sites(loaded.model))
 
 
-def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False) -> Dataset:
-    """Read a calibration or validation set and check it against the model's inputs."""
-    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels)
+def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False,
+              strict: bool = False) -> Dataset:
+    """Read a calibration or validation set and check it against the model's inputs.
+
+    Arrays the model does not read are left out and named in ``Dataset.notes``; ``strict`` refuses them.
+    """
+    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict)
 
 
 def swap(

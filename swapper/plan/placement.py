@@ -41,9 +41,9 @@ import numpy as np
 
 from swapper.core.graph import GraphIndex
 from swapper.errors import UsageError
-from swapper.options import check_fold
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.functions.registry import Function
+from swapper.options import check_fold
 from swapper.plan.fold_targets import consumer_folds, producer_fold
 from swapper.scan.sites import Site
 

@@ -145,7 +145,8 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert c["n"] == 450 and c["task"] == "classification"  # val.npz: 450 rows with labels
     assert c["has_nonfinite"] is False and c["signature_changed"] is False
     assert p["budget"] == {"max_drop_pp": 1.0, "strict": False, "min_agreement": None}  # README defaults
-    assert set(p["verdict"]) == {"approved", "reason", "rule"} and p["verdict"]["approved"] is True
+    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
+    assert p["verdict"]["approved"] is True and p["verdict"]["metric"] == "top1"  # labels + class scores
     assert "1.00 pp" in p["verdict"]["rule"]  # README: the rule field states the rule with its numbers
 
     lat = p["latency"]
