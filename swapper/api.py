@@ -11,22 +11,25 @@ import logging
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import onnx
 
-from swapper.calibrate.loop import CalibrationResult, calibrate, check_mode
+from swapper.calibrate.loop import CalibrationResult, calibrate
 from swapper.core.model_io import LoadedModel, load_model
 from swapper.data.dataset import Dataset, input_specs, load_dataset
 from swapper.errors import UsageError
+from swapper.options import SwapOptions
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
 from swapper.scan.sites import Site, find_sites
 from swapper.targets import TargetProfile, load_target
 
-logger = logging.getLogger(__name__)
+if TYPE_CHECKING:  # refit is imported when asked for (it pulls in the ridge solver)
+    from swapper.calibrate.refit import RefitResult
 
-DEFAULT_TARGET = "ort-cpu"  # the target planned for unless told otherwise: never slower than the original there
+logger = logging.getLogger(__name__)
 
 
 @dataclass
@@ -37,14 +40,16 @@ class ScanResult:
 
 @dataclass
 class SwapResult:
-    loaded: LoadedModel  # the model as given (the oracle the candidate is checked and timed against)
-    sites: list[Site]  # found in ``base``
-    plan: Plan
+    loaded: LoadedModel
+    sites: list[Site]
+    plan: Plan  # the swaps as rewritten: fitted by calibration (and refit) when there was a calibration set
     candidate: onnx.ModelProto
     rewrite: RewriteResult
-    calibration: CalibrationResult | None
+    calibration: CalibrationResult | None  # with refit's model, plan, notes and time when it ran
+    refit: RefitResult | None = None  # the consumer refit on its own
+    options: SwapOptions = field(default_factory=SwapOptions)
     timings: dict[str, float] = field(default_factory=dict)
-    target: TargetProfile | None = None  # the profile the plan was made for
+    target: TargetProfile | None = None  # the profile the plan was made for (options.target, loaded)
     base: onnx.ModelProto | None = None  # the model the plan was made on: ``loaded.model`` or its opset conversion
 
 
@@ -86,80 +91,79 @@ def scan(model: str | Path | LoadedModel) -> ScanResult:
     return ScanResult(loaded=loaded, sites=find_sites(loaded.model))
 
 
-def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False) -> Dataset:
-    """Read a calibration or validation set and check it against the model's inputs."""
-    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels)
+def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False,
+              strict: bool = False) -> Dataset:
+    """Read a calibration or validation set and check it against the model's inputs.
+
+    Arrays the model does not read are left out and named in ``Dataset.notes``; ``strict`` refuses them.
+    """
+    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict)
 
 
 def swap(
     model: str | Path | LoadedModel,
     *,
     calib: str | Path | Dataset | None = None,
-    to: str | None = None,
-    site_ids: list[str] | None = None,
-    only: str | None = None,
-    include_gates: bool = False,
-    include_outputs: bool = False,
-    fold: str = "exact",
-    mode: str = "sequential",
-    bias_correction: bool = True,
-    refit_consumers: bool = False,
-    seed: int = 0,
-    batch_size: int = 64,
-    threads: int = 1,
+    options: SwapOptions | None = None,
     progress=None,
-    cache_mb: float | None = None,
-    target: str | Path | TargetProfile | None = DEFAULT_TARGET,
-    opset: int | None = None,
-    choices: dict[str, str] | None = None,
+    **settings,
 ) -> SwapResult:
     """Plan a swap, calibrate it on ``calib`` (skipped when None) and rewrite a copy of the model.
 
-    ``target``: a built-in profile name, a profile .json path or a TargetProfile
-    (default ``ort-cpu``): sites, surrogates and forms are chosen to pay there
-    (:mod:`swapper.plan.choose`); None plans without a target (registry
-    defaults). ``opset``: convert the model to this default-domain opset first
-    (checked, compared on ``calib``; recorded in ``plan.conversion``).
-    ``choices``: {site id: "surrogate" or "surrogate:form"} pins single sites.
+    ``options`` says what to swap and how (default ``SwapOptions()``);
+    ``settings`` are SwapOptions fields as keywords (``to="relu"``,
+    ``mode="local"``, ...), a shorthand that overrides the matching fields of
+    ``options``. The input model is never changed.
+
+    ``options.target`` (default ``ort-cpu``, a built-in name or a profile .json
+    path; None: no target, registry defaults): sites, surrogates and forms are
+    chosen to pay there (:mod:`swapper.plan.choose`). ``options.opset``: the
+    model is converted to that opset first, checked and compared on ``calib``
+    (recorded in ``plan.conversion``). ``options.choices`` pins single sites.
     """
+    options = options or SwapOptions()  # checked when built: a wrong option fails even with nothing to calibrate
+    if settings:
+        options = options.replace(**settings)
     progress = progress or Silent()
-    check_mode(mode)  # also when there is nothing to calibrate: a wrong option is an error, not ignored
     loaded = _as_loaded(model)
-    profile = resolve_target(target)
-    if opset is not None and profile is not None and not profile.accepts_opset(opset):
-        raise UsageError(f"--opset {opset}: {profile.name} accepts opsets {profile.opset_min}..{profile.opset_max}")
+    profile = resolve_target(options.target)
+    if options.opset is not None and profile is not None and not profile.accepts_opset(options.opset):
+        raise UsageError(f"--opset {options.opset}: {profile.name} accepts opsets "
+                         f"{profile.opset_min}..{profile.opset_max}")
     dataset = None
     if calib is not None:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
     t0 = time.perf_counter()
-    work, conversion = _converted(loaded, opset, dataset, batch_size)
+    work, conversion = _converted(loaded, options.opset, dataset, options.batch_size)
     sites = find_sites(work)
-    plan = make_plan(work, sites, to=to, site_ids=site_ids, only=only, include_gates=include_gates,
-                     include_outputs=include_outputs, fold=fold, target=profile, choices=choices)
+    plan = make_plan(work, sites, **options.plan_settings(), target=profile)
     plan.conversion = conversion
     timings = {"plan_s": time.perf_counter() - t0}
     base = work
-    calibration = None
+    calibration = refit = None
     if dataset is not None and plan.swaps:
         t0 = time.perf_counter()
-        extra = {} if cache_mb is None else {"cache_bytes": int(cache_mb * (1 << 20))}
-        calibration = calibrate(work, sites, plan, dataset, mode=mode, bias_correction=bias_correction,
-                                batch_size=batch_size, seed=seed, threads=threads, progress=progress, **extra)
-        base = calibration.model
-        if refit_consumers:
-            from swapper.calibrate.refit import refit_consumers as refit
+        run = {"batch_size": options.batch_size, "seed": options.seed, "threads": options.threads,
+               "progress": progress}
+        if options.cache_bytes() is not None:
+            run["cache_bytes"] = options.cache_bytes()
+        calibration = calibrate(work, sites, plan, dataset, mode=options.mode,
+                                bias_correction=options.bias_correction, **run)
+        if options.refit_consumers:
+            from swapper.calibrate.refit import refit_consumers
 
-            base = refit(work, base, sites, plan, dataset, batch_size=batch_size, seed=seed,
-                         threads=threads, progress=progress, result=calibration, **extra)
-            calibration.model = base
+            refit = refit_consumers(work, calibration.model, sites, calibration.plan, dataset, **run)
+            calibration = refit.apply_to(calibration)
+        plan, base = calibration.plan, calibration.model
         timings["calibrate_s"] = time.perf_counter() - t0
-    elif refit_consumers:
+    elif options.refit_consumers:
         raise UsageError("--refit-consumers needs a calibration set (--calib)")
     t0 = time.perf_counter()
     result = rewrite(base, sites, plan)
     timings["rewrite_s"] = time.perf_counter() - t0
     return SwapResult(loaded=loaded, sites=sites, plan=plan, candidate=result.model, rewrite=result,
-                      calibration=calibration, timings=timings, target=profile, base=work)
+                      calibration=calibration, refit=refit, options=options, timings=timings, target=profile,
+                      base=work)
 
 
 def time_on_target(original: onnx.ModelProto, candidate: onnx.ModelProto,

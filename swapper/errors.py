@@ -1,8 +1,14 @@
 """One exception per broken promise.
 
 Every error a user can cause derives from :class:`SwapperError`. The CLI prints
-its message on one line and exits with ``exit_code`` (2 = bad input or usage);
-anything else is a bug and keeps its traceback.
+its message on one line and exits with ``exit_code``; anything else is a bug and
+keeps its traceback. The exit codes, defined here and nowhere else:
+
+- 0: done, or the gate approved the candidate;
+- 1: the gate rejected the candidate (:data:`EXIT_REJECTED`; nothing else exits 1);
+- 2: bad input or usage (:class:`SwapperError` and most subclasses);
+- 3: the validation data cannot judge this model (:class:`CannotJudge`): a figure the
+  rule needs is missing (no labels for top-1, no float output to compare, ...).
 """
 from __future__ import annotations
 
@@ -17,10 +23,17 @@ def first_line(exc: BaseException) -> str:
     return type(exc).__name__
 
 
+EXIT_OK = 0
+EXIT_REJECTED = 1
+EXIT_BAD_INPUT = 2
+EXIT_CANNOT_JUDGE = 3
+
+
 class SwapperError(Exception):
     """Base class: a user-facing failure with a one-line message."""
 
-    exit_code = 2
+    exit_code = EXIT_BAD_INPUT
+    label = "error"  # what the CLI prints before the message
 
     def __init__(self, message: str, path: str | Path | None = None):
         self.path = str(path) if path is not None else None
@@ -47,4 +60,15 @@ class UsageError(SwapperError):
 class GateRejected(SwapperError):
     """The candidate failed the accuracy budget. Exit code 1, so CI can tell it from bad input."""
 
-    exit_code = 1
+    exit_code = EXIT_REJECTED
+
+
+class CannotJudge(SwapperError):
+    """The validation data or the model's outputs give the gate nothing to decide on.
+
+    Not a rejection (the candidate may be fine) and not malformed input: the message
+    says which figure is missing and which option or array would supply it. Exit code 3.
+    """
+
+    exit_code = EXIT_CANNOT_JUDGE
+    label = "cannot judge"

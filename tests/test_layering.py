@@ -18,6 +18,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "swapper"
 # lowest first; each entry is one layer (a top-level module or a subpackage)
 LAYERS = [
     ("errors", "progress"),
+    ("options",),
     ("core",),
     ("functions",),
     ("fit",),

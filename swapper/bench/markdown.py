@@ -27,6 +27,13 @@ def _pp(x) -> str:
     return "–" if x is None else f"{x:+.2f}"
 
 
+def _score(x, metric: str | None) -> str:
+    """A ladder figure: percent for accuracy and agreement, the cosine itself, dB for SQNR, RMSE as is."""
+    if metric in ("accuracy", "agreement"):
+        return _pct(x)
+    return num(x, {"cosine": ".5f", "sqnr": ".1f"}.get(metric, ".4g"))
+
+
 def _table(header: list[str], rows: list[list[str]]) -> list[str]:
     lines = ["| " + " | ".join(header) + " |", "|" + "|".join("---" for _ in header) + "|"]
     lines += ["| " + " | ".join(r) + " |" for r in rows]
@@ -42,13 +49,16 @@ def _ladder(results: dict) -> list[str]:
     for m in results["models"]:
         for f in m["families"]:
             lad = f["ladder"]
-            cells = [_model_label(m), f["family"], lad["metric"], _pct(lad["original"])]
+            metric = lad["metric"]
+            cells = [_model_label(m), f["family"], metric or "–", _score(lad["original"], metric)]
             for r in RUNGS:
-                cells.append("–" if lad[r] is None else f"{_pct(lad[r])} ({_pp(lad['delta_pp'][r])})")
+                cells.append("–" if lad[r] is None else f"{_score(lad[r], metric)} ({_pp(lad['delta_pp'][r])})")
             rows.append(cells)
-    head = ["model", "family", "metric", "original %"] + [f"{RUNG_TITLES[r]} % (Δ pp)" for r in RUNGS]
-    lines = ["## Quality ladder", "", "Validation top-1 (agreement with the original when the set has no "
-             "labels); Δ in points vs the original.", ""] + _table(head, rows)
+    head = ["model", "family", "metric", "original"] + [f"{RUNG_TITLES[r]} (Δ pp)" for r in RUNGS]
+    lines = ["## Quality ladder", "", "The gate's default figure: validation top-1 accuracy % with labels, top-1 "
+             "agreement % with the original for class scores without labels, mean per-sample cosine to the "
+             "original's output for embeddings and dense maps (SQNR in dB or RMSE for other outputs); Δ in points "
+             "vs the original for the percentages.", ""] + _table(head, rows)
     if any(m["synthetic"] for m in results["models"]):
         lines += ["Synthetic models have random, untrained weights and a head scaled to unit-variance scores, so "
                   "their top-1 is fragile (compare the int8 original's agreement below): use them for cost and "
@@ -118,8 +128,8 @@ def _speed(results: dict) -> list[str]:
             q = f.get("int8")
             if q:
                 for bs, s in q["speed"].items():
-                    qrows.append([_model_label(m), f["family"], bs, q["metric"], _pct(q["original"]),
-                                  _pct(q["swapped"]), _pp(q["delta_pp"]), num(s["original_ms"], ".4f"),
+                    qrows.append([_model_label(m), f["family"], bs, q["metric"] or "–", _score(q["original"], q["metric"]),
+                                  _score(q["swapped"], q["metric"]), _pp(q["delta_pp"]), num(s["original_ms"], ".4f"),
                                   num(s["swapped_ms"], ".4f"), num(s["ratio"], ".3f")])
     head = ["model", "family", "batch", "original ms", "swapped ms", "floor ms", "swapped/original",
             "saving achieved"]
@@ -127,10 +137,10 @@ def _speed(results: dict) -> list[str]:
              "interleaved runs. Floor = every swapped site replaced by Identity; saving achieved = "
              "(orig − swapped)/(orig − floor).", ""] + _table(head, rows)
     if qrows:
-        head = ["model", "family", "batch", "metric", "int8 original %", "int8 swapped %", "Δ pp",
+        head = ["model", "family", "batch", "metric", "int8 original", "int8 swapped", "Δ pp",
                 "int8 original ms", "int8 swapped ms", "ratio"]
         lines += ["### int8 (QDQ, U8S8, MinMax on the calibration set)", "",
-                  "Accuracy, or agreement with the fp32 original when unlabelled.", ""] + _table(head, qrows)
+                  "The ladder's figure, measured against the fp32 original.", ""] + _table(head, qrows)
     return lines
 
 
@@ -165,7 +175,8 @@ def write_plots(results: dict, folder: Path) -> list[Path]:
     except ImportError:
         logger.info("matplotlib not installed: no plots")
         return []
-    rows = [(f"{m['name']}\n{f['family']}", f) for m in results["models"] for f in m["families"]]
+    rows = [(f"{m['name']}\n{f['family']}", f) for m in results["models"] for f in m["families"]
+            if f["ladder"]["metric"] in ("accuracy", "agreement", "cosine")]  # figures on one 0..100 scale
     if not rows:
         return []
     written = []
@@ -176,7 +187,7 @@ def write_plots(results: dict, folder: Path) -> list[Path]:
         ax.bar([i + k * width for i in range(len(rows))], [100 * v if v is not None else 0 for v in vals],
                width, label=RUNG_TITLES.get(rung, rung))
     ax.set_xticks([i + 0.4 for i in range(len(rows))], [r for r, _ in rows], fontsize=7)
-    ax.set_ylabel("top-1 % (accuracy or agreement)")
+    ax.set_ylabel("top-1 % (accuracy or agreement), or cosine × 100")
     ax.set_ylim(bottom=max(0.0, min(100 * (f["ladder"]["naive"] or 1) for _, f in rows) - 10))
     ax.legend(fontsize=7, ncol=3)
     fig.tight_layout()

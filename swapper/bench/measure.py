@@ -6,9 +6,11 @@ plain dicts for the ``swapper.bench.run/1`` results (see swapper/bench/run.py):
 - ``original_reference``: the original run once over the validation set; every
   rung and int8 model of every family is compared with its stored outputs, and
   its session is the one timed;
-- ``quality_ladder``: validation top-1 accuracy (agreement without labels) of
-  the original and of five increasingly complete swaps (naive, local,
-  sequential, sequential + bias correction, + consumer refit);
+- ``quality_ladder``: the gate's default figure for the model and its data
+  (:func:`metric_for`: top-1 accuracy with labels, top-1 agreement for class
+  scores without labels, mean per-sample cosine for embeddings and dense maps,
+  SQNR or RMSE otherwise) of the original and of five increasingly complete swaps
+  (naive, local, sequential, sequential + bias correction, + consumer refit);
 - ``plain_pass_seconds``: one onnxruntime pass of the original over the
   calibration set (the yardstick the tool's own cost is divided by);
 - ``tool_cost``: the calibration timings of the sequential + bias rung over it;
@@ -30,27 +32,20 @@ import onnx
 import onnxruntime as ort
 
 from swapper import api
-from swapper.check.compare import Reference, compare, reference
+from swapper.bench.rungs import RUNGS, THREADS, rung_options
+from swapper.check.compare import Reference, compare, probe, reference
+from swapper.check.gate import GateRule, choose_metric
 from swapper.check.latency import measure_latency, open_sessions
 from swapper.core.model_io import LoadedModel
 from swapper.core.session import open_session
 from swapper.data.dataset import Dataset, batches
-from swapper.errors import SwapperError
+from swapper.errors import CannotJudge, SwapperError
+from swapper.options import SwapOptions
 from swapper.rewrite.apply import rewrite_identity_floor
 
 logger = logging.getLogger(__name__)
 
-RUNGS = ("naive", "local", "sequential", "sequential_bias", "refit")
-# The options of api.swap that make each rung; calib=None for the naive swap.
-RUNG_OPTIONS = {
-    "naive": {},
-    "local": {"mode": "local", "bias_correction": False},
-    "sequential": {"mode": "sequential", "bias_correction": False},
-    "sequential_bias": {"mode": "sequential", "bias_correction": True},
-    "refit": {"mode": "sequential", "bias_correction": True, "refit_consumers": True},
-}
 NOISE_FRACTION = 0.02  # t_orig - t_floor below 2% of t_orig is not a measurable saving (common practice, no source)
-THREADS = 1
 
 
 @dataclass
@@ -63,16 +58,42 @@ class FamilyRun:
     notes: list[str] = field(default_factory=list)
 
 
-def _score(comp, metric: str) -> tuple[float | None, float | None]:
-    """(original, candidate) on ``metric``: top-1 accuracy, or top-1 agreement with the original."""
+# Metrics that are shares of samples: a delta in percentage points means something only for these.
+FRACTION_METRICS = ("accuracy", "agreement")
+
+
+def _score(comp, metric: str | None) -> tuple[float | None, float | None]:
+    """(original, candidate) on ``metric`` (see :func:`metric_for`); the original against itself where relative."""
+    errors = list(comp.output_errors.values())
     if metric == "accuracy":
         return comp.top1_original, comp.top1_candidate
-    return 1.0, comp.agreement
+    if metric == "agreement":
+        return 1.0, comp.agreement
+    if metric == "cosine":  # the worst judged output's mean per-sample cosine
+        values = [e["cosine_mean"] for e in errors if e.get("cosine_mean") is not None]
+        return 1.0, (min(values) if values else None)
+    if metric == "sqnr":  # the original has no noise (+inf dB): no figure to show for it
+        values = [e["sqnr_db"] for e in errors if e.get("sqnr_db") is not None]
+        return None, (min(values) if values else None)
+    if metric == "rmse" and comp.regression is not None:
+        return comp.regression["original"]["rmse"], comp.regression["candidate"]["rmse"]
+    return None, None
 
 
-def metric_for(val: Dataset) -> str:
-    """accuracy when the validation set has labels, else agreement with the original."""
-    return "accuracy" if val.labels is not None else "agreement"
+def metric_for(original: Reference, val: Dataset) -> str | None:
+    """The gate's default metric for the original's outputs on ``val``, named as the bench names it.
+
+    ``accuracy`` (labels + class scores), ``agreement`` (class scores), ``cosine`` (embeddings, dense
+    maps), ``sqnr`` (one value per sample), ``rmse`` (targets); None when the data cannot judge.
+    """
+    kinds = probe(original, val, batch_size=original.batch_size)  # from the stored outputs: no extra run
+    try:
+        choice = choose_metric(kinds, GateRule(), has_labels=val.labels is not None,
+                               has_targets=val.targets is not None)
+    except CannotJudge as exc:
+        logger.info("no quality figure: %s", exc)
+        return None
+    return "accuracy" if choice.metric == "top1" else choice.metric
 
 
 def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int) -> Reference:
@@ -80,10 +101,10 @@ def original_reference(model: onnx.ModelProto, val: Dataset, *, batch_size: int)
     return reference(model, val, batch_size=batch_size, threads=THREADS)
 
 
-def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, to: str | None,
-                   rungs: tuple[str, ...], batch_size: int, seed: int = 0, log=None) -> FamilyRun:
+def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, original: Reference, family: SwapOptions,
+                   rungs: tuple[str, ...], log=None) -> FamilyRun:
     """Score every rung in ``rungs`` on ``val`` against ``original``; keep the sequential + bias candidate."""
-    metric = metric_for(val)
+    metric = metric_for(original, val)
     ladder: dict = {"metric": metric, "original": None}
     notes: list[str] = []
     run = FamilyRun(ladder=ladder, notes=notes)
@@ -93,13 +114,13 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
             continue
         t0 = time.perf_counter()
         try:
-            result = api.swap(loaded, calib=None if rung == "naive" else calib, to=to, seed=seed,
-                              batch_size=batch_size, threads=THREADS, **RUNG_OPTIONS[rung])
+            result = api.swap(loaded, calib=None if rung == "naive" else calib,
+                              options=rung_options(rung, family))
         except SwapperError as exc:  # a rung the model cannot take (e.g. nothing for refit to fit)
             ladder[rung] = None
             notes.append(f"{rung}: {exc}")
             continue
-        comp = compare(original, result.candidate, val, batch_size=batch_size, threads=THREADS)
+        comp = compare(original, result.candidate, val, batch_size=family.batch_size, threads=THREADS)
         original_score, score = _score(comp, metric)
         if ladder["original"] is None:  # every rung is compared with the same stored outputs: same score
             ladder["original"] = original_score
@@ -107,17 +128,20 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
         if rung == "sequential_bias":
             run.swapped, run.swap_result = result.candidate, result
         if log:
-            log(f"{rung}: {metric} {_fmt(score)} ({time.perf_counter() - t0:.1f}s)")
+            log(f"{rung}: {metric} {_fmt(score, metric)} ({time.perf_counter() - t0:.1f}s)")
     ladder["delta_pp"] = {
-        r: (None if ladder[r] is None or ladder["original"] is None else 100.0 * (ladder[r] - ladder["original"]))
+        r: (None if ladder[r] is None or ladder["original"] is None or metric not in FRACTION_METRICS
+            else 100.0 * (ladder[r] - ladder["original"]))
         for r in RUNGS
     }
     ladder["n"] = val.n
     return run
 
 
-def _fmt(x: float | None) -> str:
-    return "-" if x is None else f"{100 * x:.2f}%"
+def _fmt(x: float | None, metric: str | None = "accuracy") -> str:
+    if x is None:
+        return "-"
+    return f"{100 * x:.2f}%" if metric in FRACTION_METRICS else f"{x:.5g}"
 
 
 def plain_pass_seconds(session: ort.InferenceSession, calib: Dataset, *, batch_size: int, runs: int = 3) -> float:
@@ -197,7 +221,7 @@ class Int8Original:
 
 def _int8_score(original: Reference, q_session: ort.InferenceSession, val: Dataset, batch_size: int) -> float | None:
     comp = compare(original, q_session, val, batch_size=batch_size)
-    return _score(comp, metric_for(val))[1]
+    return _score(comp, metric_for(original, val))[1]
 
 
 def int8_original(original: Reference, q_original: onnx.ModelProto, val: Dataset, *, batch_size: int) -> Int8Original:
@@ -211,8 +235,10 @@ def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.Mod
     """Accuracy (or agreement with the fp32 original) and latency of int8 original vs int8 swapped."""
     swapped = open_session(q_swapped, threads=THREADS)
     scores = {"original": q_original.score, "swapped": _int8_score(original, swapped, val, batch_size)}
-    view = {"metric": metric_for(val), "original": scores["original"], "swapped": scores["swapped"],
-            "delta_pp": None if None in scores.values() else 100.0 * (scores["swapped"] - scores["original"]),
+    metric = metric_for(original, val)
+    view = {"metric": metric, "original": scores["original"], "swapped": scores["swapped"],
+            "delta_pp": None if None in scores.values() or metric not in FRACTION_METRICS
+            else 100.0 * (scores["swapped"] - scores["original"]),
             "speed": {}}
     sessions = {"original": q_original.session, "swapped": swapped}
     for bs in batch_sizes:

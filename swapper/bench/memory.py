@@ -44,6 +44,7 @@ def _child(spec: dict) -> dict:
     import resource
 
     from swapper import api
+    from swapper.bench.rungs import family_options, rung_options
     from swapper.core.model_io import load_model
     from swapper.data.dataset import replicate, subset
 
@@ -60,8 +61,8 @@ def _child(spec: dict) -> dict:
     baseline = _rss_kib()
     peak_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     t0 = time.perf_counter()
-    api.swap(loaded, calib=ds, to=spec.get("to"), mode="sequential", bias_correction=True,
-             batch_size=spec["batch_size"], threads=1)
+    family = family_options(spec.get("to"), batch_size=spec["batch_size"])
+    api.swap(loaded, calib=ds, options=rung_options("sequential_bias", family))
     wall = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return {"times": spec["times"], "samples": ds.n, "baseline_kib": baseline, "peak_before_kib": peak_before,

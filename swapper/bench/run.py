@@ -22,12 +22,15 @@ results.json, schema ``swapper.bench.run/1``:
     ``calib_samples``, ``val_samples``, ``sites`` (ids swapped by the default plan);
   - ``families``: list of objects:
     - ``family`` ("hard_swish", "relu", "default"...), ``targets`` (site id -> surrogate);
-    - ``ladder``: ``metric`` ("accuracy" with labels, else "agreement" = top-1
-      agreement with the original), fractions in [0, 1] for ``original``,
+    - ``ladder``: ``metric``, the gate's default figure (``swapper.bench.measure.metric_for``):
+      "accuracy" (labels + class scores), "agreement" (top-1 agreement with the
+      original), "cosine" (mean per-sample cosine to the original's output; the
+      worst judged output), "sqnr" (dB; the original's is null), "rmse" (targets),
+      or null when the data cannot judge the model; the figure for ``original``,
       ``naive`` (starting parameters, no calibration), ``local`` (local mode, no
       bias correction), ``sequential`` (no bias correction), ``sequential_bias``,
       ``refit`` (+ consumer refit); null when the rung was not run; ``delta_pp``
-      (rung -> points vs original), ``n`` (validation samples);
+      (rung -> points vs original, accuracy and agreement only), ``n`` (validation samples);
     - ``cost`` (sequential + bias rung): ``plain_pass_s`` (one onnxruntime pass of
       the original over the calibration set, median of 3), ``record_s``,
       ``segments_s``, ``fit_s``, ``bias_correction_s``, ``total_s`` (calibration
@@ -36,8 +39,8 @@ results.json, schema ``swapper.bench.run/1``:
       ``floor_ms`` (medians), p10/p90 of original and swapped, ``ratio``
       (swapped/original), ``saving_fraction`` ((orig − swapped)/(orig − floor),
       null when orig − floor < 2% of orig), ``note``;
-    - ``int8``: ``metric``, ``original``, ``swapped`` (int8 models' accuracy, or
-      agreement with the fp32 original), ``delta_pp``, ``speed``: batch ->
+    - ``int8``: ``metric`` (as the ladder's), ``original``, ``swapped`` (the int8 models'
+      figure against the fp32 original), ``delta_pp``, ``speed``: batch ->
       ``original_ms``, ``swapped_ms``, ``ratio``; null if quantization failed;
     - ``notes``: list of strings.
   - ``memory`` (sequential + bias calibration of the first family, fresh process
@@ -75,6 +78,7 @@ from swapper.bench.measure import (
     tool_cost,
 )
 from swapper.bench.memory import memory_ratios, memory_section
+from swapper.bench.rungs import family_options
 from swapper.check.compare import Reference
 from swapper.core.jsonable import json_safe
 from swapper.core.model_io import (
@@ -165,8 +169,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
     int8_cache: dict = {}  # the int8 original, quantized and scored once per model
     for family, to in fams:
         flog = lambda msg, f=family: log(f"{name} [{f}] {msg}")  # noqa: E731
-        run = quality_ladder(loaded, calib, val, original=original, to=to, rungs=tuple(settings["rungs"]),
-                             batch_size=batch, seed=SEED, log=flog)
+        run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
+                             family=family_options(to, batch_size=batch, seed=SEED), log=flog)
         fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
                "notes": run.notes}
         entry["families"].append(fam)

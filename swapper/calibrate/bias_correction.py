@@ -45,9 +45,8 @@ from onnxruntime.capi.onnxruntime_pybind11_state import (
 from swapper.core.conv import conv_geometry, tap_windows
 from swapper.core.graph import GraphIndex, attr
 from swapper.core.session import open_session
+from swapper.core.slices import SliceRunner
 from swapper.core.surgery import all_names, set_const_input
-from swapper.core.tensor_cache import TensorCache
-from swapper.data.dataset import Dataset
 from swapper.plan.layers import Layer, Reach, linear_layer, reach_linear
 from swapper.scan.sites import Site
 
@@ -57,18 +56,27 @@ _TMP = "swapper::bias_correction/"  # tensor names of the difference model (neve
 
 
 def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach,
-                      pair: bool, with_layer: bool) -> onnx.ModelProto | None:
+                      pair: bool, with_layer: bool, subtract: bool = False) -> onnx.ModelProto | None:
     """A model from a changed site output to the change at (or, ``with_layer``, after) a reached layer.
 
     Inputs "delta" (student − teacher; every step is linear) or, with ``pair``,
     "student" and "teacher" (a max pool is not linear: each goes through the
-    steps and the difference is taken after them). With ``with_layer`` the layer
-    runs without its bias on the difference (its zero padding is linear too).
-    Output "shift". None when a step reads a run-time tensor (a computed shape).
+    steps and the difference is taken after them). With ``subtract`` the inputs
+    are "student" and "teacher" and the model forms delta itself, in float64
+    rounded once to the model's type (as ``np.subtract(s, t, dtype=float64)``).
+    With ``with_layer`` the layer runs without its bias on the difference (its
+    zero padding is linear too). Output "shift". None when a step reads a
+    run-time tensor (a computed shape).
     """
     elem = index.dtypes.get(site.output, onnx.TensorProto.FLOAT)
     nodes, consts, ends = [], {}, []
     sides = [f"{_TMP}{side}" for side in (("student", "teacher") if pair else ("delta",))]
+    model_inputs = [f"{_TMP}student", f"{_TMP}teacher"] if pair or subtract else sides
+    if subtract and not pair:
+        wide = [f"{_TMP}{side}::float64" for side in ("student", "teacher")]
+        nodes += [helper.make_node("Cast", [n], [w], to=onnx.TensorProto.DOUBLE) for n, w in zip(model_inputs, wide)]
+        nodes += [helper.make_node("Sub", wide, [f"{_TMP}delta::float64"]),
+                  helper.make_node("Cast", [f"{_TMP}delta::float64"], sides, to=elem)]
     for side in sides:
         tensor = side
         for i, step in enumerate(reach.steps):
@@ -95,7 +103,7 @@ def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reac
         consts[reach.node.input[1]] = index.initializers[reach.node.input[1]]
         nodes.append(layer)
     graph = helper.make_graph(nodes, "difference",
-                              [helper.make_tensor_value_info(n, elem, None) for n in sides],
+                              [helper.make_tensor_value_info(n, elem, None) for n in model_inputs],
                               [helper.make_tensor_value_info(f"{_TMP}shift", elem, None)],
                               initializer=list(consts.values()))
     return helper.make_model(graph, opset_imports=work.opset_import, ir_version=work.ir_version)
@@ -149,25 +157,22 @@ def _layer_shift(index: GraphIndex, node: onnx.NodeProto, mean: np.ndarray, in_n
     return mean @ w
 
 
-def _per_batch(work, index, site, reach, cache, student, teacher, ds, batch_size, axis, in_numpy, pair):
+def _per_batch(work, index, site, reach, cached: SliceRunner, student, teacher, axis, in_numpy, pair):
     """The layer-input (numpy layers) or layer-output mean change, one batch at a time from the cache."""
     node = reach.node
     model = None
     if reach.steps or not in_numpy:
-        model = _difference_model(work, index, site, reach, pair, with_layer=not in_numpy)
+        model = _difference_model(work, index, site, reach, pair, with_layer=not in_numpy, subtract=True)
         if model is None:
             return None
-    sess = open_session(model) if model is not None else None
+    keys = {f"{_TMP}student": student, f"{_TMP}teacher": teacher}
+    if model is None:
+        runs = (np.subtract(v[f"{_TMP}student"], v[f"{_TMP}teacher"], dtype=np.float64)
+                for _, v in cached.stream(None, list(keys), keys=keys))
+    else:
+        runs = (v[f"{_TMP}shift"] for _, v in cached.stream(model, [f"{_TMP}shift"], keys=keys, whole=True))
     total, count = None, 0
-    for start in range(0, ds.n, batch_size):
-        stop = min(start + batch_size, ds.n)
-        s, t = cache.read(student, start, stop), cache.read(teacher, start, stop)
-        if sess is None:
-            out = np.subtract(s, t, dtype=np.float64)
-        elif pair:
-            out = sess.run(None, {f"{_TMP}student": s, f"{_TMP}teacher": t})[0]
-        else:
-            out = sess.run(None, {f"{_TMP}delta": np.subtract(s, t, dtype=np.float64).astype(s.dtype)})[0]
+    for out in runs:
         if in_numpy and node.op_type == "Gemm" and int(attr(node, "transA", 0)):
             out = out.T
         sums, k = _channel_sums(out, -1 if in_numpy else axis)
@@ -235,9 +240,8 @@ def _from_mean(work, index, site, reach, delta: DeltaSum, in_numpy):
     return sums / max(k, 1)
 
 
-def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach, cache: TensorCache,
-                student: str, teacher: str, ds: Dataset, batch_size: int, axis: int,
-                delta: DeltaSum | None = None) -> np.ndarray | None:
+def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Reach, cached: SliceRunner,
+                student: str, teacher: str, axis: int, delta: DeltaSum | None = None) -> np.ndarray | None:
     """E[layer(student path) − layer(teacher path)] per output channel, bias cancelled (None: cannot run).
 
     The layer is linear: Gemm and 2-D MatMul get W·mean(Δ) in numpy, Conv,
@@ -253,16 +257,20 @@ def _mean_shift(work: onnx.ModelProto, index: GraphIndex, site: Site, reach: Rea
     if delta is not None and delta.n and not pair and not (node.op_type == "Gemm" and attr(node, "transA", 0)):
         mean = _from_mean(work, index, site, reach, delta, in_numpy)
     if mean is NotImplemented:
-        mean = _per_batch(work, index, site, reach, cache, student, teacher, ds, batch_size, axis, in_numpy, pair)
+        mean = _per_batch(work, index, site, reach, cached, student, teacher, axis, in_numpy, pair)
     return None if mean is None else _layer_shift(index, node, mean, in_numpy)
 
 
-def correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student: str, teacher: str, ds: Dataset,
-                 batch_size: int, delta: DeltaSum | None = None) -> tuple[list[str], list[str]]:
+def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student: str, teacher: str,
+                 delta: DeltaSum | None = None) -> tuple[list[str], list[str]]:
     """Fold the negative mean shift of each linear consumer's output into its bias (Nagel et al. 2019).
 
-    The consumers may sit behind pools and reshapes (``reach_linear`` without
-    gates: a gate's other operand is not recorded).
+    ``student`` and ``teacher`` are the cache keys of the site's swapped and
+    original outputs, read batch by batch through ``cached`` (a runner over
+    the calibration cache, with no prefix) when the shift cannot come from
+    ``delta``. ``work`` is updated in place. The consumers may sit behind pools
+    and reshapes (``reach_linear`` without gates: a gate's other operand is not
+    recorded).
     """
     index = GraphIndex.of(work)
     taken = all_names(work)
@@ -278,7 +286,7 @@ def correct_bias(work: onnx.ModelProto, site: Site, cache: TensorCache, student:
             continue
         beta = float(attr(node, "beta", 1.0)) if node.op_type == "Gemm" else 1.0
         axis = 1 if layer.axis == "first" else -1  # where the output channels run
-        shift = _mean_shift(work, index, site, reach, cache, student, teacher, ds, batch_size, axis, delta)
+        shift = _mean_shift(work, index, site, reach, cached, student, teacher, axis, delta)
         if shift is None:
             notes.append(f"no bias correction: the way to {node.name} reads a run-time tensor")
             continue

@@ -12,17 +12,22 @@ A post-training, layer-wise distillation on unlabelled samples:
 Nothing reruns the whole network per site: level L runs only the segments of
 the graph between the graph inputs / earlier swapped-site outputs and the
 level's site outputs (the original model: the targets y) and site inputs (the
-partially swapped model, sequential mode); swapped outputs are computed in
+partially swapped model, sequential mode), each run by a
+:class:`~swapper.core.slices.SliceRunner`; swapped outputs are computed in
 numpy from the cached inputs and fitted parameters. Recorded tensors live in a
 :class:`~swapper.core.tensor_cache.TensorCache` (RAM up to its budget, disk beyond) and
 are discarded after the last level that reads them, so what is held at once
 is a few levels' tensors, not the whole network's.
+
+The fitted parameters come back in a new Plan (``CalibrationResult.plan``);
+the plan handed in is not changed.
 """
 from __future__ import annotations
 
+import copy
 import logging
 import time
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
@@ -30,21 +35,21 @@ import onnx
 from swapper import functions
 from swapper.calibrate.bias_correction import DeltaSum, correct_bias
 from swapper.core.graph import GraphIndex
-from swapper.core.session import open_session
-from swapper.core.slices import boundary_reads, segment_model
+from swapper.core.slices import LastReads, SliceRunner, boundary_reads, row_spans
 from swapper.core.surgery import copy_model
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
-from swapper.data.dataset import Dataset, batches
-from swapper.errors import UsageError
+from swapper.data.dataset import Dataset, input_batches
 from swapper.fit.observe import ChannelObserver
 from swapper.fit.site import fit_channels
+from swapper.options import MODES, check_mode  # noqa: F401 (MODES: re-exported for callers of this module)
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.progress import Silent
 from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-MODES = ("sequential", "local")
+# cache key prefixes: the original's tensors, and the partially swapped model's (with the swapped site outputs)
+ORIGINAL, CANDIDATE = "original::", "candidate::"
 
 
 @dataclass
@@ -61,8 +66,8 @@ class SiteCalibration:
 
 @dataclass
 class CalibrationResult:
-    plan: Plan
-    model: onnx.ModelProto  # the original with consumer corrections; rewrite(plan) gives the candidate
+    plan: Plan  # a new plan holding the fitted swaps (the plan handed in is left as it was)
+    model: onnx.ModelProto  # the original with consumer corrections; rewrite(model, sites, plan) gives the candidate
     sites: list[SiteCalibration]
     timings: dict[str, float]  # seconds per phase
     samples: int
@@ -74,12 +79,6 @@ class CalibrationResult:
             "timings_s": {k: round(v, 4) for k, v in self.timings.items()},
             "sites": [s.__dict__ for s in self.sites],
         }
-
-
-def check_mode(mode: str) -> None:
-    """Raise UsageError unless ``mode`` is a calibration mode."""
-    if mode not in MODES:
-        raise UsageError(f"unknown mode {mode!r}; valid: {', '.join(MODES)}")
 
 
 def site_levels(index: GraphIndex, sites: list[Site], swapped: set[str]) -> dict[str, int]:
@@ -152,12 +151,12 @@ def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
 
 @dataclass
 class _Segment:
-    """Part of a model run batch by batch: boundary tensors in (data set or cache), outputs into the cache."""
+    """One run of a model over the data set: which tensors it records, from which it may start."""
 
-    boundary: list[str]  # graph inputs + the earlier site outputs it may start from
-    outputs: list[str]  # computed tensors
-    store: dict[str, list[str]]  # tensor (output or graph input) -> cache keys it is appended under
-    feed: dict[str, str]  # boundary tensor read from the cache -> its cache key
+    starts: list[str]  # graph inputs + the earlier site outputs it may start from
+    outputs: list[str]  # tensors it computes
+    store: list[str]  # tensors it records under its model's prefix (outputs and graph inputs)
+    feed: dict[str, str]  # recorded start tensor it reads -> its cache key
 
 
 @dataclass
@@ -166,16 +165,19 @@ class _Schedule:
 
     Per level: a segment of the original (the targets y; at level 1 also the
     site inputs) and, at deeper levels, a segment of the partially swapped
-    model (the site inputs x'). ``last`` maps every cache key to the last level
-    that reads it, so each key is discarded as soon as that level is done.
+    model (the site inputs x'). The original's tensors are cached under
+    ORIGINAL, the partially swapped model's (and the swapped site outputs)
+    under CANDIDATE. ``last`` maps every cache key to the last level that
+    reads it, so each key is discarded as soon as that level is done.
     """
 
     groups: dict[int, list[str]]  # level -> site ids, in site order
+    inputs: dict[str, str]  # site id -> cache key of its input (the original's at level 1, else x')
     teacher: dict[str, str]  # site id -> cache key of the original output
     student: dict[str, str]  # site id -> cache key of the swapped output
     original: dict[int, _Segment] = field(default_factory=dict)
     swapped: dict[int, _Segment] = field(default_factory=dict)
-    last: dict[str, int] = field(default_factory=dict)
+    last: LastReads = field(default_factory=LastReads)
 
 
 def _site_order(sid: str) -> int:
@@ -186,72 +188,36 @@ def _schedule(index: GraphIndex, by_id: dict[str, Site], levels: dict[str, int])
     graph_inputs = list(index.graph_inputs)
     order = sorted(set(levels.values()))
     groups = {lv: sorted((s for s, l in levels.items() if l == lv), key=_site_order) for lv in order}
-    sched = _Schedule(groups=groups, teacher={s: f"teacher::{by_id[s].output}" for s in levels}, student={})
+    sched = _Schedule(groups=groups, inputs={}, teacher={s: ORIGINAL + by_id[s].output for s in levels},
+                      student={s: CANDIDATE + by_id[s].output for s in levels})
     cached: set[str] = set()
-    last = sched.last
 
-    def read_at(key: str, level: int) -> None:
-        last[key] = max(last.get(key, level), level)
-
-    def segment(level: int, outputs: list[str], store: dict, keys: dict[str, str]) -> _Segment:
-        boundary = list(dict.fromkeys(graph_inputs + [by_id[s].output for s, lv in levels.items() if lv < level]))
-        feed = {t: keys[t] for t in boundary_reads(index, set(boundary), outputs) if t not in graph_inputs}
+    def segment(level: int, prefix: str, store: list[str]) -> _Segment:
+        starts = list(dict.fromkeys(graph_inputs + [by_id[s].output for s, lv in levels.items() if lv < level]))
+        outputs = [t for t in store if t not in graph_inputs]
+        feed = {t: prefix + t for t in boundary_reads(index, set(starts), outputs) if t not in graph_inputs}
         for key in feed.values():
-            read_at(key, level)
-        return _Segment(boundary, outputs, store, feed)
+            sched.last.read_at(key, level)
+        cached.update(prefix + t for t in store)
+        return _Segment(starts, outputs, store, feed)
 
     for level in order:
         group = groups[level]
-        earlier = [s for s, lv in levels.items() if lv < level]
-        # the original: this level's targets, and at level 1 the site inputs (the original's values)
-        store: dict[str, list[str]] = {}
+        # the original: this level's targets, and at the first level the site inputs (the original's values)
+        first = level == order[0]
         for sid in group:
-            store.setdefault(by_id[sid].output, []).append(sched.teacher[sid])
-        if level == order[0]:
-            for sid in group:
-                if by_id[sid].input not in store.get(by_id[sid].input, []):
-                    store.setdefault(by_id[sid].input, []).append(by_id[sid].input)
-        cached.update(k for keys in store.values() for k in keys)
-        outputs = [t for t in store if t not in graph_inputs]
-        sched.original[level] = segment(level, outputs, store, {by_id[s].output: sched.teacher[s] for s in earlier})
-        # the partially swapped model: this level's site inputs not cached yet
-        needed = list(dict.fromkeys(by_id[s].input for s in group if by_id[s].input not in cached))
+            sched.inputs[sid] = (ORIGINAL if first else CANDIDATE) + by_id[sid].input
+        store = [by_id[sid].output for sid in group] + ([by_id[sid].input for sid in group] if first else [])
+        sched.original[level] = segment(level, ORIGINAL, list(dict.fromkeys(store)))
+        # the partially swapped model: this level's site inputs not cached yet (an earlier swapped output is)
+        needed = list(dict.fromkeys(by_id[s].input for s in group if sched.inputs[s] not in cached))
         if needed:
-            keys = {by_id[s].output: sched.student[s] for s in earlier}
-            sched.swapped[level] = segment(level, needed, {t: [t] for t in needed}, keys)
-            cached.update(needed)
+            sched.swapped[level] = segment(level, CANDIDATE, needed)
         for sid in group:
-            site = by_id[sid]
-            # in local mode the original value of this tensor may already be cached as another
-            # site's input, so the swapped one goes under its own key (no duplicated rows)
-            sched.student[sid] = site.output if site.output not in cached else f"student::{site.output}"
             cached.add(sched.student[sid])
-            for key in (site.input, sched.teacher[sid], sched.student[sid]):
-                read_at(key, level)
+            for key in (sched.inputs[sid], sched.teacher[sid], sched.student[sid]):
+                sched.last.read_at(key, level)
     return sched
-
-
-def _run_segment(model: onnx.ModelProto, seg: _Segment, cache: TensorCache, dataset: Dataset, batch_size: int,
-                 threads: int, advance) -> None:
-    """Run ``seg`` of ``model`` over the data set, appending its outputs (and stored graph inputs)."""
-    session, in_names = None, []
-    if seg.outputs:
-        session = open_session(segment_model(model, seg.boundary, seg.outputs), threads=threads)
-        out_names = [o.name for o in session.get_outputs()]
-        in_names = [i.name for i in session.get_inputs()]
-    # batch only the data set arrays this segment reads or stores (a deep segment reads none)
-    wanted = set(in_names) | set(seg.store)
-    only = replace(dataset, arrays={k: v for k, v in dataset.arrays.items() if k in wanted}, labels=None, targets=None)
-    for batch in batches(only, batch_size):
-        values = dict(batch.feeds)
-        if session is not None:
-            feeds = {n: batch.feeds[n] if n in batch.feeds else cache.read(seg.feed[n], batch.start, batch.stop)
-                     for n in in_names}
-            values.update(zip(out_names, session.run(None, feeds)))
-        for name, keys in seg.store.items():
-            for key in keys:
-                cache.append(key, values[name], owned=True)  # fresh arrays of this batch: no copy needed
-        advance(1)
 
 
 def calibrate(
@@ -269,14 +235,16 @@ def calibrate(
     progress=None,
     cache_bytes: int = MEMORY_BUDGET,
 ) -> CalibrationResult:
-    """Fit every swap in ``plan`` (updated in place) on ``dataset``; never mutates ``original``.
+    """Fit every swap of ``plan`` on ``dataset``; the fitted swaps come back as ``result.plan``, a new Plan.
 
-    ``cache_bytes``: recorded tensors kept in RAM up to this size, on disk beyond it.
+    Neither ``original`` nor ``plan`` is mutated. ``cache_bytes``: recorded
+    tensors kept in RAM up to this size, on disk beyond it.
     """
     check_mode(mode)
     progress = progress or Silent()
     timings = {"record_s": 0.0, "segments_s": 0.0, "fit_s": 0.0, "bias_correction_s": 0.0}
-    swaps = plan.by_site()
+    fitted = copy.deepcopy(plan)  # the swaps fitted here; the caller's plan stays as it was
+    swaps = fitted.by_site()
     by_id = {s.id: s for s in sites}
     work = copy_model(original)  # bias corrections go here; the original stays the teacher
     index = GraphIndex.of(work)
@@ -288,16 +256,23 @@ def calibrate(
     n_batches = -(-dataset.n // batch_size)
 
     with TensorCache(memory_budget=cache_bytes) as cache:
+        source = input_batches(dataset, batch_size)
+        teacher = SliceRunner(cache, source, prefix=ORIGINAL, threads=threads)
+        student = SliceRunner(cache, source, prefix=CANDIDATE, threads=threads)
+        # bias correction reads cached tensors by full key, batch_size rows at a time, on one thread
+        recorded = SliceRunner(cache, row_spans(dataset.n, batch_size))
         for level, group in sched.groups.items():
             # the original's targets (and level-1 inputs), then the swapped model's inputs of this level
             t0 = time.perf_counter()
+            seg = sched.original[level]
             with progress.task(f"level {level}: recording original", n_batches) as advance:
-                _run_segment(original, sched.original[level], cache, dataset, batch_size, threads, advance)
+                teacher.record(original, seg.store, starts=seg.starts, advance=advance)
             timings["record_s"] += time.perf_counter() - t0
             if level in sched.swapped:
                 t0 = time.perf_counter()
+                seg = sched.swapped[level]
                 with progress.task(f"level {level}: running segment", n_batches) as advance:
-                    _run_segment(work, sched.swapped[level], cache, dataset, batch_size, threads, advance)
+                    student.record(work, seg.store, starts=seg.starts, advance=advance)
                 timings["segments_s"] += time.perf_counter() - t0
 
             # observe (x', y) pairs, fit, record the swapped output (and its shift for bias correction)
@@ -311,17 +286,17 @@ def calibrate(
             if bias_correction:
                 t0 = time.perf_counter()
                 for sid in group:
-                    done, notes = correct_bias(work, by_id[sid], cache, sched.student[sid], sched.teacher[sid],
-                                               dataset, batch_size, shifts[sid])
+                    done, notes = correct_bias(work, by_id[sid], recorded, sched.student[sid], sched.teacher[sid],
+                                               shifts[sid])
                     results[sid].bias_corrected, results[sid].notes = done, notes
                 timings["bias_correction_s"] += time.perf_counter() - t0
-            for key in sorted(k for k, last in sched.last.items() if last == level):
+            for key in sched.last.done(level):
                 cache.discard(key)  # no later level reads it
         stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
                  "memory_budget": cache.memory_budget}
     logger.info("calibration cache: %s", stats)
     ordered = [results[sid] for sid in swaps if sid in results]  # plan order
-    return CalibrationResult(plan=plan, model=work, sites=ordered, timings=timings, samples=dataset.n,
+    return CalibrationResult(plan=fitted, model=work, sites=ordered, timings=timings, samples=dataset.n,
                              cache=stats)
 
 
@@ -329,11 +304,11 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
               batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict):
     """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
     t0 = time.perf_counter()
-    sid, teacher, student = site.id, sched.teacher[site.id], sched.student[site.id]
+    sid, x, teacher, student = site.id, sched.inputs[site.id], sched.teacher[site.id], sched.student[site.id]
     observer = observer_for(swap, seed, reservoir)
     for start in range(0, n, batch_size):
         stop = min(start + batch_size, n)
-        observer.update(cache.read(site.input, start, stop), cache.read(teacher, start, stop))
+        observer.update(cache.read(x, start, stop), cache.read(teacher, start, stop))
     mse_start, mse_fit = fit_swap(swap, observer)
     seen = observer.compute()
     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
@@ -344,7 +319,7 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
     needed = shift or sched.last.get(student, level) > level
     for start in range(0, n if needed else 0, batch_size):
         stop = min(start + batch_size, n)
-        out = surrogate_output(swap, cache.read(site.input, start, stop))
+        out = surrogate_output(swap, cache.read(x, start, stop))
         cache.append(student, out, owned=True)
         if delta is not None:
             t1 = time.perf_counter()

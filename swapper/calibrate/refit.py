@@ -25,7 +25,7 @@ Sites are processed level by level (depth in swapped sites, as in
 calibration); after a level is refitted the working model is updated, so the
 activations of deeper sites come from the refitted upstream layers. A deeper
 site whose input changed that way first gets its a, b, c, d re-fitted (in the
-plan, in place, as calibration does) on its new inputs: sequential
+refit's own copy of the plan, as calibration fits them) on its new inputs: sequential
 calibration tuned them to the *un*-refitted inputs, and leaving them so undoes
 the refit downstream (demo CNN, SiLU -> ReLU, final-logit MSE vs the original
 on the validation set: 0.59 calibrated, 2.13 refitted without this step, 0.43
@@ -33,9 +33,10 @@ with it). ``rewrite`` later folds a and d into the refitted weights,
 which is exact because the refit regressed on the full a·g(·) + d.
 
 Data flow: a level runs only the part of each model it needs. The original
-and the candidate (the working model with the swaps as nodes) are cut with
-calibration's segment extraction to start from the graph inputs and the site
-outputs recorded at earlier levels, which live in a
+and the candidate (the working model with the swaps as nodes) are run by
+:class:`~swapper.core.slices.SliceRunner` (one per model, as in calibration)
+from the graph inputs and the site outputs recorded at earlier levels, which
+live in a
 :class:`~swapper.core.tensor_cache.TensorCache` (RAM up to its budget, disk beyond) until
 the last level that starts from them. Over a whole refit each node of the
 original then runs about once, and each node of the candidate once per pass
@@ -57,12 +58,19 @@ import logging
 import math
 import time
 from contextlib import nullcontext
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 import onnx
 
-from swapper.calibrate.loop import fit_swap, observer_for, site_levels
+from swapper.calibrate.loop import (
+    CANDIDATE,
+    ORIGINAL,
+    CalibrationResult,
+    fit_swap,
+    observer_for,
+    site_levels,
+)
 
 # Moved to swapper.ridge; re-exported so imports from swapper.calibrate.refit keep working.
 from swapper.calibrate.ridge import (  # noqa: F401
@@ -75,11 +83,10 @@ from swapper.calibrate.ridge import (  # noqa: F401
 )
 from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
-from swapper.core.session import open_session
-from swapper.core.slices import boundary_reads, segment_model
+from swapper.core.slices import LastReads, SliceRunner, boundary_reads
 from swapper.core.surgery import all_names, copy_model
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
-from swapper.data.dataset import Dataset, batches
+from swapper.data.dataset import Dataset, input_batches
 from swapper.plan.layers import Consumer, find_consumers, theta_of, write_theta
 from swapper.plan.plan import Plan
 from swapper.progress import Silent
@@ -91,54 +98,24 @@ logger = logging.getLogger(__name__)
 DEFAULT_FOLDS = 4
 CHUNK_ELEMENTS = 1 << 21  # float64 elements of one im2col chunk (16 MB): bounds memory per batch
 RESERVOIR = 4096  # (x, y) pairs per channel for a site re-fit, as calibration's default
-ORIGINAL, CANDIDATE = "original::", "candidate::"  # cache key prefixes: both models share tensor names
 
 
-# ------------------------------------------------------------ partial runs
 @dataclass
-class _Recorded:
-    """One model's tensors over the data set, batch by batch, run from as deep a start as the cache allows.
+class RefitResult:
+    """What a consumer refit gives back; the models and the plan it was handed stay as they were."""
 
-    Tensors recorded earlier (in ``cache`` under ``prefix``) are read back; the
-    others come from the model cut at the graph inputs and the recorded
-    tensors, so nothing upstream of those runs again.
-    """
+    model: onnx.ModelProto  # a copy of the base model with the refitted consumers
+    plan: Plan  # a new plan: the swaps, re-fitted where a refit changed their inputs
+    notes: list[tuple[str, str]] = field(default_factory=list)  # (site id, note), in the order they arose
+    timings: dict[str, float] = field(default_factory=dict)  # {"refit_s": seconds}
 
-    cache: TensorCache
-    prefix: str
-    dataset: Dataset
-    batch_size: int
-    threads: int
-
-    def _has(self, name: str) -> bool:
-        return self.prefix + name in self.cache
-
-    def stream(self, model: onnx.ModelProto, wanted: list[str], store=()):
-        """Yield ``(batch, {name: value})`` for ``wanted``; tensors of ``store`` not recorded yet are recorded."""
-        wanted = list(dict.fromkeys(wanted))
-        graph_inputs = {v.name for v in model.graph.input} - {t.name for t in model.graph.initializer}
-        store = [t for t in dict.fromkeys(store) if not self._has(t)]
-        compute = [t for t in dict.fromkeys(wanted + store) if t not in graph_inputs and not self._has(t)]
-        session, feeds = None, []
-        if compute:
-            recorded = [k[len(self.prefix):] for k in self.cache.names() if k.startswith(self.prefix)]
-            session = open_session(segment_model(model, recorded, compute), threads=self.threads)
-            feeds = [i.name for i in session.get_inputs()]
-        for batch in batches(self.dataset, self.batch_size):
-            values = dict(batch.feeds)
-            if session is not None:
-                inputs = {n: values[n] if n in values else self._read(n, batch) for n in feeds}
-                values.update(zip(compute, session.run(compute, inputs)))
-            for t in store:
-                self.cache.append(self.prefix + t, values[t], owned=True)  # a fresh onnxruntime output
-            yield batch, {t: values[t] if t in values else self._read(t, batch) for t in wanted}
-
-    def _read(self, name: str, batch) -> np.ndarray:
-        return self.cache.read(self.prefix + name, batch.start, batch.stop)
-
-    def discard(self, names: list[str]) -> None:
-        for name in names:
-            self.cache.discard(self.prefix + name)
+    def apply_to(self, calibration: CalibrationResult) -> CalibrationResult:
+        """A new calibration result as the refit leaves it: its model and plan, its notes after each
+        site's own, its timings added (``calibration`` is not changed)."""
+        sites = [replace(s, notes=s.notes + [text for sid, text in self.notes if sid == s.site_id])
+                 for s in calibration.sites]
+        return replace(calibration, model=self.model, plan=self.plan, sites=sites,
+                       timings={**calibration.timings, **self.timings})
 
 
 # -------------------------------------------------------------- schedule
@@ -175,14 +152,15 @@ def _schedule(index: GraphIndex, sites: list[Site], swapped: set[str]) -> list[_
         level.consumers.sort(key=lambda c: index.node_position[c.node])
         schedule.append(level)
     # the earlier site outputs each level's tensors are computed from (the nearest on every path)
-    last: dict[str, int] = {}
+    last = LastReads()
     for i, level in enumerate(schedule):
         earlier = {s.output for lv in schedule[:i] for s in lv.sites}
         targets = [t for s in level.sites for t in (s.input, s.output)] + [c.output for c in level.consumers]
-        last.update((t, i) for t in boundary_reads(index, earlier, targets))
+        for t in boundary_reads(index, earlier, targets):
+            last.read_at(t, i)
     for i, level in enumerate(schedule):
         level.keep = [s.output for s in level.sites if last.get(s.output, i) > i]
-        level.done = [t for t, j in last.items() if j == i]
+        level.done = last.done(i)
     return schedule
 
 
@@ -215,13 +193,9 @@ def _nodes_plan(plan: Plan) -> Plan:
     return out
 
 
-def _note(result, site_id: str, text: str) -> None:
+def _note(notes: list[tuple[str, str]], site_id: str, text: str) -> None:
     logger.info("site %s: %s", site_id, text)
-    if result is None:
-        return
-    for entry in result.sites:
-        if entry.site_id == site_id:
-            entry.notes.append(text)
+    notes.append((site_id, text))
 
 
 # ------------------------------------------------------------ site re-fit
@@ -234,27 +208,25 @@ def _downstream(model: onnx.ModelProto, tensors: set[str]) -> set[str]:
     return dirty
 
 
-def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int, progress, result,
-                 cand_rec: _Recorded, orig_rec: _Recorded, keep: list[str]) -> None:
-    """Re-fit a, b, c, d of ``group`` (in ``plan``) on their inputs in ``work``, as calibration fits them.
-
-    The original's outputs in ``keep`` are recorded on the way (later levels start from them).
+def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int, progress, notes: list,
+                 cand: SliceRunner, orig: SliceRunner, n: int, batch_size: int, keep: list[str]) -> None:
+    """Re-fit a, b, c, d of ``group`` (in ``plan``, refit's own copy) on their inputs in ``work``, as calibration
+    fits them. The original's outputs in ``keep`` are recorded on the way (later levels start from them).
     """
     swaps = plan.by_site()
-    cand = rewrite(work, sites, _nodes_plan(plan)).model
+    model = rewrite(work, sites, _nodes_plan(plan)).model
     ins = [s.input for s in group]
     outs = [s.output for s in group]
     observers = {s.id: observer_for(swaps[s.id], seed, RESERVOIR) for s in group}
     label = f"re-fitting {len(group)} site(s) on refitted layers"
-    n_batches = -(-cand_rec.dataset.n // cand_rec.batch_size)
-    with progress.task(label, n_batches) as advance:
-        for (_, xs), (_, ys) in zip(cand_rec.stream(cand, ins), orig_rec.stream(original, outs, store=keep)):
+    with progress.task(label, -(-n // batch_size)) as advance:
+        for (_, xs), (_, ys) in zip(cand.stream(model, ins), orig.stream(original, outs, store=keep)):
             for s in group:
                 observers[s.id].update(xs[s.input], ys[s.output])
             advance(1)
     for s in group:
         mse_start, mse_fit = fit_swap(swaps[s.id], observers[s.id])  # calibration's own fit, same rules
-        _note(result, s.id, f"a, b, c, d re-fitted on the refitted upstream layers: MSE "
+        _note(notes, s.id, f"a, b, c, d re-fitted on the refitted upstream layers: MSE "
                             f"{mse_start:.4g} -> {mse_fit:.4g}")
 
 
@@ -270,23 +242,25 @@ def refit_consumers(
     seed: int = 0,
     threads: int = 1,
     progress=None,
-    result=None,
     folds: int = DEFAULT_FOLDS,
     factors: tuple[float, ...] = DEFAULT_FACTORS,
     cache_bytes: int = MEMORY_BUDGET,
-) -> onnx.ModelProto:
-    """A copy of ``base`` whose linear consumers of swapped sites are refitted (module docstring).
+) -> RefitResult:
+    """Refit the linear consumers of swapped sites in a copy of ``base`` (module docstring).
 
     ``original`` gives the target outputs and the prior weights; ``base`` (the
-    original plus calibration's bias corrections) gives the current weights.
-    The swaps of sites downstream of a refitted layer are re-fitted in
-    ``plan`` (in place). ``result`` (a CalibrationResult) receives the notes.
-    ``cache_bytes``: recorded site outputs kept in RAM up to this size, on disk
-    beyond it. Neither model is mutated; node names are kept.
+    original plus calibration's bias corrections) gives the current weights;
+    ``plan`` the calibrated swaps. Returns the refitted model, a new plan (the
+    swaps of sites downstream of a refitted layer re-fitted), the notes per
+    site and the time taken. ``cache_bytes``: recorded site outputs kept in RAM
+    up to this size, on disk beyond it. Neither model nor the plan is mutated;
+    node names are kept.
     """
     progress = progress or Silent()
     t_start = time.perf_counter()
     work = copy_model(base)
+    plan = copy.deepcopy(plan)  # re-fitted swaps go here
+    notes: list[tuple[str, str]] = []
     schedule = _schedule(GraphIndex.of(work), sites, set(plan.by_site()))
     k = max(1, min(int(folds), dataset.n))
     fold_of = np.random.default_rng(seed).permutation(dataset.n) % k  # fold of each sample index
@@ -295,33 +269,32 @@ def refit_consumers(
     changed: set[str] = set()  # outputs of the consumers refitted so far
 
     with TensorCache(memory_budget=cache_bytes) as cache:
-        cand_rec = _Recorded(cache, CANDIDATE, dataset, batch_size, threads)
-        orig_rec = _Recorded(cache, ORIGINAL, dataset, batch_size, threads)
+        source = input_batches(dataset, batch_size)
+        cand = SliceRunner(cache, source, prefix=CANDIDATE, threads=threads)
+        orig = SliceRunner(cache, source, prefix=ORIGINAL, threads=threads)
         for level in schedule:
             dirty = _downstream(work, changed) if changed else set()
             moved = [s for s in level.sites if s.input in dirty]
             if moved:
-                _refit_sites(work, original, sites, moved, plan, seed, progress, result, cand_rec, orig_rec,
-                             level.keep)
+                _refit_sites(work, original, sites, moved, plan, seed, progress, notes, cand, orig, dataset.n,
+                             batch_size, level.keep)
             for site_id, text in level.notes:
-                _note(result, site_id, text)
+                _note(notes, site_id, text)
             if level.consumers or level.keep:
                 index = GraphIndex.of(work)
                 grams = accumulate_level(work, original, sites, plan, level.consumers, dataset, k, fold_of,
                                          batch_size, threads, progress, f"refit level {level.number}",
                                          index=index, cache=cache, keep=level.keep)
                 for c in level.consumers:
-                    if _refit_one(work, index, taken, orig_index, c, grams[c.node], k, factors, result):
+                    if _refit_one(work, index, taken, orig_index, c, grams[c.node], k, factors, notes):
                         changed.add(c.output)
-            cand_rec.discard(level.done)
-            orig_rec.discard(level.done)
-    if result is not None:
-        result.timings["refit_s"] = time.perf_counter() - t_start
-    return work
+            cand.discard(level.done)
+            orig.discard(level.done)
+    return RefitResult(model=work, plan=plan, notes=notes, timings={"refit_s": time.perf_counter() - t_start})
 
 
 def _refit_one(work, index: GraphIndex, taken: set[str], orig_index: GraphIndex, c: Consumer, gram: FoldedGram,
-               k: int, factors, result) -> bool:
+               k: int, factors, notes: list) -> bool:
     """Solve one consumer's ridge and write it into ``work`` if it wins on held-out data; True if written.
 
     ``index`` is of ``work`` from before this level's writes, which is what write_theta asks for:
@@ -331,14 +304,14 @@ def _refit_one(work, index: GraphIndex, taken: set[str], orig_index: GraphIndex,
     op = index.nodes_by_name[c.node].op_type
     if choice.accepted:
         write_theta(work, c, choice.theta, index=index, taken=taken)
-        _note(result, c.site_id,
+        _note(notes, c.site_id,
               f"refit {op} {c.node!r}: lambda = {choice.factor:g} x mean diag(XtX) = {choice.lam:.4g} "
               f"({k}-fold CV over samples); held-out MSE {choice.cv_mse:.4g} vs current "
               f"{choice.current_mse:.4g}")
     elif math.isnan(choice.cv_mse):
-        _note(result, c.site_id, f"no refit of {op} {c.node!r}: too few samples for {k}-fold CV")
+        _note(notes, c.site_id, f"no refit of {op} {c.node!r}: too few samples for {k}-fold CV")
     else:
-        _note(result, c.site_id,
+        _note(notes, c.site_id,
               f"kept current weights of {op} {c.node!r}: best held-out MSE {choice.cv_mse:.4g} "
               f"(lambda = {choice.factor:g} x mean diag) is not below current {choice.current_mse:.4g}")
     return choice.accepted
@@ -363,9 +336,10 @@ def accumulate_level(work, original, sites, plan, consumers: list[Consumer], dat
         convs[c.node] = node if c.kind == "conv" else None
         grams[c.node] = FoldedGram(k, theta_of(index, c).shape[0] - 1)
     with nullcontext(cache) if cache is not None else TensorCache() as store:
-        xs_all = _Recorded(store, CANDIDATE, dataset, batch_size, threads).stream(
+        source = input_batches(dataset, batch_size)
+        xs_all = SliceRunner(store, source, prefix=CANDIDATE, threads=threads).stream(
             cand, [c.data for c in consumers], store=keep)
-        ys_all = _Recorded(store, ORIGINAL, dataset, batch_size, threads).stream(
+        ys_all = SliceRunner(store, source, prefix=ORIGINAL, threads=threads).stream(
             original, [c.output for c in consumers], store=keep)
         with progress.task(f"{label}: {len(consumers)} consumer(s)", -(-dataset.n // batch_size)) as advance:
             for (batch, xs), (_, ys) in zip(xs_all, ys_all):

@@ -1,13 +1,18 @@
 """Compare a candidate model with the original on a validation set, then judge it.
 
 Transformation: (original model, candidate model, dataset) -> :class:`Comparison`
-(accuracy, paired test, interval, agreement, output errors, signature check),
-and (Comparison, :class:`Budget`) -> :class:`Verdict` (approve / reject, with
-the rule in plain words and the figure that decided).
+(what each output is, accuracy, paired test, interval, agreement, per-output
+errors with per-sample cosine, signature check); ``swapper.check.gate`` turns it
+into a verdict.
 
 Both models run batch by batch in onnxruntime on the CPU with fixed threading.
-Only per-sample vectors (predictions, correctness) are kept; output tensors are
-folded into streaming accumulators and dropped. To judge several candidates
+The kind of every output (:mod:`swapper.check.kinds`) is read from the
+original's first batch. Top-1 figures come from the first class-score output
+(an embedding stands in when there is none, so ``--metric agreement`` can still
+be asked for); regression figures from the output matching ``targets``; error
+figures and per-sample cosines from every numeric output. Only per-sample
+vectors (predictions, correctness, cosines) are kept; output tensors are folded
+into streaming accumulators and dropped. To judge several candidates
 against one original, :func:`reference` runs the original once and keeps its
 outputs; ``compare`` takes that :class:`Reference` in place of the model.
 """
@@ -22,6 +27,8 @@ import onnx
 import onnxruntime as ort
 
 from swapper.check import stats
+from swapper.check.kinds import OutputKind, class_output, default_metric, detect_kinds, regression_output
+from swapper.check.similarity import CosineAccumulator
 from swapper.core.jsonable import json_safe
 from swapper.core.session import ORT_ERRORS, open_session
 from swapper.data.dataset import Batch, Dataset, batches
@@ -42,7 +49,9 @@ class Comparison:
     """
 
     n: int
-    task: str  # "classification" (labels), "agreement" (class scores, no labels), "regression" (targets), "outputs"
+    # "classification" (labels), "agreement" (class scores, no labels), "regression" (targets),
+    # "similarity" (embeddings, dense maps, one value per sample), "outputs" (no float output)
+    task: str
     top1_original: float | None = None
     top1_candidate: float | None = None
     top5_original: float | None = None
@@ -54,7 +63,13 @@ class Comparison:
     interval: stats.Interval | None = None
     agreement: float | None = None  # fraction of samples with the same top-1 class
     regression: dict | None = None  # {"original": {mae, rmse}, "candidate": {mae, rmse}}
-    output_errors: dict = field(default_factory=dict)  # output name -> {max_abs, rmse, cosine, sqnr_db}
+    # output name -> {max_abs, rmse, cosine, sqnr_db} and, for float outputs with >= 2 values per sample,
+    # the per-sample cosine summary {cosine_mean, cosine_p5, cosine_min} (swapper.check.similarity)
+    output_errors: dict = field(default_factory=dict)
+    output_kinds: list[OutputKind] = field(default_factory=list)  # every output, in the model's order
+    class_output: str | None = None  # the output top-1 figures were read from
+    has_labels: bool = False
+    has_targets: bool = False
     has_nonfinite: bool = False
     signature_changed: bool = False
     signature_reason: str = ""
@@ -78,6 +93,8 @@ class Comparison:
             "agreement": self.agreement,
             "regression": self.regression,
             "output_errors": self.output_errors,
+            "output_kinds": {k.name: k.to_dict() for k in self.output_kinds},
+            "class_output": self.class_output,
             "has_nonfinite": self.has_nonfinite,
             "signature_changed": self.signature_changed,
             "signature_reason": self.signature_reason,
@@ -167,17 +184,109 @@ def signature_difference(sess_orig, sess_cand) -> str:
     return ""
 
 
-def _as_scores(out: np.ndarray) -> np.ndarray | None:
-    """(batch, classes) view of a class-score output, or None if it is not one."""
-    if out.ndim < 2 or not np.issubdtype(out.dtype, np.floating):
-        return None
-    if int(np.prod(out.shape[1:-1], dtype=np.int64)) != 1:
-        return None  # e.g. (batch, H, W, C): per-pixel scores, not one class per sample
-    return out.reshape(out.shape[0], out.shape[-1])
+def _class_view(out: np.ndarray) -> np.ndarray:
+    """(batch, classes) view of an output whose kind has a class view ([N, C] after dropping size-1 axes)."""
+    return out.reshape(out.shape[0], -1)
 
 
 def _nonfinite(outputs: list[np.ndarray]) -> bool:
-    return any(np.issubdtype(o.dtype, np.floating) and not np.isfinite(o).all() for o in outputs)
+    return any(np.issubdtype(np.asarray(o).dtype, np.floating) and not np.isfinite(o).all() for o in outputs)
+
+
+def _is_numeric(out) -> bool:
+    dtype = np.asarray(out).dtype
+    return bool(np.issubdtype(dtype, np.number) or dtype == np.bool_)
+
+
+def probe(original: Model | Reference, dataset: Dataset, *, batch_size: int = 64, threads: int = 1) \
+        -> list[OutputKind]:
+    """The kind of every output of ``original``, read from its outputs on the first batch of ``dataset``.
+
+    Costs one batch: run it before the expensive work, to learn whether the data can judge the model.
+    """
+    if isinstance(original, Reference):
+        sess, run = original.session, original.outputs_for
+    else:
+        sess = _session(original, "original", threads)
+        run = _runner(sess, "original")
+    batch = next(batches(dataset, batch_size), None)
+    if batch is None:
+        raise BadDataError("the validation set has no samples")
+    return detect_kinds([o.name for o in sess.get_outputs()], run(batch), targets=dataset.targets)
+
+
+class _Tally:
+    """The running figures of one comparison; ``start`` sets it up from the original's first batch."""
+
+    def __init__(self, dataset: Dataset, names: list[str]) -> None:
+        self.names = names
+        self.labels_given = dataset.labels is not None
+        self.targets_given = dataset.targets is not None
+        self.kinds: list[OutputKind] = []
+        self.errors: dict[str, stats.OutputErrorAccumulator] = {}
+        self.cosines: dict[str, CosineAccumulator] = {}
+        self.reg = {"original": stats.RegressionAccumulator(), "candidate": stats.RegressionAccumulator()}
+        self.preds: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
+        self.top5: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
+        self.labels_seen: list[np.ndarray] = []
+        self.cls: OutputKind | None = None
+        self.cls_index = self.reg_index = None
+        self.use_labels = False
+        self.notes: list[str] = []
+
+    def start(self, outs_o: list[np.ndarray], targets) -> None:
+        self.kinds = detect_kinds(self.names, outs_o, targets=targets)
+        self.errors = {k.name: stats.OutputErrorAccumulator() for k, o in zip(self.kinds, outs_o) if _is_numeric(o)}
+        self.cosines = {k.name: CosineAccumulator() for k in self.kinds if k.is_float and k.values_per_sample >= 2}
+        self.cls = class_output(self.kinds, any_view=True)
+        self.cls_index = self.names.index(self.cls.name) if self.cls is not None else None
+        reg = regression_output(self.kinds)
+        self.reg_index = self.names.index(reg.name) if reg is not None and self.targets_given else None
+        self.use_labels = self.labels_given and self.cls is not None
+        if self.labels_given and self.cls is None:
+            self.notes.append("labels not used: no output holds class scores [batch, classes]")
+
+    def update(self, batch: Batch, outs_o: list[np.ndarray], outs_c: list[np.ndarray]) -> str:
+        """Fold one batch in; return the first shape difference between the two models' outputs, or ''."""
+        reason = ""
+        for name, ro, rc in zip(self.names, outs_o, outs_c):
+            if np.shape(ro) != np.shape(rc):
+                reason = reason or f"output {name!r} has shape {np.shape(ro)} in the original, {np.shape(rc)} " \
+                                   "in the candidate"
+                self.errors.pop(name, None)
+                self.cosines.pop(name, None)
+                continue
+            if name in self.errors:
+                self.errors[name].update(ro, rc)
+            if name in self.cosines:
+                self.cosines[name].update(ro, rc)
+        if self.cls_index is not None and not reason:
+            self._classes(batch, _class_view(outs_o[self.cls_index]), _class_view(outs_c[self.cls_index]))
+        if self.reg_index is not None:
+            self.reg["original"].update(outs_o[self.reg_index], batch.targets)
+            self.reg["candidate"].update(outs_c[self.reg_index], batch.targets)
+        return reason
+
+    def _classes(self, batch: Batch, so: np.ndarray, sc: np.ndarray) -> None:
+        self.preds["original"].append(np.argmax(so, axis=1))
+        self.preds["candidate"].append(np.argmax(sc, axis=1))
+        if not self.use_labels:
+            return
+        lab = np.asarray(batch.labels).reshape(-1).astype(np.int64, copy=False)  # batches give int64
+        if lab.size != so.shape[0] or lab.min() < 0 or lab.max() >= so.shape[1]:
+            if self.cls.kind == "scores":
+                raise BadDataError(
+                    f"labels of samples {batch.start}..{batch.stop - 1} do not fit output {self.cls.name!r} with "
+                    f"{so.shape[1]} classes (need integers in [0, {so.shape[1]}))")
+            self.use_labels = False  # an embedding read as classes: its width need not match the label range
+            self.labels_seen.clear()
+            self.top5 = {"original": [], "candidate": []}
+            self.notes.append(f"labels not used: they do not fit the {so.shape[1]} values of {self.cls.name!r}")
+            return
+        self.labels_seen.append(lab)
+        if so.shape[1] >= TOPK_MIN_CLASSES:
+            self.top5["original"].append(stats.topk_correct(so, lab, 5))
+            self.top5["candidate"].append(stats.topk_correct(sc, lab, 5))
 
 
 def compare(
@@ -213,16 +322,7 @@ def compare(
     sess_c = _session(candidate, "candidate", threads)
     run_c = _runner(sess_c, "candidate")
     reason = signature_difference(sess_o, sess_c)
-    out_names = [o.name for o in sess_o.get_outputs()]
-    labels_given = dataset.labels is not None
-    targets_given = dataset.targets is not None
-
-    acc = {name: stats.OutputErrorAccumulator() for name in out_names}
-    reg = {"original": stats.RegressionAccumulator(), "candidate": stats.RegressionAccumulator()}
-    preds: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
-    top5: dict[str, list[np.ndarray]] = {"original": [], "candidate": []}
-    labels_seen: list[np.ndarray] = []
-    task = None
+    tally = _Tally(dataset, [o.name for o in sess_o.get_outputs()])
     n = 0
     has_nonfinite = False
     orig_nonfinite = False
@@ -234,73 +334,45 @@ def compare(
             outs_c = run_c(batch)
             has_nonfinite |= _nonfinite(outs_c)
             orig_nonfinite |= _nonfinite(outs_o)
-            for name, ro, rc in zip(out_names, outs_o, outs_c):
-                if ro.shape != rc.shape:
-                    if not reason:
-                        reason = f"output {name!r} has shape {ro.shape} in the original, {rc.shape} in the candidate"
-                    acc.pop(name, None)
-                elif name in acc:
-                    acc[name].update(ro, rc)
-            so, sc = _as_scores(outs_o[0]), _as_scores(outs_c[0])
-            if task is None:
-                task = _pick_task(so, outs_o[0], labels_given, targets_given)
-            if task in ("classification", "agreement") and sc is not None and so is not None \
-                    and sc.shape == so.shape:
-                preds["original"].append(np.argmax(so, axis=1))
-                preds["candidate"].append(np.argmax(sc, axis=1))
-                if task == "classification":
-                    lab = np.asarray(batch.labels).reshape(-1).astype(np.int64, copy=False)  # batches give int64
-                    if lab.size != so.shape[0] or lab.min() < 0 or lab.max() >= so.shape[1]:
-                        raise BadDataError(
-                            f"labels of samples {batch.start}..{batch.stop - 1} do not fit "
-                            f"{so.shape[1]} classes (need integers in [0, {so.shape[1]}))")
-                    labels_seen.append(lab)
-                    if so.shape[1] >= TOPK_MIN_CLASSES:
-                        top5["original"].append(stats.topk_correct(so, lab, 5))
-                        top5["candidate"].append(stats.topk_correct(sc, lab, 5))
-            elif task == "regression":
-                reg["original"].update(outs_o[0], batch.targets)
-                reg["candidate"].update(outs_c[0], batch.targets)
+            if n == 0:
+                tally.start(outs_o, dataset.targets)
+            shape_change = tally.update(batch, outs_o, outs_c)  # always folds the batch in
+            reason = reason or shape_change
             n += batch.stop - batch.start
             advance(batch.stop - batch.start)
 
     if n == 0:
         raise BadDataError("the validation set has no samples")
-    comp = Comparison(n=n, task=task or "outputs", has_nonfinite=bool(has_nonfinite),
-                      signature_changed=bool(reason), signature_reason=reason)
-    comp.output_errors = {name: a.compute() for name, a in sorted(acc.items())}
+    metric, notes = default_metric(tally.kinds, has_labels=tally.use_labels, has_targets=tally.targets_given)
+    task = {"top1": "classification", "rmse": "regression", "agreement": "agreement", "cosine": "similarity",
+            "sqnr": "similarity"}.get(metric, "outputs")
+    comp = Comparison(n=n, task=task, has_nonfinite=bool(has_nonfinite), signature_changed=bool(reason),
+                      signature_reason=reason, output_kinds=tally.kinds, has_labels=tally.use_labels,
+                      has_targets=tally.targets_given, class_output=tally.cls.name if tally.cls else None)
+    comp.notes += tally.notes + [x for x in notes if x not in tally.notes]
+    comp.output_errors = {name: a.compute() for name, a in sorted(tally.errors.items())}
+    for name, acc in tally.cosines.items():
+        if name in comp.output_errors:
+            comp.output_errors[name].update(acc.compute())
     if orig_nonfinite:
         comp.notes.append("the original model itself produced NaN/Inf on some samples")
-    if task == "regression":
-        comp.regression = {role: r.compute() for role, r in sorted(reg.items())}
-    if preds["original"] and sum(p.size for p in preds["original"]) == n:
-        _fill_classification(comp, preds, labels_seen, top5, level, interval_method, seed)
-    elif task in ("classification", "agreement"):
+    if tally.reg_index is not None:
+        comp.regression = {role: r.compute() for role, r in sorted(tally.reg.items())}
+    if tally.preds["original"] and sum(p.size for p in tally.preds["original"]) == n:
+        _fill_classification(comp, tally.preds, tally.labels_seen if tally.use_labels else [], tally.top5,
+                             level, interval_method, seed)
+    elif tally.cls is not None:
         comp.notes.append("class scores changed shape in the candidate; no accuracy computed")
     logger.info("compared %d samples (%s): %s", n, comp.task,
                 f"delta {comp.delta_pp:+.2f} pp" if comp.delta_pp is not None else "no labels")
     return comp
 
 
-def _pick_task(scores: np.ndarray | None, first: np.ndarray, labels: bool, targets: bool) -> str:
-    if labels:
-        if scores is None or scores.shape[1] < 2:
-            raise BadDataError(
-                f"labels were given but the first output has shape {tuple(first.shape)}; "
-                "need class scores shaped (batch, classes)")
-        return "classification"
-    if targets:
-        return "regression"
-    if scores is not None and scores.shape[1] > 1:
-        return "agreement"
-    return "outputs"
-
-
 def _fill_classification(comp: Comparison, preds, labels_seen, top5, level, method, seed) -> None:
     po = np.concatenate(preds["original"])
     pc = np.concatenate(preds["candidate"])
     comp.agreement = stats.accuracy(po == pc)
-    if comp.task != "classification":
+    if not labels_seen:
         return
     labels = np.concatenate(labels_seen)
     co, cc = po == labels, pc == labels

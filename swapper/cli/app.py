@@ -1,6 +1,7 @@
 """The `swapper` command line: parses options, calls the API, maps errors to exit codes.
 
-Exit codes: 0 done / approved, 1 rejected by the gate, 2 bad input or usage.
+Exit codes (swapper/errors.py): 0 done / approved, 1 rejected by the gate, 2 bad
+input or usage, 3 the validation data cannot judge the model.
 """
 from __future__ import annotations
 
@@ -29,8 +30,30 @@ if not out.is_terminal:  # pipes and CI logs: wide enough that tables keep one r
 
 
 def _fail(exc: SwapperError) -> None:
-    err.print(f"[bold red]error:[/] {exc}", highlight=False, soft_wrap=True)
+    err.print(f"[bold red]{exc.label}:[/] {exc}", highlight=False, soft_wrap=True)
     raise typer.Exit(exc.exit_code)
+
+
+# The gate's options, shared by `swap` and `check`; gathered into one GateRule by _gate_rule.
+MetricOpt = Annotated[Optional[str], typer.Option(
+    help="What decides: top1 | agreement | cosine | sqnr | rmse (default: from the outputs and the data).")]
+MinCosineOpt = Annotated[Optional[float], typer.Option(
+    help="Least mean per-sample cosine similarity to the original's output (default 0.995).")]
+MinCosineP5Opt = Annotated[Optional[float], typer.Option(
+    "--min-cosine-p5", help="Least cosine of the worst 5% of samples (default 1 - 2*(1 - min-cosine)).")]
+MinSqnrOpt = Annotated[Optional[float], typer.Option(
+    help="Least SQNR of each output against the original's, in dB (default 20).")]
+StrictDataOpt = Annotated[bool, typer.Option(
+    "--strict-data", help="Refuse data files holding arrays the model does not read (default: ignore them).")]
+
+
+def _gate_rule(budget: float, strict: bool, min_agreement: float | None, metric: str | None,
+               min_cosine: float | None, min_cosine_p5: float | None, min_sqnr: float | None):
+    """The one place the gate options become a GateRule (UsageError, exit 2, when they contradict)."""
+    from swapper.check.gate import Budget, GateRule
+
+    return GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement), metric=metric,
+                    min_cosine=min_cosine, min_cosine_p5=min_cosine_p5, min_sqnr_db=min_sqnr)
 
 
 def _split(value: str | None) -> list[str] | None:
@@ -122,6 +145,11 @@ def swap(
     budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
     min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    metric: MetricOpt = None,
+    min_cosine: MinCosineOpt = None,
+    min_cosine_p5: MinCosineP5Opt = None,
+    min_sqnr: MinSqnrOpt = None,
+    strict_data: StrictDataOpt = False,
     force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected or not faster on the target (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
@@ -134,19 +162,23 @@ def swap(
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
     from swapper.cli.run import run_swap
+    from swapper.options import SwapOptions
 
     try:
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
             raise UsageError("--calib and --no-calibrate exclude each other")
-        code = run_swap(
-            model, output, console=out, calib=calib, to=to, site_ids=_split(sites), only=only,
-            include_gates=include_gates, include_outputs=include_outputs, fold=fold, mode=mode,
-            bias_correction=bias_correction, refit_consumers=refit_consumers, val=val, budget=budget,
-            strict=strict, min_agreement=min_agreement, force=force, int8=int8, report=report, seed=seed,
+        rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        if val is None and (metric, min_cosine, min_cosine_p5, min_sqnr) != (None,) * 4:
+            raise UsageError("--metric, --min-cosine, --min-cosine-p5 and --min-sqnr judge a validation set: add --val")
+        options = SwapOptions(
+            to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
+            fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
             batch_size=batch_size, threads=threads, cache_mb=cache_mb, target=_target(target), opset=opset,
         )
+        code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
+                        strict_data=strict_data, force=force, int8=int8, report=report)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -160,6 +192,11 @@ def check(
     budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end.")] = False,
     min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    metric: MetricOpt = None,
+    min_cosine: MinCosineOpt = None,
+    min_cosine_p5: MinCosineP5Opt = None,
+    min_sqnr: MinSqnrOpt = None,
+    strict_data: StrictDataOpt = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     calib: Annotated[Optional[Path], typer.Option(help="Calibration set for --int8 (default: the validation set).")] = None,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
@@ -167,13 +204,14 @@ def check(
     threads: Annotated[int, typer.Option(min=1)] = 1,
     target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
-    """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected."""
+    """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected, 3 cannot judge."""
     from swapper.cli.run import run_check
 
     try:
-        code = run_check(original, candidate, val, console=out, budget=budget, strict=strict,
-                         min_agreement=min_agreement, int8=int8, calib=calib, report=report,
-                         batch_size=batch_size, threads=threads, target=_target(target))
+        rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
+                         calib=calib, report=report, batch_size=batch_size, threads=threads,
+                         target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)

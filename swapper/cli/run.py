@@ -1,8 +1,10 @@
 """The commands' work, shared by the CLI and the demo: swap, gate, write, report.
 
 Each function prints a short summary on the given console and returns the exit
-code: 0 done or approved, 1 rejected. Bad input raises SwapperError (exit 2).
-The input model is never overwritten; models and reports are written atomically.
+code: 0 done or approved, 1 rejected. Bad input raises SwapperError (exit 2); data
+that cannot judge the model raises CannotJudge (exit 3), found from one batch of
+the original before any calibration or timing. The input model is never
+overwritten; models and reports are written atomically.
 """
 from __future__ import annotations
 
@@ -12,8 +14,10 @@ from pathlib import Path
 import onnx
 
 from swapper import api
-from swapper.check.gate import Budget
+from swapper.check.gate import Budget, GateRule, preflight
 from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model
+from swapper.errors import EXIT_OK, EXIT_REJECTED
+from swapper.options import SwapOptions
 from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
@@ -27,14 +31,44 @@ def _progress(console):
     return RichBars() if console is not None and console.is_terminal else Silent()
 
 
+def _print_notes(console, *datasets) -> None:
+    """Each data set's notes (arrays left out), once, when it is loaded."""
+    if console is None:
+        return
+    notes = [note for ds in datasets if ds is not None for note in ds.notes]
+    for note in dict.fromkeys(notes):  # the same file given twice says it once
+        console.print(f"note: {note}", highlight=False)
+
+
+def _figures(name: str, kind, errs: dict) -> str:
+    """One output's figures: its kind, per-sample cosine, SQNR, largest difference."""
+    parts = []
+    if errs.get("cosine_mean") is not None:
+        parts.append(f"per-sample cosine mean {errs['cosine_mean']:.5f}, worst 5% {errs['cosine_p5']:.5f}, "
+                     f"min {errs['cosine_min']:.5f}")
+    if errs.get("sqnr_db") is not None:
+        parts.append(f"SQNR {errs['sqnr_db']:.1f} dB")
+    if errs.get("max_abs") is not None:
+        parts.append(f"max |diff| {errs['max_abs']:.3g}")
+    what = f" ({kind.kind}: {kind.cue})" if kind is not None else ""
+    return f"  output {name}{what}: " + ", ".join(parts)
+
+
 def _print_check(console, result: api.CheckResult) -> None:
     if console is None:
         return
     c, v = result.comparison, result.verdict
     word = "[bold green]APPROVED[/]" if v.approved else "[bold red]REJECTED[/]"
-    console.print(f"{word}: {v.reason}")
+    console.print(f"{word}: {v.reason}", highlight=False)
+    if v.metric is not None:
+        console.print(f"  decided by: {v.metric} on {', '.join(v.outputs) or 'the class scores'}", highlight=False)
     console.print(f"  rule: {v.rule}", highlight=False)
-    if c.top1_original is not None and c.top1_candidate is not None:
+    kinds = {k.name: k for k in c.output_kinds}
+    for name, errs in c.output_errors.items():
+        console.print(_figures(name, kinds.get(name), errs), highlight=False)
+    cls = kinds.get(c.class_output)
+    show_classes = v.metric in ("top1", "agreement") or cls is None or cls.kind == "scores"
+    if show_classes and c.top1_original is not None and c.top1_candidate is not None:
         line = (f"  top-1 original {pct(c.top1_original)}  candidate {pct(c.top1_candidate)}"
                 f"  delta {c.delta_pp:+.2f} pp")
         if c.interval is not None:
@@ -42,8 +76,10 @@ def _print_check(console, result: api.CheckResult) -> None:
         if c.mcnemar_p is not None:
             line += f"  McNemar p={c.mcnemar_p:.3g} (n01={c.n01}, n10={c.n10})"
         console.print(line, highlight=False)
-    if c.agreement is not None:
+    if show_classes and c.agreement is not None:
         console.print(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples", highlight=False)
+    for note in c.notes:
+        console.print(f"  note: {note}", highlight=False)
     lat = result.latency
     console.print(
         f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "
@@ -56,7 +92,7 @@ def _print_check(console, result: api.CheckResult) -> None:
     if on is not None:
         if "ratio" in on:
             console.print(f"  on {on['target']}: candidate {on['ratio']:.3f}× the original", highlight=False)
-        lacking = on["lacking_ops"]["candidate"]
+        lacking = on.get("lacking_ops", {}).get("candidate")
         if lacking:
             console.print(f"  ops {on['target']} cannot run, still in the candidate: "
                           + ", ".join(f"{op} ×{k}" for op, k in lacking.items()), highlight=False)
@@ -70,13 +106,19 @@ def _print_check(console, result: api.CheckResult) -> None:
 def run_check(original: Path, candidate: Path, val: Path, *, console=None, budget: float = 1.0,
               strict: bool = False, min_agreement: float | None = None, int8: bool = False,
               calib: Path | None = None, report: Path | None = None, batch_size: int = 64,
-              threads: int = 1, target: str | None = None) -> int:
-    """`swapper check`: compare two model files; write the report; 0 approved, 1 rejected."""
-    rule = Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement)
+              threads: int = 1, rule: GateRule | None = None, strict_data: bool = False,
+              target: str | None = None) -> int:
+    """`swapper check`: compare two model files; write the report; 0 approved, 1 rejected.
+
+    ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement`` when given.
+    """
+    rule = rule or GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement))
     orig = load_model(original)
     cand = load_model(candidate)
-    val_ds = api.load_data(val, orig)
-    calib_ds = api.load_data(calib, orig) if calib is not None else None
+    val_ds = api.load_data(val, orig, strict=strict_data)
+    calib_ds = api.load_data(calib, orig, strict=strict_data) if calib is not None else None
+    _print_notes(console, val_ds, calib_ds)
+    preflight(orig.model, val_ds, rule, batch_size=batch_size, threads=threads)  # CannotJudge before the work
     result = api.check(orig.model, cand.model, val_ds, budget=rule, int8=int8, calib=calib_ds,
                        batch_size=batch_size, threads=threads, progress=_progress(console), target=target)
     folder = report or default_report_dir(Path(original))
@@ -85,26 +127,32 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     _print_check(console, result)
     if console is not None:
         console.print(f"report: {paths[1]}", highlight=False)
-    return 0 if result.verdict.approved else 1
+    return EXIT_OK if result.verdict.approved else EXIT_REJECTED
 
 
-def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Path | None = None, val: Path | None = None,
-             budget: float = 1.0, strict: bool = False, min_agreement: float | None = None, force: bool = False,
-             int8: bool = False, report: Path | None = None, batch_size: int = 64, threads: int = 1,
-             **swap_options) -> int:
+def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | None = None, console=None,
+             calib: Path | None = None, val: Path | None = None, budget: float = 1.0, strict: bool = False,
+             min_agreement: float | None = None, force: bool = False, int8: bool = False,
+             report: Path | None = None, rule: GateRule | None = None, strict_data: bool = False) -> int:
     """`swapper swap`: plan, calibrate, rewrite; with ``val``, gate before writing ``output``.
 
-    ``model`` is a path or an already loaded model (the demo has loaded it to show its sites).
+    ``model`` is a path or an already loaded model (the demo has loaded it to show its sites);
+    ``options`` say what to swap and how (default ``SwapOptions()``; its batch size and threads also
+    serve the check). ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement``
+    when given.
     """
+    options = options or SwapOptions()
     path = model.path if isinstance(model, LoadedModel) else Path(model)
     check_output_path(output, inputs=(path,))  # before any work: a bad output path is a usage error
-    rule = Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement)
+    rule = rule or GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement))
     loaded = model if isinstance(model, LoadedModel) else load_model(path)
-    calib_ds = api.load_data(calib, loaded) if calib is not None else None
-    val_ds = api.load_data(val, loaded) if val is not None else None
+    calib_ds = api.load_data(calib, loaded, strict=strict_data) if calib is not None else None
+    val_ds = api.load_data(val, loaded, strict=strict_data) if val is not None else None
+    _print_notes(console, calib_ds, val_ds)
+    if val_ds is not None:  # CannotJudge now, not after minutes of calibration
+        preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
     progress = _progress(console)
-    result = api.swap(loaded, calib=calib_ds, batch_size=batch_size, threads=threads, progress=progress,
-                      **swap_options)
+    result = api.swap(loaded, calib=calib_ds, options=options, progress=progress)
     if console is not None:
         if result.plan.swaps:
             console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
@@ -120,11 +168,12 @@ def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Pa
     if not result.plan.swaps:
         if console is not None:
             console.print(f"{path}: nothing to swap; no model written")
-        return 0
+        return EXIT_OK
     candidate = result.candidate
     timing = None
     if result.target is not None and result.target.costs_from == "measured":
-        timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds, batch_size=batch_size)
+        timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
+                                    batch_size=options.batch_size)
         _set_metadata(candidate, "swapper.target", timing.to_dict())
         if console is not None:
             console.print(f"  {timing.line()}", highlight=False, markup=False)
@@ -132,11 +181,13 @@ def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Pa
             if console is not None:
                 console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.2f}× the original; "
                               "no model written", highlight=False)
-            return 0
+            return EXIT_OK
     check = None
     if val_ds is not None:
         check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
-                          batch_size=batch_size, threads=threads, progress=progress)
+                          batch_size=options.batch_size, threads=options.threads, progress=progress)
+        if timing is not None:  # the report shows the target timing next to the plain latency
+            check.latency["target"] = timing.to_dict()
         _record_verdict(candidate, check)
         _print_check(console, check)
     approved = check is None or check.verdict.approved
@@ -155,13 +206,12 @@ def run_swap(model: Path | LoadedModel, output: Path, *, console=None, calib: Pa
                              candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib)
         if console is not None:
             console.print(f"report: {paths[1]}", highlight=False)
-    return 0 if approved else 1
+    return EXIT_OK if approved else EXIT_REJECTED
 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:
     """Keep the verdict with the model, so a forced write still says it was rejected."""
-    entry = {"approved": check.verdict.approved, "reason": check.verdict.reason, "rule": check.verdict.rule}
-    _set_metadata(candidate, "swapper.verdict", entry)
+    _set_metadata(candidate, "swapper.verdict", check.verdict.to_dict())  # the same entry as report.json's verdict
 
 
 def _set_metadata(model: onnx.ModelProto, key: str, entry: dict) -> None:

@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import logging
 import math
-from dataclasses import dataclass, field
+from collections.abc import Callable, Collection
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Iterator
 
@@ -80,6 +81,7 @@ class Dataset:
     n: int
     dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
     max_batch: int | None = None  # the model's static batch dimension (e.g. 1): batches never exceed it
+    notes: list[str] = field(default_factory=list)  # what loading left out (arrays the model does not read)
 
 
 @dataclass
@@ -96,8 +98,13 @@ class Batch:
 # ---------------------------------------------------------------- validation
 
 
-def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path) -> tuple[dict, dict]:
-    """Map model inputs to arrays; also return input name -> the array's name in the file (for messages)."""
+def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path,
+                 strict: bool = False) -> tuple[dict, dict, list[str]]:
+    """Map model inputs to arrays; also return input name -> the array's name in the file, and notes.
+
+    Arrays the model does not read (reference outputs, class ids kept under another name...) are
+    left out with one note naming them; with ``strict`` they are refused instead.
+    """
     data = {k: v for k, v in raw.items() if k not in RESERVED}
     wanted = [s.name for s in specs]
     if len(specs) == 1 and len(data) == 1:
@@ -105,25 +112,37 @@ def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path)
         key, arr = next(iter(data.items()))
         if key != wanted[0]:
             logger.debug("%s: using array %r for the only model input %r", path, key, wanted[0])
-        return {wanted[0]: arr}, {wanted[0]: key}
+        return {wanted[0]: arr}, {wanted[0]: key}, []
     missing = sorted(set(wanted) - set(data))
-    unexpected = sorted(set(data) - set(wanted))
-    if missing or unexpected:
-        parts = []
-        if missing:
-            parts.append(f"missing arrays for model inputs {missing}")
-        if unexpected:
-            parts.append(f"unexpected arrays {unexpected}")
+    unread = sorted(set(data) - set(wanted))
+    if missing:
+        parts = [f"missing arrays for model inputs {missing}"] + ([f"unexpected arrays {unread}"] if unread else [])
         raise BadDataError("; ".join(parts) + f" (model inputs: {', '.join(wanted)})", path)
-    return {name: data[name] for name in wanted}, {name: name for name in wanted}
+    notes = []
+    if unread:
+        if strict:
+            raise BadDataError(f"unexpected arrays {unread} (model inputs: {', '.join(wanted)}; "
+                               f"reserved: {', '.join(RESERVED)}; refused because of --strict-data)", path)
+        notes.append(f"{path}: ignored {len(unread)} array(s) the model does not read: "
+                     f"{', '.join(repr(n) for n in unread)} (only {' and '.join(repr(r) for r in RESERVED)} "
+                     "are scored)")
+        logger.info("%s", notes[-1])
+    return {name: data[name] for name in wanted}, {name: name for name in wanted}, notes
 
 
 def _target_dtype(name: str, arr: np.ndarray, spec: InputSpec, path: Path) -> np.dtype:
-    """Decide the per-batch cast: float<-float/int, int<-int, bool<-bool; anything else is refused."""
+    """Decide the per-batch cast: float<-float, int<-int, bool<-bool; anything else is refused.
+
+    Integer data for a float input is refused: casting raw pixel values or counts silently skips the
+    scaling the model was trained with, and the calibration then fits the wrong range.
+    """
     src, dst = arr.dtype, spec.dtype
     if src == dst:
         return dst
-    ok = (dst.kind == "f" and src.kind in "fiu") or (dst.kind in "iu" and src.kind in "iu")
+    if dst.kind == "f" and src.kind in "iu":
+        raise BadDataError(f"array {name!r} holds integers ({src}) but model input {spec.name!r} takes {dst}; "
+                           f"convert and scale it to {dst} before saving (integers are not cast)", path)
+    ok = (dst.kind == "f" and src.kind == "f") or (dst.kind in "iu" and src.kind in "iu")
     if not ok:
         raise BadDataError(f"array {name!r} has dtype {src}, but model input {spec.name!r} takes {dst}", path)
     logger.debug("%s: array %r is %s, cast to %s per batch", path, name, src, dst)
@@ -221,12 +240,13 @@ def _check_targets(targets: np.ndarray, n: int, path: Path) -> None:
 
 
 def load_dataset(
-    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False
+    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False, strict: bool = False
 ) -> Dataset:
     """Open an .npz / .npy-folder data set and validate it against the model inputs ``specs``.
 
-    ``require_labels`` demands a ``labels`` array. Values are scanned for NaN/Inf/overflow in one
-    streaming pass. Raises BadDataError.
+    ``require_labels`` demands a ``labels`` array. Arrays the model does not read are left out and
+    named in ``Dataset.notes`` (refused with ``strict``). Values are scanned for NaN/Inf/overflow in
+    one streaming pass. Raises BadDataError.
     """
     path = Path(path)
     if not path.exists():
@@ -237,7 +257,7 @@ def load_dataset(
     labels, targets = raw.get("labels"), raw.get("targets")
     if require_labels and labels is None:
         raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
-    arrays, names = _match_names(raw, specs, path)
+    arrays, names, notes = _match_names(raw, specs, path, strict)
     dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in specs}
     for name, arr in arrays.items():
         if arr.ndim == 0:
@@ -261,7 +281,7 @@ def load_dataset(
         _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
     logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
     return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
-                   max_batch=fixed_batch_size(specs))
+                   max_batch=fixed_batch_size(specs), notes=notes)
 
 
 # ---------------------------------------------------------------- iteration and views
@@ -286,6 +306,17 @@ def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterat
         labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
         targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
         yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
+
+
+def input_batches(ds: Dataset, batch_size: int) -> Callable[[Collection[str]], Iterator[Batch]]:
+    """A batch source for :class:`~swapper.core.slices.SliceRunner`: ``source(names)`` batches only the
+    arrays of ``ds`` named in ``names`` (no labels, no targets), so a slice that reads none copies none."""
+
+    def source(names: Collection[str]) -> Iterator[Batch]:
+        only = replace(ds, arrays={k: v for k, v in ds.arrays.items() if k in names}, labels=None, targets=None)
+        return batches(only, batch_size)
+
+    return source
 
 
 def replicate(ds: Dataset, times: int) -> Dataset:

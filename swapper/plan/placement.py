@@ -43,12 +43,12 @@ from swapper.core.graph import GraphIndex
 from swapper.errors import UsageError
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.functions.registry import Function
+from swapper.options import check_fold
 from swapper.plan.fold_targets import consumer_folds, producer_fold
 from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-FOLD_POLICIES = ("exact", "nodes", "approximate", "off")
 PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx")
 ONLY_FOR = {"consumers+": "a", "inner": "a", "approx": "d"}  # placements that one parameter alone can take
 IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
@@ -103,8 +103,7 @@ def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray]
 
 def decide_placement(index: GraphIndex, site: Site, target: Function, policy: str) -> tuple[dict[str, str], list[str]]:
     """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes)."""
-    if policy not in FOLD_POLICIES:
-        raise UsageError(f"unknown fold policy {policy!r}; valid: {', '.join(FOLD_POLICIES)}")
+    check_fold(policy)
     if policy == "off":
         return {p: "nodes" for p in PARAMS}, ["fold off: every parameter is an explicit Mul/Add node"]
     rest = "nodes" if policy == "nodes" else "held"

@@ -34,7 +34,8 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from swapper.functions.params import NEUTRAL, PARAMS
-from swapper.plan.placement import FOLD_POLICIES, a_rule, check_placement
+from swapper.options import check_fold
+from swapper.plan.placement import a_rule, check_placement
 
 logger = logging.getLogger(__name__)
 
@@ -116,7 +117,7 @@ class Skipped:
 
 @dataclass
 class Plan:
-    fold: str  # one of FOLD_POLICIES
+    fold: str  # one of swapper.options.FOLD_POLICIES
     swaps: list[SiteSwap]
     skipped: list[Skipped] = field(default_factory=list)
     target: str | None = None  # the target profile planned for (None: no target, registry defaults)
@@ -227,8 +228,7 @@ def make_plan(
     from swapper.errors import UsageError
     from swapper.plan.choose import chosen_line, choose, opset_hints, site_options
 
-    if fold not in FOLD_POLICIES:
-        raise UsageError(f"unknown fold policy {fold!r}; valid: {', '.join(FOLD_POLICIES)}")
+    check_fold(fold)
     if to is not None:
         functions.get(to)  # raises with the valid names
     if only is not None:

@@ -16,9 +16,14 @@ when a part did not run):
   null without calibration).
 - ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
-- ``comparison``: see ``swapper.check.compare.Comparison.to_dict``; ``budget``:
-  ``{"max_drop_pp", "strict", "min_agreement"}``; ``verdict``: ``{"approved",
-  "reason", "rule"}``; ``latency``: per model ``{median_ms, p10_ms, p90_ms,
+- ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
+  ``output_kinds``: output -> ``{kind, cue, sample_shape, dtype}``, and per output in
+  ``output_errors`` the per-sample ``cosine_mean``, ``cosine_p5``, ``cosine_min``);
+  ``budget``: ``{"max_drop_pp", "strict", "min_agreement"}``; ``verdict``:
+  ``{"approved", "reason", "rule", "metric", "outputs", "thresholds"}`` (``metric``:
+  top1 | agreement | cosine | sqnr | rmse, null when the candidate was refused for
+  NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
+  ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
   runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
   ``target`` (see ``swapper.api.check``); ``size``: per model
   ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
@@ -54,6 +59,7 @@ CAUTION = (
 )
 
 
+VERDICT_KEYS = {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
 TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
             "verdict", "latency", "size", "int8", "caution")
 
@@ -133,7 +139,7 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
         "sites": sites,
         "calibration": swap.calibration.to_dict() if swap is not None and swap.calibration else None,
         "comparison": check.comparison.to_dict() if check else None,
-        "budget": dict(check.budget.__dict__) if check else None,
+        "budget": _budget(check.budget) if check else None,
         "verdict": check.verdict.to_dict() if check else None,
         "latency": check.latency if check else None,
         "size": check.size if check else None,
@@ -141,6 +147,12 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
         "caution": CAUTION,
     }
     return json_safe(payload, [], "report")
+
+
+def _budget(rule) -> dict:
+    """The accuracy budget's fields; a GateRule holds its Budget (its floors are in ``verdict.thresholds``)."""
+    budget = getattr(rule, "budget", rule)
+    return {"max_drop_pp": budget.max_drop_pp, "strict": budget.strict, "min_agreement": budget.min_agreement}
 
 
 def validate_report(payload: dict) -> None:
@@ -157,7 +169,7 @@ def validate_report(payload: dict) -> None:
     for site in payload["sites"]:
         if set(site) != set(SITE_KEYS):
             raise ValueError(f"site entry keys {sorted(site)} differ from {sorted(SITE_KEYS)}")
-    if payload["verdict"] is not None and set(payload["verdict"]) != {"approved", "reason", "rule"}:
+    if payload["verdict"] is not None and set(payload["verdict"]) != VERDICT_KEYS:
         raise ValueError("verdict malformed")
     if payload["verdict"] is not None and not isinstance(payload["verdict"]["approved"], bool):
         raise ValueError("verdict.approved must be a boolean")

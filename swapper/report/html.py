@@ -96,13 +96,17 @@ def render_html(payload: dict) -> str:
         banner = "<div class='verdict none'><b>No verdict</b>: no validation set was given.</div>"
     else:
         cls, word = ("ok", "APPROVED") if v["approved"] else ("no", "REJECTED")
-        banner = (f"<div class='verdict {cls}'><b>{word}</b>: {_e(v['reason'])}"
+        decided = (f"<br><small>Decided by: {_e(v['metric'])} on {_e(', '.join(v['outputs']) or 'the class scores')}"
+                   "</small>") if v.get("metric") else ""
+        banner = (f"<div class='verdict {cls}'><b>{word}</b>: {_e(v['reason'])}{decided}"
                   f"<br><small>Rule: {_e(v['rule'])}</small></div>")
     parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>swapper report: {_e(model)}</title>"
              f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner]
     c = payload["comparison"]
     if c is not None:
-        rows = [["samples", c["n"], ""], ["top-1 accuracy", pct(c["top1_original"]), pct(c["top1_candidate"])]]
+        rows = [["samples", c["n"], ""]]
+        if c["top1_original"] is not None:
+            rows.append(["top-1 accuracy", pct(c["top1_original"]), pct(c["top1_candidate"])])
         if c.get("top5_original") is not None:
             rows.append(["top-5 accuracy", pct(c["top5_original"]), pct(c["top5_candidate"])])
         acc = _table(["", "original", "candidate"], rows)
@@ -115,9 +119,16 @@ def render_html(payload: dict) -> str:
             extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
         if c.get("agreement") is not None:
             extra.append(["top-1 agreement", pct(c["agreement"])])
+        kinds = c.get("output_kinds") or {}
         for name, errs in (c.get("output_errors") or {}).items():
-            extra.append([f"output {name}", f"max |Δ| {num(errs.get('max_abs'))}, RMSE {num(errs.get('rmse'))}, "
-                                            f"cosine {num(errs.get('cosine'), '.6f')}, SQNR {num(errs.get('sqnr_db'), '.1f')} dB"])
+            kind = kinds.get(name, {}).get("kind")
+            per_sample = (f"per-sample cosine mean {num(errs['cosine_mean'], '.5f')}, worst 5% "
+                          f"{num(errs['cosine_p5'], '.5f')}, min {num(errs['cosine_min'], '.5f')}; "
+                          if "cosine_mean" in errs else "")
+            extra.append([f"output {name}" + (f" ({kind})" if kind else ""),
+                          per_sample + f"SQNR {num(errs.get('sqnr_db'), '.1f')} dB, max |Δ| "
+                          f"{num(errs.get('max_abs'))}, RMSE {num(errs.get('rmse'))}, "
+                          f"cosine over all values {num(errs.get('cosine'), '.6f')}"])
         lat, size = payload["latency"], payload["size"]
         speed = _table(["", "original", "candidate"], [
             ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],

@@ -24,6 +24,7 @@ from testkit import OPSET, conv_tanh, float_model, in_memory, init, run
 import swapper.calibrate.bias_correction as bias_correction
 import swapper.calibrate.loop as cal
 from swapper.core.graph import GraphIndex
+from swapper.core.slices import SliceRunner, row_spans
 from swapper.core.tensor_cache import TensorCache
 from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
@@ -114,7 +115,7 @@ def test_bias_correction_restores_consumer_mean(beta, through_loader):
         plan = make_plan(model, sites, fold="off", to="relu")
         result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
         assert result.sites[0].bias_corrected == (["g2"] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         means[corrected] = run(candidate, ds.arrays, ["y"])[0].astype(np.float64).mean(axis=0)
     target = run(model, ds.arrays, ["y"])[0].astype(np.float64).mean(axis=0)
     # source: Nagel et al. 2019, bias correction: after it, E[candidate output] = E[original output]
@@ -141,7 +142,7 @@ def test_bias_correction_leaves_shared_bias_alone(through_loader):
     assert not np.allclose(numpy_helper.to_array(index.initializers[g2.input[2]]), b2)
     # the other user's output is bit-identical (onnxruntime, same graph path)
     np.testing.assert_array_equal(run(result.model, ds.arrays, ["z"])[0], run(model, ds.arrays, ["z"])[0])
-    candidate = rewrite(result.model, sites, plan).model
+    candidate = rewrite(result.model, sites, result.plan).model
     np.testing.assert_allclose(run(candidate, ds.arrays, ["y"])[0].mean(axis=0),
                                run(model, ds.arrays, ["y"])[0].mean(axis=0), rtol=0, atol=1e-4)
 
@@ -161,7 +162,7 @@ def test_bias_correction_through_pooling_restores_conv_mean(pool, through_loader
             result = cal.calibrate(model, sites, plan, ds, reservoir=16, batch_size=48)
         assert result.sites[0].bias_corrected == ["c2"]
         biases[path] = numpy_helper.to_array(GraphIndex.of(result.model).initializers["b2"])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         # source: Nagel et al. 2019, bias correction: E[candidate consumer output] = E[original], here per
         # output channel over samples and positions (float32 tolerance)
         got = run(candidate, ds.arrays, ["y"])[0].astype(np.float64).mean(axis=(0, 2, 3))
@@ -193,7 +194,7 @@ def test_bias_correction_reaches_layers_behind_pools(case, layer, through_loader
         plan = make_plan(model, sites, to="relu", fold="off")
         result = cal.calibrate(model, sites, plan, ds, bias_correction=corrected, reservoir=16)
         assert result.sites[0].bias_corrected == ([layer] if corrected else [])
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         means[corrected] = run(candidate, {"X": x}, ["Y"])[0]
     target = run(model, {"X": x}, ["Y"])[0]
     reduce = tuple(i for i in range(target.ndim) if i != 1)  # per output channel (axis 1 for Conv and Gemm)
@@ -274,8 +275,8 @@ def test_conv_mean_matches_reference_conv(spatial, kernel, stride, dilation, pad
         cache.append("teacher", np.zeros_like(x))
         delta = bias_correction.DeltaSum()
         delta.add(x, np.zeros_like(x))
-        corrected, notes = bias_correction.correct_bias(model, site, cache, "student", "teacher",
-                                                        in_memory({"u": x}), 1, delta)
+        cached = SliceRunner(cache, row_spans(1, 1))  # both recorded tensors are read back, nothing runs
+        corrected, notes = bias_correction.correct_bias(model, site, cached, "student", "teacher", delta)
     assert corrected == ["conv"], notes
     index = GraphIndex.of(model)
     got = -index.const(index.nodes_by_name["conv"].input[2])

@@ -78,7 +78,7 @@ def test_bias_correction_restores_convtranspose_mean(pool, tmp_path, monkeypatch
         assert result.sites[0].bias_corrected == ([] if way == "off" else [ct])
         node = GraphIndex.of(result.model).nodes_by_name[ct]
         biases[way] = numpy_helper.to_array(GraphIndex.of(result.model).initializers[node.input[2]])
-        means[way] = _mean_y(rewrite(result.model, sites, plan).model, x)
+        means[way] = _mean_y(rewrite(result.model, sites, result.plan).model, x)
     assert np.max(np.abs(means["off"] - want)) > 1e-2  # the shift was there
     # source: Nagel et al. 2019 (module docstring): E[candidate output] = E[original output] per channel
     np.testing.assert_allclose(means["mean"], want, rtol=0, atol=1e-4)

@@ -226,7 +226,7 @@ def test_calibrated_never_worse_than_start_on_demo_models(name):
             # fitted mse on the calibration reservoir cannot exceed the starting one
             assert np.isfinite(sc.mse_fit) and sc.mse_fit <= sc.mse_start, (name, mode, sc)
             assert sc.level >= 1 and (mode == "sequential" or sc.level == 1)
-        moved = sum(not np.allclose(before[s.site_id][p], s.params()[p]) for s in plan.swaps for p in "abcd")
+        moved = sum(not np.allclose(before[s.site_id][p], s.params()[p]) for s in result.plan.swaps for p in "abcd")
         assert moved > 0  # calibration really changed something
         # the original is never mutated
         assert loaded.model.SerializeToString() == load_model(DEMO / f"{name}.onnx").model.SerializeToString()
@@ -244,7 +244,7 @@ def test_reported_mse_equals_independent_recomputation():
     # source: ONNX operator spec as executed by onnx.reference.ReferenceEvaluator
     ref = ReferenceEvaluator(loaded.model).run(None, feeds, intermediate=True)
     by_id = {s.id: s for s in sites}
-    for swap, sc in zip(plan.swaps, result.sites):
+    for swap, sc in zip(result.plan.swaps, result.sites):
         x = ref[by_id[swap.site_id].input].astype(np.float64)
         y = ref[by_id[swap.site_id].output].astype(np.float64)
         g, p = FORMULAS[swap.target], TARGETS[swap.target]
@@ -293,7 +293,7 @@ def test_sequential_level2_input_comes_from_partially_swapped_model(spy):
     recorded = np.concatenate(spy["x"]["s2"])
     # onnxruntime on the rewritten model with only level 1 swapped (fold off: explicit nodes),
     # built from the calibrated model (which carries level 1's bias correction), cut at s2's input
-    first_only = Plan(fold="off", swaps=[plan.by_site()["s1"]])
+    first_only = Plan(fold="off", swaps=[result.plan.by_site()["s1"]])
     partial = rewrite(result.model, sites, first_only).model
     want = run(partial, calib.arrays, [s2.input])[0]
     original = run(loaded.model, calib.arrays, [s2.input])[0]
@@ -314,7 +314,7 @@ def test_batch_size_does_not_change_the_fit():
     for bs in (16, 256):
         plan = make_plan(loaded.model, sites)
         result = cal.calibrate(loaded.model, sites, plan, calib, batch_size=bs)
-        fitted[bs] = (plan, result)
+        fitted[bs] = (result.plan, result)
     (p16, r16), (p256, r256) = fitted[16], fitted[256]
     for s16, s256 in zip(p16.swaps, p256.swaps):
         for p in "abcd":
@@ -335,7 +335,7 @@ def test_replicated_set_runs_in_bounded_observer_memory(spy):
         plan = make_plan(loaded.model, sites)
         result = cal.calibrate(loaded.model, sites, plan, big, reservoir=reservoir, batch_size=128)
         assert result.samples == 256 * times
-        for s in plan.swaps:
+        for s in result.plan.swaps:
             assert all(np.isfinite(v).all() for v in s.params().values())
         cache = spy["caches"][-1]
         assert cache.names and all(r == big.n for r in cache.final_rows().values())
@@ -387,7 +387,8 @@ def test_site_reading_another_site_output(mode, spy, through_loader):
     assert all(r.mse_fit <= r.mse_start for r in result.sites)
     # no tensor is recorded twice: every cached name holds exactly one row per sample
     cache = spy["caches"][-1]
-    assert "t" in cache.names and cache.final_rows() == {n: 100 for n in cache.names}
+    assert {"original::t", "candidate::t"} <= set(cache.names)
+    assert cache.final_rows() == {n: 100 for n in cache.names}
     seen_t = np.concatenate(spy["x"]["s2"])
     assert seen_t.shape == (100, 6)
     if mode == "local":
@@ -396,10 +397,10 @@ def test_site_reading_another_site_output(mode, spy, through_loader):
         np.testing.assert_allclose(seen_t, ref, rtol=1e-5, atol=1e-6)
     else:
         # sequential: what onnxruntime computes at t with the Tanh swapped
-        partial = rewrite(result.model, sites, Plan(fold="off", swaps=[plan.by_site()["s1"]])).model
+        partial = rewrite(result.model, sites, Plan(fold="off", swaps=[result.plan.by_site()["s1"]])).model
         np.testing.assert_allclose(seen_t, run(partial, ds.arrays, ["t"])[0], rtol=1e-5, atol=1e-6)
         # and with both swapped plus the consumer's correction, the output mean is the original's
-        candidate = rewrite(result.model, sites, plan).model
+        candidate = rewrite(result.model, sites, result.plan).model
         np.testing.assert_allclose(run(candidate, ds.arrays, ["y"])[0].mean(axis=0),
                                    run(model, ds.arrays, ["y"])[0].mean(axis=0), rtol=0, atol=1e-4)
     assert result.sites[1].bias_corrected == ["g2"]
@@ -473,11 +474,12 @@ def test_schedule_last_reads_hand_built(through_loader, monkeypatch):
 
     # discarded after the last level that reads them ("level N: ..." is the task of level N)
     discarded = {key: int(task.split(":")[0].split()[1]) for what, key, task in events if what == "discard"}
-    assert discarded == {"x": 1, "teacher::t1": 2, "t1": 2, "m1": 2,
-                         "teacher::s1": 3, "s1": 3, "m2": 3, "teacher::t2": 3, "t2": 3}
-    assert keys("read", "level 2: recording original") == {"teacher::t1"}  # the original from t1's teacher value
-    assert keys("read", "level 2: running segment") == {"t1"}  # the swapped model from the swapped t1
-    assert keys("append", "level 3: running segment") == {"m2"}
+    assert discarded == {"original::x": 1, "original::t1": 2, "candidate::t1": 2, "candidate::m1": 2,
+                         "original::s1": 3, "candidate::s1": 3, "candidate::m2": 3, "original::t2": 3,
+                         "candidate::t2": 3}
+    assert keys("read", "level 2: recording original") == {"original::t1"}  # the original from t1's teacher value
+    assert keys("read", "level 2: running segment") == {"candidate::t1"}  # the swapped model from the swapped t1
+    assert keys("append", "level 3: running segment") == {"candidate::m2"}
     assert "level 1: running segment" not in tasks.names  # level 1 reads the original's own inputs
 
 
@@ -503,8 +505,8 @@ def test_discards_bound_memory_by_level_not_depth_and_change_nothing(monkeypatch
             plan_kept = make_plan(model, sites, to="relu")
             result_kept = cal.calibrate(model, sites, plan_kept, ds)
         kept[blocks] = result_kept.cache["peak_bytes_in_memory"]
-        one = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
-        assert one == rewrite(result_kept.model, sites, plan_kept).model.SerializeToString(deterministic=True)
+        one = rewrite(result.model, sites, result.plan).model.SerializeToString(deterministic=True)
+        assert one == rewrite(result_kept.model, sites, result_kept.plan).model.SerializeToString(deterministic=True)
     assert peaks[3] == peaks[9] > 0
     assert kept[9] > 2 * kept[3]  # without discards the cache holds every level's tensors
 
@@ -518,5 +520,5 @@ def test_results_do_not_depend_on_the_cache_budget(monkeypatch):
         result = cal.calibrate(model, sites, plan, ds, batch_size=16, cache_bytes=budget)
         assert result.cache["peak_bytes_in_memory"] <= budget
         assert (result.cache["bytes_written"] > 0) == (budget < 1 << 30)
-        out[budget] = rewrite(result.model, sites, plan).model.SerializeToString(deterministic=True)
+        out[budget] = rewrite(result.model, sites, result.plan).model.SerializeToString(deterministic=True)
     assert len(set(out.values())) == 1  # spilled or not, the same bytes come back

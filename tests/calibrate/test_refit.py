@@ -89,8 +89,9 @@ def _node_inputs(model, node_name):
 def _held_out_gain(model, to, train, test, seed=0):
     sites, plan = _poor_plan(model, to, seed)
     before = rewrite(model, sites, plan).model
-    refitted = refit_consumers(model, model, sites, plan, _dataset(train), batch_size=50, seed=seed)
-    after = rewrite(refitted, sites, plan).model
+    refit = refit_consumers(model, model, sites, plan, _dataset(train), batch_size=50, seed=seed)
+    refitted = refit.model
+    after = rewrite(refitted, sites, refit.plan).model
     # source: ONNX checker (full_check runs strict shape inference)
     onnx.checker.check_model(refitted, full_check=True)
     onnx.checker.check_model(after, full_check=True)
@@ -149,9 +150,11 @@ def test_refit_after_sequential_calibration_two_levels():
     plan = make_plan(model, sites, to="relu")
     calibration = calibrate(model, sites, plan, train)
     ref = _run(model, test)
-    mse_calibrated = float(np.mean((_run(rewrite(calibration.model, sites, plan).model, test) - ref) ** 2))
-    out = refit_consumers(model, calibration.model, sites, plan, train, result=calibration)
-    mse_refit = float(np.mean((_run(rewrite(out, sites, plan).model, test) - ref) ** 2))
+    mse_calibrated = float(np.mean((_run(rewrite(calibration.model, sites, calibration.plan).model, test) - ref) ** 2))
+    refit = refit_consumers(model, calibration.model, sites, calibration.plan, train)
+    out = refit.model
+    calibration = refit.apply_to(calibration)
+    mse_refit = float(np.mean((_run(rewrite(out, sites, refit.plan).model, test) - ref) ** 2))
     # measured: 0.1509 -> 0.1284 (final-output MSE vs the original on 80 held-out samples; seeds 1-3
     # of this chain gave 0.146 -> 0.112, 0.128 -> 0.112, 0.160 -> 0.135)
     assert mse_refit < 0.95 * mse_calibrated, (mse_calibrated, mse_refit)
@@ -173,7 +176,7 @@ def test_infinite_lambda_returns_original_weights():
             t.CopyFrom(numpy_helper.from_array(numpy_helper.to_array(t) * 1.5 + 0.3, t.name))
     base_bytes = base.SerializeToString()
     x = np.random.default_rng(4).normal(size=(120, 6))
-    out = refit_consumers(model, base, sites, plan, _dataset(x), factors=(1e12,))
+    out = refit_consumers(model, base, sites, plan, _dataset(x), factors=(1e12,)).model
     index, orig = GraphIndex.of(out), GraphIndex.of(model)
     node = index.nodes_by_name["fc2"]
     # source: the ridge objective; as λ → ∞ the solution is the prior, i.e. the ORIGINAL weights,
@@ -192,7 +195,9 @@ def test_keeps_current_weights_when_refit_does_not_help_held_out():
     x = np.random.default_rng(6).normal(size=(12, 6))
     calibration = calibrate(model, sites, plan, _dataset(x), batch_size=12)
     base = calibration.model
-    out = refit_consumers(model, base, sites, plan, _dataset(x), factors=(1e-12,), result=calibration)
+    refit = refit_consumers(model, base, sites, calibration.plan, _dataset(x), factors=(1e-12,))
+    out = refit.model
+    calibration = refit.apply_to(calibration)
     assert _node_inputs(out, "fc2") == _node_inputs(base, "fc2")
     np.testing.assert_array_equal(GraphIndex.of(out).const(_node_inputs(out, "fc2")[1]),
                                   GraphIndex.of(base).const(_node_inputs(base, "fc2")[1]))

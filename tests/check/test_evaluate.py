@@ -21,7 +21,7 @@ from swapper.check import stats
 from swapper.check.compare import Comparison, compare, reference
 from swapper.check.gate import Budget, decide
 from swapper.data.dataset import input_specs, load_dataset
-from swapper.errors import BadDataError, BadModelError, UsageError
+from swapper.errors import BadDataError, BadModelError, CannotJudge, UsageError
 
 FEATURES, CLASSES, N = 8, 12, 203  # N not a multiple of the batch size: the last batch is short
 
@@ -263,8 +263,10 @@ def test_regression_and_nothing_to_measure():
                      regression={"original": {"mae": 1.0, "rmse": 1.0}, "candidate": {"mae": 1.0, "rmse": 1.005}})
     assert decide(reg, Budget(max_drop_pp=1.0)).approved
     assert not decide(reg, Budget(max_drop_pp=0.1)).approved
-    v = decide(Comparison(n=10, task="outputs"), Budget())
-    assert not v.approved and "nothing to judge" in v.reason
+    # README "Exit codes": nothing to judge is not a rejection but "cannot judge with this data", exit 3
+    with pytest.raises(CannotJudge) as e:
+        decide(Comparison(n=10, task="outputs"), Budget())
+    assert e.value.exit_code == 3 and "nothing to judge" in str(e.value)
 
 
 def test_budget_validation():

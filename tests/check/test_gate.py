@@ -125,7 +125,8 @@ def test_force_writes_a_rejected_model_with_its_verdict(ws, forced, rejected):
     assert out.is_file()
     meta = verdict_meta(out)
     assert meta is not None and meta["approved"] is False
-    assert set(meta) == {"approved", "reason", "rule"}
+    # the model keeps the same verdict entry as report.json (README "The gate": metric, outputs, thresholds)
+    assert set(meta) == {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
     payload = json.loads((rep / "report.json").read_text())
     assert meta == payload["verdict"]
     assert payload["inputs"]["candidate"]["sha256"] == sha256(out)

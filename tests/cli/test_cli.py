@@ -323,14 +323,12 @@ def test_not_an_onnx_file(cli, tmp_path):
 def test_demo_writes_one_report_per_model(cli, tmp_path):
     out = tmp_path / "demo"
     result = cli("demo", "--out", out)
-    # swapper cannot gate the status encoder yet: its status_val.npz has a `classes` array (not a model input)
-    unsupported = "status_encoder_gelu"
-    assert result.exit_code == 2, result.output  # README "Exit codes": 2 after all other models have run
-    text = result.stderr.strip()
-    assert "\n" not in text and f"{unsupported}.onnx" in text
-    assert f"{unsupported}.onnx" in result.stdout and "status_val.npz" in result.stdout  # named in the summary
+    # README "Exit codes": every demo model runs to a verdict, so the demo exits 0
+    assert result.exit_code == 0, (result.stdout, result.stderr)
+    # status_val.npz keeps its class ids as `classes` (demo_models/README.md): left out, said once
+    assert result.stdout.count("ignored 1 array(s) the model does not read: 'classes'") == 1
     reports = sorted(out.glob("*/report.json"))
-    ran = sorted(Path(name).stem for name in MANIFEST["models"] if Path(name).stem != unsupported)
+    ran = sorted(Path(name).stem for name in MANIFEST["models"])
     assert sorted(p.parent.name.rsplit("-", 1)[0] for p in reports) == ran
     for path in reports:
         payload = json.loads(path.read_text())
@@ -343,5 +341,8 @@ def test_demo_writes_one_report_per_model(cli, tmp_path):
         assert written.exists() == payload["verdict"]["approved"]
         # the demo reads the checkout's demo models; they must stay as built
         assert payload["inputs"]["original"]["sha256"] == MANIFEST["models"][f"{name}.onnx"]["sha256"]
+        # manifest.json "task": classifiers are judged by top-1 (val.npz has labels), the encoder by cosine
+        task = MANIFEST["models"][f"{name}.onnx"]["task"]
+        assert payload["verdict"]["metric"] == {"classification": "top1", "embedding": "cosine"}[task]
     for name in ran:
         assert name in result.stdout

@@ -149,11 +149,14 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert c["n"] == 450 and c["task"] == "classification"  # val.npz: 450 rows with labels
     assert c["has_nonfinite"] is False and c["signature_changed"] is False
     assert p["budget"] == {"max_drop_pp": 1.0, "strict": False, "min_agreement": None}  # README defaults
-    assert set(p["verdict"]) == {"approved", "reason", "rule"} and p["verdict"]["approved"] is True
+    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
+    assert p["verdict"]["approved"] is True and p["verdict"]["metric"] == "top1"  # labels + class scores
     assert "1.00 pp" in p["verdict"]["rule"]  # README: the rule field states the rule with its numbers
 
     lat = p["latency"]
-    assert set(lat) == {"original", "candidate", "ratio", "batch_size", "threads"}
+    assert set(lat) == {"original", "candidate", "ratio", "batch_size", "threads", "target"}
+    # the swap's timing on its target (ort-cpu by default; conftest's stand-in clock answers 0.9)
+    assert lat["target"]["target"] == "ort-cpu" and lat["target"]["ratio"] == pytest.approx(0.9)
     for m in ("original", "candidate"):
         assert set(lat[m]) == {"median_ms", "p10_ms", "p90_ms", "runs"}
         assert 0 < lat[m]["p10_ms"] <= lat[m]["median_ms"] <= lat[m]["p90_ms"] and lat[m]["runs"] > 0
