@@ -241,13 +241,14 @@ def bench(
     scale: Annotated[bool, typer.Option("--scale/--no-scale", help="Include the synthetic 16-block scale model.")] = True,
     quick: Annotated[bool, typer.Option("--quick", help="Few repeats, small data: a smoke run, not a measurement.")] = False,
     repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model for latency.")] = 50,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
     """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
     from swapper.bench.run import run_bench
 
     try:
         folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
-                           quick=quick, repeats=repeats, console=out)
+                           quick=quick, repeats=repeats, console=out, target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     out.print(f"results: {folder}", highlight=False)
