@@ -186,10 +186,10 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     if val_ds is not None:
         check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
                           batch_size=options.batch_size, threads=options.threads, progress=progress)
-        if timing is not None:  # the report shows the target timing next to the plain latency
-            check.latency["target"] = timing.to_dict()
         _record_verdict(candidate, check)
         _print_check(console, check)
+        if timing is not None:  # the report shows the target timing (printed above) next to the plain latency
+            check.latency["target"] = timing.to_dict()
     approved = check is None or check.verdict.approved
     if approved or force:
         save_model(candidate, output, inputs=(path,))
