@@ -232,8 +232,8 @@ def check(
     latency["threads"] = threads
     profile = resolve_target(target)
     if profile is not None:
-        latency["target"] = _on_target(original, candidate, profile, feeds, latency,
-                                       calib if calib is not None else val, batch_size)
+        latency["target"] = _on_target(original, candidate, profile, feeds, calib if calib is not None else val,
+                                       batch_size)
     size = {
         "original": {"bytes": serialized_size(original), **model_summary(original)},
         "candidate": {"bytes": serialized_size(candidate), **model_summary(candidate)},
@@ -246,8 +246,7 @@ def check(
                        int8=int8_view)
 
 
-def _on_target(original, candidate, profile: TargetProfile, feeds: dict, latency: dict, calib: Dataset,
-               batch_size: int) -> dict:
+def _on_target(original, candidate, profile: TargetProfile, feeds: dict, calib: Dataset, batch_size: int) -> dict:
     """The ``latency["target"]`` entry of :func:`check` (see there)."""
     from swapper.check import on_target
     from swapper.data.dataset import batches
@@ -256,11 +255,6 @@ def _on_target(original, candidate, profile: TargetProfile, feeds: dict, latency
              "lacking_ops": {"original": on_target.lacking_ops(original, profile),
                              "candidate": on_target.lacking_ops(candidate, profile)}}
     if profile.costs_from != "measured":
-        return entry
-    m = profile.measurement
-    if m.quantization is None and m.graph_optimization_level == "all" and m.threads == latency["threads"]:
-        # the plain latency above was timed at exactly these settings: no second timing
-        entry.update(ratio=latency["ratio"], timed="the latency measured above")
         return entry
     calib_feeds = [b.feeds for b in batches(calib, batch_size, limit=256)]
     timing = on_target.time_on_target(original, candidate, profile, feeds, calib_batches=calib_feeds,

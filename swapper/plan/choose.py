@@ -211,7 +211,8 @@ def site_options(index: GraphIndex, site: Site, profile: TargetProfile | None, s
             if profile is not None:
                 ok, missing = profile.allows(ops)
                 if not ok:
-                    blocked = blocked or f"form {form.name} needs {', '.join(missing)}, which {profile.name} does not run"
+                    blocked = blocked or (f"form {form.name} needs {', '.join(missing)}, which {profile.name} "
+                                          "does not run")
                 cost = profile.cost_of(ops, after, linear=form.linear)
             options.append(FormOption(name, form, placement, list(notes), ops, cost, blocked))
     return SiteOptions(site, original_chain(index, site, profile), options,
@@ -271,7 +272,8 @@ def choose(opts: SiteOptions, order: list[str], opset: int, *, forced: str | Non
     return Choice(None, _kept(opts, tried))
 
 
-def opset_hints(opts: SiteOptions, order: list[str], opset: int, highest: int, current: Choice) -> list[tuple[int, str]]:
+def opset_hints(opts: SiteOptions, order: list[str], opset: int, highest: int,
+                current: Choice) -> list[tuple[int, str]]:
     """(opset, op) pairs where a higher opset (up to ``highest``) would change this site's choice for the better.
 
     Better: cheaper on the target, or the registry default where an alternative

@@ -226,7 +226,7 @@ def make_plan(
     from swapper.core.graph import GraphIndex
     from swapper.core.model_io import MAX_OPSET
     from swapper.errors import UsageError
-    from swapper.plan.choose import chosen_line, choose, opset_hints, site_options
+    from swapper.plan.choose import choose, chosen_line, opset_hints, site_options
 
     check_fold(fold)
     if to is not None:
@@ -249,7 +249,7 @@ def make_plan(
         explicit = bool(site_ids) or site.id in pinned
         lacking = [] if target is None else _lacking(index, site, target)
 
-        def skip(reason: str) -> None:
+        def skip(reason: str, site=site, lacking=lacking) -> None:
             skipped.append(Skipped(site.id, site.function, reason))
             if lacking:
                 remaining.append(f"{site.id} ({site.function}): {', '.join(lacking)} cannot run on {name}; {reason}")

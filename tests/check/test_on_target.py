@@ -8,6 +8,7 @@ ops) and on the arithmetic of the ratio.
 from __future__ import annotations
 
 import json
+import time
 from importlib import resources
 
 import numpy as np
@@ -49,6 +50,8 @@ def test_fp32_target_times_both_models_at_the_profile_settings(pair, monkeypatch
     (call,) = timer.calls
     assert call["threads"] == m["threads"] and call["graph_optimization"] == m["graph_optimization_level"] == "all"
     assert call["models"] == {"original": original, "candidate": candidate}  # timed as given, not quantized
+    # one thread: CPU time of the calling thread (Python docs, time.thread_time_ns), as the profile was measured
+    assert call["clock"] is time.thread_time_ns and timing.clock == "thread CPU time"
     assert timing.ratio == pytest.approx(ratio) and timing.is_faster == (ratio < 1.0)
     assert timing.batch == 64 and not timing.quantized
     assert f"candidate {ratio:.3f}× the original" in timing.line()

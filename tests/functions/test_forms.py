@@ -55,7 +55,7 @@ def test_form_computes_its_surrogate_after_reparametrisation(form, params, opset
         # source: ONNX checker with full_check (strict shape inference against the opset's schemas)
         onnx.checker.check_model(model, full_check=True)
         expected = a * g.ref(b * X.astype(np.float64) + c, **params) + d
-        tol = dict(rtol=1e-5, atol=3e-5)  # float32 rounding of the primed values and the ops
+        tol = {"rtol": 1e-5, "atol": 3e-5}  # float32 rounding of the primed values and the ops
         np.testing.assert_allclose(run(model, {"x": X})[0], expected, **tol)  # source: onnxruntime
         np.testing.assert_allclose(ReferenceEvaluator(model).run(None, {"x": X})[0], expected, **tol)
 
