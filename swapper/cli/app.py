@@ -97,12 +97,17 @@ def scan(
 
 @app.command("functions")
 def list_functions() -> None:
-    """List the functions swapper knows: costly sources and cheap surrogates."""
+    """List the functions swapper knows: costly sources (with their default) and cheap surrogates (with their forms)."""
+    from swapper.functions.forms import forms_of
+
     for name in sorted(functions.REGISTRY):
         fn = functions.REGISTRY[name]
         kind = "surrogate" if fn.is_cheap else "source"
         default = functions.DEFAULT_TARGET.get(name, "")
-        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else ""))
+        forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
+                          for f in forms_of(name)) if fn.is_cheap else ""
+        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
+                  + (f"  forms: {forms}" if forms else ""), highlight=False)
 
 
 @app.command("targets")

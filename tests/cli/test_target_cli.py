@@ -128,3 +128,10 @@ def test_check_reports_the_target(cli, models, tmp_path):
     entry = json.loads((tmp_path / "r8" / "report.json").read_text())["latency"]["target"]
     assert entry["quantized"] and entry["ratio"] == pytest.approx(0.9)
     assert "on ort-cpu-int8: candidate 0.900× the original" in result.stdout
+
+
+def test_functions_lists_each_surrogates_forms(cli):
+    lines = {ln.split()[0]: ln for ln in cli("functions").stdout.splitlines() if ln.strip()}
+    # source: ONNX operator spec, HardSwish since opset 14; Howard et al. 2019 for x·ReLU6(x + 3)/6
+    assert lines["hard_swish"].endswith("forms: HardSwish (opset ≥ 14), Mul-HardSigmoid, Mul-Clip")
+    assert lines["relu"].endswith("forms: Relu, Clip, Max") and "forms" not in lines["silu"]
