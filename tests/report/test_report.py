@@ -306,6 +306,8 @@ def test_html_shows_the_measured_figures(runs):
     assert f"{100 * c['top1_original']:.2f}%" in page and f"{100 * c['top1_candidate']:.2f}%" in page
     for s in p["sites"]:
         assert f">{s['site_id']}<" in page
+        assert f"{s['source']} → {s['target']} ({s['form']})" in page  # the form the plan chose and the graph holds
+    assert f"planned for {p['plan']['target']} at opset {p['plan']['opset']}" in page
     # plots are embedded as PNG data URIs when the optional matplotlib is installed (report.py docstring)
     if importlib.util.find_spec("matplotlib") is not None:
         assert "src='data:image/png;base64," in page
