@@ -24,6 +24,15 @@ The placement is decided once, in :mod:`swapper.plan.placement`, which also
 says what it asks of the values of a (:func:`swapper.plan.placement.a_rule`);
 calibration keeps to it and the rewriter carries it out unchanged, so the
 plan written into the model and the report is what the graph holds.
+
+With a target profile, :mod:`swapper.plan.choose` picks per site the
+surrogate and its emission form (``SiteSwap.form``, one of
+:mod:`swapper.functions.forms`; its costs on the target in ``SiteSwap.cost``)
+or keeps the site (``Skipped.reason``); ``Plan.target``, ``Plan.opset``,
+``Plan.conversion`` (an ``--opset`` conversion), ``Plan.remaining`` (sites
+left with ops the target cannot run) and ``Plan.hints`` record the rest.
+The fitted a, b, c, d stay in the surrogate's own parametrisation; the
+rewriter applies the form's exact re-parametrisation when it writes the graph.
 """
 from __future__ import annotations
 
