@@ -7,10 +7,13 @@ The walk starts at y and follows every op that hands values on without
 computing new ones (:data:`CARRIERS`): reshaping and reordering (Reshape,
 Squeeze, Unsqueeze, Flatten, Transpose, DepthToSpace, SpaceToDepth),
 Identity/Dropout, Cast/CastLike, whole-value copies and selections (Concat,
-Split, Slice, Gather*, Expand, Tile, Pad, Where's value inputs) and
-selections or means of the values (MaxPool, AveragePool, their Global forms,
-ReduceMax/Min/Mean: the value that leaves is still the site's, or its average,
-as in a detector that reports the mean of per-frame probabilities). It also
+Split, Slice, Gather*, Expand, Tile, Pad, Where's value inputs) and the
+reductions that summarise values into one of them or their mean (ReduceMax,
+ReduceMin, ReduceMean: a detector reporting the mean of its per-frame
+probabilities still reports the site's values). Pooling layers (MaxPool,
+AveragePool, their Global forms) are not followed: in the networks we see they
+start the next stage rather than hand a result out (a judgement call, no
+source). It also
 crosses If/Loop/Scan boundaries in both directions: a body reading y from the
 enclosing graph (ONNX IR spec, outer-scope names), a Loop/Scan input passed to
 its body, and a body output leaving through its node's outputs (If: output k
@@ -42,13 +45,12 @@ logger = logging.getLogger(__name__)
 CARRIERS: dict[str, tuple[int, ...] | None] = {
     **dict.fromkeys(("Identity", "Cast", "CastLike", "Reshape", "Squeeze", "Unsqueeze", "Flatten", "Transpose",
                      "DepthToSpace", "SpaceToDepth", "Split", "Slice", "Gather", "GatherElements", "GatherND",
-                     "Expand", "Tile", "Pad", "Dropout", "MaxPool", "AveragePool", "GlobalMaxPool",
-                     "GlobalAveragePool", "ReduceMax", "ReduceMin", "ReduceMean"), (0,)),
+                     "Expand", "Tile", "Pad", "Dropout", "ReduceMax", "ReduceMin", "ReduceMean"), (0,)),
     "Concat": None,
     "Where": (1, 2),
 }
-# outputs that do not carry values (Dropout's mask, MaxPool's indices)
-NOT_CARRIED: dict[str, tuple[int, ...]] = {"Dropout": (1,), "MaxPool": (1,)}
+# outputs that do not carry values (Dropout's mask)
+NOT_CARRIED: dict[str, tuple[int, ...]] = {"Dropout": (1,)}
 CONTROL_FLOW = ("If", "Loop", "Scan")
 DEFAULT_DOMAINS = ("", "ai.onnx")
 
