@@ -109,9 +109,14 @@ class Scope:
 
 
 def strictly_broadcast(small: tuple | None, big: tuple | None) -> bool:
-    """True if ``small`` is known to broadcast onto the larger ``big`` (e.g. [N,C,1,1] onto [N,C,H,W])."""
-    if small is None or big is None or len(small) != len(big):
+    """True if ``small`` is known to broadcast onto the larger ``big`` (e.g. [N,C,1,1] onto [N,C,H,W]).
+
+    A lower-rank ``small`` is first padded with leading 1s (ONNX multidirectional broadcasting,
+    numpy style), so a scalar scale is broadcast onto anything larger than one element.
+    """
+    if small is None or big is None or len(small) > len(big):
         return False
+    small = (1,) * (len(big) - len(small)) + tuple(small)
     if any(s != 1 and s != b for s, b in zip(small, big)):
         return False
     return any(s == 1 and b != 1 for s, b in zip(small, big))
