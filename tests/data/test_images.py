@@ -237,3 +237,51 @@ def test_api_load_data_reads_an_image_folder_for_a_model(tmp_path):
     feeds = next(batches(ds, 1)).feeds
     y = ort.InferenceSession(str(tmp_path / "m.onnx"), providers=["CPUExecutionProvider"]).run(None, feeds)[0]
     assert y[0, 0].tolist() == [[255, 0, 0], [10, 100, 255]]  # channel R, as written
+
+
+def classifier(path):
+    """x [N, 3, 6, 6] -> Conv 4 -> Tanh -> GlobalAveragePool -> Flatten -> MatMul -> 2 logits."""
+    nd = helper.make_node
+    rng = np.random.default_rng(0)
+    graph = helper.make_graph(
+        [nd("Conv", ["x", "W"], ["c"], pads=[1, 1, 1, 1]), nd("Tanh", ["c"], ["t"]),
+         nd("GlobalAveragePool", ["t"], ["g"]), nd("Flatten", ["g"], ["f"]), nd("MatMul", ["f", "V"], ["y"])],
+        "g", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 3, 6, 6])],
+        [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 2])],
+        [onnx.numpy_helper.from_array(rng.standard_normal((4, 3, 3, 3)).astype(np.float32), "W"),
+         onnx.numpy_helper.from_array(np.array([[1, -1]] * 4, np.float32), "V")])
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    onnx.save(model, path)
+    return path
+
+
+def test_cli_swap_from_image_folders_reports_the_class_mapping(tmp_path):
+    import hashlib
+    import json
+
+    from typer.testing import CliRunner
+
+    from swapper.cli.app import app
+
+    rng = np.random.default_rng(3)
+    for split in ("calib", "val"):
+        for cls in ("dark", "bright"):
+            for k in range(6):
+                base = 40 if cls == "dark" else 200
+                png(tmp_path / split / cls / f"{k}.png",
+                    (base + rng.integers(-30, 30, size=(9, 7, 3))).clip(0, 255))
+    out, report = tmp_path / "out.onnx", tmp_path / "report"
+    result = CliRunner().invoke(app, ["swap", str(classifier(tmp_path / "m.onnx")), "-o", str(out),
+                                      "--calib", str(tmp_path / "calib"), "--val", str(tmp_path / "val"),
+                                      "--prep", "size=6x6", "--prep", "mean=0.5", "--budget", "100",
+                                      "--report", str(report)])
+    assert result.exit_code == 0, result.output
+    entry = json.loads((report / "report.json").read_text())["inputs"]["validation"]
+    assert entry["classes"] == {"bright": 0, "dark": 1}  # sorted folder names -> 0..K-1
+    digest = hashlib.sha256()  # source: hashlib over the sorted relative paths and each file's sha256
+    files = sorted((tmp_path / "val").rglob("*.png"))
+    for f in files:
+        digest.update(f.relative_to(tmp_path / "val").as_posix().encode())
+        digest.update(hashlib.sha256(f.read_bytes()).digest())
+    assert entry["sha256"] == digest.hexdigest() and entry["bytes"] == sum(f.stat().st_size for f in files)
