@@ -136,7 +136,8 @@ def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path)
     if missing or unexpected:
         parts = []
         if missing:
-            parts.append(f"missing arrays for model inputs {missing}")
+            parts.append(f"missing arrays for model inputs {missing} (an input that takes one value in every "
+                         "batch can be declared constant: --constant NAME=VALUE)")
         if unexpected:
             parts.append(f"unexpected arrays {unexpected}")
         raise BadDataError("; ".join(parts) + f" (model inputs: {', '.join(wanted)})", path)

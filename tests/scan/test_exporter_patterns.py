@@ -161,6 +161,15 @@ def test_hard_swish_with_clip(kind, sixth, swaps, const_mode, opset):
     check_numerics(m, one_site(m, "hard_swish", "hard_swish/mul-clip"))
 
 
+@pytest.mark.parametrize("sixth", SIXTHS)
+def test_hard_swish_with_clip_attributes_below_opset_11(sixth):
+    # Clip-6 takes min/max as attributes (ONNX operator spec, Clip-6); find_sites reads them too
+    nodes, consts = hard_swish_graph("clip", sixth, (False,) * 4)
+    nodes[1] = n("Clip", ["A"], "C", min=0.0, max=6.0)
+    m = make(nodes, {k: v for k, v in consts.items() if k not in ("lo", "hi")}, opset=10)
+    check_numerics(m, one_site(m, "hard_swish", "hard_swish/mul-clip"))
+
+
 @pytest.mark.parametrize("shift,hi,six,needle", [
     (2.0, 6.0, 6.0, "hard-swish needs x·Clip(x + 3, 0, 6)/6"),
     (3.0, 6.0, 5.0, "outer factor"),
