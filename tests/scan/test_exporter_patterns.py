@@ -359,12 +359,13 @@ def gelu_tanh_graph(spelling, swaps, k=0.7978845608, c=0.044715):
     return nodes, consts
 
 
+@pytest.mark.parametrize("const_mode", ["init", "node"])
 @pytest.mark.parametrize("spelling", ["pow", "(x·x)·x", "x·(x·x)", "c·x·x·x", "distributed"])
 @pytest.mark.parametrize("swaps", list(itertools.product(BOOLS, repeat=3)))
-def test_gelu_tanh_spellings(spelling, swaps):
+def test_gelu_tanh_spellings(spelling, swaps, const_mode):
     # gelu_tanh(x) = 0.5·x·(1 + tanh(√(2/π)·(x + 0.044715·x³)))   (Hendrycks & Gimpel 2016)
     nodes, consts = gelu_tanh_graph(spelling, swaps)
-    m = make(nodes, consts)
+    m = make(nodes, consts, const_mode)
     check_numerics(m, one_site(m, "gelu_tanh", "gelu_tanh/tanh-cubic"))
 
 
