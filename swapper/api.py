@@ -17,12 +17,16 @@ import onnx
 
 from swapper.calibrate.loop import CalibrationResult, calibrate
 from swapper.core.model_io import LoadedModel, load_model
-from swapper.data.dataset import Dataset, input_specs, load_dataset
+from swapper.data.dataset import Dataset, batches, input_specs, load_dataset
+from swapper.data.images import ImagePrep
+from swapper.data.layout import DataLayout
+from swapper.data.source import DataSource
 from swapper.errors import UsageError
 from swapper.options import SwapOptions
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
+from swapper.scan.shapes import measure_shapes, zero_feeds
 from swapper.scan.sites import Site, find_sites
 from swapper.targets import TargetProfile, load_target
 
@@ -85,19 +89,40 @@ def _as_loaded(model: str | Path | LoadedModel) -> LoadedModel:
     return model if isinstance(model, LoadedModel) else load_model(model)
 
 
-def scan(model: str | Path | LoadedModel) -> ScanResult:
-    """Find every activation site of ``model``."""
+def scan(model: str | Path | LoadedModel, *, calib: str | Path | DataSource | Dataset | None = None,
+         input_shapes: dict[str, tuple[int, ...]] | None = None) -> ScanResult:
+    """Find every activation site of ``model``.
+
+    Cost shares need concrete sizes: with ``calib`` (a data set) the shapes one sample produces,
+    else with ``input_shapes`` ({input: shape}) those of zero inputs of that shape; without
+    either, sites whose size is symbolic keep an unknown cost (None).
+    """
     loaded = _as_loaded(model)
-    return ScanResult(loaded=loaded, sites=find_sites(loaded.model))
+    sites = find_sites(loaded.model)
+    feeds = None
+    if calib is not None:
+        dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
+        feeds = next(batches(dataset, 1)).feeds
+    elif input_shapes:
+        feeds = zero_feeds(loaded.model, input_shapes)
+    if feeds is not None:
+        shapes = measure_shapes(loaded.model, [s.input for s in sites], feeds)
+        sites = find_sites(loaded.model, shapes=shapes)
+    return ScanResult(loaded=loaded, sites=sites)
 
 
-def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False,
-              strict: bool = False) -> Dataset:
+def load_data(path: str | Path | DataSource, loaded: LoadedModel, *, require_labels: bool = False,
+              strict: bool = False, layout: DataLayout | None = None, images: ImagePrep | None = None) -> Dataset:
     """Read a calibration or validation set and check it against the model's inputs.
 
     Arrays the model does not read are left out and named in ``Dataset.notes``; ``strict`` refuses them.
+    ``path`` may be a :class:`~swapper.data.source.DataSource` carrying its layout and image
+    preprocessing; ``layout`` / ``images`` given here take precedence.
     """
-    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict)
+    if isinstance(path, DataSource):
+        layout, images, path = layout or path.layout, images or path.images, path.path
+    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict,
+                        layout=layout, images=images, model=loaded.model)
 
 
 def swap(

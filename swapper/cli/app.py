@@ -68,6 +68,19 @@ def _target(value: str) -> str | None:
 TARGET_HELP = "Target profile: a built-in name (see `swapper targets`) or a .json file; `none` for no target."
 
 
+# Data options shared by every command that reads data (see swapper/data/source.py for the file format).
+DataSpec = Annotated[Optional[Path], typer.Option("--data-spec", help="JSON data description: batch axes, constant inputs, image preprocessing.")]
+BatchAxis = Annotated[Optional[list[str]], typer.Option("--batch-axis", help="NAME=AXIS: the axis of input NAME that counts samples (repeatable).")]
+Constant = Annotated[Optional[list[str]], typer.Option("--constant", help="NAME=VALUE fed unchanged in every batch: a number, numbers a,b,c, zeros, or FILE.npy (repeatable).")]
+Prep = Annotated[Optional[list[str]], typer.Option("--prep", help="KEY=VALUE preprocessing of image folders: size=48x192, resize=stretch|crop|pad, channels=RGB|BGR|gray, layout, scale, mean, std (repeatable).")]
+
+
+def _source(path: Path | None, data_spec, batch_axis, constant, prep):
+    from swapper.data.source import data_source
+
+    return data_source(path, description=data_spec, batch_axes=batch_axis, constants=constant, prep=prep)
+
+
 @app.callback()
 def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debug details.")] = False) -> None:
     logging.basicConfig(level=logging.DEBUG if verbose else logging.WARNING, format="%(name)s: %(message)s")
@@ -77,13 +90,20 @@ def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debu
 def scan(
     model: Annotated[Path, typer.Argument(help="The .onnx model to inspect.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print the inventory as JSON (schema swapper.scan/1).")] = False,
+    calib: Annotated[Optional[Path], typer.Option(help="Data set whose first sample gives concrete sizes for cost shares.")] = None,
+    input_shape: Annotated[Optional[list[str]], typer.Option("--input-shape", help="NAME=1x3x48x320: an input's shape for cost shares (repeatable).")] = None,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """List every activation site: function, role, channels and cost share."""
     from swapper.report.tables import sites_table
+    from swapper.scan.shapes import parse_input_shapes
     from swapper.scan.sites import sites_to_json
 
     try:
-        result = api.scan(model)
+        if calib is not None and input_shape:
+            raise UsageError("--calib and --input-shape exclude each other (both give the sizes for cost shares)")
+        result = api.scan(model, calib=_source(calib, data_spec, batch_axis, constant, prep),
+                          input_shapes=parse_input_shapes(input_shape))
     except SwapperError as exc:
         _fail(exc)
     if as_json:
@@ -93,6 +113,8 @@ def scan(
         out.print(f"{model}: no activation sites found")
         return
     out.print(sites_table(result.sites, f"{model} (opset {result.loaded.opset}): {len(result.sites)} activation sites"))
+    if any(s.cost_share is None for s in result.sites):
+        out.print("cost share ?: sizes are symbolic; give --calib DATA or --input-shape NAME=DIMS", highlight=False)
 
 
 @app.command("functions")
@@ -135,7 +157,7 @@ def list_targets(
 def swap(
     model: Annotated[Path, typer.Argument(help="The .onnx model to rewrite (never modified).")],
     output: Annotated[Path, typer.Option("--output", "-o", help="Where to write the swapped model.")],
-    calib: Annotated[Optional[Path], typer.Option(help="Calibration set: .npz or a folder of .npy files.")] = None,
+    calib: Annotated[Optional[Path], typer.Option(help="Calibration set: .npz, a folder of .npy files, or a folder of images.")] = None,
     no_calibrate: Annotated[bool, typer.Option("--no-calibrate", help="Write the uncalibrated swap (starting parameters).")] = False,
     to: Annotated[Optional[str], typer.Option(help="Surrogate for every chosen site (default: per function).")] = None,
     sites: Annotated[Optional[str], typer.Option(help="Comma-separated site ids to swap (see `swapper scan`).")] = None,
@@ -164,12 +186,14 @@ def swap(
     batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
     threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
     cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
     from swapper.cli.run import run_swap
     from swapper.options import SwapOptions
 
     try:
+        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
@@ -208,12 +232,14 @@ def check(
     batch_size: Annotated[int, typer.Option(min=1)] = 64,
     threads: Annotated[int, typer.Option(min=1)] = 1,
     target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected, 3 cannot judge."""
     from swapper.cli.run import run_check
 
     try:
         rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
                          calib=calib, report=report, batch_size=batch_size, threads=threads,
                          target=_target(target))

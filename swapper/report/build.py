@@ -6,7 +6,9 @@ when a part did not run):
 - ``schema``: "swapper.report/1"; ``created_utc``: ISO 8601 time.
 - ``tool``: versions of swapper, python, onnx, onnxruntime, numpy, scipy, scikit-learn.
 - ``inputs``: ``original``, ``candidate``, ``calibration``, ``validation``: each
-  ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written).
+  ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written);
+  an image folder with class sub-folders also gives ``classes`` (folder name ->
+  integer label).
 - ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
   ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
   record or null), ``remaining``, ``hints``.
@@ -85,16 +87,24 @@ def _file_entry(path) -> dict | None:
     if path is None:
         return None
     p = Path(path)
-    if p.is_dir():  # a folder of .npy files: hash the sorted file list and contents
+    if p.is_dir():  # a folder of .npy files or of images: hash the sorted file list and contents
         import hashlib
 
+        from swapper.data.images import holds_images, list_images
+
+        files, classes = sorted(p.glob("*.npy")), None
+        if not files and holds_images(p):
+            files, _, classes = list_images(p)
         digest = hashlib.sha256()
         total = 0
-        for f in sorted(p.glob("*.npy")):
-            digest.update(f.name.encode())
+        for f in files:
+            digest.update(f.relative_to(p).as_posix().encode())
             digest.update(bytes.fromhex(sha256_file(f)))
             total += f.stat().st_size
-        return {"path": str(p), "sha256": digest.hexdigest(), "bytes": total}
+        entry = {"path": str(p), "sha256": digest.hexdigest(), "bytes": total}
+        if classes:  # class sub-folders of an image folder: label k is the k-th name in sorted order
+            entry["classes"] = {name: k for k, name in enumerate(classes)}
+        return entry
     return {"path": str(p), "sha256": sha256_file(p), "bytes": p.stat().st_size}
 
 
@@ -164,7 +174,7 @@ def validate_report(payload: dict) -> None:
         raise ValueError(f"missing keys: {missing}")
     for key in ("original", "candidate", "calibration", "validation"):
         entry = payload["inputs"].get(key, "absent")
-        if entry == "absent" or (entry is not None and set(entry) != {"path", "sha256", "bytes"}):
+        if entry == "absent" or (entry is not None and set(entry) - {"classes"} != {"path", "sha256", "bytes"}):
             raise ValueError(f"inputs.{key} malformed")
     for site in payload["sites"]:
         if set(site) != set(SITE_KEYS):

@@ -14,9 +14,9 @@ def sites_table(sites: list[Site], title: str) -> Table:
     for s in sites:
         shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
-        role = s.role if s.supported else f"unsupported: {s.reason}"
+        role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
         table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
-                      shape or "?", flow, f"{100 * s.cost_share:.1f}%")
+                      shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
     return table
 
 
