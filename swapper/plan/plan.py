@@ -191,8 +191,8 @@ def _starting_params(source: str, source_params: dict, target: str, target_param
     return _STARTS[key]
 
 
-def _parse_choices(choices: dict[str, str] | None, known: set[str]) -> dict[str, tuple[str, str | None]]:
-    """{site id: (surrogate, form or None)} from {site id: "surrogate" or "surrogate:form"}."""
+def _parse_choices(choices: dict[str, str] | None, known: set[str]) -> dict[str, tuple[str, str | None, str | None]]:
+    """{site id: (surrogate, form or None, fold policy or None)} from {site id: "surrogate[:form][@fold]"}."""
     from swapper import functions
     from swapper.errors import UsageError
 
@@ -200,9 +200,12 @@ def _parse_choices(choices: dict[str, str] | None, known: set[str]) -> dict[str,
     for site_id, text in (choices or {}).items():
         if site_id not in known:
             raise UsageError(f"no site with id {site_id}; valid ids: {', '.join(sorted(known)) or 'none'}")
-        name, _, form = str(text).partition(":")
+        text, _, site_fold = str(text).partition("@")
+        name, _, form = text.partition(":")
         functions.get(name)
-        out[site_id] = (name, form or None)
+        if site_fold:
+            check_fold(site_fold)
+        out[site_id] = (name, form or None, site_fold or None)
     return out
 
 
@@ -229,7 +232,8 @@ def make_plan(
     (:mod:`swapper.plan.choose`); a site whose ops the target cannot run is
     swapped even when it is a gate, an output or already cheap, and named in
     ``Plan.remaining`` when it must stay. ``to`` forces one surrogate for every
-    chosen site, ``choices`` one per site id ("relu" or "hard_swish:Mul-Clip").
+    chosen site, ``choices`` one per site id ("relu" or "hard_swish:Mul-Clip"; "relu@nodes" also sets
+    that site's fold policy, "relu:Relu@exact" both).
     """
     from swapper import functions
     from swapper.core.graph import GraphIndex
@@ -275,7 +279,7 @@ def make_plan(
         if fn is None:
             skip(f"no registry entry for {site.function}")
             continue
-        forced, form = pinned.get(site.id, (to, None))
+        forced, form, site_fold = pinned.get(site.id, (to, None, None))
         if fn.is_cheap and not (explicit or lacking):
             skip(f"{site.function} is already cheap")
             continue
@@ -291,7 +295,7 @@ def make_plan(
         if not order or (fn.is_cheap and forced is None and not lacking):
             skip(f"no default surrogate for {site.function}; name one with --to")
             continue
-        opts = site_options(index, site, target, order, fold=fold, opset=opset)
+        opts = site_options(index, site, target, order, fold=site_fold or fold, opset=opset)
         choice = choose(opts, order, opset, forced=forced, form=form)
         if target is not None and forced is None:
             for k, op in opset_hints(opts, order, opset, min(target.opset_max, MAX_OPSET), choice):
