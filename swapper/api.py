@@ -336,3 +336,43 @@ def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Datas
         "lossy_weights": None if losses is None else [asdict(w) for w in losses
                                                       if w.median_input_error > LOSSY_WEIGHT],
     }
+
+
+# ------------------------------------------------------------------ sweep and automatic plan
+def data_pair(source, loaded: LoadedModel, strict: bool = False):
+    """(what sweep workers load: a DataSource or a Dataset, the Dataset loaded here)."""
+    from swapper.data.source import DataSource
+
+    if isinstance(source, Dataset):
+        return source, source
+    src = source if isinstance(source, DataSource) else DataSource(Path(source))
+    return src, load_data(src, loaded, strict=strict)
+
+
+def sweep(model: str | Path | LoadedModel, *, calib, val, rule=None, options: SwapOptions | None = None,
+          settings=None, progress=None) -> dict:
+    """Swap every eligible site alone, per candidate, calibrated, and measure it (:mod:`swapper.sweep.run`).
+
+    ``calib``/``val``: paths, DataSources or Datasets; ``rule`` the gate rule whose metric the costs are
+    in (default GateRule()); ``options`` give the target, the opset and which sites; ``settings`` a
+    :class:`swapper.sweep.run.SweepSettings` (jobs, scheduler, surrogates...). Returns the
+    ``swapper.sweep/1`` payload.
+    """
+    from dataclasses import replace
+
+    from swapper.check.gate import GateRule
+    from swapper.sweep.run import SweepSettings
+    from swapper.sweep.run import sweep as run_sweep
+
+    options = options or SwapOptions()
+    loaded = _as_loaded(model)
+    profile = resolve_target(options.target)
+    calib_src, calib_ds = data_pair(calib, loaded)
+    val_src, val_ds = data_pair(val, loaded)
+    work, _ = _converted(loaded, options.opset, calib_ds, options.batch_size)
+    settings = replace(settings or SweepSettings(), batch_size=options.batch_size, seed=options.seed,
+                       site_ids=options.site_ids, only=options.only, include_gates=options.include_gates,
+                       include_outputs=options.include_outputs, bias_correction=options.bias_correction)
+    return run_sweep(work, find_sites(work), calib_src, val_src, calib_data=calib_ds, val_data=val_ds,
+                     profile=profile, rule=rule or GateRule(), settings=settings, model_path=loaded.path,
+                     progress=progress)

@@ -66,6 +66,24 @@ def _target(value: str) -> str | None:
 
 
 TARGET_HELP = "Target profile: a built-in name (see `swapper targets`) or a .json file; `none` for no target."
+JobsOpt = Annotated[int, typer.Option(min=1, help="Sweep candidates in this many worker processes on this machine.")]
+SchedulerOpt = Annotated[Optional[str], typer.Option(help="Sweep on an existing dask.distributed cluster at this address (needs the `cluster` extra).")]
+
+
+def _plan_word(plan: str | None, val) -> str:
+    """--plan: auto | all; without it, auto when a validation set is given (the gate needs one)."""
+    word = plan if plan is not None else ("auto" if val is not None else "all")
+    if word not in ("auto", "all"):
+        raise UsageError(f"--plan {word}: expected auto or all")
+    if word == "auto" and val is None:
+        raise UsageError("--plan auto needs a validation set (--val) to measure what each swap costs")
+    return word
+
+
+def _sweep_settings(jobs: int, scheduler: str | None, to: str | None = None, **more):
+    from swapper.sweep.run import SweepSettings
+
+    return SweepSettings(jobs=jobs, scheduler=scheduler, surrogates=None if to is None else (to,), **more)
 
 
 # Data options shared by every command that reads data (see swapper/data/source.py for the file format).
@@ -186,6 +204,10 @@ def swap(
     batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
     threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
     cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    plan: Annotated[Optional[str], typer.Option(help="auto: the fastest plan within the budget, from a sweep of every single-site swap (default with --val); all: every eligible site.")] = None,
+    sweep_file: Annotated[Optional[Path], typer.Option("--sweep", help="Plan from this sweep JSON (`swapper sweep -o`) instead of sweeping again.")] = None,
+    jobs: JobsOpt = 1,
+    scheduler: SchedulerOpt = None,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
@@ -193,6 +215,24 @@ def swap(
     from swapper.options import SwapOptions
 
     try:
+        plan = _plan_word(plan, val)
+        if plan == "auto":
+            from swapper.cli.auto_run import run_auto_swap
+
+            if no_calibrate or calib is None:
+                raise UsageError("--plan auto calibrates every candidate: give --calib (or use --plan all)")
+            calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+            rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+            options = SwapOptions(
+                site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
+                fold=fold, mode=mode, bias_correction=bias_correction, seed=seed, batch_size=batch_size,
+                threads=threads, cache_mb=cache_mb, target=_target(target), opset=opset)
+            code = run_auto_swap(model, output, calib=calib, val=val, rule=rule, options=options,
+                                 settings=_sweep_settings(jobs, scheduler, to), console=out, sweep_file=sweep_file,
+                                 force=force, report=report, strict_data=strict_data)
+            raise typer.Exit(code)
+        if sweep_file is not None:
+            raise UsageError("--sweep feeds the automatic plan: add --plan auto (and --val)")
         calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
@@ -208,6 +248,53 @@ def swap(
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
                         strict_data=strict_data, force=force, int8=int8, report=report)
+    except SwapperError as exc:
+        _fail(exc)
+    raise typer.Exit(code)
+
+
+@app.command()
+def sweep(
+    model: Annotated[Path, typer.Argument(help="The .onnx model to sweep (never modified).")],
+    calib: Annotated[Path, typer.Option(help="Calibration set: .npz, a folder of .npy files, or a folder of images.")],
+    val: Annotated[Path, typer.Option(help="Validation set: what each single-site swap costs is measured on it.")],
+    output: Annotated[Optional[Path], typer.Option("--output", "-o", help="Where to write the sweep JSON (default reports/<model>-<UTC time>/sweep.json); the Pareto plot goes beside it.")] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the sweep JSON (schema swapper.sweep/1) on stdout.")] = False,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    jobs: JobsOpt = 1,
+    scheduler: SchedulerOpt = None,
+    to: Annotated[Optional[str], typer.Option(help="Only this surrogate (default: every candidate of each function).")] = None,
+    paying_only: Annotated[bool, typer.Option("--paying-only", help="Only surrogates the target's profile says are cheaper than the site's own ops.")] = False,
+    no_refit: Annotated[bool, typer.Option("--no-refit", help="Skip the candidates with the consumer refit.")] = False,
+    repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model and candidate on a measured target.")] = 20,
+    sites: Annotated[Optional[str], typer.Option(help="Comma-separated site ids to sweep.")] = None,
+    only: Annotated[Optional[str], typer.Option(help="Sweep only sites computing this function.")] = None,
+    include_gates: Annotated[bool, typer.Option("--include-gates", help="Also sweep gate sites.")] = False,
+    include_outputs: Annotated[bool, typer.Option("--include-outputs", help="Also sweep sites that are graph outputs.")] = False,
+    budget: Annotated[float, typer.Option(help="Accuracy budget (points) recorded as the allowance.")] = 1.0,
+    metric: MetricOpt = None,
+    min_cosine: MinCosineOpt = None,
+    min_sqnr: MinSqnrOpt = None,
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first.")] = None,
+    seed: Annotated[int, typer.Option(help="Seed for sampling.")] = 0,
+    batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
+    strict_data: StrictDataOpt = False,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
+) -> None:
+    """Swap every eligible site alone, per surrogate, placement and refit: accuracy cost and saving on the target."""
+    from swapper.cli.auto_run import run_sweep
+    from swapper.options import SwapOptions
+
+    try:
+        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+        rule = _gate_rule(budget, False, None, metric, min_cosine, None, min_sqnr)
+        options = SwapOptions(site_ids=_split(sites), only=only, include_gates=include_gates,
+                              include_outputs=include_outputs, seed=seed, batch_size=batch_size,
+                              target=_target(target), opset=opset)
+        settings = _sweep_settings(jobs, scheduler, to, paying_only=paying_only, repeats=repeats,
+                                   refit=(False,) if no_refit else (False, True))
+        code = run_sweep(model, calib=calib, val=val, rule=rule, options=options, settings=settings, console=out,
+                         output=output, as_json=as_json, strict_data=strict_data)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)

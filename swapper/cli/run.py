@@ -226,3 +226,9 @@ def _set_metadata(model: onnx.ModelProto, key: str, entry: dict) -> None:
             prop.value = value
             return
     model.metadata_props.add(key=key, value=value)
+
+
+# Public names for the other command modules (cli/auto_run.py).
+print_check = _print_check
+progress_for = _progress
+record_in_model = _set_metadata

@@ -70,7 +70,7 @@ def _steps(cost: float, unit: float) -> int | None:
         return 0
     if unit <= 0.0:
         return None
-    return int(math.ceil(cost / unit - 1e-9))
+    return math.ceil(cost / unit - 1e-9)
 
 
 def select(options: list[Option], allowance: float, *, grid: int = GRID) -> Selection:

@@ -30,6 +30,20 @@ when a part did not run):
   ``target`` (see ``swapper.api.check``); ``size``: per model
   ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
   figures for quantized versions or null. All null when no validation ran.
+- ``search``: the automatic plan (``swap --plan auto``), null otherwise:
+  ``{"target": {"name", "costs_from", "how"}`` (how savings were obtained:
+  measured in context on the target / declared by the profile),
+  ``"metric": {"name", "outputs", "unit", "allowance"}``, ``"reason"`` (one
+  line), ``"sites"``: per swept site ``{"site_id", "function", "chosen"`` (a
+  sweep candidate id or null), ``"why"``, ``"candidates"``: each tried alone
+  ``{"id", "surrogate", "form", "fold", "refit", "status", "reason", "cost",
+  "saving", "saving_ms", "on_front"}}``, ``"attempts"``: the verifications of
+  the combined plan ``{"chosen", "passed", "faster", "detail", "dropped",
+  "why_dropped"}``, ``"first_estimate"`` ``{"saving", "cost", "sites"}``,
+  ``"pareto"`` (candidate ids), ``"saving_label"``, ``"sweep_run"`` (the
+  sweep's ``run`` entry, :mod:`swapper.sweep.schema`), ``"lacking_ops"``
+  (declared target: ops of the written model it cannot run, or null)}``.
+  Added in schema /1: no earlier field changed meaning.
 - ``caution``: the safety caution, verbatim.
 
 report.html is self-contained (styles inline, plots as data: URIs): the verdict
@@ -63,7 +77,7 @@ CAUTION = (
 
 VERDICT_KEYS = {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
 TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
-            "verdict", "latency", "size", "int8", "caution")
+            "verdict", "latency", "size", "int8", "search", "caution")
 
 
 SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
@@ -134,7 +148,7 @@ def site_rows(plan, records, calibration) -> list[dict]:
 
 
 def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
-                 calib_path=None) -> dict:
+                 calib_path=None, search=None) -> dict:
     """Assemble the report.json payload (see the module docstring for its schema)."""
     from swapper.core.jsonable import json_safe
 
@@ -154,6 +168,7 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
         "latency": check.latency if check else None,
         "size": check.size if check else None,
         "int8": check.int8 if check else None,
+        "search": search,
         "caution": CAUTION,
     }
     return json_safe(payload, [], "report")

@@ -10,6 +10,7 @@ import numpy as np
 
 from swapper import functions
 from swapper.report.numbers import num, pct
+from swapper.report.search import search_html
 
 logger = logging.getLogger(__name__)
 
@@ -182,6 +183,7 @@ def render_html(payload: dict) -> str:
     if plots:
         parts.append("<h2>Plots</h2>" + "".join(f"<figure><img alt='{_e(t)}' src='{uri}'><figcaption>{_e(t)}"
                                                  f"</figcaption></figure>" for t, uri in plots))
+    parts.append(search_html(payload.get("search")))
     tool = payload["tool"]
     parts.append(f"<p class='caution'>{_e(payload['caution'])}</p><p class='caution'>swapper {_e(tool['swapper'])}, "
                  f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."

@@ -31,7 +31,6 @@ import logging
 import shutil
 import tempfile
 import time
-from contextlib import nullcontext
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -71,7 +70,8 @@ class SweepSettings:
     include_outputs: bool = False
     batch_size: int = 64
     seed: int = 0
-    repeats: int = 50  # timed runs per model on a measured target
+    repeats: int = 20  # timed runs per model on a measured target (savings are pooled over sites)
+    timing_scope: str = "neighbourhood"  # or "model": what is timed per candidate (swapper.sweep.timing)
     bias_correction: bool = True
     jobs: int = 1
     scheduler: str | None = None  # a dask.distributed scheduler address (or a Client / cluster object)
@@ -134,6 +134,16 @@ def _dispatch(job: SweepJob, groups: list[list[dict]], settings: SweepSettings, 
                      "scheduler": None if settings.scheduler is None else str(settings.scheduler)}
 
 
+def _original_ms(model: onnx.ModelProto, profile: TargetProfile, calib: Dataset, settings: SweepSettings) -> float:
+    """The original's median time on the measured target (the whole model, the calibration batch)."""
+    from swapper.check.on_target import time_on_target
+    from swapper.data.dataset import batches
+
+    feeds = [b.feeds for b in batches(calib, settings.batch_size, limit=256)]
+    timing = time_on_target(model, model, profile, feeds[0], calib_batches=feeds, repeats=settings.repeats)
+    return timing.original.median_ms
+
+
 def _groups(entries: list[SiteCandidates]) -> tuple[list[list[dict]], list[dict]]:
     """(groups to run, candidates that copy another's results)."""
     groups: dict[str, list[dict]] = {}
@@ -150,8 +160,8 @@ def _groups(entries: list[SiteCandidates]) -> tuple[list[list[dict]], list[dict]
 
 def _complete(c: dict) -> dict:
     """A result with every key of the schema (failed ones lack some)."""
-    return {**{"nonfinite": False, "timing_reused": False, "mse_fit": None, "notes": [], "metric": None,
-               "timing": None, "seconds": 0.0}, **c}
+    return {"nonfinite": False, "timing_reused": False, "mse_fit": None, "notes": [], "metric": None,
+            "timing": None, "seconds": 0.0, **c}
 
 
 def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset, val: DataSource | Dataset, *,
@@ -182,13 +192,16 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
             recording = record_sites(model, [e.site for e in entries], calib_data, folder / "recording",
                                      batch_size=settings.batch_size)
         record_s = time.perf_counter() - t0
+        measured = profile is not None and profile.costs_from == "measured"
         elements = {}
         for e in entries:
             x = recording.array(e.site.id, "x")
             elements[e.site.id] = int(x[0].size) if x.shape[0] else e.site.elements
         job = SweepJob(str(folder), calib, val, None if profile is None else (profile.path or profile.name), rule,
                        batch_size=settings.batch_size, seed=settings.seed, bias_correction=settings.bias_correction,
-                       repeats=settings.repeats, strict_data=settings.strict_data)
+                       repeats=settings.repeats, timing_scope=settings.timing_scope,
+                       strict_data=settings.strict_data)
+        original_ms = _original_ms(model, profile, calib_data, settings) if measured else None
         results, run = _dispatch(job, groups, settings, progress) if groups else \
             ([], {"workers": 0, "backend": "sequential", "sweep_s": 0.0, "scheduler": None})
     finally:
@@ -203,10 +216,11 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
     for e in entries:
         entry = e.header() | {"elements": elements[e.site.id], "candidates": [by_id[s.id] for s in e.candidates]}
         sites_out.append(entry)
-    fill_savings(sites_out, None if profile is None else profile.costs_from)
+    fill_savings(sites_out, None if profile is None else profile.costs_from, original_ms)
     points = [(c["id"], c["saving"]["value"], c["metric"]["cost"]) for s in sites_out for c in s["candidates"]
               if c["status"] == "ok" and c["saving"]["value"] is not None and c["metric"]["cost"] is not None]
-    measured = profile is not None and profile.costs_from == "measured"
+    scope = ("in the site's neighbourhood (its producer, the site, the layers reading it)"
+             if settings.timing_scope == "neighbourhood" else "in the whole graph")
     payload = {
         "schema": SCHEMA,
         "created_utc": datetime.now(timezone.utc).isoformat(timespec="seconds"),
@@ -217,8 +231,9 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
         "validation": {"path": _where(val), "samples": val_data.n},
         "target": {"name": None if profile is None else profile.name,
                    "costs_from": None if profile is None else profile.costs_from,
-                   "how": ("measured in context: each candidate timed against the original in the whole graph at "
-                           "the profile's settings; savings pooled over sites with the same chains") if measured else
+                   "original_ms": original_ms,
+                   "how": (f"measured in context: each candidate timed against the original {scope} at the "
+                           "profile's settings; savings pooled over sites with the same chains") if measured else
                           ("declared by the profile: its cost per element of the site's chain and the candidate's, "
                            "times the site's elements") if profile is not None else
                           "no target: the registry's relative costs times the site's elements"},
@@ -227,7 +242,8 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
         "settings": {"surrogates": None if settings.surrogates is None else list(settings.surrogates),
                      "placements": list(settings.placements), "refit": list(settings.refit),
                      "paying_only": settings.paying_only, "batch_size": settings.batch_size, "seed": settings.seed,
-                     "repeats": settings.repeats, "bias_correction": settings.bias_correction},
+                     "repeats": settings.repeats, "timing_scope": settings.timing_scope,
+                     "bias_correction": settings.bias_correction},
         "run": {**run, "record_s": record_s, "total_s": time.perf_counter() - t_start,
                 "candidates": sum(len(e.candidates) for e in entries), "groups": len(groups),
                 "failed": sum(c["status"] == "failed" for c in by_id.values())},

@@ -5,11 +5,11 @@ the profile's chain costs) -> each candidate's ``saving`` entry
 (:mod:`swapper.sweep.schema`), and the ids of the candidates on the front.
 
 - *measured target* (``costs_from: measured``): ``ms`` = the original's median
-  minus the candidate's, timed together in the whole graph at the profile's
-  settings; ``fraction`` = ``ms`` over the original's median. One site of a
-  dozen saves well under the timer's noise (demo ResNet, one of 13 SiLU sites
-  to ReLU: three runs gave ratios 1.006, 0.971, 1.015), so the value the
-  search uses is *pooled*: candidates whose site has the same chain of ops and
+  minus the candidate's, timed together at the profile's settings, in the
+  site's neighbourhood or the whole graph (:mod:`swapper.sweep.timing`);
+  ``fraction`` = ``ms`` over the whole original's median. One site of a dozen
+  saves little next to the timer's noise, so the value the search uses is
+  *pooled*: candidates whose site has the same chain of ops and
   whose replacement has the same chain (same producer, same form, same
   parameter nodes) save in proportion to the site's element count, and the
   least-squares rate over all of them, ``Σ msᵢ·nᵢ / Σ nᵢ²``, times the site's
@@ -40,10 +40,11 @@ def _ok(c: dict) -> bool:
     return c.get("status") == "ok"
 
 
-def fill_savings(sites: list[dict], costs_from: str | None) -> None:
-    """Set ``saving`` on every candidate of ``sites`` (module docstring); ``costs_from`` None: no target."""
+def fill_savings(sites: list[dict], costs_from: str | None, original_ms: float | None = None) -> None:
+    """Set ``saving`` on every candidate of ``sites`` (module docstring); ``costs_from`` None: no target;
+    ``original_ms`` the whole original's median on a measured target (the fractions' denominator)."""
     if costs_from == "measured":
-        _measured(sites)
+        _measured(sites, original_ms)
     else:
         _declared(sites, costs_from)
 
@@ -53,7 +54,7 @@ def _empty(how: str) -> dict:
             "required": False, "how": how}
 
 
-def _measured(sites: list[dict]) -> None:
+def _measured(sites: list[dict], original_ms: float | None) -> None:
     pools: dict[tuple, list[tuple[float, int]]] = defaultdict(list)
     for site in sites:
         n = site["elements"] or 0
@@ -63,7 +64,7 @@ def _measured(sites: list[dict]) -> None:
             if not t:
                 continue
             o, k = t["original"]["median_ms"], t["candidate"]["median_ms"]
-            c["saving"].update(ms=o - k, fraction=(o - k) / o if o > 0 else None)
+            c["saving"].update(ms=o - k, fraction=(o - k) / original_ms if original_ms else None)
             if not c.get("timing_reused") and n > 0:
                 pools[(tuple(site["original_ops"]), tuple(c["ops"]))].append((o - k, n))
     for site in sites:

@@ -7,15 +7,17 @@ Every key is always present; ``null`` where a figure does not apply.
   the one planned at).
 - ``calibration``, ``validation``: ``{"path", "samples"}`` (path null for
   in-memory data).
-- ``target``: ``{"name", "costs_from", "how"}``: the profile (null name: no
-  target); ``costs_from`` "measured" | "declared" | null; ``how``: in words,
-  how savings were obtained (timed in the original's graph at the profile's
-  settings / the profile's cost per element × elements).
+- ``target``: ``{"name", "costs_from", "how", "original_ms"}``: the profile
+  (null name: no target); ``costs_from`` "measured" | "declared" | null;
+  ``how``: in words, how savings were obtained (timed in context at the
+  profile's settings / the profile's cost per element × elements);
+  ``original_ms``: the whole original's median on a measured target, else null.
 - ``metric``: ``{"name", "outputs", "unit", "allowance"}``: the gate metric
   the costs are in (:mod:`swapper.sweep.cost`), the outputs it judges, its
   cost unit in words, and the gate rule's budget in those units.
 - ``settings``: ``{"surrogates", "placements", "refit", "paying_only",
-  "batch_size", "seed", "repeats", "bias_correction"}``.
+  "batch_size", "seed", "repeats", "timing_scope", "bias_correction"}``
+  (``timing_scope``: "neighbourhood" | "model", :mod:`swapper.sweep.timing`).
 - ``run``: ``{"workers", "backend", "scheduler", "record_s", "sweep_s",
   "total_s", "candidates", "groups", "failed"}``: ``backend`` "sequential" |
   "loky" | "dask"; ``record_s`` the one recording of the original's site

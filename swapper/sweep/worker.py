@@ -12,8 +12,8 @@ calibrating that site alone), then per candidate: the consumer refit when
 asked, the rewrite, the comparison with the original's outputs on the
 validation set, the accuracy cost in the gate metric's units
 (:mod:`swapper.sweep.cost`) and, on a measured target, the candidate timed
-against the original in the original's graph
-(:func:`swapper.check.on_target.time_on_target`); a refit that leaves the
+against the original (:mod:`swapper.sweep.timing`: in the site's
+neighbourhood by default, or in the whole model); a refit that leaves the
 graph's ops as they were reuses its sibling's timing (weights do not change
 the time). A candidate that raises is returned as failed with the first line
 of the error; the others go on.
@@ -45,6 +45,7 @@ from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import rewrite
 from swapper.scan.sites import Site, find_sites
 from swapper.sweep.cost import metric_cost
+from swapper.sweep.timing import time_candidate
 from swapper.targets import TargetProfile, load_target
 
 logger = logging.getLogger(__name__)
@@ -62,7 +63,8 @@ class SweepJob:
     batch_size: int = 64
     seed: int = 0
     bias_correction: bool = True
-    repeats: int = 50
+    repeats: int = 20
+    timing_scope: str = "neighbourhood"  # or "model" (swapper.sweep.timing)
     threads: int = 1
     strict_data: bool = False
 
@@ -157,11 +159,10 @@ def run_group(job: SweepJob, group: list[dict]) -> list[dict]:
                 timing = next((t for o, t in timed if o == ops), None)
                 reused = timing is not None
                 if timing is None:
-                    from swapper.check.on_target import time_on_target
-
-                    timing = time_on_target(ctx.model, candidate, ctx.profile, ctx.timing_batches[0],
-                                            calib_batches=ctx.timing_batches, feeds_from="the calibration set",
-                                            repeats=job.repeats).to_dict()
+                    site = next(s for s in ctx.sites if s.id == spec["site_id"])
+                    timing = time_candidate(ctx.model, candidate, site, ctx.profile, feeds=ctx.timing_batches[0],
+                                            calib_batches=ctx.timing_batches, scope=job.timing_scope,
+                                            repeats=job.repeats, batch=job.batch_size)
                     timed.append((ops, timing))
             notes = list(dict.fromkeys(n for s in result.sites for n in s.notes))
             results.append({**spec, "status": "ok", "reason": None, "metric": cost.to_dict(),
