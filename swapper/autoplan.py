@@ -18,6 +18,8 @@ import logging
 from dataclasses import dataclass
 from pathlib import Path
 
+import onnx
+
 from swapper.api import CheckResult, SwapResult, check, data_pair, resolve_target, swap, sweep, time_on_target
 from swapper.core.model_io import LoadedModel, load_model
 from swapper.options import SwapOptions
@@ -40,7 +42,17 @@ class AutoResult:
     reason: str
 
 
-def auto_swap(model: str | Path | LoadedModel, *, calib, val, rule=None, options: SwapOptions | None = None,
+def _loaded(model) -> LoadedModel:
+    """A LoadedModel from a path, a LoadedModel or an in-memory ModelProto (no file: no sha256 to check)."""
+    if isinstance(model, LoadedModel):
+        return model
+    if isinstance(model, onnx.ModelProto):
+        opset = next((o.version for o in model.opset_import if o.domain in ("", "ai.onnx")), 0)
+        return LoadedModel(model, None, opset, model.ByteSize())
+    return load_model(model)
+
+
+def auto_swap(model: str | Path | LoadedModel | onnx.ModelProto, *, calib, val, rule=None, options: SwapOptions | None = None,
               settings=None, sweep_payload: dict | None = None, sweep_path: str | Path | None = None,
               progress=None) -> AutoResult:
     """The fastest plan within the gate: sweep (or ``sweep_payload``), search, verify and back off.
@@ -60,7 +72,7 @@ def auto_swap(model: str | Path | LoadedModel, *, calib, val, rule=None, options
     options = options or SwapOptions()
     rule = rule or GateRule()
     progress = progress or Silent()
-    loaded = model if isinstance(model, LoadedModel) else load_model(model)
+    loaded = _loaded(model)
     profile = resolve_target(options.target)
     calib_src, calib_ds = data_pair(calib, loaded)
     val_src, val_ds = data_pair(val, loaded)

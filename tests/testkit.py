@@ -285,3 +285,23 @@ def wmse(y, yhat, w=None) -> float:
     """Weighted mean squared error Σw(y − ŷ)² / Σw (plain mean without weights)."""
     w = np.ones_like(y) if w is None else w
     return float(np.sum(w * (y - yhat) ** 2) / np.sum(w))
+
+
+# ------------------------------------------------------------ sweep / automatic plan
+def two_elu_model() -> onnx.ModelProto:
+    """Two ELU sites by construction: ``za = x·x + 0.5`` is always positive, where ELU(z) = z = Relu(z)
+    (ONNX Elu: z for z > 0), so swapping it to relu costs nothing; ``zb = Gemm(x)`` takes both signs, where
+    relu cannot follow ELU's α·(exp(z) − 1). Output: a Gemm over both, [N, 5]."""
+    rng = np.random.default_rng(3)
+    nodes = [helper.make_node("Mul", ["x", "x"], ["sq"]), helper.make_node("Add", ["sq", "half"], ["za"]),
+             helper.make_node("Elu", ["za"], ["ya"]),
+             helper.make_node("Gemm", ["x", "w2", "b2"], ["zb"]), helper.make_node("Elu", ["zb"], ["yb"]),
+             helper.make_node("Concat", ["ya", "yb"], ["cat"], axis=1),
+             helper.make_node("Gemm", ["cat", "w3", "b3"], ["out"])]
+    inits = [init("half", np.full((1, 4), 0.5)), init("w2", rng.normal(size=(4, 4))), init("b2", np.zeros(4)),
+             init("w3", rng.normal(size=(8, 5))), init("b3", rng.normal(size=5))]
+    return as_loaded(float_model(nodes, [("x", ["N", 4])], [("out", ["N", 5])], inits, opset=17))
+
+
+def two_elu_data(n: int, seed: int) -> np.ndarray:
+    return np.random.default_rng(seed).normal(size=(n, 4)).astype(np.float32)

@@ -70,9 +70,10 @@ JobsOpt = Annotated[int, typer.Option(min=1, help="Sweep candidates in this many
 SchedulerOpt = Annotated[Optional[str], typer.Option(help="Sweep on an existing dask.distributed cluster at this address (needs the `cluster` extra).")]
 
 
-def _plan_word(plan: str | None, val) -> str:
-    """--plan: auto | all; without it, auto when a validation set is given (the gate needs one)."""
-    word = plan if plan is not None else ("auto" if val is not None else "all")
+def _plan_word(plan: str | None, val, calib) -> str:
+    """--plan: auto | all; without it, auto when a validation set is given (and a calibration set: the
+    sweep calibrates every candidate; an uncalibrated swap is one plan, all)."""
+    word = plan if plan is not None else ("auto" if val is not None and calib is not None else "all")
     if word not in ("auto", "all"):
         raise UsageError(f"--plan {word}: expected auto or all")
     if word == "auto" and val is None:
@@ -215,7 +216,7 @@ def swap(
     from swapper.options import SwapOptions
 
     try:
-        plan = _plan_word(plan, val)
+        plan = _plan_word(plan, val, calib)
         if plan == "auto":
             from swapper.cli.auto_run import run_auto_swap
 
