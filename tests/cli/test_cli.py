@@ -320,7 +320,13 @@ def test_not_an_onnx_file(cli, tmp_path):
 # ----------------------------------------------------------------------------- demo
 
 
-def test_demo_writes_one_report_per_model(cli, tmp_path):
+def test_demo_writes_one_report_per_model(cli, tmp_path, monkeypatch):
+    from swapper.sweep.run import SweepSettings
+
+    # the demo's automatic plan sweeps in two worker processes, where the session's stand-in clock
+    # (conftest.no_target_timing) does not reach; here it sweeps in this process, fewer candidates
+    monkeypatch.setattr("swapper.cli.demo.demo_sweep",
+                        lambda: SweepSettings(surrogates=("relu",), placements=("exact",), refit=(False,)))
     out = tmp_path / "demo"
     result = cli("demo", "--out", out)
     # README "Exit codes": every demo model runs to a verdict, so the demo exits 0
@@ -346,3 +352,6 @@ def test_demo_writes_one_report_per_model(cli, tmp_path):
         assert payload["verdict"]["metric"] == {"classification": "top1", "embedding": "cosine"}[task]
     for name in ran:
         assert name in result.stdout
+    # the ResNet's report holds the automatic plan: per site the candidates tried and the choice
+    search = json.loads(next(out.glob("meter_resnet_silu-*/report.json")).read_text())["search"]
+    assert len(search["sites"]) == 13 and all(s["candidates"] for s in search["sites"])
