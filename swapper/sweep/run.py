@@ -188,9 +188,10 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
     try:
         (folder / "original.onnx").write_bytes(model.SerializeToString())
         t0 = time.perf_counter()
-        with progress.task("recording the original's site tensors", None):
-            recording = record_sites(model, [e.site for e in entries], calib_data, folder / "recording",
-                                     batch_size=settings.batch_size)
+        if entries:
+            with progress.task("recording the original's site tensors", None):
+                recording = record_sites(model, [e.site for e in entries], calib_data, folder / "recording",
+                                         batch_size=settings.batch_size)
         record_s = time.perf_counter() - t0
         measured = profile is not None and profile.costs_from == "measured"
         elements = {}
@@ -201,7 +202,7 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
                        batch_size=settings.batch_size, seed=settings.seed, bias_correction=settings.bias_correction,
                        repeats=settings.repeats, timing_scope=settings.timing_scope,
                        strict_data=settings.strict_data)
-        original_ms = _original_ms(model, profile, calib_data, settings) if measured else None
+        original_ms = _original_ms(model, profile, calib_data, settings) if measured and groups else None
         results, run = _dispatch(job, groups, settings, progress) if groups else \
             ([], {"workers": 0, "backend": "sequential", "sweep_s": 0.0, "scheduler": None})
     finally:

@@ -87,3 +87,18 @@ def test_auto_without_calibration_data_is_a_usage_error(cli, files, tmp_path):
     result = cli("swap", *_args(files)[:1], "--val", files / "val.npz", "--plan", "auto", "-o", tmp_path / "o.onnx",
                  "--no-calibrate")
     assert result.exit_code == 2 and "--calib" in result.stderr
+
+
+def test_a_model_with_nothing_to_swap_says_so_in_one_line(cli, tmp_path):
+    from testkit import float_model, init
+
+    # a Gemm and a Relu: Relu is already cheap (registry), so no site is eligible and nothing can pay
+    model = float_model([onnx.helper.make_node("Gemm", ["x", "w"], ["h"]), onnx.helper.make_node("Relu", ["h"], ["y"])],
+                        [("x", ["N", 4])], [("y", ["N", 3])], [init("w", np.ones((4, 3)))])
+    onnx.save(model, tmp_path / "m.onnx")
+    np.savez(tmp_path / "d.npz", x=two_elu_data(20, 0))
+    out = tmp_path / "o.onnx"
+    result = cli("swap", tmp_path / "m.onnx", "--calib", tmp_path / "d.npz", "--val", tmp_path / "d.npz", "-o", out,
+                 "--metric", "sqnr")
+    assert result.exit_code == 0, result.output
+    assert [line for line in result.stdout.splitlines() if line.startswith("nothing pays")] and not out.exists()
