@@ -92,8 +92,9 @@ def test_report_fields_follow_the_documented_schema(runs):
     # source: swapper/report/build.py module docstring, schema swapper.report/1 (every key present, null when not run)
     p = runs["gated"]["json"]
     assert set(p) == {"schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison",
-                      "budget", "verdict", "latency", "size", "int8", "caution"}
+                      "budget", "verdict", "latency", "size", "int8", "search", "caution"}
     assert p["schema"] == "swapper.report/1"
+    assert p["search"] is None  # --plan all: no automatic plan
     created = datetime.fromisoformat(p["created_utc"])  # ISO 8601
     assert created.tzinfo is not None and abs(datetime.now(timezone.utc) - created) < timedelta(minutes=30)
 
