@@ -75,8 +75,16 @@ def auto_row(model: Path, calib: Path, val: Path, target: str, settings: SweepSe
     return row
 
 
-def single_swap_seconds(model: Path, calib: Path) -> dict:
-    """Wall time of one calibrated single-site swap (api.swap), per placement and refit, two sites each."""
+def single_swap_seconds(model: Path, calib: Path, blas_threads: int | None = 1) -> dict:
+    """Wall time of one calibrated single-site swap (api.swap), per placement and refit, two sites each;
+    BLAS limited to ``blas_threads`` as in a sweep worker (None: the library default)."""
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=blas_threads):
+        return _single_swap_seconds(model, calib)
+
+
+def _single_swap_seconds(model: Path, calib: Path) -> dict:
     loaded = load_model(model)
     calib_ds = api.load_data(calib, loaded)
     api.swap(loaded, calib=calib_ds, site_ids=["s1"], choices={"s1": "relu"})  # warm the start-parameter memo
@@ -97,7 +105,7 @@ def sweep_walls(model: Path, calib: Path, val: Path, settings: SweepSettings) ->
     loaded = load_model(model)
     singles = single_swap_seconds(model, calib)
     t_single = statistics.mean(singles.values())  # the sweep's candidates are these four kinds, equally many
-    rows = {}
+    rows = {"blas_default_single_swap_s": single_swap_seconds(model, calib, None)}
     for jobs in (1, 2):
         t0 = time.perf_counter()
         payload = api.sweep(loaded, calib=DataSource(calib), val=DataSource(val), rule=GateRule(Budget(0.5)),
@@ -107,7 +115,8 @@ def sweep_walls(model: Path, calib: Path, val: Path, settings: SweepSettings) ->
         bound = math.ceil(n / jobs) * t_single + payload["run"]["record_s"]
         rows[jobs] = {"wall_s": wall, "candidates": n, "record_s": payload["run"]["record_s"],
                       "bound_s": bound, "met": wall <= bound, "failed": payload["run"]["failed"]}
-    return {"single_swap_s": singles, "t_single_s": t_single, "runs": rows}
+    default = rows.pop("blas_default_single_swap_s")
+    return {"single_swap_s": singles, "single_swap_s_blas_default": default, "t_single_s": t_single, "runs": rows}
 
 
 def markdown(results: dict) -> str:
@@ -128,7 +137,8 @@ def markdown(results: dict) -> str:
                      f"{r['seconds']:.0f} |")
     w = results.get("sweep_walls")
     if w:
-        lines += ["", f"single-site swap (s, mean of 2 sites): {json.dumps({k: round(v, 2) for k, v in w['single_swap_s'].items()})}",
+        lines += ["", f"single-site swap (s, mean of 2 sites, BLAS 1 thread): {json.dumps({k: round(v, 2) for k, v in w['single_swap_s'].items()})}",
+                  "", f"same, BLAS default threads: {json.dumps({k: round(v, 2) for k, v in w['single_swap_s_blas_default'].items()})}",
                   "", "| workers | candidates | wall s | bound s | met |", "|---|---|---|---|---|"]
         for jobs, r in w["runs"].items():
             lines.append(f"| {jobs} | {r['candidates']} | {r['wall_s']:.1f} | {r['bound_s']:.1f} | {r['met']} |")

@@ -92,6 +92,12 @@ def auto_swap(model: str | Path | LoadedModel | onnx.ModelProto, *, calib, val, 
     done: dict[frozenset, tuple] = {}
 
     def verify(chosen: dict) -> Verification:
+        from threadpoolctl import threadpool_limits  # installed with scikit-learn
+
+        with threadpool_limits(limits=options.threads):  # BLAS as many threads as onnxruntime (sweep/worker.py)
+            return _verify(chosen)
+
+    def _verify(chosen: dict) -> Verification:
         picked = {sid: by_id[o.key] for sid, o in chosen.items()} | required
         choices, refit = plan_choices(picked)
         result = swap(loaded, calib=calib_ds, options=options.replace(
