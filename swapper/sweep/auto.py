@@ -24,6 +24,11 @@ from swapper.sweep.schema import candidates
 logger = logging.getLogger(__name__)
 
 
+def _rank(c: dict) -> tuple[float, float]:
+    prior = c["prior_cost"]
+    return float(c["metric"]["cost"]), float("inf") if prior is None else float(prior)
+
+
 def search_options(payload: dict) -> tuple[list[Option], dict[str, dict], dict[str, dict]]:
     """(options for the search, candidate entries by id, required site id -> its chosen candidate)."""
     options, by_id, required = [], {}, {}
@@ -34,9 +39,9 @@ def search_options(payload: dict) -> tuple[list[Option], dict[str, dict], dict[s
         cost = (c["metric"] or {}).get("cost")
         if cost is None:
             continue
-        if c["saving"]["required"]:
+        if c["saving"]["required"]:  # least accuracy cost; among equals, the cheapest on the target
             best = required.get(site["site_id"])
-            if best is None or cost < best["metric"]["cost"]:
+            if best is None or _rank(c) < _rank(best):
                 required[site["site_id"]] = c
             continue
         value = c["saving"]["value"]
