@@ -212,7 +212,8 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
     for c in copies:  # the same model as another candidate: its results, under this id and placement policy
         twin = by_id.get(c["same_as"])
         by_id[c["id"]] = _complete({**(twin or {}), **c, "status": twin["status"] if twin else "failed",
-                                    "reason": twin["reason"] if twin else "its twin did not run"})
+                                    "reason": twin["reason"] if twin else "its twin did not run",
+                                    "timing_reused": True})  # counted once where savings are pooled
     sites_out = []
     for e in entries:
         entry = e.header() | {"elements": elements[e.site.id], "candidates": [by_id[s.id] for s in e.candidates]}
