@@ -15,6 +15,8 @@ def sites_table(sites: list[Site], title: str) -> Table:
         shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
         role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
+        if s.body and s.supported:  # where a body site sits (an unswappable one's reason names its body)
+            role += " in " + " / ".join(f"{node}.{attribute}" for node, attribute in s.body)
         table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
                       shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
     return table
