@@ -187,6 +187,7 @@ def make_plan(
     from swapper import functions
     from swapper.core.graph import GraphIndex
     from swapper.errors import UsageError
+    from swapper.plan.bodies import SiteGraphs
     from swapper.plan.placement import decide_placement
 
     check_fold(fold)
@@ -202,6 +203,7 @@ def make_plan(
                 f"no site with id {', '.join(unknown)}; valid ids: {', '.join(s.id for s in sites) or 'none'}"
             )
     index = GraphIndex.of(model)
+    graphs = SiteGraphs(model, index)  # a site inside an If/Loop/Scan body is placed within its body
     swaps, skipped = [], []
     for site in sites:
         if site_ids and site.id not in site_ids:
@@ -238,7 +240,7 @@ def make_plan(
             continue
         target_fn = functions.get(target)
         tparams = functions.target_params(site.function, site.params, target)
-        placement, notes = decide_placement(index, site, target_fn, fold)
+        placement, notes = decide_placement(graphs.index_for(site), site, target_fn, fold)
         channels = site.channels or 1
         swap = SiteSwap(
             site_id=site.id,
