@@ -52,7 +52,7 @@ from swapper.plan.fold_targets import (
 )
 from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
 from swapper.plan.plan import Plan, SiteSwap
-from swapper.rewrite.bodies import has_body_swaps, node_count, rewrite_bodies
+from swapper.rewrite.bodies import floor_with_bodies, has_body_swaps, node_count, rewrite_bodies
 from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
 from swapper.scan.sites import Site
 
@@ -326,6 +326,8 @@ def _stamp_plan(out: onnx.ModelProto, plan: Plan) -> None:
 
 def rewrite_identity_floor(model: onnx.ModelProto, sites: list[Site]) -> onnx.ModelProto:
     """A copy of ``model`` with each site replaced by Identity: the speed floor of any swap."""
+    if any(s.body for s in sites):  # sites inside If/Loop/Scan bodies: body by body (swapper.rewrite.bodies)
+        return floor_with_bodies(model, sites, rewrite_identity_floor)
     out = copy_model(model)
     positions = site_positions(out, sites)
     taken = all_names(out)

@@ -43,29 +43,50 @@ def node_count(model: onnx.ModelProto) -> int:
     return sum(len(g.node) for g in (model.graph, *subgraphs(model.graph)))
 
 
+def _by_body(sites: list[Site]) -> dict[tuple, list[Site]]:
+    """The body sites grouped by body, outer bodies first, each seen as a site of a main graph (its body is one)."""
+    groups: dict[tuple, list[Site]] = {}
+    for site in sites:
+        if site.body:
+            groups.setdefault(site.body, []).append(dataclasses.replace(site, body=()))
+    return {path: groups[path] for path in sorted(groups, key=lambda p: (len(p), p))}
+
+
+def _in_each_body(out: onnx.ModelProto, groups: dict[tuple, list[Site]],
+                  edit: Callable[[onnx.ModelProto, list[Site]], onnx.ModelProto]) -> None:
+    """Replace each body of ``groups`` in ``out`` (in place) by ``edit(body as a model, its sites)``'s graph."""
+    for path, inner in groups.items():  # outer bodies first; each is looked up afresh
+        body, borrowed = body_as_model(out, path)
+        put_body(out, path, edit(body, inner).graph, borrowed)
+        logger.info("rewrote %d site(s) inside %s", len(inner), " / ".join(f"{n}.{a}" for n, a in path))
+
+
 def rewrite_bodies(model: onnx.ModelProto, sites: list[Site], plan: Plan,
                    rewrite_graph: Callable) -> tuple[onnx.ModelProto, list]:
     """A copy of ``model`` with every swap of ``plan`` done (module docstring), and the rewriter's records in
     plan order. ``rewrite_graph(model, sites, plan)`` rewrites the main graph of a model and returns an object
     with ``model`` and ``records``; it is called on sites of the main graph only."""
-    by_id = {s.id: s for s in sites}
     inside = {s.id for s in sites if s.body}
     done = rewrite_graph(model, sites, dataclasses.replace(plan, swaps=[s for s in plan.swaps
                                                                        if s.site_id not in inside]))
     out = done.model  # a copy already: the rewriter never touches its input
     records = {r.site_id: r for r in done.records}
-    groups: dict[tuple, list] = {}
-    for swap in plan.swaps:
-        site = by_id.get(swap.site_id)
-        if site is not None and site.body:
-            groups.setdefault(site.body, []).append(swap)
-    for path in sorted(groups, key=lambda p: (len(p), p)):  # outer bodies first; each is looked up afresh
-        body, borrowed = body_as_model(out, path)
-        # the body's sites, seen as sites of a main graph: the body is one now
-        inner = [dataclasses.replace(by_id[s.site_id], body=()) for s in groups[path]]
-        result = rewrite_graph(body, inner, dataclasses.replace(plan, swaps=groups[path], skipped=[]))
-        put_body(out, path, result.model.graph, borrowed)
+    swaps = plan.by_site()
+
+    def edit(body: onnx.ModelProto, inner: list[Site]) -> onnx.ModelProto:
+        result = rewrite_graph(body, inner, dataclasses.replace(plan, swaps=[swaps[s.id] for s in inner], skipped=[]))
         records.update({r.site_id: r for r in result.records})
-        logger.info("rewrote %d site(s) inside %s", len(inner), " / ".join(f"{n}.{a}" for n, a in path))
+        return result.model
+
+    _in_each_body(out, _by_body([s for s in sites if s.id in swaps]), edit)
     drop_unused(out, used_names(model))  # outer weights only the folded bodies read
     return out, [records[s.site_id] for s in plan.swaps if s.site_id in records]
+
+
+def floor_with_bodies(model: onnx.ModelProto, sites: list[Site],
+                      floor_graph: Callable[[onnx.ModelProto, list[Site]], onnx.ModelProto]) -> onnx.ModelProto:
+    """A copy of ``model`` with every site of ``sites`` replaced as ``floor_graph(model, main-graph sites)``
+    replaces them (the speed floor's Identity), body sites inside their bodies."""
+    out = floor_graph(model, [s for s in sites if not s.body])
+    _in_each_body(out, _by_body(sites), floor_graph)
+    return out

@@ -18,7 +18,7 @@ from testkit import as_loaded, hard_sigmoid, hard_tanh, run
 
 from swapper.core.bodies import find_body
 from swapper.plan.plan import make_plan
-from swapper.rewrite.apply import PLAN_KEY, rewrite
+from swapper.rewrite.apply import PLAN_KEY, rewrite, rewrite_identity_floor
 from swapper.scan.sites import find_sites
 
 RNG = np.random.default_rng(7)
@@ -228,3 +228,15 @@ def test_a_main_graph_site_whose_input_a_branch_reads_keeps_that_input():
     x = np.linspace(-1, 1, 6, dtype=np.float32).reshape(2, 3)
     y, _ = run(out, {"x": x, "c": np.array(True)})
     np.testing.assert_allclose(y, x @ np.diag([1, 2, 3]), rtol=1e-6)  # the branch still sees the original h
+
+
+def test_the_speed_floor_replaces_body_sites_by_identity_inside_their_bodies():
+    model = if_model()
+    sites = find_sites(model)
+    out = rewrite_identity_floor(model, sites)
+    onnx.checker.check_model(out, full_check=True)
+    x = RNG.normal(size=(3, 4)).astype(np.float32)
+    feeds = {"x": x, "img": np.zeros((3, 4, 3, 3), np.float32), "pass": np.zeros((3, 2, 3, 3), np.float32)}
+    y, _ = run(out, {**feeds, "c": np.array(True)})
+    # source: ONNX operator spec, Identity and Gemm: the branch computes (x·W1 + B1)·W2 + B2
+    np.testing.assert_allclose(y, (x.astype(np.float64) @ W1 + B1) @ W2 + B2, rtol=1e-5, atol=1e-5)
