@@ -102,35 +102,38 @@ def why_not_runnable(steps: list[tuple[onnx.NodeProto, str, onnx.GraphProto]]) -
     return None
 
 
-def _constant_tensor(graph: onnx.GraphProto, name: str) -> onnx.TensorProto | None:
-    """``name`` as a TensorProto if ``graph`` holds it as an initializer or a Constant output (a copy), else None."""
-    for t in graph.initializer:
-        if t.name == name:
+class _Defs:
+    """What one graph defines, looked up by name: initializers, node outputs (with their node), formal inputs."""
+
+    def __init__(self, graph: onnx.GraphProto):
+        self.graph = graph
+        self.initializers = {t.name: t for t in graph.initializer}
+        self.producers = {o: n for n in graph.node for o in n.output if o}
+        self.inputs = {v.name for v in graph.input}
+        self.infos = {v.name: v for v in list(graph.input) + list(graph.value_info) + list(graph.output)
+                      if v.type.HasField("tensor_type")}
+
+    def defines(self, name: str) -> bool:
+        return name in self.initializers or name in self.producers or name in self.inputs
+
+    def constant(self, name: str) -> onnx.TensorProto | None:
+        """``name`` as a TensorProto (a copy) if it is an initializer or a Constant output here, else None."""
+        found = self.initializers.get(name)
+        if found is not None:
             out = onnx.TensorProto()
-            out.CopyFrom(t)
+            out.CopyFrom(found)
             return out
-    node = next((n for n in graph.node if name in n.output), None)
-    if node is None or node.op_type != "Constant" or node.domain not in DEFAULT_DOMAINS:
-        return None
-    if any(a.name == "value" for a in node.attribute):
-        out = onnx.TensorProto()
-        out.CopyFrom(next(a.t for a in node.attribute if a.name == "value"))
-        out.name = name
-        return out
-    value = GraphIndex.of_graph(graph, {}).const(name)  # value_float, value_ints, ...: small by construction
-    return None if value is None else numpy_helper.from_array(np.asarray(value), name)
-
-
-def _defines(graph: onnx.GraphProto, name: str) -> bool:
-    return (any(v.name == name for v in graph.input) or any(t.name == name for t in graph.initializer)
-            or any(name in n.output for n in graph.node))
-
-
-def _value_info(graph: onnx.GraphProto, name: str) -> onnx.ValueInfoProto | None:
-    for v in list(graph.input) + list(graph.value_info) + list(graph.output):
-        if v.name == name and v.type.HasField("tensor_type"):
-            return v
-    return None
+        node = self.producers.get(name)
+        if node is None or node.op_type != "Constant" or node.domain not in DEFAULT_DOMAINS:
+            return None
+        value = next((a.t for a in node.attribute if a.name == "value"), None)
+        if value is not None:
+            out = onnx.TensorProto()
+            out.CopyFrom(value)
+            out.name = name
+            return out
+        array = GraphIndex.of_graph(self.graph, {}).const(name)  # value_float, value_ints, ...: small by definition
+        return None if array is None else numpy_helper.from_array(np.asarray(array), name)
 
 
 @dataclass
@@ -147,19 +150,18 @@ def outer_reads(place: BodyPlace) -> OuterReads:
     """The values the body of ``place`` (and the bodies inside it) reads from enclosing graphs, each looked up
     in the nearest enclosing graph that defines it."""
     reads = OuterReads({}, [], {})
+    enclosing = [_Defs(g) for g in reversed(place.graphs[:-1])]  # nearest first
     for name in sorted(outer_names(place.body)):
-        for graph in reversed(place.graphs[:-1]):
-            if not _defines(graph, name):
-                continue
-            tensor = _constant_tensor(graph, name)
-            if tensor is not None:
-                reads.constants[name] = tensor
-            else:
-                reads.dynamic.append(name)
-                info = _value_info(graph, name)
-                if info is not None:
-                    reads.types[name] = info
-            break
+        defs = next((d for d in enclosing if d.defines(name)), None)
+        if defs is None:
+            continue
+        tensor = defs.constant(name)
+        if tensor is not None:
+            reads.constants[name] = tensor
+            continue
+        reads.dynamic.append(name)
+        if name in defs.infos:
+            reads.types[name] = defs.infos[name]
     return reads
 
 

@@ -151,3 +151,28 @@ def test_main_graph_and_body_sites_calibrate_together(mode):
     assert [f.site_id for f in result.sites] == ["s1", "s2"]
     assert all(f.mse_fit <= f.mse_start for f in result.sites)
     onnx.checker.check_model(rewrite(result.model, sites, result.plan).model, full_check=True)
+
+
+def test_a_site_in_an_if_inside_a_loop_sees_the_iterations_that_take_its_branch():
+    text_model = LOOP_MODEL.replace(
+        "h = MatMul(v, W)\n        t = Tanh(h)\n        vo = MatMul(t, V)",
+        "two = Constant<value = int64 {2}>()\n        r = Mod(i, two)\n        zero = Constant<value = int64 {0}>()\n"
+        "        even = Equal(r, zero)\n"
+        "        vo = If(even) <then_branch = th () => (float[N,4] a) { h = MatMul(v, W)  a = Tanh(h) },\n"
+        "                       else_branch = el () => (float[N,4] b) { b = MatMul(v, V) }>")
+    model = as_loaded(parser.parse_model(text_model))
+    sites = find_sites(model)
+    assert [(s.function, len(s.body)) for s in sites] == [("tanh", 2)]
+    x = RNG.normal(size=(32, 4)).astype(np.float32)
+    assert sites[0].role == "output"  # its values are the loop's carried state, which leaves as the graph output
+    plan = make_plan(model, sites, site_ids=["s1"])
+    seen = observe_bodies(model, sites, plan.by_site(), in_memory({"x": x}), batch_size=16)
+    hs, v = [], x.astype(np.float32)
+    for i in range(3):  # M = 3: iterations 0 and 2 take the then branch (ONNX operator spec, Loop, Mod)
+        if i % 2 == 0:
+            hs.append(v @ W)
+            v = np.tanh(hs[-1])
+        else:
+            v = v @ V
+    assert seen.runs == {"s1": 4}  # 2 batches x 2 iterations
+    assert_moments(seen.observers["s1"].compute(), np.concatenate(hs))

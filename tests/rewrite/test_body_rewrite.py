@@ -240,3 +240,38 @@ def test_the_speed_floor_replaces_body_sites_by_identity_inside_their_bodies():
     y, _ = run(out, {**feeds, "c": np.array(True)})
     # source: ONNX operator spec, Identity and Gemm: the branch computes (x·W1 + B1)·W2 + B2
     np.testing.assert_allclose(y, (x.astype(np.float64) @ W1 + B1) @ W2 + B2, rtol=1e-5, atol=1e-5)
+
+
+NESTED = """
+<ir_version: 8, opset_import: ["" : 17]>
+g (float[N,3] x) => (float[N,3] y) <float[3,3] W = {0.5,0.1,0, 0,0.5,0.2, 0.3,0,0.5}, int64 M = {4}> {
+   go = Constant<value = bool {1}>()
+   y = Loop(M, go, x) <body = body (int64 i, bool c, float[N,3] v) => (bool co, float[N,3] vo) {
+        two = Constant<value = int64 {2}>()
+        r = Mod(i, two)
+        zero = Constant<value = int64 {0}>()
+        even = Equal(r, zero)
+        vo = If(even) <then_branch = th () => (float[N,3] a) { m = MatMul(v, W)  a = Tanh(m) },
+                       else_branch = el () => (float[N,3] b) { b = Sigmoid(v) }>
+        co = Identity(c)
+   }>
+}
+"""
+
+
+@pytest.mark.parametrize("fold", ["off", "exact"])
+def test_sites_in_an_if_inside_a_loop_are_rewritten_in_place(fold):
+    model = as_loaded(parser.parse_model(NESTED))
+    sites = find_sites(model)
+    assert [(s.function, len(s.body)) for s in sites] == [("sigmoid", 2), ("tanh", 2)]
+    plan = with_values(make_plan(model, sites, fold=fold, site_ids=["s1", "s2"]), seed=5)
+    swaps = {s.source: s for s in plan.swaps}
+    out = rewrite(model, sites, plan).model
+    onnx.checker.check_model(out, full_check=True)
+    x = RNG.normal(size=(3, 3)).astype(np.float32)
+    w = np.array([[0.5, 0.1, 0], [0, 0.5, 0.2], [0.3, 0, 0.5]])
+    v = x.astype(np.float64)
+    for i in range(4):  # even trips take the then branch (ONNX operator spec, Loop iteration_num from 0; Mod)
+        v = surrogate(swaps["tanh"], v @ w, hard_tanh) if i % 2 == 0 else \
+            surrogate(swaps["sigmoid"], v, lambda z: hard_sigmoid(z, 0.2, 0.5))
+    np.testing.assert_allclose(run(out, {"x": x})[0], v, rtol=1e-5, atol=1e-5)
