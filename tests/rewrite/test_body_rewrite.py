@@ -14,8 +14,9 @@ import numpy as np
 import onnx
 import pytest
 from onnx import parser
-from testkit import as_loaded, hard_sigmoid, hard_tanh, run
+from testkit import as_loaded, hard_sigmoid, hard_swish, hard_tanh, in_memory, run
 
+from swapper.calibrate.loop import calibrate
 from swapper.core.bodies import find_body
 from swapper.plan.plan import make_plan
 from swapper.rewrite.apply import PLAN_KEY, rewrite, rewrite_identity_floor
@@ -275,3 +276,26 @@ def test_sites_in_an_if_inside_a_loop_are_rewritten_in_place(fold):
         v = surrogate(swaps["tanh"], v @ w, hard_tanh) if i % 2 == 0 else \
             surrogate(swaps["sigmoid"], v, lambda z: hard_sigmoid(z, 0.2, 0.5))
     np.testing.assert_allclose(run(out, {"x": x})[0], v, rtol=1e-5, atol=1e-5)
+
+
+def test_a_scan_body_site_calibrated_and_rewritten_equals_the_numpy_surrogate_per_row():
+    text_model = """
+    <ir_version: 8, opset_import: ["" : 17]>
+    g (float[N,5,4] xs) => (float[N,5,4] ys) {
+       ys = Scan<num_scan_inputs = 1, scan_input_axes = [1], scan_output_axes = [1],
+                 body = body (float[N,4] row) => (float[N,4] out) { s = Sigmoid(row)  out = Mul(row, s) }>(xs)
+    }"""
+    model = as_loaded(parser.parse_model(text_model))
+    (site,) = find_sites(model)
+    assert (site.function, site.role, site.body) == ("silu", "output", (("Scan_0", "body"),))
+    plan = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="nodes")
+    xs = (RNG.normal(size=(24, 5, 4)) * 2).astype(np.float32)
+    result = calibrate(model, [site], plan, in_memory({"xs": xs}), batch_size=8)
+    (fit,) = result.sites
+    assert fit.mse_fit < fit.mse_start
+    out = rewrite(result.model, [site], result.plan).model
+    onnx.checker.check_model(out, full_check=True)
+    (swap,) = result.plan.swaps
+    # source: ONNX operator spec, Scan: row t of axis 1 through the body, stacked back along axis 1
+    want = np.stack([surrogate(swap, xs[:, t].astype(np.float64), hard_swish) for t in range(5)], axis=1)
+    np.testing.assert_allclose(run(out, {"xs": xs})[0], want, rtol=1e-5, atol=1e-5)
