@@ -288,6 +288,9 @@ def test_a_scan_body_site_calibrated_and_rewritten_equals_the_numpy_surrogate_pe
     model = as_loaded(parser.parse_model(text_model))
     (site,) = find_sites(model)
     assert (site.function, site.role, site.body) == ("silu", "output", (("Scan_0", "body"),))
+    # x is the body's formal input (the scan row): nothing to fold b, c into
+    (exact,) = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="exact").swaps
+    assert exact.placement["b"] == exact.placement["c"] == "held"
     plan = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="nodes")
     xs = (RNG.normal(size=(24, 5, 4)) * 2).astype(np.float32)
     result = calibrate(model, [site], plan, in_memory({"xs": xs}), batch_size=8)
