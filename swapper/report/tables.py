@@ -53,3 +53,13 @@ def target_lines(plan: Plan) -> list[str]:
     lines += [f"remains: {r}" for r in plan.remaining]
     lines += [f"hint: {h}" for h in plan.hints]
     return lines
+
+
+def unrun_lines(calibration) -> list[str]:
+    """A warning naming the swapped body sites no calibration batch ran (an If branch the data never takes)."""
+    idle = [c.site_id for c in (calibration.sites if calibration is not None else [])
+            if any("did not run on any calibration batch" in n for n in c.notes)]
+    if not idle:
+        return []
+    return [f"warning: {', '.join(idle)} sit in a body no calibration batch ran: they keep their starting "
+            "parameters, and validation data like it does not run them either"]

@@ -84,11 +84,3 @@ def test_a_body_that_cannot_run_alone_is_skipped_with_its_reason():
     plan = make_plan(model, [site], site_ids=["s1"])
     assert [(k.site_id, k.reason) for k in plan.skipped] == [("s1", site.reason)]
 
-
-def test_scan_command_names_the_body_sites_that_did_not_run(tmp_path, cli):
-    path = saved(tmp_path, as_loaded(parser.parse_model(MODEL)))
-    np.savez(tmp_path / "calib.npz", x=np.ones((2, 4), np.float32))
-    result = cli("scan", path, "--calib", tmp_path / "calib.npz", "--constant", "c=0")
-    assert result.exit_code == 0, result.output
-    assert "cost 0 for s3: their body did not run on the measured sample" in result.stdout
-    assert "in Loop_2.body" in result.stdout  # where the Sigmoid sits
