@@ -2,7 +2,7 @@
 
 Reference for every numeric check: the surrogate y = a·g(b·x + c) + d written in numpy from the published
 definitions (tests/testkit.py), inside the branch or loop computed in numpy by the ONNX operator spec of If
-(the taken branch's outputs), Loop (the carried value after M trips), Gemm (x·B + C) and a 1x1 Conv (a matrix
+(the taken branch's outputs), Loop (the carried value after M trips), Gemm (x·B + C), Flatten and a 1x1 Conv (a matrix
 product over channels); the rewritten model runs in onnxruntime. onnx.checker.check_model(full_check=True)
 refuses a body that defines a name an enclosing graph uses (ONNX IR spec, "Names Within a Graph").
 """
@@ -25,7 +25,8 @@ from swapper.scan.sites import find_sites
 RNG = np.random.default_rng(7)
 W1, B1 = RNG.normal(size=(4, 3)).astype(np.float32), RNG.normal(size=3).astype(np.float32)
 W2, B2 = RNG.normal(size=(3, 2)).astype(np.float32), RNG.normal(size=2).astype(np.float32)
-K1, K2 = RNG.normal(size=(3, 4, 1, 1)).astype(np.float32), RNG.normal(size=(2, 3, 1, 1)).astype(np.float32)
+K1 = RNG.normal(size=(3, 4, 1, 1)).astype(np.float32)
+W3, B3 = RNG.normal(size=(3, 2)).astype(np.float32), RNG.normal(size=2).astype(np.float32)
 NEUTRAL = {"a": 1.0, "b": 1.0, "c": 0.0, "d": 0.0}
 
 
@@ -33,35 +34,30 @@ def text(a: np.ndarray) -> str:
     return "{" + ", ".join(repr(float(v)) for v in a.ravel()) + "}"
 
 
-# then: Gemm -> Tanh -> Gemm, weights in the main graph; else: 1x1 Conv -> Sigmoid -> 1x1 Conv, weights in the body
+# then: Gemm -> Tanh -> Gemm, weights in the main graph; else: 1x1 Conv -> Sigmoid -> Flatten -> Gemm, weights in
+# the branch (a Constant node and an initializer of the branch)
 IF_MODEL = f"""
 <ir_version: 8, opset_import: ["" : 17]>
-g (float[N,4] x, float[N,4,3,3] img, float[N,2,3,3] pass, bool c) => (float[N,2] y, float[N,2,3,3] z)
+g (float[N,4] x, float[N,4,1,1] img, bool c) => (float[N,2] y)
   <float[4,3] W1 = {text(W1)}, float[3] B1 = {text(B1)}, float[3,2] W2 = {text(W2)}, float[2] B2 = {text(B2)}> {{
-  y, z = If(c) <then_branch = th () => (float[N,2] yt, float[N,2,3,3] zt) {{
+  y = If(c) <then_branch = th () => (float[N,2] yt) {{
           h = Gemm(x, W1, B1)
           t = Tanh(h)
           yt = Gemm(t, W2, B2)
-          zt = Identity(pass)
-       }}, else_branch = el () => (float[N,2] ye, float[N,2,3,3] ze) <float[2,3,1,1] K2 = {text(K2)}> {{
+       }}, else_branch = el () => (float[N,2] ye) <float[3,2] W3 = {text(W3)}> {{
           K1 = Constant<value = float[3,4,1,1] {text(K1)}>()
+          B3 = Constant<value = float[2] {text(B3)}>()
           u = Conv(img, K1)
           s = Sigmoid(u)
-          ze = Conv(s, K2)
-          ye = Identity(y0)
+          f = Flatten(s)
+          ye = Gemm(f, W3, B3)
        }}>
-  y0 = Constant<value = float[1,2] {{0, 0}}>()
 }}
 """
 
 
-def if_model():
-    # the main graph's Constant must come first: a branch may only read names defined before its node
-    m = parser.parse_model(IF_MODEL)
-    nodes = list(m.graph.node)
-    del m.graph.node[:]
-    m.graph.node.extend([nodes[1], nodes[0]])
-    return as_loaded(m)
+def if_model(text_model: str = IF_MODEL):
+    return as_loaded(parser.parse_model(text_model))
 
 
 def with_values(plan, seed=0):
@@ -83,10 +79,6 @@ def surrogate(swap, x, g):
     return a * g(b * x + c) + d
 
 
-def conv1x1(x, k):
-    return np.einsum("nchw,oc->nohw", x, k[:, :, 0, 0])
-
-
 @pytest.mark.parametrize("fold", ["off", "nodes", "exact"])
 def test_if_branch_sites_rewritten_equal_the_numpy_surrogate(fold):
     model = if_model()
@@ -102,20 +94,20 @@ def test_if_branch_sites_rewritten_equal_the_numpy_surrogate(fold):
     assert model.SerializeToString() == before  # the input model is never mutated
     onnx.checker.check_model(out, full_check=True)
     x = RNG.normal(size=(5, 4)).astype(np.float32)
-    img = RNG.normal(size=(5, 4, 3, 3)).astype(np.float32)
-    feeds = {"x": x, "img": img, "pass": np.zeros((5, 2, 3, 3), np.float32)}
-    y, _ = run(out, {**feeds, "c": np.array(True)})
+    img = RNG.normal(size=(5, 4, 1, 1)).astype(np.float32)
+    (y,) = run(out, {"x": x, "img": img, "c": np.array(True)})
     t = surrogate(swaps["tanh"], x.astype(np.float64) @ W1 + B1, hard_tanh)
     np.testing.assert_allclose(y, t @ W2 + B2, rtol=1e-5, atol=1e-5)
-    _, z = run(out, {**feeds, "c": np.array(False)})
-    s = surrogate(swaps["sigmoid"], conv1x1(img.astype(np.float64), K1), lambda v: hard_sigmoid(v, 0.2, 0.5))
-    np.testing.assert_allclose(z, conv1x1(s, K2), rtol=1e-5, atol=1e-5)
+    (y,) = run(out, {"x": x, "img": img, "c": np.array(False)})
+    u = np.einsum("nchw,oc->nohw", img.astype(np.float64), K1[:, :, 0, 0])  # a 1x1 Conv: a product over channels
+    s = surrogate(swaps["sigmoid"], u, lambda v: hard_sigmoid(v, 0.2, 0.5))
+    np.testing.assert_allclose(y, s.reshape(5, 3) @ W3 + B3, rtol=1e-5, atol=1e-5)
     # the surrogates sit in their branches, under names of their own; nothing is left in the main graph
-    then, other = (find_body(out, ((out.graph.node[-1].name, b),)).body for b in ("then_branch", "else_branch"))
+    then, other = (find_body(out, (("If_0", b),)).body for b in ("then_branch", "else_branch"))
     assert "Tanh" not in {n.op_type for n in then.node} and "Sigmoid" not in {n.op_type for n in other.node}
     added = [t.name for t in then.initializer] + [n.name for n in then.node if n.name.startswith("swapper/")]
     assert added and all(name.startswith("swapper/s2/") for name in added)
-    assert {n.op_type for n in out.graph.node} == {"Constant", "If"}
+    assert [n.op_type for n in out.graph.node] == ["If"]
     stored = json.loads(next(p.value for p in out.metadata_props if p.key == PLAN_KEY))
     assert {s["site_id"] for s in stored["swaps"]} == {"s1", "s2"}  # the plan in the model names both
 
@@ -124,7 +116,7 @@ def test_folding_into_a_branch_layer_leaves_the_outer_weights_alone():
     model = if_model()
     sites = find_sites(model)
     out = rewrite(model, sites, with_values(make_plan(model, sites, fold="exact"))).model
-    then = find_body(out, ((out.graph.node[-1].name, "then_branch"),)).body
+    then = find_body(out, (("If_0", "then_branch"),)).body
     gemms = [n for n in then.node if n.op_type == "Gemm"]
     # both Gemms read folded copies held in the branch; the main graph's W1..B2 are no longer read and go
     assert all(i.startswith("swapper/s2/") for n in gemms for i in n.input[1:])
@@ -175,17 +167,13 @@ def test_loop_body_site_rewritten_equals_the_numpy_loop(fold):
 
 
 def test_new_names_avoid_names_of_the_enclosing_graph():
-    # the main graph already uses the names the rewriter would pick first for s1
+    # the main graph already uses the name the rewriter would pick first for s1's b
     taken = "swapper/s1/b"
-    m = parser.parse_model(IF_MODEL.replace("y0 = Constant", f'"{taken}" = Identity(x)\n  y0 = Constant'))
-    nodes = list(m.graph.node)
-    del m.graph.node[:]
-    m.graph.node.extend([nodes[1], nodes[2], nodes[0]])
-    model = as_loaded(m)
+    model = if_model(IF_MODEL.replace("  y = If(c)", f'  "{taken}" = Identity(x)\n  y = If(c)'))
     sites = find_sites(model)
     out = rewrite(model, sites, with_values(make_plan(model, sites, fold="off"))).model
     onnx.checker.check_model(out, full_check=True)  # would refuse a branch defining "swapper/s1/b" again
-    other = find_body(out, ((out.graph.node[-1].name, "else_branch"),)).body
+    other = find_body(out, (("If_1", "else_branch"),)).body
     assert taken not in {t.name for t in other.initializer} and "swapper/s1/b_1" in {t.name for t in other.initializer}
 
 
@@ -237,8 +225,7 @@ def test_the_speed_floor_replaces_body_sites_by_identity_inside_their_bodies():
     out = rewrite_identity_floor(model, sites)
     onnx.checker.check_model(out, full_check=True)
     x = RNG.normal(size=(3, 4)).astype(np.float32)
-    feeds = {"x": x, "img": np.zeros((3, 4, 3, 3), np.float32), "pass": np.zeros((3, 2, 3, 3), np.float32)}
-    y, _ = run(out, {**feeds, "c": np.array(True)})
+    (y,) = run(out, {"x": x, "img": np.zeros((3, 4, 1, 1), np.float32), "c": np.array(True)})
     # source: ONNX operator spec, Identity and Gemm: the branch computes (x·W1 + B1)·W2 + B2
     np.testing.assert_allclose(y, (x.astype(np.float64) @ W1 + B1) @ W2 + B2, rtol=1e-5, atol=1e-5)
 
