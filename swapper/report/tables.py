@@ -61,5 +61,6 @@ def unrun_lines(calibration) -> list[str]:
             if any("did not run on any calibration batch" in n for n in c.notes)]
     if not idle:
         return []
-    return [f"warning: {', '.join(idle)} sit in a body no calibration batch ran: they keep their starting "
-            "parameters, and validation data like it does not run them either"]
+    line = (f"warning: {', '.join(idle)} sit in a body no calibration batch ran: they keep their starting "
+            "parameters, and validation data like it does not run them either")
+    return [line]

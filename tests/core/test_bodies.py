@@ -76,7 +76,7 @@ def test_a_standalone_body_computes_what_the_branch_computes():
     u = np.abs(x)
     alone = standalone_body(model, THEN, ["h", "yt"], {"u": u})
     assert [i.name for i in alone.graph.input] == ["u"]
-    h, yt = run(alone, {"u": u})
+    _, yt = run(alone, {"u": u})
     (y,) = run(model, {"x": x, "c": np.array(True)})
     np.testing.assert_array_equal(yt, y)  # source: ONNX operator spec, If returns the taken branch's outputs
 

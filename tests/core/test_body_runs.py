@@ -103,7 +103,7 @@ def test_scan_runs_take_slices_along_the_axis_backwards_with_the_carried_state()
     feeds = {"s0": np.array([0.5, -1.0], np.float32),
              "xs": np.random.default_rng(1).normal(size=(2, 5, 4)).astype(np.float32)}
     s, ys = run(model, feeds)
-    runner, got = runs_of(model, body_path(model, "Scan"), ["z", "y"], feeds)
+    _, got = runs_of(model, body_path(model, "Scan"), ["z", "y"], feeds)
     assert len(got) == 5
     # scan outputs stack in iteration order; iteration t reads slice 4 - t of axis 1
     np.testing.assert_array_equal(np.stack([v["y"] for _, v in got]), ys)

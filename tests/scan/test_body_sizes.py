@@ -65,7 +65,8 @@ def test_a_body_that_cannot_run_alone_is_skipped_with_its_reason():
         [helper.make_node("Identity", ["k"], ["ko"]), helper.make_node("Identity", ["q"], ["qo"]),
          helper.make_node("Sigmoid", ["x"], ["s"]), helper.make_node("SequenceInsert", ["q", "s"], ["q2"])],
         "body",
-        [helper.make_tensor_value_info("i", TensorProto.INT64, []), helper.make_tensor_value_info("k", TensorProto.BOOL, []),
+        [helper.make_tensor_value_info("i", TensorProto.INT64, []),
+         helper.make_tensor_value_info("k", TensorProto.BOOL, []),
          helper.make_tensor_sequence_value_info("q", TensorProto.FLOAT, None)],
         [helper.make_tensor_value_info("ko", TensorProto.BOOL, []),
          helper.make_tensor_sequence_value_info("q2", TensorProto.FLOAT, None)])
