@@ -188,7 +188,7 @@ def fit_channel(
 
 
 def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.ndarray, free: str,
-                moving: np.ndarray) -> None:
+                moving: np.ndarray, x_range: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Give every row of ``best`` well-scaled parameters, in place (see the module docstring).
 
     ``best`` maps "a".."d" and "mse" to (rows,) arrays: the fit so far on
@@ -200,7 +200,10 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     rewritten exactly (:func:`swapper.fit.param_scale.canonical_params`) and keep the
     new values unless they score more than rounding (``SAME_MSE``) above the
     old ones or above ``mse_init``. Held parameters never change, nor do rows
-    not in ``moving`` (constant x: b, c keep their start values).
+    not in ``moving`` (constant x: b, c keep their start values). ``x_range``
+    = (x_lo, x_hi) per row is the recorded range the rewrites must be exact on
+    (default: the range of ``X``; the binned fit passes its sample's range, its
+    points being summaries).
     """
     if not {"a", "b", "c"} <= set(free):
         return  # no scale freedom: a·g(b·x + c) needs a and b, c together to trade scale
@@ -208,7 +211,7 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     homogeneous = is_homogeneous(g)
     if not pieces and not homogeneous:
         return
-    x_lo, x_hi = X.min(axis=1), X.max(axis=1)
+    x_lo, x_hi = (X.min(axis=1), X.max(axis=1)) if x_range is None else x_range
 
     def offer(new: tuple, rows: np.ndarray, limit: np.ndarray, note: str) -> None:
         a, b, c, d = (v[rows] for v in new)

@@ -90,6 +90,8 @@ def fit_rows(
     positive_a: bool = False,
     dg: Func | None = None,
     weights: np.ndarray | None = None,
+    x_range: tuple[np.ndarray, np.ndarray] | None = None,
+    polish: bool = False,
 ) -> SiteFit:
     """Fit y ≈ a·g(b·x + c) + d on every row of ``X``, ``Y`` (channels, n) together.
 
@@ -100,7 +102,12 @@ def fit_rows(
     move (g overflowing at the start, or no accepted step at a point that is
     not flat) are refitted one by one with :func:`fit_channel` (scipy),
     keeping whichever result scores lower. ``init`` maps "a".."d" to
-    (channels,) arrays; ``weights`` (n,) are shared by every row.
+    (channels,) arrays; ``weights`` (n,) are shared by every row; ``x_range``
+    (x_lo, x_hi), each (channels,), is the recorded range the rescaling rules
+    must be exact on when X holds summaries (:mod:`swapper.fit.bins`), X's own
+    range by default. ``polish``: polish the best endpoint even when the
+    search already ran on every pair (a restart with fresh damping: Marquardt's
+    λ grown on kinks of g can stop a search early; the binned fit sets it).
     """
     check_free(free)
     X = np.asarray(X, dtype=np.float64)
@@ -148,8 +155,8 @@ def fit_rows(
         rows = np.nonzero(ok)[0]
         if rows.size:
             _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, positive_a, z_floor, consider,
-                          best, notes)
-    well_scaled(X, Y, w, g, best, mse_init, notes, free, ok)
+                          best, notes, polish)
+    well_scaled(X, Y, w, g, best, mse_init, notes, free, ok, x_range)
     return SiteFit(a=best["a"], b=best["b"], c=best["c"], d=best["d"], mse_init=mse_init, mse=best["mse"],
                    notes=[str(t) for t in notes])
 
@@ -163,7 +170,8 @@ def _subsample(n: int, w: np.ndarray):
     return keep, ws / ws.sum()
 
 
-def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes) -> None:
+def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes,
+                  polish) -> None:
     """The projected search of :func:`fit_rows` on the channels ``rows`` (non-constant x)."""
     a0, b0, c0, d0 = (v[rows] for v in start)
     fb, fc = "b" in free, "c" in free
@@ -207,7 +215,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     go = np.nonzero(np.isfinite(c_best))[0]
     out = go[~in_band(q_best[go, 0])] if fb else go[:0]
     inside = np.setdiff1d(go, out)
-    if keep is None:  # the search already used every pair
+    if keep is None and not polish:  # the search already used every pair
         b, c = to_bc(q_best[inside], inside)
         consider(inside, b, c, "projected (batched)", rows)
         inside = inside[:0]
