@@ -69,7 +69,7 @@ def fit_rows_binned(
     mse_init = score_rows(X, Y, w, g, *(start[p] for p in PARAMS))
     mse = score_rows(X, Y, w, g, fit.a, fit.b, fit.c, fit.d)
     worse = ~(mse <= mse_init)  # ties keep the fit (a well-scaled rewrite of the start scores the same)
-    notes = [f"binned ({sample.x.shape[1] // 2} bins), {t}" for t in fit.notes]
+    notes = [f"binned ({k} bins), {t}" for k, t in zip(sample.bins, fit.notes)]
     out = SiteFit(a=fit.a.copy(), b=fit.b.copy(), c=fit.c.copy(), d=fit.d.copy(), mse_init=mse_init,
                   mse=np.where(worse, mse_init, mse), notes=notes)
     for p in PARAMS:

@@ -58,18 +58,19 @@ TAIL_GROWTH = 0.5  # tail bins grow by half the ranks already covered from their
 
 @dataclass(frozen=True)
 class BinnedSample:
-    """Two points per quantile bin of every channel (see the module docstring)."""
+    """Two points per bin of every channel (see the module docstring); rows padded with zero-weight points."""
 
-    x: np.ndarray  # (channels, 2K) the points' x
-    y: np.ndarray  # (channels, 2K) the points' y
-    weights: np.ndarray  # (2K,) shared by every channel, summing to 1
+    x: np.ndarray  # (channels, 2P) the points' x
+    y: np.ndarray  # (channels, 2P) the points' y
+    weights: np.ndarray  # (channels, 2P) each row summing to 1 (padding: 0)
     residual: np.ndarray  # (channels,) R: the within-bin variance of y the points leave out
     x_lo: np.ndarray  # (channels,) the sample's x range
     x_hi: np.ndarray
     n: int  # pairs per channel that were binned
+    bins: np.ndarray  # (channels,) bins actually used
 
 
-def bin_edges(n: int, bins: int) -> np.ndarray:
+def rank_edges(n: int, bins: int) -> np.ndarray:
     """First rank of each bin of n sorted pairs: ``bins`` equal-count bins, graded down to single pairs at both ends.
 
     A central bin holds about m = n/bins pairs; towards each end the sizes
@@ -93,34 +94,66 @@ def bin_edges(n: int, bins: int) -> np.ndarray:
     return np.unique(np.r_[np.array(tail[:-1], dtype=np.int64), middle, upper])
 
 
-def bin_sample(X: np.ndarray, Y: np.ndarray, bins: int) -> BinnedSample:
-    """Summarise every row of ``X``, ``Y`` (channels, n) by ``bins`` quantile bins of x, two points each."""
+def channel_edges(xs: np.ndarray, ranks: np.ndarray, spans: int) -> np.ndarray:
+    """First ranks of one channel's bins: the shared ``ranks`` cut again wherever x passes one of
+    ``spans`` - 1 equally spaced values across its range (no bin is wider than range/spans)."""
+    lo, hi = xs[0], xs[-1]
+    cuts = np.searchsorted(xs, lo + (hi - lo) * np.arange(1, spans) / spans) if hi > lo else ranks[:0]
+    edges = np.union1d(ranks, cuts)
+    return edges[edges < xs.size]
+
+
+def bin_sample(X: np.ndarray, Y: np.ndarray, bins: int, spans: int | None = None) -> BinnedSample:
+    """Summarise every row of ``X``, ``Y`` (channels, n): ``bins`` quantile bins of x cut at ``spans`` value steps.
+
+    ``spans`` defaults to ``bins // 2`` (see the module docstring).
+    """
     X = np.asarray(X)
     Y = np.asarray(Y)
     if X.ndim != 2 or X.shape != Y.shape or X.size == 0:
         raise ValueError(f"X and Y must be non-empty (channels, n) arrays of one shape, got {X.shape}, {Y.shape}")
     C, n = X.shape
-    starts = bin_edges(n, bins)
-    counts = np.diff(np.r_[starts, n])
+    spans = max(1, bins // 2) if spans is None else spans
+    ranks = rank_edges(n, bins)
     # sort on the stored precision (float32 reservoirs sort faster), compute in float64
     order = np.argsort(X, axis=1)
     Xs = np.take_along_axis(X, order, axis=1).astype(np.float64)
     Ys = np.take_along_axis(Y, order, axis=1).astype(np.float64)
+    edges = [channel_edges(Xs[c], ranks, spans) for c in range(C)]
+    nb = np.array([e.size for e in edges])
+    # every channel's bins in one flat run: reduceat over the flattened rows
+    starts = np.concatenate([e + c * n for c, e in enumerate(edges)])
+    counts = np.diff(np.r_[starts, C * n])
+    flat_x, flat_y = Xs.reshape(-1), Ys.reshape(-1)
 
     def per_bin(A: np.ndarray) -> np.ndarray:
-        return np.add.reduceat(A, starts, axis=1) / counts
+        return np.add.reduceat(A, starts) / counts
 
-    mx, my = per_bin(Xs), per_bin(Ys)
+    mx, my = per_bin(flat_x), per_bin(flat_y)
     # within-bin deviations from each bin's own mean: no cancellation (Chan et al. 1979)
-    dx = Xs - np.repeat(mx, counts, axis=1)
-    dy = Ys - np.repeat(my, counts, axis=1)
+    dx = flat_x - np.repeat(mx, counts)
+    dy = flat_y - np.repeat(my, counts)
     sxx, sxy, syy = per_bin(dx * dx), per_bin(dx * dy), per_bin(dy * dy)
     sd = np.sqrt(sxx)
     with np.errstate(divide="ignore", invalid="ignore"):
         ty = np.where(sd > 0, sxy / np.where(sd > 0, sd, 1.0), 0.0)  # |ty| <= sqrt(syy) (Cauchy-Schwarz)
-    x2 = np.stack([mx - sd, mx + sd], axis=2).reshape(C, -1)
-    y2 = np.stack([my - ty, my + ty], axis=2).reshape(C, -1)
-    weights = np.repeat(counts / (2.0 * n), 2)
-    residual = np.maximum(syy - ty * ty, 0.0) @ (counts / n)
+    # padded (C, P) layout; padding: zero weight at the channel's mean (finite, harmless)
+    P = int(nb.max())
+    row = np.repeat(np.arange(C), nb)
+    col = np.arange(row.size) - np.repeat(np.cumsum(nb) - nb, nb)
+    share = counts / n
+
+    def padded(v: np.ndarray, fill: np.ndarray) -> np.ndarray:
+        out = np.repeat(fill[:, None], P, axis=1)
+        out[row, col] = v
+        return out
+
+    x_mean = np.bincount(row, share * mx, minlength=C)
+    y_mean = np.bincount(row, share * my, minlength=C)
+    x2 = np.stack([padded(mx - sd, x_mean), padded(mx + sd, x_mean)], axis=2).reshape(C, -1)
+    y2 = np.stack([padded(my - ty, y_mean), padded(my + ty, y_mean)], axis=2).reshape(C, -1)
+    half = padded(share / 2, np.zeros(C))
+    weights = np.stack([half, half], axis=2).reshape(C, -1)
+    residual = np.bincount(row, share * np.maximum(syy - ty * ty, 0.0), minlength=C)
     return BinnedSample(x=x2, y=y2, weights=weights, residual=residual, x_lo=Xs[:, 0].copy(),
-                        x_hi=Xs[:, -1].copy(), n=n)
+                        x_hi=Xs[:, -1].copy(), n=n, bins=nb)

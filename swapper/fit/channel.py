@@ -82,7 +82,7 @@ from swapper.fit.param_scale import (
     linear_pieces,
 )
 from swapper.fit.varpro import DEGENERATE, Projected, apply_g, outer_solve
-from swapper.fit.varpro_rows import score_rows
+from swapper.fit.varpro_rows import row_weights, score_rows, wsum
 
 logger = logging.getLogger(__name__)
 
@@ -192,7 +192,7 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     """Give every row of ``best`` well-scaled parameters, in place (see the module docstring).
 
     ``best`` maps "a".."d" and "mse" to (rows,) arrays: the fit so far on
-    ``X``, ``Y`` (rows, n) with weights ``w``. Two steps, each re-scored on the
+    ``X``, ``Y`` (rows, n) with weights ``w`` ((n,) or per row (rows, n)). Two steps, each re-scored on the
     data: (1) with all of a, b, c, d free, the weighted affine fit y = s·x + t,
     written on a sloped linear piece of g (:func:`swapper.fit.param_scale.affine_params`),
     is a candidate kept only when strictly better; (2) rows whose z range lies
@@ -215,7 +215,7 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
 
     def offer(new: tuple, rows: np.ndarray, limit: np.ndarray, note: str) -> None:
         a, b, c, d = (v[rows] for v in new)
-        m = score_rows(X[rows], Y[rows], w, g, a, b, c, d)
+        m = score_rows(X[rows], Y[rows], row_weights(w, rows), g, a, b, c, d)
         keep = m <= limit[rows]
         r = rows[keep]
         for k, v in zip(("a", "b", "c", "d", "mse"), (a, b, c, d, m)):
@@ -223,10 +223,10 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
         notes[r] = [f"{t}, {note}" for t in notes[r]]
 
     if "d" in free and pieces:
-        mx, my = X @ w, Y @ w
+        mx, my = wsum(X, w), wsum(Y, w)
         dx = X - mx[:, None]
         with np.errstate(all="ignore"):
-            s = ((dx * w) * (Y - my[:, None])).sum(axis=1) / ((dx * dx) @ w)
+            s = ((dx * w) * (Y - my[:, None])).sum(axis=1) / wsum(dx * dx, w)
         t = my - s * mx
         choices = [affine_params(s, t, x_lo, x_hi, p) for p in pieces]
         a_all = np.stack([ch[0] for ch in choices])  # the piece with the smallest a (NaN: unusable)
@@ -238,7 +238,7 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
                                     homogeneous, free)
     rows = np.flatnonzero(changed & moving)
     if rows.size:
-        scale2 = (Y * Y) @ w
+        scale2 = wsum(Y * Y, w)
         limit = np.minimum(mse_init, best["mse"] * (1 + SAME_MSE) + 1e-20 * scale2)
         offer(new, rows, limit, "rescaled")
 

@@ -60,6 +60,8 @@ from swapper.fit.varpro_rows import (
     LAMBDA0,
     lm_projected,
     outer_solve_rows,
+    row_weights,
+    wsum,
 )
 from swapper.functions.params import PARAMS
 
@@ -76,7 +78,7 @@ POLISH_ITER = 40  # it starts near the optimum: typically 3-10 (measured)
 def _mse_rows(Z, Y, w, a, d) -> np.ndarray:
     with np.errstate(all="ignore"):
         R = Y - a[:, None] * Z - d[:, None]
-        m = (R * R) @ w
+        m = wsum(R * R, w)
     return np.where(np.isfinite(m) & np.isfinite(Z).all(axis=1), m, np.inf)
 
 
@@ -102,7 +104,7 @@ def fit_rows(
     move (g overflowing at the start, or no accepted step at a point that is
     not flat) are refitted one by one with :func:`fit_channel` (scipy),
     keeping whichever result scores lower. ``init`` maps "a".."d" to
-    (channels,) arrays; ``weights`` (n,) are shared by every row; ``x_range``
+    (channels,) arrays; ``weights`` (n,) are shared by every row, (channels, n) give each its own; ``x_range``
     (x_lo, x_hi), each (channels,), is the recorded range the rescaling rules
     must be exact on when X holds summaries (:mod:`swapper.fit.bins`), X's own
     range by default. ``polish``: polish the best endpoint even when the
@@ -135,8 +137,9 @@ def fit_rows(
         rows = rows if of is None else of[rows]
         with np.errstate(all="ignore"):
             Z = apply_g(g, b[:, None] * X[rows] + c[:, None])
-        a, d, _ = outer_solve_rows(Z, Y[rows], w, a0[rows], d0[rows], fa, fd, positive_a, z_floor)
-        m = _mse_rows(Z, Y[rows], w, a, d)
+        wr = row_weights(w, rows)
+        a, d, _ = outer_solve_rows(Z, Y[rows], wr, a0[rows], d0[rows], fa, fd, positive_a, z_floor)
+        m = _mse_rows(Z, Y[rows], wr, a, d)
         better = m < best["mse"][rows]
         r = rows[better]
         for k, v in (("a", a), ("b", b), ("c", c), ("d", d), ("mse", m)):
@@ -148,8 +151,8 @@ def fit_rows(
         consider(everyone, b0, c0, "outer only")
     ok = np.ones(C, dtype=bool)
     if fb or fc:
-        mx = X @ w
-        sx = np.sqrt(((X - mx[:, None]) ** 2) @ w)
+        mx = wsum(X, w)
+        sx = np.sqrt(wsum((X - mx[:, None]) ** 2, w))
         ok = sx > DEGENERATE * np.hypot(mx, sx)
         notes[~ok] = ["constant x, " + t for t in notes[~ok]]
         rows = np.nonzero(ok)[0]
@@ -166,8 +169,8 @@ def _subsample(n: int, w: np.ndarray):
     if n <= 2 * SUBSAMPLE:
         return None, w
     keep = np.sort(np.random.default_rng(SUBSAMPLE_SEED).permutation(n)[:SUBSAMPLE])
-    ws = w[keep]
-    return keep, ws / ws.sum()
+    ws = w[..., keep]
+    return keep, ws / ws.sum(axis=-1, keepdims=True)
 
 
 def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes,
@@ -181,6 +184,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     V, q0, q1, second, half, to_bc = std.V, std.q0, std.q1, std.second, std.half, std.to_bc
     Yr = Y[rows]
     opts = dict(fa="a" in free, fd="d" in free, positive_a=positive_a, z_floor=z_floor)
+    w = row_weights(w, rows)  # from here on, rows are indices into ``rows``
     keep, ws = _subsample(V.shape[1], w)
     Vs, Ys = (V, Yr) if keep is None else (V[:, keep], Yr[:, keep])
 
@@ -190,7 +194,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     sel = np.concatenate([np.arange(rows.size), two, np.arange(rows.size)])
     q_start = np.concatenate([q0, q1[two], q0])
     lam0 = np.concatenate([np.full(rows.size, LAMBDA0), np.full(two.size, LAMBDA0), np.full(rows.size, CAREFUL_LAMBDA)])
-    res = lm_projected(Vs[sel], Ys[sel], ws, g, dg, q_start, (fb, fc), -half[sel], half[sel], a0[sel], d0[sel],
+    res = lm_projected(Vs[sel], Ys[sel], row_weights(ws, sel), g, dg, q_start, (fb, fc), -half[sel], half[sel], a0[sel], d0[sel],
                        lam0=lam0, ftol=SEARCH_FTOL, **opts)
     moved = np.any(res.q != q_start, axis=1)
     stuck = np.ones(rows.size, dtype=bool)  # no start moved
@@ -231,7 +235,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
         if not fc:
             q_go[:, 1] = q0[sel, 1]  # held c: band_starts' γ must not move it
         lo, hi = band_box(q_go, half[sel]) if fb else (-half[sel], half[sel])
-        res = lm_projected(V[sel], Yr[sel], w, g, dg, np.clip(q_go, lo, hi), (fb, fc), lo, hi, a0[sel], d0[sel],
+        res = lm_projected(V[sel], Yr[sel], row_weights(w, sel), g, dg, np.clip(q_go, lo, hi), (fb, fc), lo, hi, a0[sel], d0[sel],
                            ftol=POLISH_FTOL, max_iter=POLISH_ITER, **opts)
         at = 0
         for gi, _, note in groups:  # one group at a time: a row appears at most once per call
@@ -245,7 +249,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     for i in np.nonzero(needs_scipy)[0]:
         ch = rows[i]
         r = fit_channel(X[ch], Y[ch], g, init=(a0[i], b0[i], c0[i], d0[i]), free=free,
-                        positive_a=positive_a, dg=dg, weights=w)
+                        positive_a=positive_a, dg=dg, weights=row_weights(w, i))
         if r.mse < best["mse"][ch]:
             best["a"][ch], best["b"][ch], best["c"][ch], best["d"][ch], best["mse"][ch] = r.a, r.b, r.c, r.d, r.mse
             notes[ch] = f"scipy fallback: {r.note}"
