@@ -234,9 +234,17 @@ class ChannelObserver:
         i, k = np.divmod(positions, t3.shape[2])
         return t3[i, :, k].T  # advanced indices split by a slice: the indexed axis comes first
 
-    def all_samples(self) -> tuple[np.ndarray, np.ndarray]:
-        """Every channel's reservoir as float64 ``(x, y)`` arrays of shape (channels, held)."""
-        return self._res[0].astype(np.float64), self._res[1].astype(np.float64)
+    def all_samples(self, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
+        """Every channel's reservoir as ``(x, y)`` arrays of shape (channels, held).
+
+        Copies in ``dtype`` (float64 by default); ``dtype=None`` gives read-only
+        views of the stored arrays (no copy: the binned fit sorts them as they are).
+        """
+        if dtype is None:
+            x, y = self._res[0].view(), self._res[1].view()
+            x.flags.writeable = y.flags.writeable = False
+            return x, y
+        return self._res[0].astype(dtype), self._res[1].astype(dtype)
 
     # -- read-out ----------------------------------------------------------
     def compute(self) -> ChannelStats:

@@ -57,11 +57,12 @@ def fit_channels(
         if v.size not in (1, C):
             raise ValueError(f"init[{p!r}] must be a scalar or have {C} values, got {v.size}")
         start[p] = np.broadcast_to(v, (C,))
-    X, Y = observer.all_samples()
     binned = method == "binned" and observer.held > 4 * bins
-    if binned:
+    if binned:  # stored precision: bins are sorted as stored and summed in float64
+        X, Y = observer.all_samples(dtype=None)
         out = fit_rows_binned(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, bins=bins)
     else:
+        X, Y = observer.all_samples()
         out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg)
     logger.debug(
         "fitted %d channels on %d samples each (%s): mse %.3g -> %.3g",
