@@ -51,8 +51,9 @@ The closed-form (a, d) and the projected (b, c) problem live in
 :mod:`swapper.fit.varpro`; this module holds the API and the safeguards above.
 
 :func:`fit_channel` is the one-channel scipy path described above.
-:func:`fit_channels` (every channel of a site) takes the batched path of
-:mod:`swapper.fit.rows`: the same candidates and safeguards, with the
+:func:`swapper.fit.site.fit_channels` (every channel of a site) takes the batched path of
+:mod:`swapper.fit.rows`, by default on quantile bins of the sample
+(:mod:`swapper.fit.binned`): the same candidates and safeguards, with the
 projected search done for all channels at once by row-wise
 Levenberg–Marquardt (:mod:`swapper.fit.varpro_rows`), falling back to
 :func:`fit_channel` only for channels that search could not move. Measured

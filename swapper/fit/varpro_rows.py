@@ -134,6 +134,7 @@ class _Problem:
         # uniform weights (every calibration fit) need no weighting pass at all
         self.w = w
         self.uniform = w.ndim == 1 and bool(np.all(w == w[0]))
+        self.rowwise = w.ndim == 2  # per-row weights: each left operand is weighted once, then reused
         self.my = wsum(Y, w)
         self.Yc = Y - (self.my if fd else d0)[:, None]
         self.syy = self.mean(self.Yc * self.Yc) if not self.uniform else _dot(self.Yc, self.Yc) * w[0]
@@ -153,14 +154,27 @@ class _Problem:
     def wdot(self, A: np.ndarray, B: np.ndarray) -> np.ndarray:
         return _dot(A, B) * self.w[0] if self.uniform else _dot(A * self.w, B)
 
+    def weighted(self, A: np.ndarray):
+        """A made ready as the left operand of :meth:`dot` (weighted once when weights are per row)."""
+        return A * self.w if self.rowwise else A
+
+    def dot(self, Aw: np.ndarray, B: np.ndarray) -> np.ndarray:
+        """Weighted row-wise Σ A·B from ``Aw`` = :meth:`weighted` (A)."""
+        return _dot(Aw, B) if self.rowwise else self.wdot(Aw, B)
+
+    def total(self, Aw: np.ndarray) -> np.ndarray:
+        """Weighted row sums of A from ``Aw`` = :meth:`weighted` (A)."""
+        return Aw.sum(axis=1) if self.rowwise else self.mean(Aw)
+
     def evaluate(self, q):
         """Projected cost, (a, d, solved) and the Kaufman normal equations (H, grad) at q."""
         with np.errstate(all="ignore"):
             U = q[:, :1] * self.V + q[:, 1:]
             Z = apply_g(self.g, U)
-            mz = self.mean(Z) if self.fd else np.zeros(Z.shape[0])
-            zz = self.wdot(Z, Z)
-            szy = self.wdot(Z, self.Yc)  # the targets are centred when d is solved
+            Zw = self.weighted(Z)
+            mz = self.total(Zw) if self.fd else np.zeros(Z.shape[0])
+            zz = self.dot(Zw, Z)
+            szy = self.dot(Zw, self.Yc)  # the targets are centred when d is solved
             szz = zz - mz * mz if self.fd else zz
             if self.fa:
                 a, solved = slope_rows(szz, szy, self.syy, zz, self.a0, self.positive_a, self.z_floor)
@@ -182,13 +196,14 @@ class _Problem:
             gp = (apply_g(self.g, U + h) - apply_g(self.g, U - h)) / (2.0 * h)
         G = a[:, None] * gp
         GV = G * self.V
+        GVw, Gw = self.weighted(GV), self.weighted(G)
         H = np.empty((U.shape[0], 2, 2))
-        H[:, 0, 0] = self.wdot(GV, GV)
-        H[:, 0, 1] = H[:, 1, 0] = self.wdot(GV, G)
-        H[:, 1, 1] = self.wdot(G, G)
-        dz = np.stack([self.wdot(GV, Z), self.wdot(G, Z)], axis=1)  # <D_j, z>
-        dy = np.stack([self.wdot(GV, self.Yc), self.wdot(G, self.Yc)], axis=1)  # <D_j, ŷ>
-        d1 = np.stack([self.mean(GV), self.mean(G)], axis=1) if self.fd else np.zeros_like(dz)  # <D_j, 1>
+        H[:, 0, 0] = self.dot(GVw, GV)
+        H[:, 0, 1] = H[:, 1, 0] = self.dot(GVw, G)
+        H[:, 1, 1] = self.dot(Gw, G)
+        dz = np.stack([self.dot(GVw, Z), self.dot(Gw, Z)], axis=1)  # <D_j, z>
+        dy = np.stack([self.dot(GVw, self.Yc), self.dot(Gw, self.Yc)], axis=1)  # <D_j, ŷ>
+        d1 = np.stack([self.total(GVw), self.total(Gw)], axis=1) if self.fd else np.zeros_like(dz)  # <D_j, 1>
         dzc = dz - mz[:, None] * d1  # <D_j, z − mz>
         grad = dy - a[:, None] * dzc  # <D_j, r>
         if self.fd:  # <1, r> = 0: only H loses the direction 1
