@@ -10,8 +10,7 @@ Transformation: (X, Y) of shape (channels, n) -> :class:`swapper.fit.common.Site
 2. :func:`swapper.fit.rows.fit_rows` runs its whole search on those points
    (start, closed-form (a, d), projected Levenberg–Marquardt from every start,
    band restarts, scipy fallback, well-scaled rewrites, positive_a), told the
-   sample's true x range for the rewrites and polishing its best endpoint
-   once more with fresh damping, at a cost of O(P) per channel and iteration
+   sample's true x range for the rewrites, at a cost of O(P) per channel and iteration
    instead of O(n) (on a 1536-channel transformer site: 1.2–1.4 s instead of
    7.6–9.3 s of CPU);
 3. the start and the fit are scored on all n pairs, and the fit is kept only
@@ -71,7 +70,7 @@ def fit_rows_binned(
     start = {p: np.array(np.broadcast_to(np.asarray(init[p], dtype=np.float64), (C,))) for p in PARAMS}
     sample = bin_sample(X, Y, bins)
     fit = fit_rows(sample.x, sample.y, g, init=start, free=free, positive_a=positive_a, dg=dg,
-                   weights=sample.weights, x_range=(sample.x_lo, sample.x_hi), polish=True)
+                   weights=sample.weights, x_range=(sample.x_lo, sample.x_hi))
     w = np.full(n, 1.0 / n)
     mse_init = score_rows(X, Y, w, g, *(start[p] for p in PARAMS))
     mse = score_rows(X, Y, w, g, fit.a, fit.b, fit.c, fit.d)

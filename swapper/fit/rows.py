@@ -93,7 +93,6 @@ def fit_rows(
     dg: Func | None = None,
     weights: np.ndarray | None = None,
     x_range: tuple[np.ndarray, np.ndarray] | None = None,
-    polish: bool = False,
 ) -> SiteFit:
     """Fit y ≈ a·g(b·x + c) + d on every row of ``X``, ``Y`` (channels, n) together.
 
@@ -107,9 +106,7 @@ def fit_rows(
     (channels,) arrays; ``weights`` (n,) are shared by every row, (channels, n) give each its own; ``x_range``
     (x_lo, x_hi), each (channels,), is the recorded range the rescaling rules
     must be exact on when X holds summaries (:mod:`swapper.fit.bins`), X's own
-    range by default. ``polish``: polish the best endpoint even when the
-    search already ran on every pair (a restart with fresh damping: Marquardt's
-    λ grown on kinks of g can stop a search early; the binned fit sets it).
+    range by default.
     """
     check_free(free)
     X = np.asarray(X, dtype=np.float64)
@@ -158,7 +155,7 @@ def fit_rows(
         rows = np.nonzero(ok)[0]
         if rows.size:
             _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, positive_a, z_floor, consider,
-                          best, notes, polish)
+                          best, notes)
     well_scaled(X, Y, w, g, best, mse_init, notes, free, ok, x_range)
     return SiteFit(a=best["a"], b=best["b"], c=best["c"], d=best["d"], mse_init=mse_init, mse=best["mse"],
                    notes=[str(t) for t in notes])
@@ -173,8 +170,7 @@ def _subsample(n: int, w: np.ndarray):
     return keep, ws / ws.sum(axis=-1, keepdims=True)
 
 
-def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes,
-                  polish) -> None:
+def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor, consider, best, notes) -> None:
     """The projected search of :func:`fit_rows` on the channels ``rows`` (non-constant x)."""
     a0, b0, c0, d0 = (v[rows] for v in start)
     fb, fc = "b" in free, "c" in free
@@ -219,7 +215,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, positive_a, z_floor
     go = np.nonzero(np.isfinite(c_best))[0]
     out = go[~in_band(q_best[go, 0])] if fb else go[:0]
     inside = np.setdiff1d(go, out)
-    if keep is None and not polish:  # the search already used every pair
+    if keep is None:  # the search already used every pair
         b, c = to_bc(q_best[inside], inside)
         consider(inside, b, c, "projected (batched)", rows)
         inside = inside[:0]
