@@ -31,7 +31,7 @@ import logging
 
 import numpy as np
 
-from swapper.fit.bins import bin_sample
+from swapper.fit.bins import bin_sorted, sorted_pairs
 from swapper.fit.common import Func, SiteFit
 from swapper.fit.rows import fit_rows
 from swapper.fit.varpro_rows import score_rows
@@ -68,7 +68,10 @@ def fit_rows_binned(
         raise ValueError("x and y must be finite")
     C, n = X.shape
     start = {p: np.array(np.broadcast_to(np.asarray(init[p], dtype=np.float64), (C,))) for p in PARAMS}
-    sample = bin_sample(X, Y, bins)
+    # sorted float64 pairs: binned here and scored below (the mse does not depend on the order;
+    # float64 throughout, as mixed float32/float64 arithmetic runs through numpy's slow casting buffers)
+    X, Y = sorted_pairs(X, Y)
+    sample = bin_sorted(X, Y, bins)
     fit = fit_rows(sample.x, sample.y, g, init=start, free=free, positive_a=positive_a, dg=dg,
                    weights=sample.weights, x_range=(sample.x_lo, sample.x_hi))
     w = np.full(n, 1.0 / n)

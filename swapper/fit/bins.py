@@ -107,6 +107,24 @@ def rank_edges(n: int, bins: int) -> np.ndarray:
     return np.unique(np.r_[np.array(tail[:-1], dtype=np.int64), middle, upper])
 
 
+def sorted_counts(Xs: np.ndarray, values: np.ndarray) -> np.ndarray:
+    """Per row, how many of the sorted ``Xs`` (rows, n) lie below each of ``values`` (rows, q).
+
+    ``np.searchsorted(Xs[i], values[i])`` for every row at once: a bisection over
+    all rows and values together, ⌈log2(n + 1)⌉ small gathers instead of a
+    Python loop over rows or a pass over all of ``Xs``.
+    """
+    n = Xs.shape[1]
+    lo = np.zeros(values.shape, dtype=np.int64)
+    hi = np.full(values.shape, n, dtype=np.int64)
+    for _ in range(int(n).bit_length()):
+        mid = (lo + hi) // 2
+        below = (mid < n) & (np.take_along_axis(Xs, np.minimum(mid, n - 1), axis=1) < values)
+        lo = np.where(below, mid + 1, lo)
+        hi = np.where(below, hi, mid)
+    return lo
+
+
 def bin_starts(Xs: np.ndarray, ranks: np.ndarray, spans: int) -> tuple[np.ndarray, np.ndarray]:
     """Bins of sorted rows ``Xs`` (channels, n): the shared ``ranks`` cut again wherever x passes one of
     ``spans`` - 1 equally spaced values across the row's range (so no bin is wider than range/spans).
@@ -116,12 +134,8 @@ def bin_starts(Xs: np.ndarray, ranks: np.ndarray, spans: int) -> tuple[np.ndarra
     """
     C, n = Xs.shape
     lo, width = Xs[:, 0], Xs[:, -1] - Xs[:, 0]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        scale = np.where(width > 0, spans / width, 0.0)
-    # the value step of every pair (monotone in x, so each cut is a rank): cut j = #pairs with step < j
-    step = np.minimum(((Xs - lo[:, None]) * scale[:, None]).astype(np.int64), spans - 1)
-    per_step = np.bincount((step + spans * np.arange(C)[:, None]).reshape(-1), minlength=C * spans)
-    cuts = np.cumsum(per_step.reshape(C, spans), axis=1)[:, :-1]
+    values = lo[:, None] + width[:, None] * (np.arange(1, spans) / spans)  # (C, spans - 1)
+    cuts = sorted_counts(Xs, values)
     edges = np.sort(np.concatenate([np.broadcast_to(ranks, (C, ranks.size)), cuts], axis=1), axis=1)
     keep = edges < n
     keep[:, 1:] &= edges[:, 1:] != edges[:, :-1]
@@ -129,26 +143,34 @@ def bin_starts(Xs: np.ndarray, ranks: np.ndarray, spans: int) -> tuple[np.ndarra
     return starts, keep.sum(axis=1)
 
 
+def sorted_pairs(X: np.ndarray, Y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every row's pairs sorted by x, as float64 (sorted in the stored precision: float32 sorts faster)."""
+    X = np.asarray(X)
+    Y = np.asarray(Y)
+    if X.ndim != 2 or X.shape != Y.shape or X.size == 0:
+        raise ValueError(f"X and Y must be non-empty (channels, n) arrays of one shape, got {X.shape}, {Y.shape}")
+    order = np.argsort(X, axis=1)
+    return (np.take_along_axis(X, order, axis=1).astype(np.float64, copy=False),
+            np.take_along_axis(Y, order, axis=1).astype(np.float64, copy=False))
+
+
 def bin_sample(X: np.ndarray, Y: np.ndarray, bins: int, spans: int | None = None) -> BinnedSample:
     """Summarise every row of ``X``, ``Y`` (channels, n): ``bins`` quantile bins of x cut at ``spans`` value steps.
 
     ``spans`` defaults to ``bins // 2`` (see the module docstring).
     """
-    X = np.asarray(X)
-    Y = np.asarray(Y)
-    if X.ndim != 2 or X.shape != Y.shape or X.size == 0:
-        raise ValueError(f"X and Y must be non-empty (channels, n) arrays of one shape, got {X.shape}, {Y.shape}")
-    C, n = X.shape
+    return bin_sorted(*sorted_pairs(X, Y), bins, spans)
+
+
+def bin_sorted(Xs: np.ndarray, Ys: np.ndarray, bins: int, spans: int | None = None) -> BinnedSample:
+    """:func:`bin_sample` of pairs already sorted by x (:func:`sorted_pairs`)."""
+    C, n = Xs.shape
     spans = max(1, bins // 2) if spans is None else spans
-    # sort on the stored precision (float32 reservoirs sort faster), compute in float64
-    order = np.argsort(X, axis=1)
-    Xs = np.take_along_axis(X, order, axis=1).astype(np.float64, copy=False)
-    Ys = np.take_along_axis(Y, order, axis=1)
     starts, nb = bin_starts(Xs, rank_edges(n, bins), spans)
     counts = np.diff(np.r_[starts, C * n])
     # per-bin moments from sums about one value per channel (its median pair): the shift keeps the
     # within-bin variances' cancellation at eps·(distance/width)² relative, far below float32 data noise
-    x0, y0 = Xs[:, n // 2], Ys[:, n // 2].astype(np.float64)
+    x0, y0 = Xs[:, n // 2], Ys[:, n // 2]
     xc = (Xs - x0[:, None]).reshape(-1)
     yc = (Ys - y0[:, None]).reshape(-1)
 
