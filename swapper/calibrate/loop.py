@@ -135,9 +135,9 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
 
 
 def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
-    """An empty observer shaped for ``swap``'s channels."""
+    """An empty observer shaped for ``swap``'s channels (count, x range and reservoir: what the fit reads)."""
     axis = swap.channel_axis if swap.channels > 1 else None
-    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
+    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed, moments=False)
 
 
 def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
