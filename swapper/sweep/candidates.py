@@ -7,7 +7,9 @@ one :class:`SiteCandidates` per eligible site, listing its
 - *eligible site*: one the plan would swap with no target (registry defaults:
   supported, costly, pointwise unless gates / outputs are asked for, narrowed
   by ``site_ids`` / ``only``), or one the plan for the target swaps (a site
-  whose ops the target cannot run).
+  whose ops the target cannot run). Sites inside If/Loop/Scan bodies are
+  left out: the shared recording is made on the main graph, where their
+  tensors do not exist (``--plan all`` swaps them).
 - *surrogates*: the function's candidates (registry default, then its
   alternatives, :func:`swapper.functions.candidates`), or the ones named; each
   in its cheapest usable form on the target (:meth:`SiteOptions.best`), per
@@ -94,7 +96,7 @@ def eligible_sites(model: onnx.ModelProto, sites: list[Site], profile: TargetPro
     ids = {s.site_id for s in make_plan(model, sites, **kw).swaps}
     if profile is not None:
         ids |= {s.site_id for s in make_plan(model, sites, target=profile, **kw).swaps}
-    return [s for s in sites if s.id in ids]
+    return [s for s in sites if s.id in ids and not getattr(s, "body", ())]
 
 
 def site_candidates(model: onnx.ModelProto, sites: list[Site], profile: TargetProfile | None, *,

@@ -136,7 +136,8 @@ def test_scan_json_lists_the_documented_sites(cli, workspace, name):
     fields = {"id": str, "function": str, "params": dict, "input": str, "output": str, "nodes": list, "form": str,
               "shape": (list, type(None)), "channel_axis": (int, type(None)), "channels": (int, type(None)),
               "producer": (str, type(None)), "consumers": list, "role": str, "elements": (int, type(None)),
-              "cost": float, "cost_share": float, "supported": bool, "reason": (str, type(None)), "domain": str}
+              "cost": float, "cost_share": float, "supported": bool, "reason": (str, type(None)), "domain": str,
+                  "body": list}
     for s in sites:
         assert set(s) == set(fields), sorted(set(s) ^ set(fields))
         for key, typ in fields.items():
