@@ -176,7 +176,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     if result.target is not None and result.target.costs_from == "measured":
         timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
                                     batch_size=options.batch_size)
-        _set_metadata(candidate, "swapper.target", timing.to_dict())
+        _set_metadata(candidate, "swapper.target", timing.record())
         if console is not None:
             console.print(f"  {timing.line()}", highlight=False, markup=False)
         if not timing.is_faster and not force:

@@ -356,3 +356,18 @@ def test_demo_writes_one_report_per_model(cli, tmp_path, monkeypatch):
     # the ResNet's report holds the automatic plan: per site the candidates tried and the choice
     search = json.loads(next(out.glob("meter_resnet_silu-*/report.json")).read_text())["search"]
     assert len(search["sites"]) == 13 and all(s["candidates"] for s in search["sites"])
+
+
+@pytest.mark.parametrize("plan", ["all", "auto"])
+def test_same_inputs_and_seed_give_the_same_model_bytes(cli, tmp_path, plan):
+    # README "Calibration": same inputs and --seed give the same output bytes, whatever the machine's load
+    # (timings measured on the target go to the report, never into the written model; the automatic
+    # plan's choice follows its timings, here the session's stand-in clock)
+    written = []
+    for k in range(2):
+        out = tmp_path / f"m{k}.onnx"
+        result = cli("swap", DEMO / "meter_gelu_mlp.onnx", "-o", out, "--calib", CALIB, "--val", VAL,
+                     "--plan", plan, "--report", tmp_path / f"r{k}")
+        assert result.exit_code == 0, result.output
+        written.append(out.read_bytes())
+    assert written[0] == written[1]
