@@ -28,16 +28,16 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from swapper import api  # noqa: E402
-from swapper.autoplan import auto_swap  # noqa: E402
-from swapper.bench.run import machine_info  # noqa: E402
-from swapper.check.gate import Budget, GateRule  # noqa: E402
-from swapper.core.model_io import load_model  # noqa: E402
-from swapper.data.demo import DEMO_DIR, demo_inputs  # noqa: E402
-from swapper.data.source import DataSource  # noqa: E402
-from swapper.options import SwapOptions  # noqa: E402
-from swapper.rewrite.apply import rewrite_identity_floor  # noqa: E402
-from swapper.sweep.run import SweepSettings  # noqa: E402
+from swapper import api
+from swapper.autoplan import auto_swap
+from swapper.bench.run import machine_info
+from swapper.check.gate import Budget, GateRule
+from swapper.core.model_io import load_model
+from swapper.data.demo import DEMO_DIR, demo_inputs
+from swapper.data.source import DataSource
+from swapper.options import SwapOptions
+from swapper.rewrite.apply import rewrite_identity_floor
+from swapper.sweep.run import SweepSettings
 
 RATIO_RUNS = 3
 SILU = ("meter_cnn_silu", "meter_resnet_silu")

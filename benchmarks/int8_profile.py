@@ -22,7 +22,7 @@ import onnxruntime as ort
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from swapper.check.int8 import quantize_int8  # noqa: E402
+from swapper.check.int8 import quantize_int8
 
 
 def profile(model: onnx.ModelProto, feeds: dict, runs: int, folder: Path, tag: str) -> dict:
