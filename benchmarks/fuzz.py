@@ -208,6 +208,7 @@ def run_case(settings: Settings, case_id: str, launcher) -> dict:
         shutil.rmtree(work, ignore_errors=True)
         return {"id": case_id, "class": "SKIPPED", "error": f"{type(exc).__name__}: {exc}"[:300]}
     before = snapshot(work)
+    case.output_existed = bool(case.output) and os.path.lexists(work / case.output)
     run = execute(case, work, launcher)
     after = snapshot(work)
     verdict = classify(case, run, before, after, work)

@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import random
 import struct
+import warnings
 import zipfile
 from pathlib import Path
 
@@ -114,7 +115,8 @@ def zip_structure(arrays, rng, ctx):
         write_npz(arrays, inner)
         members = [("pixels.npy", inner.read_bytes())]
         os.unlink(inner)
-    with zipfile.ZipFile(path, "w") as zf:
+    with zipfile.ZipFile(path, "w") as zf, warnings.catch_warnings():
+        warnings.simplefilter("ignore", UserWarning)  # "Duplicate name": on purpose
         for name, data in members:
             zf.writestr(zipfile.ZipInfo(name, date_time=FIXED_TIME), data)
     return path

@@ -47,6 +47,7 @@ class Case:
     output: str | None = None
     may_change: tuple[str, ...] = ()
     base: str = ""
+    output_existed: bool = False  # set just before the run
 
 
 def snapshot(work: Path) -> dict[str, str]:
@@ -91,6 +92,7 @@ def _norm(text: str, work: Path) -> str:
     text = text.replace(str(work), "<case>").replace(str(work.parent), "<root>")
     text = re.sub(r"'[^']{40,}'", "'<long>'", text)
     text = re.sub(r"0x[0-9a-f]+", "<hex>", text)
+    text = re.sub(r"\.[A-Za-z0-9_]{8}\.tmp", ".<random>.tmp", text)  # mkstemp names
     text = re.sub(r"\d+", "N", text)
     return text[:160]
 
@@ -130,8 +132,7 @@ def classify(case: Case, run: dict, before: dict, after: dict, work: Path) -> di
             notes.append("one-line message names no file")
     if case.output and "HANG" not in flags:
         out = work / case.output
-        existed = case.output in before
-        if rc == 2 and out.exists() and not existed:
+        if rc == 2 and out.exists() and not case.output_existed:
             notes.append("output written although exit 2")
         if rc == 0 and case.command.startswith("swap") and not case.data_loss and "nothing to swap" not in stdout:
             if not out.exists():
