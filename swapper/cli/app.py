@@ -1,48 +1,80 @@
 """The `swapper` command line: parses options, calls the API, maps errors to exit codes.
 
 Exit codes (swapper/errors.py): 0 done / approved, 1 rejected by the gate, 2 bad
-input or usage, 3 the validation data cannot judge the model.
+input or usage, 3 the validation data cannot judge the model, 4 internal error
+(cli/guard.py turns any other exception into one line; ``--verbose`` shows the
+traceback). User text (paths, names, messages) is never read as console markup:
+both consoles have markup off.
 """
 from __future__ import annotations
 
 import json
 import logging
+import math
 import sys
 from pathlib import Path
 from typing import Annotated, Optional
 
 import typer
 from rich.console import Console
+from rich.text import Text
 
 from swapper import api, functions
+from swapper.cli.guard import OneLineGroup, configure_logging
 from swapper.errors import SwapperError, UsageError
+from swapper.options import MAX_BATCH_SIZE, MAX_CACHE_MB, MAX_SEED, MAX_THREADS
+
+logger = logging.getLogger(__name__)
 
 app = typer.Typer(
+    cls=OneLineGroup,
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
     help="Find costly activations in an ONNX model, swap them for cheap calibrated ones, and check the cost.",
 )
-out = Console(soft_wrap=True)
-err = Console(stderr=True, soft_wrap=True)
+out = Console(soft_wrap=True, markup=False)
+err = Console(stderr=True, soft_wrap=True, markup=False)
 if not out.is_terminal:  # pipes and CI logs: wide enough that tables keep one row per line
     out.width = max(out.width, 160)
 
+MAX_LATENCY_RUNS = 100_000  # timed calls per model; more measures nothing new (common practice, no source)
+
 
 def _fail(exc: SwapperError) -> None:
-    err.print(f"[bold red]{exc.label}:[/] {exc}", highlight=False, soft_wrap=True)
+    err.print(Text.assemble((f"{exc.label}:", "bold red"), " ", str(exc)), highlight=False, soft_wrap=True)
     raise typer.Exit(exc.exit_code)
+
+
+def _finite(value: float | None) -> float | None:
+    """Option callback: NaN and infinities pass click's ranges (every comparison with NaN is false)."""
+    if value is not None and not math.isfinite(value):
+        raise typer.BadParameter(f"{value} is not a finite number")
+    return value
+
+
+# Running settings, shared by `swap`, `check` (and `bench` for latency).
+SeedOpt = Annotated[int, typer.Option(min=0, max=MAX_SEED, help="Seed for sampling; same inputs + seed = same bytes.")]
+BatchOpt = Annotated[int, typer.Option(min=1, max=MAX_BATCH_SIZE, help="Samples per onnxruntime call.")]
+ThreadsOpt = Annotated[int, typer.Option(min=1, max=MAX_THREADS, help="onnxruntime intra-op threads.")]
+LatencyRunsOpt = Annotated[int, typer.Option(
+    "--latency-runs", min=1, max=MAX_LATENCY_RUNS, help="Timed runs per model for the latency figures.")]
+NoLatencyOpt = Annotated[bool, typer.Option(
+    "--no-latency", help="Skip the latency measurement (the report says it was not measured).")]
+BudgetOpt = Annotated[float, typer.Option(callback=_finite, help="Largest accepted accuracy drop, in percentage points.")]
+MinAgreementOpt = Annotated[Optional[float], typer.Option(callback=_finite, help="Also require this top-1 agreement (0..1).")]
 
 
 # The gate's options, shared by `swap` and `check`; gathered into one GateRule by _gate_rule.
 MetricOpt = Annotated[Optional[str], typer.Option(
     help="What decides: top1 | agreement | cosine | sqnr | rmse (default: from the outputs and the data).")]
 MinCosineOpt = Annotated[Optional[float], typer.Option(
-    help="Least mean per-sample cosine similarity to the original's output (default 0.995).")]
+    callback=_finite, help="Least mean per-sample cosine similarity to the original's output (default 0.995).")]
 MinCosineP5Opt = Annotated[Optional[float], typer.Option(
-    "--min-cosine-p5", help="Least cosine of the worst 5% of samples (default 1 - 2*(1 - min-cosine)).")]
+    "--min-cosine-p5", callback=_finite,
+    help="Least cosine of the worst 5% of samples (default 1 - 2*(1 - min-cosine)).")]
 MinSqnrOpt = Annotated[Optional[float], typer.Option(
-    help="Least SQNR of each output against the original's, in dB (default 20).")]
+    callback=_finite, help="Least SQNR of each output against the original's, in dB (default 20).")]
 StrictDataOpt = Annotated[bool, typer.Option(
     "--strict-data", help="Refuse data files holding arrays the model does not read (default: ignore them).")]
 
@@ -74,8 +106,9 @@ def _source(path: Path | None, data_spec, batch_axis, constant, prep):
 
 
 @app.callback()
-def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debug details.")] = False) -> None:
-    logging.basicConfig(level=logging.DEBUG if verbose else logging.WARNING, format="%(name)s: %(message)s")
+def main(verbose: Annotated[bool, typer.Option(
+        "--verbose", "-v", help="Log debug details; on an internal error, show the traceback.")] = False) -> None:
+    configure_logging(verbose)
 
 
 @app.command()
@@ -102,7 +135,7 @@ def scan(
         sys.stdout.write(json.dumps(sites_to_json(result.sites, str(model), result.loaded.opset), indent=2) + "\n")
         return
     if not result.sites:
-        out.print(f"{model}: no activation sites found")
+        out.print(f"{model}: no activation sites found", highlight=False)
         return
     out.print(sites_table(result.sites, f"{model} (opset {result.loaded.opset}): {len(result.sites)} activation sites"))
     if any(s.cost_share is None for s in result.sites):
@@ -135,9 +168,9 @@ def swap(
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
     refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
-    budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
+    budget: BudgetOpt = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
-    min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
     min_cosine_p5: MinCosineP5Opt = None,
@@ -146,10 +179,12 @@ def swap(
     force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
-    seed: Annotated[int, typer.Option(help="Seed for sampling; same inputs + seed = same bytes.")] = 0,
-    batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
-    threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
-    cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    seed: SeedOpt = 0,
+    batch_size: BatchOpt = 64,
+    threads: ThreadsOpt = 1,
+    cache_mb: Annotated[Optional[float], typer.Option(min=0, max=MAX_CACHE_MB, callback=_finite, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    latency_runs: LatencyRunsOpt = 30,
+    no_latency: NoLatencyOpt = False,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
@@ -171,7 +206,8 @@ def swap(
             batch_size=batch_size, threads=threads, cache_mb=cache_mb,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
-                        strict_data=strict_data, force=force, int8=int8, report=report)
+                        strict_data=strict_data, force=force, int8=int8, report=report,
+                        latency_runs=0 if no_latency else latency_runs)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -182,9 +218,9 @@ def check(
     original: Annotated[Path, typer.Argument(help="The original .onnx model.")],
     candidate: Annotated[Path, typer.Argument(help="The swapped .onnx model.")],
     val: Annotated[Path, typer.Option(help="Validation set (.npz or .npy folder), with `labels` for accuracy.")],
-    budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
+    budget: BudgetOpt = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end.")] = False,
-    min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
     min_cosine_p5: MinCosineP5Opt = None,
@@ -193,8 +229,10 @@ def check(
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     calib: Annotated[Optional[Path], typer.Option(help="Calibration set for --int8 (default: the validation set).")] = None,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
-    batch_size: Annotated[int, typer.Option(min=1)] = 64,
-    threads: Annotated[int, typer.Option(min=1)] = 1,
+    batch_size: BatchOpt = 64,
+    threads: ThreadsOpt = 1,
+    latency_runs: LatencyRunsOpt = 30,
+    no_latency: NoLatencyOpt = False,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected, 3 cannot judge."""
@@ -204,7 +242,8 @@ def check(
         rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
         calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
-                         calib=calib, report=report, batch_size=batch_size, threads=threads)
+                         calib=calib, report=report, batch_size=batch_size, threads=threads,
+                         latency_runs=0 if no_latency else latency_runs)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -233,18 +272,20 @@ def bench(
     out_root: Annotated[Path, typer.Option("--out", help="Results go to OUT/<UTC time>/.")] = Path("reports/bench"),
     scale: Annotated[bool, typer.Option("--scale/--no-scale", help="Include the synthetic 16-block scale model.")] = True,
     quick: Annotated[bool, typer.Option("--quick", help="Few repeats, small data: a smoke run, not a measurement.")] = False,
-    repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model for latency.")] = 50,
+    repeats: Annotated[int, typer.Option(
+        "--latency-runs", "--repeats", min=1, max=MAX_LATENCY_RUNS, help="Timed runs per model for latency.")] = 50,
+    no_latency: NoLatencyOpt = False,
 ) -> None:
     """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
     from swapper.bench.run import run_bench
 
     try:
         folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
-                           quick=quick, repeats=repeats, console=out)
+                           quick=quick, repeats=0 if no_latency else repeats, console=out)
     except SwapperError as exc:
         _fail(exc)
     out.print(f"results: {folder}", highlight=False)
 
 
 if __name__ == "__main__":  # pragma: no cover
-    app()
+    app(prog_name="swapper")

@@ -1,22 +1,29 @@
-"""Rich tables for the terminal: what scan found, what swap did."""
+"""Rich tables for the terminal: what scan found, what swap did.
+
+Titles and cells are :class:`rich.text.Text`, so names and paths taken from the
+model or the command line (``[/b]model.onnx``, a node called ``[red]``) are shown
+as written, never read as console markup.
+"""
 from __future__ import annotations
 
 from rich.table import Table
+from rich.text import Text
 
 from swapper.plan.plan import Plan
 from swapper.scan.sites import Site
 
 
 def sites_table(sites: list[Site], title: str) -> Table:
-    table = Table(title=title, title_justify="left")
+    table = Table(title=Text(title), title_justify="left")
     for col in ("id", "function", "form", "role", "channels", "shape", "producer → consumers", "cost share"):
         table.add_column(col, justify="right" if col in ("channels", "cost share") else "left")
     for s in sites:
         shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
         role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
-        table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
-                      shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
+        cells = (s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
+                 shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
+        table.add_row(*(Text(str(c)) for c in cells))
     return table
 
 
@@ -26,7 +33,7 @@ def swap_table(rows: list[dict]) -> Table:
     for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted"):
         table.add_column(col)
     for r in rows:
-        table.add_row(
+        cells = (
             r["site_id"],
             f"{r['source']} → {r['target']}",
             *(r["placement"].get(p, "-") for p in "abcd"),
@@ -34,6 +41,7 @@ def swap_table(rows: list[dict]) -> Table:
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
             "-" if r["mse_fit"] is None else f"{r['mse_fit']:.3g}",
         )
+        table.add_row(*(Text(str(c)) for c in cells))
     return table
 
 
