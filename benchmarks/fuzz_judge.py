@@ -1,13 +1,14 @@
 """Judge one run of the swapper CLI against the README's promises.
 
 Classes (one per run, the first that applies in PRECEDENCE):
-  OK            exit 0/1/2, no traceback; exit 2 prints one stderr line; exit 1 only for a gate rejection
+  OK            exit 0/1/2 (3 with a gate), no traceback; exit 2/3 print one stderr line; exit 1 only for a
+                gate rejection
   TRACEBACK     "Traceback" or an exception summary line in the output
   HANG          still running at the timeout (killed)
   CRASH         killed by a signal (segfault, abort, ...)
-  WRONG_EXIT    exit code outside {0,1,2}; exit 1 that is not a gate rejection; exit 0/1 where the only safe
-                answer is exit 2 (writing would destroy an input)
-  MULTILINE     exit 2 with more than one stderr line
+  WRONG_EXIT    exit code outside {0,1,2,3} (4 = internal error); exit 1 that is not a gate rejection; exit 3
+                without a gate; exit 0/1 where the only safe answer is exit 2 (writing would destroy an input)
+  MULTILINE     exit 2, 3 or 4 with more than one stderr line
   INPUT_CHANGED a file that existed before the run changed or vanished (sha256)
 Softer promises (the one line names a file, no exception names in it, no temporary files left, a written
 model passes onnx.checker) become notes. A failure's signature is command | class | exception: first line.
@@ -110,13 +111,15 @@ def classify(case: Case, run: dict, before: dict, after: dict, work: Path) -> di
     if "Traceback (most recent call last)" in both or EXC_SUMMARY.search(stderr):
         flags.add("TRACEBACK")
     if not run["timed_out"] and rc >= 0:
-        if rc not in (0, 1, 2):
+        if rc not in (0, 1, 2, 3):  # 4 is the internal-error code: a bug, never a right answer
+            flags.add("WRONG_EXIT")
+        if rc == 3 and not case.gate:  # "cannot judge" needs a gate to judge for
             flags.add("WRONG_EXIT")
         if rc == 1 and not (case.gate and "REJECTED" in stdout) and "TRACEBACK" not in flags:
             flags.add("WRONG_EXIT")
         if case.data_loss and rc in (0, 1):
             flags.add("WRONG_EXIT")
-        if rc == 2 and len(err_lines) > 1 and "TRACEBACK" not in flags:
+        if rc in (2, 3, 4) and len(err_lines) > 1 and "TRACEBACK" not in flags:
             flags.add("MULTILINE")
     changed = sorted(k for k, v in before.items() if k not in case.may_change and after.get(k) != v)
     if changed:

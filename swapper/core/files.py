@@ -163,9 +163,9 @@ def check_output_path(out: str | Path, *, inputs: Inputs = ()) -> Path:
     clash = clashing_input(out, inputs)
     if clash:
         role, given = clash
-        where = "is" if _resolved(out) == _resolved(given) or file_identity(out) == file_identity(given) \
-            else "lies inside"
-        raise BadOutputError(f"refusing to overwrite {role} ({given}): the output {where} it; "
+        where = "names that file" if _resolved(out) == _resolved(given) or file_identity(out) == file_identity(given) \
+            else "lies inside that folder"
+        raise BadOutputError(f"refusing to overwrite {role} ({given}): the output path {where}; "
                              "choose another output path", out)
     try:
         if out.is_dir():
