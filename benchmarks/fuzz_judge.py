@@ -71,6 +71,14 @@ def snapshot(work: Path) -> dict[str, str]:
     return found
 
 
+def _exists(path: Path) -> bool:
+    """Path.exists that answers False for names the system refuses (too long, NUL) instead of raising."""
+    try:
+        return path.exists()
+    except (OSError, ValueError):
+        return False
+
+
 def _traceback_parts(text: str) -> tuple[str, str, str]:
     """(exception type, its first message line, innermost swapper frame) of the last traceback in ``text``."""
     start = text.rfind("Traceback (most recent call last)")
@@ -135,10 +143,10 @@ def classify(case: Case, run: dict, before: dict, after: dict, work: Path) -> di
             notes.append("one-line message names no file")
     if case.output and "HANG" not in flags:
         out = work / case.output
-        if rc == 2 and out.exists() and not case.output_existed:
+        if rc == 2 and _exists(out) and not case.output_existed:
             notes.append("output written although exit 2")
         if rc == 0 and case.command.startswith("swap") and not case.data_loss and "nothing to swap" not in stdout:
-            if not out.exists():
+            if not _exists(out):
                 notes.append("exit 0 but no output written")
             elif out.is_file():
                 try:
