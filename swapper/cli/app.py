@@ -92,6 +92,14 @@ def _split(value: str | None) -> list[str] | None:
     return [v.strip() for v in value.split(",") if v.strip()] if value else None
 
 
+def _target(value: str) -> str | None:
+    """``--target none`` plans without a target (registry defaults, no speed check)."""
+    return None if value.strip().lower() == "none" else value
+
+
+TARGET_HELP = "Target profile: a built-in name (see `swapper targets`) or a .json file; `none` for no target."
+
+
 # Data options shared by every command that reads data (see swapper/data/source.py for the file format).
 DataSpec = Annotated[Optional[Path], typer.Option("--data-spec", help="JSON data description: batch axes, constant inputs, image preprocessing.")]
 BatchAxis = Annotated[Optional[list[str]], typer.Option("--batch-axis", help="NAME=AXIS: the axis of input NAME that counts samples (repeatable).")]
@@ -144,12 +152,38 @@ def scan(
 
 @app.command("functions")
 def list_functions() -> None:
-    """List the functions swapper knows: costly sources and cheap surrogates."""
+    """List the functions swapper knows: costly sources (with their default) and cheap surrogates (with their forms)."""
+    from swapper.functions.forms import forms_of
+
     for name in sorted(functions.REGISTRY):
         fn = functions.REGISTRY[name]
         kind = "surrogate" if fn.is_cheap else "source"
         default = functions.DEFAULT_TARGET.get(name, "")
-        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else ""))
+        forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
+                          for f in forms_of(name)) if fn.is_cheap else ""
+        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
+                  + (f"  forms: {forms}" if forms else ""), highlight=False)
+
+
+@app.command("targets")
+def list_targets(
+    as_json: Annotated[bool, typer.Option("--json", help="Print the profiles as JSON.")] = False,
+) -> None:
+    """List the built-in target profiles: name, precision, where costs come from, opsets, description."""
+    from swapper.targets import builtin_targets, load_target
+
+    try:
+        rows = [load_target(name) for name in builtin_targets()]
+    except SwapperError as exc:
+        _fail(exc)
+    if as_json:
+        sys.stdout.write(json.dumps([{"name": p.name, "precision": p.precision, "costs_from": p.costs_from,
+                                      "opset": {"min": p.opset_min, "max": p.opset_max},
+                                      "description": p.description} for p in rows], indent=2) + "\n")
+        return
+    for p in rows:
+        out.print(f"{p.name:13s} {p.precision:8s} {p.costs_from:9s} opsets {p.opset_min}..{p.opset_max}  "
+                  f"{p.description}", highlight=False)
 
 
 @app.command()
@@ -176,9 +210,11 @@ def swap(
     min_cosine_p5: MinCosineP5Opt = None,
     min_sqnr: MinSqnrOpt = None,
     strict_data: StrictDataOpt = False,
-    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected (verdict kept in metadata).")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected or not faster on the target (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first (checked and compared; recorded in the report).")] = None,
     seed: SeedOpt = 0,
     batch_size: BatchOpt = 64,
     threads: ThreadsOpt = 1,
@@ -203,7 +239,7 @@ def swap(
         options = SwapOptions(
             to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
             fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
-            batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            batch_size=batch_size, threads=threads, cache_mb=cache_mb, target=_target(target), opset=opset,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
                         strict_data=strict_data, force=force, int8=int8, report=report,
@@ -231,6 +267,7 @@ def check(
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
     batch_size: BatchOpt = 64,
     threads: ThreadsOpt = 1,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
     latency_runs: LatencyRunsOpt = 30,
     no_latency: NoLatencyOpt = False,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
@@ -243,7 +280,7 @@ def check(
         calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
                          calib=calib, report=report, batch_size=batch_size, threads=threads,
-                         latency_runs=0 if no_latency else latency_runs)
+                         latency_runs=0 if no_latency else latency_runs, target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -275,13 +312,14 @@ def bench(
     repeats: Annotated[int, typer.Option(
         "--latency-runs", "--repeats", min=1, max=MAX_LATENCY_RUNS, help="Timed runs per model for latency.")] = 50,
     no_latency: NoLatencyOpt = False,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
     """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
     from swapper.bench.run import run_bench
 
     try:
         folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
-                           quick=quick, repeats=0 if no_latency else repeats, console=out)
+                           quick=quick, repeats=0 if no_latency else repeats, console=out, target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     out.print(f"results: {folder}", highlight=False)

@@ -27,7 +27,7 @@ from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
 from swapper.report.paths import default_report_dir
-from swapper.report.tables import skipped_lines, swap_table
+from swapper.report.tables import skipped_lines, swap_table, target_lines
 
 logger = logging.getLogger(__name__)
 
@@ -96,6 +96,14 @@ def _print_check(console, result: api.CheckResult) -> None:
     s = result.size
     say(f"  nodes {s['original']['nodes']} → {s['candidate']['nodes']}, bytes "
         f"{s['original']['bytes']} → {s['candidate']['bytes']}")
+    on = (lat or {}).get("target")
+    if on is not None:
+        if "ratio" in on:
+            say(f"  on {on['target']}: candidate {on['ratio']:.3f}× the original")
+        lacking = on.get("lacking_ops", {}).get("candidate")
+        if lacking:
+            say(f"  ops {on['target']} cannot run, still in the candidate: "
+                + ", ".join(f"{op} ×{k}" for op, k in lacking.items()))
     if result.int8:
         q = result.int8["comparison"]
         ratio = "not measured" if result.int8["latency"] is None else f"{result.int8['latency']['ratio']:.2f}"
@@ -114,7 +122,7 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
               strict: bool = False, min_agreement: float | None = None, int8: bool = False,
               calib: Path | None = None, report: Path | None = None, batch_size: int = 64,
               threads: int = 1, rule: GateRule | None = None, strict_data: bool = False,
-              latency_runs: int = 30) -> int:
+              latency_runs: int = 30, target: str | None = None) -> int:
     """`swapper check`: compare two model files; write the report; 0 approved, 1 rejected.
 
     ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement`` when given.
@@ -135,7 +143,7 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
         preflight(orig.model, val_ds, rule, batch_size=batch_size, threads=threads)  # CannotJudge before the work
         result = api.check(orig.model, cand.model, val_ds, budget=rule, int8=int8, calib=calib_ds,
                            batch_size=batch_size, threads=threads, progress=_progress(console),
-                           latency_repeats=latency_runs)
+                           latency_repeats=latency_runs, target=target)
     except SwapperError as exc:
         raise _named(exc, val, original, candidate) from None
     result.size["original"]["bytes"] = orig.file_bytes  # the files as they are on disk (external data included)
@@ -192,6 +200,8 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
         for line in skipped_lines(result.plan):
             console.print(f"  {line}", highlight=False, markup=False)
+        for line in target_lines(result.plan):
+            console.print(f"  {line}", highlight=False, markup=False)
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
@@ -202,6 +212,18 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             console.print(f"{path}: nothing to swap; no model written", highlight=False, markup=False)
         return EXIT_OK
     candidate = result.candidate
+    timing = None
+    if result.target is not None and result.target.costs_from == "measured":
+        timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
+                                    batch_size=options.batch_size)
+        _set_metadata(candidate, "swapper.target", timing.to_dict())
+        if console is not None:
+            console.print(f"  {timing.line()}", highlight=False, markup=False)
+        if not timing.is_faster and not force:
+            if console is not None:
+                console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.2f}× the original; "
+                              "no model written", highlight=False, markup=False)
+            return EXIT_OK
     check = None
     if val_ds is not None:
         try:
@@ -212,6 +234,8 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             raise _named(exc, val, path, output) from None
         _record_verdict(candidate, check)
         check.size["original"]["bytes"] = loaded.file_bytes
+        if timing is not None and check.latency is not None:  # the target timing (printed above) in the report
+            check.latency["target"] = timing.to_dict()
     approved = check is None or check.verdict.approved
     if approved or force:
         save_model(candidate, output, inputs=inputs)
@@ -220,7 +244,9 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     if check is not None:
         _print_check(console, check)
     if console is not None and (approved or force):
-        note = "" if approved else " (rejected; written because of --force)"
+        slower = timing is not None and not timing.is_faster
+        note = "" if approved and not slower else \
+            f" ({'rejected' if not approved else 'not faster on ' + timing.target}; written because of --force)"
         console.print(f"wrote {output}{note}", highlight=False, markup=False)
     elif console is not None:
         console.print(f"not written: {output} (rejected)", highlight=False, markup=False)
@@ -234,11 +260,18 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:
     """Keep the verdict with the model, so a forced write still says it was rejected."""
+    _set_metadata(candidate, "swapper.verdict", check.verdict.to_dict())  # the same entry as report.json's verdict
+
+
+def _set_metadata(model: onnx.ModelProto, key: str, entry: dict) -> None:
+    """Store ``entry`` as JSON under ``key`` in the model's metadata (replacing an older value)."""
     import json
 
-    entry = check.verdict.to_dict()  # the same entry as report.json's verdict
-    for prop in candidate.metadata_props:
-        if prop.key == "swapper.verdict":
-            prop.value = json.dumps(entry, sort_keys=True)
+    from swapper.core.jsonable import json_safe
+
+    value = json.dumps(json_safe(entry, [], key), sort_keys=True)
+    for prop in model.metadata_props:
+        if prop.key == key:
+            prop.value = value
             return
-    candidate.metadata_props.add(key="swapper.verdict", value=json.dumps(entry, sort_keys=True))
+    model.metadata_props.add(key=key, value=value)

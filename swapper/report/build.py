@@ -9,10 +9,13 @@ when a part did not run):
   ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written);
   an image folder with class sub-folders also gives ``classes`` (folder name ->
   integer label).
-- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`.
-- ``sites``: one entry per swapped site: ``site_id, source, target, placement
-  {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
-  bias_corrected, notes`` (mse values null without calibration).
+- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
+  ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
+  record or null), ``remaining``, ``hints``.
+- ``sites``: one entry per swapped site: ``site_id, source, target, form``
+  (the emission form written), ``placement {a,b,c,d}, nodes_added,
+  folded_into, mse_start, mse_fit, level, bias_corrected, notes`` (mse values
+  null without calibration).
 - ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
@@ -23,8 +26,9 @@ when a part did not run):
   top1 | agreement | cosine | sqnr | rmse, null when the candidate was refused for
   NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
   ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
-  runs}`` plus ``ratio``, ``batch_size``, ``threads``, or null when latency was not
-  measured (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
+  runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
+  ``target`` (see ``swapper.api.check``), or null when latency was not measured
+  (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
   initializer_bytes}`` (``bytes``: the model file as written or read, external data
   files included; a candidate that was not written counts its serialised bytes);
   ``int8``: the same figures for quantized versions or null. All null when no
@@ -65,8 +69,8 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
             "verdict", "latency", "size", "int8", "caution")
 
 
-SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
-             "level", "bias_corrected", "notes")
+SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
+             "mse_fit", "level", "bias_corrected", "notes")
 
 
 def _versions() -> dict:
@@ -119,7 +123,8 @@ def site_rows(plan, records, calibration) -> list[dict]:
     for s in plan.swaps:
         rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
         rows.append({
-            "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
+            "site_id": s.site_id, "source": s.source, "target": s.target,
+            "form": rec.form if rec else s.form, "placement": dict(s.placement),
             "nodes_added": rec.nodes_added if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,

@@ -35,7 +35,7 @@ def swap_table(rows: list[dict]) -> Table:
     for r in rows:
         cells = (
             r["site_id"],
-            f"{r['source']} → {r['target']}",
+            f"{r['source']} → {r['target']}" + (f" ({r['form']})" if r.get("form") else ""),
             *(r["placement"].get(p, "-") for p in "abcd"),
             "-" if r["nodes_added"] is None else str(r["nodes_added"]),
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
@@ -47,3 +47,15 @@ def swap_table(rows: list[dict]) -> Table:
 
 def skipped_lines(plan: Plan) -> list[str]:
     return [f"left {s.site_id} ({s.function}): {s.reason}" for s in plan.skipped]
+
+
+def target_lines(plan: Plan) -> list[str]:
+    """What the plan says about its target: the opset conversion, ops that remain, faster forms out of reach."""
+    lines = []
+    if plan.conversion:
+        c = plan.conversion
+        lines.append(f"converted opset {c['from']} → {c['to']} (max |Δ| {c['max_abs_diff']:.3g} on "
+                     f"{c['samples']} samples)")
+    lines += [f"remains: {r}" for r in plan.remaining]
+    lines += [f"hint: {h}" for h in plan.hints]
+    return lines
