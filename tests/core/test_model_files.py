@@ -175,7 +175,7 @@ def test_weights_that_overflow_when_folded_are_not_written(cli, tmp_path):
     # 3.2e38 is finite in float32 (max 3.4028235e38, IEEE 754 binary32); folding a scale > 1.06 into it is not.
     model = onnx.load(TANH)
     for t in model.graph.initializer:
-        if t.name == "net.3.weight":
+        if t.name == "net.5.weight":  # the last Gemm: d of the sigmoid site folds into its bias, a into it
             t.CopyFrom(numpy_helper.from_array(np.full(numpy_helper.to_array(t).shape, 3.2e38, np.float32), t.name))
     assert all(np.isfinite(numpy_helper.to_array(t)).all() for t in model.graph.initializer)
     path = tmp_path / "huge.onnx"
@@ -222,7 +222,7 @@ def test_float16_and_float64_sites_get_constants_of_their_type(cli, tmp_path, el
     path = tmp_path / "m.onnx"
     onnx.save(helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)]), path)
     out = tmp_path / "out.onnx"
-    result = cli("swap", path, "--no-calibrate", "-o", out, "--fold", "off")
+    result = cli("swap", path, "--no-calibrate", "-o", out, "--fold", "off", "--target", "none")  # emit, do not time
     assert result.exit_code == 0, result.output
     written = onnx.load(out)
     onnx.checker.check_model(written, full_check=True)
