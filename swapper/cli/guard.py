@@ -14,7 +14,9 @@ RuntimeWarnings stay out of the one-line promise.
 from __future__ import annotations
 
 import logging
+import signal
 import sys
+import threading
 import traceback
 
 from rich.console import Console
@@ -26,6 +28,7 @@ from swapper.errors import EXIT_BAD_INPUT, EXIT_INTERNAL, first_line
 logger = logging.getLogger(__name__)
 
 EXIT_INTERRUPTED = 130  # 128 + SIGINT, the shell's convention
+EXIT_TERMINATED = 143  # 128 + SIGTERM
 
 
 class _State:
@@ -108,6 +111,12 @@ def run_guarded(command) -> int:
     return code if isinstance(code, int) else EXIT_INTERNAL
 
 
+def _terminate(signum, frame) -> None:
+    # SystemExit unwinds the stack, so `with` blocks and finalizers remove the spill folders and temporary
+    # files a killed run would otherwise leave in TMPDIR
+    raise SystemExit(EXIT_TERMINATED)
+
+
 class OneLineGroup(TyperGroup):
     """The typer group of ``swapper``: runs every invocation (also CliRunner's) through :func:`run_guarded`."""
 
@@ -116,7 +125,14 @@ class OneLineGroup(TyperGroup):
             return super(OneLineGroup, self).main(args=args, prog_name=prog_name, complete_var=complete_var,
                                                   standalone_mode=False, **extra)
 
-        code = run_guarded(command)
+        previous = None
+        if threading.current_thread() is threading.main_thread():
+            previous = signal.signal(signal.SIGTERM, _terminate)
+        try:
+            code = run_guarded(command)
+        finally:
+            if previous is not None:
+                signal.signal(signal.SIGTERM, previous)
         if standalone_mode:
             sys.exit(code)
         return code

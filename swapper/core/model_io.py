@@ -197,7 +197,8 @@ def _parse(data: bytes, path: Path) -> onnx.ModelProto:
     try:
         model.ParseFromString(data)
     except (DecodeError, RuntimeError, ValueError) as exc:
-        raise BadModelError(f"not an ONNX protobuf or truncated ({type(exc).__name__})", path) from None
+        raise BadModelError("not an ONNX model: the bytes do not parse as one (truncated or another format)", path) \
+            from None
     if not model.HasField("graph") or len(model.graph.node) == 0 and len(model.graph.output) == 0:
         raise BadModelError("not an ONNX model (no graph inside)", path)
     return model

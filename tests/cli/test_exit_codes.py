@@ -143,3 +143,31 @@ def test_demo_out_naming_a_file_is_one_line(cli, tmp_path):
     one_line_error(cli("demo", "--out", taken), str(taken), "is a file")
     one_line_error(cli("demo", "--out", taken / "demo"), str(taken))
     assert sha256(taken) == before
+
+
+def test_sigterm_ends_the_run_and_removes_its_spill_files(tmp_path):
+    # A killed run used to leave swapper-cache-* folders in TMPDIR; SIGTERM now unwinds the stack
+    # (exit 128 + 15, the shell's convention) so the cache's temporary folder is removed.
+    import signal
+    import time
+
+    import numpy as np
+
+    with np.load(DEMO / "calib.npz") as z:
+        np.savez(tmp_path / "calib.npz", pixels=np.tile(z["pixels"], (16, 1, 1, 1)))  # 4096 samples
+    tmp = tmp_path / "tmp"
+    tmp.mkdir()
+    env = dict(os.environ, TMPDIR=str(tmp),
+               PYTHONPATH=os.pathsep.join([str(ROOT), os.environ.get("PYTHONPATH", "")]))
+    proc = subprocess.Popen([sys.executable, "-m", "swapper.cli", "swap", str(DEMO / "meter_cnn_silu.onnx"),
+                             "--calib", "calib.npz", "-o", "out.onnx", "--cache-mb", "0", "--target", "none"],
+                            cwd=tmp_path, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    while not any(tmp.glob("swapper-cache-*")) and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.01)
+    assert proc.poll() is None, "the run ended before its cache folder was seen"
+    proc.send_signal(signal.SIGTERM)
+    proc.communicate(timeout=60)
+    assert proc.returncode == 143
+    assert not list(tmp.glob("swapper-cache-*"))
+    assert not (tmp_path / "out.onnx").exists()
