@@ -31,7 +31,7 @@ from swapper.core.files import (  # noqa: F401  (check_output_path, atomic_write
     path_problem,
 )
 from swapper.core.graph import DEFAULT_DOMAINS, subgraphs
-from swapper.core.tensor_check import check_tensor_sizes, nonfinite_tensor
+from swapper.core.tensor_check import check_tensor_sizes, nonfinite_tensor, undecodable_text
 from swapper.errors import BadModelError, BadOutputError, first_line
 
 logger = logging.getLogger(__name__)
@@ -201,6 +201,9 @@ def _parse(data: bytes, path: Path) -> onnx.ModelProto:
             from None
     if not model.HasField("graph") or len(model.graph.node) == 0 and len(model.graph.output) == 0:
         raise BadModelError("not an ONNX model (no graph inside)", path)
+    damaged = undecodable_text(model)
+    if damaged:
+        raise BadModelError(f"text field {damaged} is not valid UTF-8 (a damaged file)", path)
     return model
 
 

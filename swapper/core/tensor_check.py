@@ -8,7 +8,9 @@ TensorProto: ``raw_data`` is the little-endian values, 4-bit types packed two
 per byte; typed fields hold one value per element, two per complex element,
 and 4-bit types two per int32 entry). onnx.checker does not check this, and
 numpy_helper.to_array fails on it with errors that name no tensor.
-``nonfinite_tensor`` finds the first float weight holding NaN or Inf.
+``nonfinite_tensor`` finds the first float weight holding NaN or Inf;
+``undecodable_text`` the first string field that is not valid UTF-8 (protobuf
+hands such a field over as bytes, which breaks every name look-up after it).
 """
 from __future__ import annotations
 
@@ -114,6 +116,28 @@ def check_tensor_sizes(model: onnx.ModelProto, path: str | Path | None = None) -
         problem = tensor_problem(t)
         if problem:
             raise BadModelError(f"{kind} {t.name!r} {problem}", path)
+
+
+def undecodable_text(message, where: str = "model") -> str | None:
+    """The path of the first string field of ``message`` (recursively) that is not valid UTF-8, else None.
+
+    ONNX's .proto declares names, domains and string attributes as ``string``, which
+    must hold UTF-8 (protobuf language guide, scalar value types); a damaged file
+    breaks that and protobuf's Python parser returns the raw bytes instead of text.
+    """
+    for field, value in message.ListFields():
+        name = f"{where}.{field.name}"
+        # protobuf 6 has is_repeated; older versions only the label
+        repeated = field.is_repeated if hasattr(field, "is_repeated") else field.label == field.LABEL_REPEATED
+        if field.type == field.TYPE_STRING:
+            if any(isinstance(v, bytes) for v in (value if repeated else [value])):
+                return name
+        elif field.type == field.TYPE_MESSAGE:
+            for i, item in enumerate(value if repeated else [value]):
+                found = undecodable_text(item, f"{name}[{i}]" if repeated else name)
+                if found:
+                    return found
+    return None
 
 
 def nonfinite_tensor(model: onnx.ModelProto) -> str | None:

@@ -168,6 +168,20 @@ def test_swap_of_a_short_payload_is_one_line(cli, tmp_path):
     assert not (tmp_path / "out.onnx").exists()
 
 
+def test_a_name_that_is_not_utf8_is_one_line(cli, tmp_path):
+    # protobuf string fields must hold UTF-8 (protobuf language guide); one flipped bit in an attribute name
+    # breaks that, and Python's parser then hands the name over as bytes
+    model = onnx.load(TANH)
+    node = next(n for n in model.graph.node if n.attribute)
+    name = node.attribute[0].name.encode()
+    data = model.SerializeToString()
+    damaged = name[:1] + b"\xe5" + name[2:]
+    assert data.count(name) >= 1
+    path = tmp_path / "damaged.onnx"
+    path.write_bytes(data.replace(name, damaged, 1))
+    one_line_error(cli("scan", path), str(path), "is not valid UTF-8")
+
+
 # ---------------------------------------------------------------- what is never written
 
 
