@@ -214,8 +214,11 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     candidate = result.candidate
     timing = None
     if result.target is not None and result.target.costs_from == "measured":
-        timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
-                                    batch_size=options.batch_size)
+        try:
+            timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
+                                        batch_size=options.batch_size)
+        except SwapperError as exc:  # the model (or its swap) does not run on the timing batch
+            raise exc.naming(path) from None
         _set_metadata(candidate, "swapper.target", timing.to_dict())
         if console is not None:
             console.print(f"  {timing.line()}", highlight=False, markup=False)
