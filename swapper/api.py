@@ -217,7 +217,7 @@ class CheckResult:
     comparison: object  # evaluate.Comparison
     verdict: object  # evaluate.Verdict
     budget: object  # evaluate.Budget
-    latency: dict  # "original"/"candidate" -> LatencyStats, plus "ratio"
+    latency: dict | None  # "original"/"candidate" -> LatencyStats, plus "ratio"; None when not measured
     size: dict  # bytes, node counts and op counts of both models
     int8: dict | None = None  # same figures for int8-quantized versions
 
@@ -238,10 +238,11 @@ def check(
 ) -> CheckResult:
     """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``.
 
+    ``latency_repeats`` timed runs per model give the latency figures (0: not measured, ``latency`` None).
     With ``target``, ``latency["target"]`` says how the pair fares there: a
     measured profile times both at its settings (int8: both quantized on
     ``calib``, else ``val``); a declared one names the ops of each model it
-    cannot run (:mod:`swapper.check.on_target`).
+    cannot run (:mod:`swapper.check.on_target`). Not measured either without latency.
     """
     from swapper.check.compare import compare
     from swapper.check.gate import Budget, decide
@@ -255,13 +256,15 @@ def check(
     comparison = compare(sessions["original"], sessions["candidate"], val, batch_size=batch_size, progress=progress)
     verdict = decide(comparison, budget)
     feeds = next(batches(val, batch_size)).feeds  # compare has checked that val is not empty
-    latency = _timed(sessions, feeds, threads, latency_repeats)
-    latency["batch_size"] = int(next(iter(feeds.values())).shape[0])
-    latency["threads"] = threads
-    profile = resolve_target(target)
-    if profile is not None:
-        latency["target"] = _on_target(original, candidate, profile, feeds, calib if calib is not None else val,
-                                       batch_size)
+    latency = None
+    if latency_repeats:
+        latency = _timed(sessions, feeds, threads, latency_repeats, progress)
+        latency["batch_size"] = int(next(iter(feeds.values())).shape[0])
+        latency["threads"] = threads
+        profile = resolve_target(target)
+        if profile is not None:
+            latency["target"] = _on_target(original, candidate, profile, feeds, calib if calib is not None else val,
+                                           batch_size)
     size = {
         "original": {"bytes": serialized_size(original), **model_summary(original)},
         "candidate": {"bytes": serialized_size(candidate), **model_summary(candidate)},
@@ -298,11 +301,12 @@ def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: i
             for role, model in (("original", original), ("candidate", candidate))}
 
 
-def _timed(sessions: dict, feeds: dict, threads: int, repeats: int) -> dict:
+def _timed(sessions: dict, feeds: dict, threads: int, repeats: int, progress, what: str = "timing latency") -> dict:
     """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
     from swapper.check.latency import measure_latency
 
-    timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats)
+    with progress.task(what, repeats) as advance:
+        timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats, advance=advance)
     ratio = timed["candidate"].median_ms / timed["original"].median_ms
     return {k: v.__dict__ for k, v in timed.items()} | {"ratio": ratio}
 
@@ -331,7 +335,7 @@ def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Datas
     losses = q_cand.weight_losses
     return {
         "comparison": q_comp.to_dict(),
-        "latency": _timed(sessions, feeds, threads, repeats),
+        "latency": _timed(sessions, feeds, threads, repeats, progress, "timing int8 latency") if repeats else None,
         "size": {"original_bytes": serialized_size(q_orig), "candidate_bytes": serialized_size(q_cand.model)},
         "quantization": "QDQ, per-channel int8 weights, MinMax calibration (see swapper/check/int8.py)",
         # layers whose int8 weights lose much of an input channel (one channel sets the row's scale),

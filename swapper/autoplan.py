@@ -54,13 +54,14 @@ def _loaded(model) -> LoadedModel:
 
 def auto_swap(model: str | Path | LoadedModel | onnx.ModelProto, *, calib, val, rule=None, options: SwapOptions | None = None,
               settings=None, sweep_payload: dict | None = None, sweep_path: str | Path | None = None,
-              progress=None) -> AutoResult:
+              progress=None, latency_runs: int = 10) -> AutoResult:
     """The fastest plan within the gate: sweep (or ``sweep_payload``), search, verify and back off.
 
     Each verification is a full swap of the chosen sites (``options`` with per-site
     choices, sequential calibration, the consumer refit when a chosen candidate used
     it), the full gate on ``val`` and, on a measured target, the timing against the
     original: a plan that is not faster is never returned (:mod:`swapper.plan.search`).
+    ``latency_runs`` timed runs per model in each verification's check (0: no latency in the report).
     """
     from swapper.check.gate import GateRule
     from swapper.check.on_target import lacking_ops
@@ -103,7 +104,7 @@ def auto_swap(model: str | Path | LoadedModel | onnx.ModelProto, *, calib, val, 
         result = swap(loaded, calib=calib_ds, options=options.replace(
             to=None, site_ids=tuple(choices), choices=choices, refit_consumers=refit), progress=progress)
         checked = check(loaded.model, result.candidate, val_ds, budget=rule, batch_size=options.batch_size,
-                        threads=options.threads, latency_repeats=10, progress=progress)
+                        threads=options.threads, latency_repeats=latency_runs, progress=progress)
         timing = None
         if measured and checked.verdict.approved:
             timing = time_on_target(loaded.model, result.candidate, profile, calib=calib_ds,

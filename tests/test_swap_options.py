@@ -19,7 +19,7 @@ from swapper.cli.app import app
 from swapper.core.model_io import load_model
 from swapper.data.dataset import subset
 from swapper.errors import UsageError
-from swapper.options import FOLD_POLICIES, MODES, SwapOptions
+from swapper.options import FOLD_POLICIES, MAX_BATCH_SIZE, MAX_CACHE_MB, MAX_THREADS, MODES, SwapOptions
 from swapper.plan.plan import make_plan
 from swapper.scan.sites import find_sites
 
@@ -30,9 +30,17 @@ needs_demo = pytest.mark.skipif(not (DEMO / "calib.npz").exists(), reason="demo 
 @pytest.mark.parametrize("changes, message", [
     ({"fold": "tight"}, "unknown fold policy 'tight'; valid: exact, nodes, approximate, off"),
     ({"mode": "global"}, "unknown mode 'global'; valid: sequential, local"),
-    ({"threads": 0}, "threads must be >= 1, got 0"),
-    ({"batch_size": 0}, "batch_size must be >= 1, got 0"),
-    ({"cache_mb": -1.0}, "cache_mb must be >= 0, got -1.0"),
+    ({"threads": 0}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), got 0"),
+    ({"threads": MAX_THREADS + 1}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), "
+                                   f"got {MAX_THREADS + 1}"),
+    ({"batch_size": 0}, f"batch_size must be a whole number in 1..{MAX_BATCH_SIZE}, got 0"),
+    ({"batch_size": MAX_BATCH_SIZE + 1}, f"batch_size must be a whole number in 1..{MAX_BATCH_SIZE}, "
+                                         f"got {MAX_BATCH_SIZE + 1}"),
+    ({"seed": -1}, f"seed must be a whole number in 0..{2**32 - 1}, got -1"),
+    ({"seed": 2**32}, f"seed must be a whole number in 0..{2**32 - 1}, got {2**32}"),
+    ({"cache_mb": -1.0}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got -1.0"),
+    ({"cache_mb": float("inf")}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got inf"),
+    ({"cache_mb": float("nan")}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got nan"),
 ])
 def test_bad_settings_are_usage_errors(changes, message):
     with pytest.raises(UsageError) as err:

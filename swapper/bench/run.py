@@ -81,6 +81,7 @@ from swapper.bench.measure import (
 from swapper.bench.memory import memory_ratios, memory_section
 from swapper.bench.rungs import family_options
 from swapper.check.compare import Reference
+from swapper.core.files import ensure_folder
 from swapper.core.jsonable import json_safe
 from swapper.core.model_io import (
     LoadedModel,
@@ -93,6 +94,7 @@ from swapper.data.demo import DEMO_DIR, demo_inputs
 from swapper.errors import SwapperError, UsageError
 from swapper.options import DEFAULT_TARGET
 from swapper.plan.plan import Plan, make_plan
+from swapper.progress import RichBars, Silent
 from swapper.report.paths import utc_stamp
 
 logger = logging.getLogger(__name__)
@@ -137,22 +139,23 @@ def _command(models: list[Path], demo: bool, calib, val, out_root: Path, scale: 
     parts += [f"--val {val}"] if val else []
     parts += [f"--out {out_root}", "--scale" if scale else "--no-scale"]
     parts += ["--quick"] if quick else []
-    parts += [f"--repeats {repeats}", f"--target {target or 'none'}"]
+    parts += [f"--latency-runs {repeats}"] if repeats else ["--no-latency"]
+    parts += [f"--target {target or 'none'}"]
     return " ".join(parts)
 
 
 def _folder(out_root: Path) -> tuple[Path, str]:
     stamp = utc_stamp()
+    ensure_folder(out_root, "results folder")
     folder, k = Path(out_root) / stamp, 0
     while folder.exists():  # two runs in one second: keep both
         k += 1
         folder = Path(out_root) / f"{stamp}-{k}"
-    folder.mkdir(parents=True)
-    return folder, stamp
+    return ensure_folder(folder, "results folder"), stamp
 
 
 def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *, synthetic: bool,
-                 calib_path: Path | None, settings: dict, log, memory_extra: dict) -> dict:
+                 calib_path: Path | None, settings: dict, log, memory_extra: dict, progress=None) -> dict:
     """Every measurement for one model (all families, then memory)."""
     plan = make_plan(loaded.model, api.scan(loaded).sites, target=api.resolve_target(settings["target"]))
     fams = families_for(plan, quick=settings["quick"])
@@ -183,12 +186,16 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         fam["targets"] = {s.site_id: s.target for s in run.swap_result.plan.swaps}
         fam["cost"] = tool_cost(run.swap_result, plain)
         flog(f"cost: calibration {fam['cost']['total_s']:.3f}s = {fam['cost']['ratio_total']:.1f}x plain pass")
-        floor = floor_model(loaded, run.swap_result)
-        fam["speed"] = speed(original.session, run.swapped, floor, val, batch_sizes=lat_batches,
-                             repeats=settings["repeats"])
-        flog("speed: " + ", ".join(f"batch {b} ratio {s['ratio']:.3f}" for b, s in fam["speed"].items()))
-        _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch, lat_batches=lat_batches,
-                    repeats=settings["repeats"], log=flog)
+        if settings["repeats"]:
+            floor = floor_model(loaded, run.swap_result)
+            fam["speed"] = speed(original.session, run.swapped, floor, val, batch_sizes=lat_batches,
+                                 repeats=settings["repeats"], progress=progress)
+            flog("speed: " + ", ".join(f"batch {b} ratio {s['ratio']:.3f}" for b, s in fam["speed"].items()))
+        else:
+            fam["notes"].append("latency not measured (--no-latency)")
+        _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch,
+                    lat_batches=lat_batches if settings["repeats"] else [], repeats=settings["repeats"], log=flog,
+                    progress=progress)
     spec = {"model": str(loaded.path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
             "to": fams[0][1], "target": settings["target"], **memory_extra}
     entry["memory"] = memory_section(spec, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
@@ -197,7 +204,7 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
 
 
 def _bench_int8(fam: dict, run: FamilyRun, loaded: LoadedModel, original: Reference, int8_cache: dict, calib: Dataset,
-                val: Dataset, *, batch: int, lat_batches: list[int], repeats: int, log) -> None:
+                val: Dataset, *, batch: int, lat_batches: list[int], repeats: int, log, progress=None) -> None:
     """Fill ``fam["int8"]``, or note why it could not be measured (quantization is allowed to fail)."""
     from swapper.check.int8 import quantize_int8
 
@@ -208,11 +215,19 @@ def _bench_int8(fam: dict, run: FamilyRun, loaded: LoadedModel, original: Refere
                                                    batch_size=batch)
         q_swapped = quantize_int8(run.swapped, feeds())
         fam["int8"] = int8_view(original, int8_cache["original"], q_swapped, val, batch_sizes=lat_batches,
-                                repeats=repeats, batch_size=batch)
-        log(f"int8: {fam['int8']['metric']} {fam['int8']['original']} -> {fam['int8']['swapped']}")
+                                repeats=repeats, batch_size=batch, progress=progress)
+        log(f"int8: {fam['int8']['metric']} {_figure(fam['int8']['original'])} -> "
+            f"{_figure(fam['int8']['swapped'])}")
     except SwapperError as exc:
         fam["notes"].append(f"int8 not measured: {exc}")
         log(f"int8 not measured: {exc}")
+
+
+def _figure(value) -> str:
+    """A ladder figure for a log line: fractions as percentages, dB and RMSE to 4 significant digits."""
+    if value is None:
+        return "n/a"
+    return f"{100 * value:.2f}%" if 0.0 <= value <= 1.0 else f"{value:.4g}"
 
 
 def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None) -> list[tuple[Path, Path, Path | None]]:
@@ -238,7 +253,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
     if not todo and not scale:
         raise UsageError("nothing to benchmark: give models, --demo, or --scale")
     mode = QUICK if quick else FULL
-    repeats = min(repeats, QUICK["repeats"]) if quick else repeats
+    repeats = min(repeats, QUICK["repeats"]) if quick else repeats  # 0: latency not measured
     settings = {
         "command": _command(models, demo, calib, val, out_root, scale, quick, repeats, target), "quick": quick,
         "target": target,
@@ -248,6 +263,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
                        "else 'default'), then relu" + ("; --quick: first family only" if quick else ""),
         "calib_limit": mode["calib"], "val_limit": mode["val"], "seed": SEED, "scale": None,
     }
+    progress = RichBars() if console is not None and console.is_terminal else Silent()
 
     def log(msg: str) -> None:
         logger.info(msg)
@@ -265,14 +281,14 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
         calib_ds = subset(calib_ds, mode["calib"]) if mode["calib"] else calib_ds
         val_ds = subset(val_ds, mode["val"]) if mode["val"] else val_ds
         entry = _bench_model(model_path.stem, loaded, calib_ds, val_ds, synthetic=False, calib_path=calib_path,
-                             settings=settings, log=log,
+                             settings=settings, log=log, progress=progress,
                              memory_extra={"base": mode["calib"]} if mode["calib"] else {})
         if val_path is None:
             for fam in entry["families"]:
                 fam["notes"].append("no --val: scored on the calibration set")
         results["models"].append(entry)
     if scale:
-        results["models"].append(_bench_scale(folder, settings, quick, log))
+        results["models"].append(_bench_scale(folder, settings, quick, log, progress))
     results["targets"] = check_targets(results)
     _write_json(results, folder / "results.json", log)
     write_markdown(results, folder / "results.md")
@@ -282,7 +298,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
     return folder
 
 
-def _bench_scale(folder: Path, settings: dict, quick: bool, log) -> dict:
+def _bench_scale(folder: Path, settings: dict, quick: bool, log, progress=None) -> dict:
     """Generate the synthetic scale model into the results folder and benchmark it."""
     from swapper.bench.scale_model import build_scale_model, scale_data
 
@@ -300,7 +316,7 @@ def _bench_scale(folder: Path, settings: dict, quick: bool, log) -> dict:
     # 16x of the full 256 would stream ~20 GB of recorded tensors through the disk cache.
     extra = {"synthetic_n": cfg["calib"], "synthetic_seed": cfg["calib_seed"], "base": cfg["memory_base"]}
     return _bench_model("scale_16x_conv_silu", load_model(path), calib, val, synthetic=True, calib_path=None,
-                        settings=settings, log=log, memory_extra=extra)
+                        settings=settings, log=log, memory_extra=extra, progress=progress)
 
 
 def _write_json(results: dict, path: Path, log) -> None:

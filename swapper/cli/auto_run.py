@@ -16,8 +16,9 @@ from swapper import api
 from swapper.autoplan import auto_swap
 from swapper.check.gate import GateRule, preflight
 from swapper.cli.run import print_check, progress_for, record_in_model
-from swapper.core.model_io import atomic_write_bytes, check_output_path, load_model, save_model
-from swapper.errors import EXIT_OK, EXIT_REJECTED
+from swapper.core.files import check_report_dir
+from swapper.core.model_io import atomic_write_bytes, check_output_path, load_model, save_model, saved_size
+from swapper.errors import EXIT_OK, EXIT_REJECTED, BadDataError, CannotJudge, SwapperError
 from swapper.options import SwapOptions
 from swapper.report.build import site_rows, write_report
 from swapper.report.paths import default_report_dir
@@ -45,7 +46,8 @@ def run_sweep(model: Path, *, calib, val, rule: GateRule, options: SwapOptions, 
     """`swapper sweep`: the sweep's table (or its JSON on stdout), the JSON file and the Pareto plot."""
     loaded = load_model(model)
     out = Path(output) if output is not None else default_report_dir(Path(model)) / "sweep.json"
-    check_output_path(out, inputs=(Path(model),))
+    check_output_path(out, inputs=[("the input model", Path(model)), ("the calibration set", _path_of(calib)),
+                                   ("the validation set", _path_of(val))])
     val_ds = api.load_data(val, loaded, strict=strict_data)
     preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
     payload = api.sweep(loaded, calib=calib, val=val, rule=rule, options=options, settings=settings,
@@ -68,20 +70,33 @@ def run_sweep(model: Path, *, calib, val, rule: GateRule, options: SwapOptions, 
 
 def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, options: SwapOptions,
                   settings: SweepSettings, console=None, sweep_file: Path | None = None, force: bool = False,
-                  report: Path | None = None, strict_data: bool = False) -> int:
+                  report: Path | None = None, strict_data: bool = False, latency_runs: int = 10) -> int:
     """`swapper swap --plan auto`: the fastest plan within the gate, verified; nothing written when nothing pays."""
     path = Path(model)
-    check_output_path(output, inputs=(path,))
+    inputs = [("the input model", path), ("the calibration set", _path_of(calib)),
+              ("the validation set", _path_of(val))]
+    # before any work: a bad output path or report folder is bad input, found in a second, not after the sweep
+    folder = report or default_report_dir(path)
+    check_output_path(output, inputs=inputs)
+    check_report_dir(folder, inputs=inputs + [("the output model", output)])
     loaded = load_model(path)
+    inputs += loaded.files()
+    check_output_path(output, inputs=inputs)  # its external data files are known now
+    check_report_dir(folder, inputs=inputs + [("the output model", output)])
     calib_ds = api.load_data(calib, loaded, strict=strict_data)
     val_ds = api.load_data(val, loaded, strict=strict_data)
-    preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
+    try:
+        preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
+    except SwapperError as exc:
+        raise (exc.naming(_path_of(val)) if isinstance(exc, (BadDataError, CannotJudge)) else exc.naming(path)) \
+            from None
     given = read_sweep(sweep_file) if sweep_file is not None else None
     calib_in = calib if given is not None else _source_or_data(calib, calib_ds)
     val_in = val if given is not None else _source_or_data(val, val_ds)
     auto = auto_swap(loaded, calib=calib_in if given is None else calib_ds,
                          val=val_in if given is None else val_ds, rule=rule, options=options, settings=settings,
-                         sweep_payload=given, sweep_path=sweep_file, progress=progress_for(console))
+                         sweep_payload=given, sweep_path=sweep_file, progress=progress_for(console),
+                         latency_runs=latency_runs)
     target = options.target or "no target"
     chosen = {s["chosen"] for s in auto.sites if s["chosen"]}
     if console is not None:
@@ -98,13 +113,14 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
     if auto.swap is None:
         if console is not None:
             console.print(f"nothing pays on {target} within the budget: {auto.reason}; no model written",
-                          highlight=False)
+                          highlight=False, markup=False)
         return EXIT_OK
     result, check, timing = auto.swap, auto.check, auto.timing
     candidate = result.candidate
     if timing is not None:
         record_in_model(candidate, "swapper.target", timing.record())  # how it was timed; figures in the report
-        check.latency["target"] = timing.to_dict()
+        if check.latency is not None:
+            check.latency["target"] = timing.to_dict()
     record_in_model(candidate, "swapper.verdict", check.verdict.to_dict())
     if console is not None:
         console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
@@ -115,14 +131,15 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
                           + ", ".join(f"{op} ×{k}" for op, k in auto.lacking.items()), highlight=False)
         print_check(console, check)
     approved = check.verdict.approved
+    check.size["original"]["bytes"] = loaded.file_bytes
     if approved or force:
-        save_model(candidate, output, inputs=(path,))
+        save_model(candidate, output, inputs=inputs)
+        check.size["candidate"]["bytes"] = saved_size(output)  # what was written, external data included
         if console is not None:
             console.print(f"wrote {output}" + ("" if approved else " (rejected; written because of --force)"),
-                          highlight=False)
+                          highlight=False, markup=False)
     elif console is not None:
-        console.print(f"not written: {output} (rejected)", highlight=False)
-    folder = report or default_report_dir(path)
+        console.print(f"not written: {output} (rejected)", highlight=False, markup=False)
     paths = write_report(folder, original=loaded, candidate_path=output if (approved or force) else None,
                          candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib,
                          search=search_entry(auto, auto.sweep))
@@ -130,8 +147,14 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
     write_sweep(auto.sweep, folder / "sweep.json")
     _plot_next_to(auto.sweep, folder / "sweep.json", None, chosen)
     if console is not None:
-        console.print(f"report: {paths[1]}", highlight=False)
+        console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if approved else EXIT_REJECTED
+
+
+def _path_of(source) -> Path | None:
+    """The file or folder behind a data source (None for data given as arrays)."""
+    where = getattr(source, "path", source)
+    return Path(where) if isinstance(where, (str, Path)) else None
 
 
 def _source_or_data(source, dataset):

@@ -18,14 +18,17 @@ from __future__ import annotations
 import logging
 from pathlib import Path
 
+from rich.text import Text
+
 from swapper.check.gate import Budget, GateRule
 from swapper.cli.auto_run import run_auto_swap
 from swapper.cli.run import run_swap
-from swapper.data.source import DataSource
-from swapper.options import SwapOptions
+from swapper.core.files import ensure_folder
 from swapper.core.model_io import load_model
 from swapper.data.demo import DEMO_DIR, demo_inputs
+from swapper.data.source import DataSource
 from swapper.errors import BadDataError, SwapperError, first_line
+from swapper.options import SwapOptions
 from swapper.report.paths import utc_stamp
 from swapper.report.tables import sites_table
 from swapper.scan.sites import find_sites
@@ -50,8 +53,7 @@ def run_demo(out_dir: Path, *, console=None, models_dir: Path = DEMO_DIR, budget
     and afterwards one BadDataError lists every such model (exit 2).
     """
     todo = demo_inputs(models_dir)
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
+    out_dir = ensure_folder(out_dir, "demo output folder")
     stamp = utc_stamp()
     summary = []
     failed = []
@@ -59,7 +61,7 @@ def run_demo(out_dir: Path, *, console=None, models_dir: Path = DEMO_DIR, budget
         loaded = load_model(model)
         sites = find_sites(loaded.model)
         if console is not None:
-            console.rule(f"{model.name}")
+            console.rule(Text(model.name))
             console.print(sites_table(sites, f"{model.name}: {len(sites)} activation sites"))
         output = out_dir / f"{model.stem}.swapped.onnx"
         report = out_dir / f"{model.stem}-{stamp}"
@@ -83,7 +85,7 @@ def run_demo(out_dir: Path, *, console=None, models_dir: Path = DEMO_DIR, budget
     if console is not None:
         console.rule("summary")
         for name, verdict, detail in summary:
-            console.print(f"{name:32s} {verdict:9s} {detail}", highlight=False)
+            console.print(f"{name:32s} {verdict:9s} {detail}", highlight=False, markup=False)
     if failed:
         raise BadDataError(f"could not run {', '.join(failed)} (see the summary above)", models_dir)
     return 0

@@ -27,9 +27,12 @@ when a part did not run):
   NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
   ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
   runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
-  ``target`` (see ``swapper.api.check``); ``size``: per model
-  ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
-  figures for quantized versions or null. All null when no validation ran.
+  ``target`` (see ``swapper.api.check``), or null when latency was not measured
+  (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
+  initializer_bytes}`` (``bytes``: the model file as written or read, external data
+  files included; a candidate that was not written counts its serialised bytes);
+  ``int8``: the same figures for quantized versions or null. All null when no
+  validation ran.
 - ``search``: the automatic plan (``swap --plan auto``), null otherwise:
   ``{"target": {"name", "costs_from", "how"}`` (how savings were obtained:
   measured in context on the target / declared by the profile),
@@ -61,8 +64,8 @@ from pathlib import Path
 
 import numpy as np
 
+from swapper.core.files import ensure_folder
 from swapper.core.model_io import atomic_write_bytes, sha256_file
-from swapper.errors import BadOutputError
 from swapper.report.html import render_html
 
 logger = logging.getLogger(__name__)
@@ -105,8 +108,9 @@ def _file_entry(path) -> dict | None:
         import hashlib
 
         from swapper.data.images import holds_images, list_images
+        from swapper.data.npy_files import npy_folder_files
 
-        files, classes = sorted(p.glob("*.npy")), None
+        files, classes = npy_folder_files(p), None  # exactly the files the data set was read from
         if not files and holds_images(p):
             files, _, classes = list_images(p)
         digest = hashlib.sha256()
@@ -203,11 +207,7 @@ def validate_report(payload: dict) -> None:
 
 def write_report(folder, **parts) -> tuple[Path, Path]:
     """Write report.json and report.html into ``folder`` (created); return both paths."""
-    folder = Path(folder)
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise BadOutputError(f"cannot create report folder: {exc.strerror or exc}", folder) from None
+    folder = ensure_folder(folder, "report folder")
     payload = build_report(**parts)
     validate_report(payload)
     json_path = atomic_write_bytes(json.dumps(payload, indent=2, allow_nan=False).encode(), folder / "report.json")

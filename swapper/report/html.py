@@ -131,17 +131,22 @@ def render_html(payload: dict) -> str:
                           f"{num(errs.get('max_abs'))}, RMSE {num(errs.get('rmse'))}, "
                           f"cosine over all values {num(errs.get('cosine'), '.6f')}"])
         lat, size = payload["latency"], payload["size"]
-        speed = _table(["", "original", "candidate"], [
-            ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],
-            ["p10–p90 (ms)", f"{num(lat['original']['p10_ms'])}–{num(lat['original']['p90_ms'])}",
-             f"{num(lat['candidate']['p10_ms'])}–{num(lat['candidate']['p90_ms'])}"],
-            ["latency ratio", "", f"{lat['ratio']:.3f}"],
-            ["serialized bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
-            ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]],
-        ], numeric={1, 2})
+        rows = [["file bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
+                ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]]]
+        if lat is None:
+            timing = "latency not measured (--no-latency)"
+        else:
+            rows = [
+                ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],
+                ["p10–p90 (ms)", f"{num(lat['original']['p10_ms'])}–{num(lat['original']['p90_ms'])}",
+                 f"{num(lat['candidate']['p10_ms'])}–{num(lat['candidate']['p90_ms'])}"],
+                ["latency ratio", "", f"{lat['ratio']:.3f}"],
+            ] + rows
+            timing = (f"batch {lat['batch_size']}, {lat['threads']} thread(s), median of "
+                      f"{lat['original']['runs']} interleaved runs")
+        speed = _table(["", "original", "candidate"], rows, numeric={1, 2})
         parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)
-                     + f"</div><div>{speed}<small>batch {lat['batch_size']}, {lat['threads']} thread(s), "
-                       f"median of {lat['original']['runs']} interleaved runs</small></div></div>")
+                     + f"</div><div>{speed}<small>{timing}</small></div></div>")
         ops = sorted(set(size["original"]["op_counts"]) | set(size["candidate"]["op_counts"]))
         parts.append("<h2>Operators</h2>" + _table(
             ["op", "original", "candidate"],
@@ -151,7 +156,9 @@ def render_html(payload: dict) -> str:
             q = payload["int8"]
             parts.append("<h2>int8 view</h2>" + _table(["", "original", "candidate"], [
                 ["top-1 accuracy", pct(q["comparison"].get("top1_original")), pct(q["comparison"].get("top1_candidate"))],
-                ["median latency (ms)", num(q["latency"]["original"]["median_ms"]), num(q["latency"]["candidate"]["median_ms"])],
+                ["median latency (ms)", *((num(q["latency"]["original"]["median_ms"]),
+                                           num(q["latency"]["candidate"]["median_ms"])) if q["latency"]
+                                          else ("not measured", "not measured"))],
                 ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
             ]) + f"<small>{_e(q['quantization'])}</small>")
             for w in q.get("lossy_weights") or []:

@@ -1,14 +1,20 @@
-"""Rich tables for the terminal: what scan found, what swap did."""
+"""Rich tables for the terminal: what scan found, what swap did.
+
+Titles and cells are :class:`rich.text.Text`, so names and paths taken from the
+model or the command line (``[/b]model.onnx``, a node called ``[red]``) are shown
+as written, never read as console markup.
+"""
 from __future__ import annotations
 
 from rich.table import Table
+from rich.text import Text
 
 from swapper.plan.plan import Plan
 from swapper.scan.sites import Site
 
 
 def sites_table(sites: list[Site], title: str) -> Table:
-    table = Table(title=title, title_justify="left")
+    table = Table(title=Text(title), title_justify="left")
     for col in ("id", "function", "form", "role", "channels", "shape", "producer → consumers", "cost share"):
         table.add_column(col, justify="right" if col in ("channels", "cost share") else "left")
     for s in sites:
@@ -17,8 +23,9 @@ def sites_table(sites: list[Site], title: str) -> Table:
         role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
         if s.body and s.supported:  # where a body site sits (an unswappable one's reason names its body)
             role += " in " + " / ".join(f"{node}.{attribute}" for node, attribute in s.body)
-        table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
-                      shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
+        cells = (s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
+                 shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
+        table.add_row(*(Text(str(c)) for c in cells))
     return table
 
 
@@ -28,7 +35,7 @@ def swap_table(rows: list[dict]) -> Table:
     for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted"):
         table.add_column(col)
     for r in rows:
-        table.add_row(
+        cells = (
             r["site_id"],
             f"{r['source']} → {r['target']}" + (f" ({r['form']})" if r.get("form") else ""),
             *(r["placement"].get(p, "-") for p in "abcd"),
@@ -36,6 +43,7 @@ def swap_table(rows: list[dict]) -> Table:
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
             "-" if r["mse_fit"] is None else f"{r['mse_fit']:.3g}",
         )
+        table.add_row(*(Text(str(c)) for c in cells))
     return table
 
 

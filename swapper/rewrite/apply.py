@@ -277,6 +277,13 @@ def _form(swap: SiteSwap, opset: int) -> Form:
     return form
 
 
+def _site_dtype(index: GraphIndex, site: Site) -> np.dtype:
+    """The float type the site computes in (float32 when unknown): its emitted constants take it."""
+    elem = index.dtypes.get(site.input, onnx.TensorProto.FLOAT)
+    dtype = np.dtype(helper.tensor_dtype_to_np_dtype(elem)) if elem else np.dtype(np.float32)
+    return dtype if dtype.kind == "f" else np.dtype(np.float32)
+
+
 # ------------------------------------------------------------------ public
 def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteResult:
     """A copy of ``model`` with every site of ``plan`` replaced by its surrogate, parameters placed."""
@@ -306,7 +313,7 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
         site = by_id[swap.site_id]
         if swap.source != site.function:
             raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
-        em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken)
+        em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken, dtype=_site_dtype(index, site))
         records.append(_swap_site(index, weights, site, swap, em, analyses.get(site.id)))
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
