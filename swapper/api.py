@@ -99,7 +99,7 @@ def swap(
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
         t0 = time.perf_counter()
         run = {"batch_size": options.batch_size, "seed": options.seed, "threads": options.threads,
-               "progress": progress}
+               "progress": progress, "mask_input": options.mask_input}
         if options.cache_bytes() is not None:
             run["cache_bytes"] = options.cache_bytes()
         calibration = calibrate(loaded.model, sites, plan, dataset, mode=options.mode,

@@ -38,7 +38,9 @@ from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads, row_spans
 from swapper.core.surgery import copy_model
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
-from swapper.data.dataset import Dataset, input_batches
+from swapper.data.dataset import Dataset, input_batches, input_specs
+from swapper.calibrate.tokens import is_token_site, observe, token_selection
+from swapper.data.token_mask import AUTO, TOKEN_CAP, TokenSelection
 from swapper.fit.observe import ChannelObserver
 from swapper.fit.site import fit_channels
 from swapper.options import MODES, check_mode  # noqa: F401 (MODES: re-exported for callers of this module)
@@ -72,10 +74,12 @@ class CalibrationResult:
     timings: dict[str, float]  # seconds per phase
     samples: int
     cache: dict = field(default_factory=dict)  # bytes the tensor cache wrote to disk and held in RAM
+    tokens: str = ""  # which attention mask the statistics of token-shaped sites honoured, and how many tokens
 
     def to_dict(self) -> dict:
         return {
             "samples": self.samples,
+            "tokens": self.tokens,
             "timings_s": {k: round(v, 4) for k, v in self.timings.items()},
             "sites": [s.__dict__ for s in self.sites],
         }
@@ -133,9 +137,9 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     return out
 
 
-def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
-    """An empty observer shaped for ``swap``'s channels."""
-    axis = swap.channel_axis if swap.channels > 1 else None
+def observer_for(swap: SiteSwap, seed: int, reservoir: int, rows: bool = False) -> ChannelObserver:
+    """An empty observer shaped for ``swap``'s channels; ``rows``: it is fed [tokens, channels] rows."""
+    axis = (-1 if rows else swap.channel_axis) if swap.channels > 1 else None
     return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
 
 
@@ -234,11 +238,16 @@ def calibrate(
     threads: int = 1,
     progress=None,
     cache_bytes: int = MEMORY_BUDGET,
+    mask_input: str = AUTO,
+    token_cap: int = TOKEN_CAP,
 ) -> CalibrationResult:
     """Fit every swap of ``plan`` on ``dataset``; the fitted swaps come back as ``result.plan``, a new Plan.
 
     Neither ``original`` nor ``plan`` is mutated. ``cache_bytes``: recorded
-    tensors kept in RAM up to this size, on disk beyond it.
+    tensors kept in RAM up to this size, on disk beyond it. ``mask_input``:
+    "auto", "none" or the attention-mask input whose zero positions token-shaped
+    sites' statistics leave out (:mod:`swapper.data.token_mask`); ``token_cap``:
+    at most this many token positions are read, a seeded uniform sample beyond.
     """
     check_mode(mode)
     progress = progress or Silent()
@@ -252,6 +261,9 @@ def calibrate(
     if mode == "local":
         levels = {k: 1 for k in levels}
     sched = _schedule(index, by_id, levels)
+    tokens, tokens_note = token_selection(original, [by_id[sid] for sid in swaps], dataset, mask_input, seed,
+                                          token_cap)
+    logger.info("%s", tokens_note)
     results: dict[str, SiteCalibration] = {}
     n_batches = -(-dataset.n // batch_size)
 
@@ -279,8 +291,10 @@ def calibrate(
             shifts = {}
             with progress.task(f"level {level}: fitting {len(group)} site(s)", len(group)) as advance:
                 for sid in group:
-                    shifts[sid] = _fit_site(by_id[sid], swaps[sid], level, sched, cache, dataset.n, batch_size,
-                                            seed, reservoir, bias_correction, results, timings)
+                    site = by_id[sid]
+                    shifts[sid] = _fit_site(site, swaps[sid], level, sched, cache, dataset.n, batch_size, seed,
+                                            reservoir, bias_correction, results, timings,
+                                            tokens if is_token_site(site) else None)
                     advance(1)
 
             if bias_correction:
@@ -297,18 +311,23 @@ def calibrate(
     logger.info("calibration cache: %s", stats)
     ordered = [results[sid] for sid in swaps if sid in results]  # plan order
     return CalibrationResult(plan=fitted, model=work, sites=ordered, timings=timings, samples=dataset.n,
-                             cache=stats)
+                             cache=stats, tokens=tokens_note)
 
 
 def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,
-              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict):
-    """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
+              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict,
+              tokens: TokenSelection | None = None):
+    """Observe, fit and record one site's swapped output; returns its output shift sum (or None).
+
+    With ``tokens`` the observer and the shift read only the selected token positions.
+    """
     t0 = time.perf_counter()
     sid, x, teacher, student = site.id, sched.inputs[site.id], sched.teacher[site.id], sched.student[site.id]
-    observer = observer_for(swap, seed, reservoir)
+    observer = observer_for(swap, seed, reservoir, rows=tokens is not None)
     for start in range(0, n, batch_size):
         stop = min(start + batch_size, n)
-        observer.update(cache.read(x, start, stop), cache.read(teacher, start, stop))
+        keep = None if tokens is None else tokens.keep(start, stop)
+        observe(observer, cache.read(x, start, stop), cache.read(teacher, start, stop), keep)
     mse_start, mse_fit = fit_swap(swap, observer)
     seen = observer.compute()
     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
@@ -323,7 +342,7 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
         cache.append(student, out, owned=True)
         if delta is not None:
             t1 = time.perf_counter()
-            delta.add(out, cache.read(teacher, start, stop))
+            delta.add(out, cache.read(teacher, start, stop), None if tokens is None else tokens.keep(start, stop))
             t_shift += time.perf_counter() - t1
     timings["fit_s"] += time.perf_counter() - t0 - t_shift
     timings["bias_correction_s"] += t_shift

@@ -112,6 +112,7 @@ def swap(
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
     refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,
+    mask_input: Annotated[str, typer.Option("--mask-input", help="Attention-mask input whose zero positions token sites' statistics skip: auto (found by name, dtype, shape), none, or the input's name.")] = "auto",
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
     budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
@@ -144,7 +145,7 @@ def swap(
         options = SwapOptions(
             to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
             fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
-            batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            mask_input=mask_input, batch_size=batch_size, threads=threads, cache_mb=cache_mb,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
                         strict_data=strict_data, force=force, int8=int8, report=report)

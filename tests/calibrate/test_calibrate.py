@@ -57,8 +57,8 @@ def spy(monkeypatch):
     seen = {"x": {}, "held": {}, "held_bytes": {}, "observers": {}, "caches": []}
     real = cal.observer_for
 
-    def observer(swap, seed, reservoir):
-        obs = real(swap, seed, reservoir)
+    def observer(swap, seed, reservoir, rows=False):
+        obs = real(swap, seed, reservoir, rows)
         sid = swap.site_id
         seen["x"][sid], seen["held"][sid], seen["held_bytes"][sid] = [], [], []
         seen["observers"][sid] = obs
