@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+ROWS = 4096  # rows widened to float64 at a time (4096 × 1537 columns: 50 MB)
 # λ / mean(diag XᵀX); the smallest is "almost plain least squares"
 DEFAULT_FACTORS = (1e-8, 1e-6, 1e-4, 1e-3, 1e-2, 3e-2, 1e-1, 3e-1, 1.0, 10.0, 100.0)
 
@@ -29,15 +30,24 @@ class FoldedGram:
         self.parts = [GramAccumulator(self.dim) for _ in range(folds)]
 
     def update(self, X: np.ndarray, Y: np.ndarray, fold_of_row: np.ndarray) -> None:
-        """Add rows ``X`` (n, inputs) with targets ``Y`` (n, outputs); ``fold_of_row`` (n,) ints."""
-        Xa = np.empty((X.shape[0], self.dim))
-        Xa[:, :-1] = X
-        Xa[:, -1] = 1.0
-        Y = np.asarray(Y, dtype=np.float64)
+        """Add rows ``X`` (n, inputs) with targets ``Y`` (n, outputs); ``fold_of_row`` (n,) ints.
+
+        Rows are widened to float64 ``ROWS`` at a time, fold by fold (one
+        stable sort of the rows by fold), so a batch of many tokens never
+        exists as one float64 copy: memory stays at a block, whatever the batch.
+        """
+        X, Y = np.asarray(X), np.asarray(Y)
+        fold_of_row = np.asarray(fold_of_row)
+        order = np.argsort(fold_of_row, kind="stable")
+        bounds = np.searchsorted(fold_of_row[order], np.arange(len(self.parts) + 1))
         for k, part in enumerate(self.parts):
-            rows = np.nonzero(fold_of_row == k)[0]
-            if rows.size:
-                part.update(Xa[rows], Y[rows])
+            rows = order[bounds[k]:bounds[k + 1]]
+            for i in range(0, rows.size, ROWS):
+                block = rows[i:i + ROWS]
+                Xa = np.empty((block.size, self.dim))
+                Xa[:, :-1] = X[block]
+                Xa[:, -1] = 1.0
+                part.update(Xa, np.asarray(Y[block], dtype=np.float64))
 
     def total(self, skip: int | None = None) -> GramAccumulator:
         """All folds merged (except ``skip``)."""
