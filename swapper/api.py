@@ -17,13 +17,18 @@ import onnx
 
 from swapper.calibrate.loop import CalibrationResult, calibrate
 from swapper.core.model_io import LoadedModel, load_model
-from swapper.data.dataset import Dataset, input_specs, load_dataset
+from swapper.data.dataset import Dataset, batches, input_specs, load_dataset
+from swapper.data.images import ImagePrep
+from swapper.data.layout import DataLayout
+from swapper.data.source import DataSource
 from swapper.errors import UsageError
 from swapper.options import SwapOptions
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
+from swapper.scan.shapes import measure_shapes, zero_feeds
 from swapper.scan.sites import Site, find_sites
+from swapper.targets import TargetProfile, load_target
 
 if TYPE_CHECKING:  # refit is imported when asked for (it pulls in the ridge solver)
     from swapper.calibrate.refit import RefitResult
@@ -48,25 +53,76 @@ class SwapResult:
     refit: RefitResult | None = None  # the consumer refit on its own
     options: SwapOptions = field(default_factory=SwapOptions)
     timings: dict[str, float] = field(default_factory=dict)
+    target: TargetProfile | None = None  # the profile the plan was made for (options.target, loaded)
+    base: onnx.ModelProto | None = None  # the model the plan was made on: ``loaded.model`` or its opset conversion
+
+
+def resolve_target(target: str | Path | TargetProfile | None) -> TargetProfile | None:
+    """A profile from a built-in name or a .json path (None stays None: no target)."""
+    if target is None or isinstance(target, TargetProfile):
+        return target
+    return load_target(target)
+
+
+def _sample_batches(data: Dataset | None, model: onnx.ModelProto, batch_size: int, limit: int = 256):
+    """Up to ``limit`` samples of ``data`` as feeds batches, or one random batch when there is no data."""
+    from swapper.check.on_target import random_feeds
+    from swapper.data.dataset import batches
+
+    if data is None:
+        return [random_feeds(model, batch_size)], f"random inputs (batch {batch_size}, no data given)"
+    return [b.feeds for b in batches(data, batch_size, limit=limit)], f"calibration data {data.path.name}"
+
+
+def _converted(loaded: LoadedModel, opset: int | None, calib: Dataset | None, batch_size: int):
+    """(model to plan on, conversion record or None): ``loaded`` moved to ``opset`` and checked, when asked."""
+    if opset is None or opset == loaded.opset:
+        return loaded.model, None
+    from swapper.core.opset import check_conversion, convert_opset
+
+    converted = convert_opset(loaded.model, opset)
+    batches, where = _sample_batches(calib, loaded.model, batch_size)
+    return converted, check_conversion(loaded.model, converted, opset, batches, feeds_from=where)
 
 
 def _as_loaded(model: str | Path | LoadedModel) -> LoadedModel:
     return model if isinstance(model, LoadedModel) else load_model(model)
 
 
-def scan(model: str | Path | LoadedModel) -> ScanResult:
-    """Find every activation site of ``model``."""
+def scan(model: str | Path | LoadedModel, *, calib: str | Path | DataSource | Dataset | None = None,
+         input_shapes: dict[str, tuple[int, ...]] | None = None) -> ScanResult:
+    """Find every activation site of ``model``.
+
+    Cost shares need concrete sizes: with ``calib`` (a data set) the shapes one sample produces,
+    else with ``input_shapes`` ({input: shape}) those of zero inputs of that shape; without
+    either, sites whose size is symbolic keep an unknown cost (None).
+    """
     loaded = _as_loaded(model)
-    return ScanResult(loaded=loaded, sites=find_sites(loaded.model))
+    sites = find_sites(loaded.model)
+    feeds = None
+    if calib is not None:
+        dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
+        feeds = next(batches(dataset, 1)).feeds
+    elif input_shapes:
+        feeds = zero_feeds(loaded.model, input_shapes)
+    if feeds is not None:
+        shapes = measure_shapes(loaded.model, [s.input for s in sites], feeds)
+        sites = find_sites(loaded.model, shapes=shapes)
+    return ScanResult(loaded=loaded, sites=sites)
 
 
-def load_data(path: str | Path, loaded: LoadedModel, *, require_labels: bool = False,
-              strict: bool = False) -> Dataset:
+def load_data(path: str | Path | DataSource, loaded: LoadedModel, *, require_labels: bool = False,
+              strict: bool = False, layout: DataLayout | None = None, images: ImagePrep | None = None) -> Dataset:
     """Read a calibration or validation set and check it against the model's inputs.
 
     Arrays the model does not read are left out and named in ``Dataset.notes``; ``strict`` refuses them.
+    ``path`` may be a :class:`~swapper.data.source.DataSource` carrying its layout and image
+    preprocessing; ``layout`` / ``images`` given here take precedence.
     """
-    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict)
+    if isinstance(path, DataSource):
+        layout, images, path = layout or path.layout, images or path.images, path.path
+    return load_dataset(path, input_specs(loaded.model), require_labels=require_labels, strict=strict,
+                        layout=layout, images=images, model=loaded.model)
 
 
 def swap(
@@ -83,31 +139,45 @@ def swap(
     ``settings`` are SwapOptions fields as keywords (``to="relu"``,
     ``mode="local"``, ...), a shorthand that overrides the matching fields of
     ``options``. The input model is never changed.
+
+    ``options.target`` (default ``ort-cpu``, a built-in name or a profile .json
+    path; None: no target, registry defaults): sites, surrogates and forms are
+    chosen to pay there (:mod:`swapper.plan.choose`). ``options.opset``: the
+    model is converted to that opset first, checked and compared on ``calib``
+    (recorded in ``plan.conversion``). ``options.choices`` pins single sites.
     """
     options = options or SwapOptions()  # checked when built: a wrong option fails even with nothing to calibrate
     if settings:
         options = options.replace(**settings)
     progress = progress or Silent()
     loaded = _as_loaded(model)
-    sites = find_sites(loaded.model)
-    t0 = time.perf_counter()
-    plan = make_plan(loaded.model, sites, **options.plan_settings())
-    timings = {"plan_s": time.perf_counter() - t0}
-    base = loaded.model
-    calibration = refit = None
-    if calib is not None and plan.swaps:
+    profile = resolve_target(options.target)
+    if options.opset is not None and profile is not None and not profile.accepts_opset(options.opset):
+        raise UsageError(f"--opset {options.opset}: {profile.name} accepts opsets "
+                         f"{profile.opset_min}..{profile.opset_max}")
+    dataset = None
+    if calib is not None:
         dataset = calib if isinstance(calib, Dataset) else load_data(calib, loaded)
+    t0 = time.perf_counter()
+    work, conversion = _converted(loaded, options.opset, dataset, options.batch_size)
+    sites = find_sites(work)
+    plan = make_plan(work, sites, **options.plan_settings(), target=profile)
+    plan.conversion = conversion
+    timings = {"plan_s": time.perf_counter() - t0}
+    base = work
+    calibration = refit = None
+    if dataset is not None and plan.swaps:
         t0 = time.perf_counter()
         run = {"batch_size": options.batch_size, "seed": options.seed, "threads": options.threads,
                "progress": progress, "mask_input": options.mask_input}
         if options.cache_bytes() is not None:
             run["cache_bytes"] = options.cache_bytes()
-        calibration = calibrate(loaded.model, sites, plan, dataset, mode=options.mode,
+        calibration = calibrate(work, sites, plan, dataset, mode=options.mode,
                                 bias_correction=options.bias_correction, **run)
         if options.refit_consumers:
             from swapper.calibrate.refit import refit_consumers
 
-            refit = refit_consumers(loaded.model, calibration.model, sites, calibration.plan, dataset, **run)
+            refit = refit_consumers(work, calibration.model, sites, calibration.plan, dataset, **run)
             calibration = refit.apply_to(calibration)
         plan, base = calibration.plan, calibration.model
         timings["calibrate_s"] = time.perf_counter() - t0
@@ -117,7 +187,26 @@ def swap(
     result = rewrite(base, sites, plan)
     timings["rewrite_s"] = time.perf_counter() - t0
     return SwapResult(loaded=loaded, sites=sites, plan=plan, candidate=result.model, rewrite=result,
-                      calibration=calibration, refit=refit, options=options, timings=timings)
+                      calibration=calibration, refit=refit, options=options, timings=timings, target=profile,
+                      base=work)
+
+
+def time_on_target(original: onnx.ModelProto, candidate: onnx.ModelProto,
+                   target: str | Path | TargetProfile, *, calib: Dataset | None = None, batch_size: int = 64,
+                   repeats: int | None = None):
+    """Time ``candidate`` against ``original`` on a measured target (:mod:`swapper.check.on_target`).
+
+    The timed batch is the first ``batch_size`` samples of ``calib`` (random
+    inputs without it); an int8 profile quantizes both models on up to 256
+    samples of it first. Returns a TargetTiming (ratio < 1: the candidate is faster).
+    """
+    from swapper.check import on_target
+
+    profile = resolve_target(target)
+    batches, where = _sample_batches(calib, original, batch_size)
+    extra = {} if repeats is None else {"repeats": repeats}
+    return on_target.time_on_target(original, candidate, profile, batches[0], calib_batches=batches,
+                                    feeds_from=where, **extra)
 
 
 @dataclass
@@ -142,8 +231,15 @@ def check(
     threads: int = 1,
     latency_repeats: int = 30,
     progress=None,
+    target: str | Path | TargetProfile | None = None,
 ) -> CheckResult:
-    """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``."""
+    """Compare ``candidate`` with ``original`` on ``val`` and decide against ``budget``.
+
+    With ``target``, ``latency["target"]`` says how the pair fares there: a
+    measured profile times both at its settings (int8: both quantized on
+    ``calib``, else ``val``); a declared one names the ops of each model it
+    cannot run (:mod:`swapper.check.on_target`).
+    """
     from swapper.check.compare import compare
     from swapper.check.gate import Budget, decide
     from swapper.check.size import model_summary, serialized_size
@@ -159,6 +255,10 @@ def check(
     latency = _timed(sessions, feeds, threads, latency_repeats)
     latency["batch_size"] = int(next(iter(feeds.values())).shape[0])
     latency["threads"] = threads
+    profile = resolve_target(target)
+    if profile is not None:
+        latency["target"] = _on_target(original, candidate, profile, feeds, calib if calib is not None else val,
+                                       batch_size)
     size = {
         "original": {"bytes": serialized_size(original), **model_summary(original)},
         "candidate": {"bytes": serialized_size(candidate), **model_summary(candidate)},
@@ -169,6 +269,23 @@ def check(
                                batch_size=batch_size, threads=threads, repeats=latency_repeats, progress=progress)
     return CheckResult(comparison=comparison, verdict=verdict, budget=budget, latency=latency, size=size,
                        int8=int8_view)
+
+
+def _on_target(original, candidate, profile: TargetProfile, feeds: dict, calib: Dataset, batch_size: int) -> dict:
+    """The ``latency["target"]`` entry of :func:`check` (see there)."""
+    from swapper.check import on_target
+    from swapper.data.dataset import batches
+
+    entry = {"target": profile.name, "costs_from": profile.costs_from,
+             "lacking_ops": {"original": on_target.lacking_ops(original, profile),
+                             "candidate": on_target.lacking_ops(candidate, profile)}}
+    if profile.costs_from != "measured":
+        return entry
+    calib_feeds = [b.feeds for b in batches(calib, batch_size, limit=256)]
+    timing = on_target.time_on_target(original, candidate, profile, feeds, calib_batches=calib_feeds,
+                                      feeds_from="the first validation batch")
+    entry.update(timing.to_dict())
+    return entry
 
 
 def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: int) -> dict:

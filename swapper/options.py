@@ -18,6 +18,8 @@ logger = logging.getLogger(__name__)
 FOLD_POLICIES = ("exact", "nodes", "approximate", "off")
 # Which inputs calibration fits on (see swapper/calibrate/loop.py).
 MODES = ("sequential", "local")
+# The target planned for unless told otherwise (swapper/targets/builtin/ort-cpu.json): never slower there.
+DEFAULT_TARGET = "ort-cpu"
 
 
 def check_fold(fold: str) -> None:
@@ -66,10 +68,20 @@ class SwapOptions:
     batch_size: int = 64
     threads: int = 1
     cache_mb: float | None = None
+    target: str | None = DEFAULT_TARGET
+    opset: int | None = None
+    choices: tuple[tuple[str, str], ...] | None = None
 
     def __post_init__(self) -> None:
         if self.site_ids is not None:  # a list from a caller: stored as a tuple, so the options stay hashable
             object.__setattr__(self, "site_ids", tuple(self.site_ids))
+        if isinstance(self.choices, dict):  # likewise a dict: sorted (site id, choice) pairs
+            object.__setattr__(self, "choices", tuple(sorted((str(k), str(v)) for k, v in self.choices.items())))
+        if self.target is not None:
+            object.__setattr__(self, "target", str(self.target))  # a Path from a caller: its text
+        if self.opset is not None and (isinstance(self.opset, bool) or not isinstance(self.opset, int)
+                                       or self.opset < 1):
+            raise UsageError(f"opset must be a positive integer, got {self.opset!r}")
         check_fold(self.fold)
         check_mode(self.mode)
         if self.batch_size < 1:
@@ -90,10 +102,10 @@ class SwapOptions:
         return replace(self, **changes)
 
     def plan_settings(self) -> dict:
-        """The keywords of ``swapper.plan.plan.make_plan``."""
+        """The keywords of ``swapper.plan.plan.make_plan`` (its ``target`` is the loaded profile, not a name)."""
         return {"to": self.to, "site_ids": list(self.site_ids) if self.site_ids is not None else None,
                 "only": self.only, "include_gates": self.include_gates, "include_outputs": self.include_outputs,
-                "fold": self.fold}
+                "fold": self.fold, "choices": dict(self.choices) if self.choices else None}
 
     def cache_bytes(self) -> int | None:
         """``cache_mb`` in bytes, or None for the cache's default budget."""

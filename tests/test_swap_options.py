@@ -49,6 +49,7 @@ def test_words_and_defaults():
     o = SwapOptions()
     assert (o.fold, o.mode, o.bias_correction, o.refit_consumers, o.batch_size, o.threads, o.seed) == \
         ("exact", "sequential", True, False, 64, 1, 0)
+    assert (o.target, o.opset, o.choices) == ("ort-cpu", None, None)  # README "Targets": ort-cpu by default
     assert o.cache_bytes() is None and SwapOptions(cache_mb=1.5).cache_bytes() == 3 << 19
 
 
@@ -60,6 +61,13 @@ def test_frozen_hashable_and_replace_checks_names():
     with pytest.raises(TypeError, match="unknown swap option"):
         o.replace(moed="local")
     assert o.replace(mode="local").mode == "local" and o.mode == "sequential"
+    # per-site choices come as a dict and are kept as sorted pairs, so the options stay hashable
+    pinned = SwapOptions(choices={"s2": "relu", "s1": "hard_swish:Mul-Clip"})
+    assert pinned.choices == (("s1", "hard_swish:Mul-Clip"), ("s2", "relu")) and hash(pinned)
+    assert pinned.plan_settings()["choices"] == {"s1": "hard_swish:Mul-Clip", "s2": "relu"}
+    assert SwapOptions(target=Path("board.json")).target == "board.json"
+    with pytest.raises(UsageError, match="opset must be a positive integer"):
+        SwapOptions(opset=0)
 
 
 @needs_demo

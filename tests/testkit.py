@@ -146,6 +146,24 @@ def conv_tanh(tail, tail_inits, outputs, *, extra_inputs=(), hw: int = 6, channe
                        inits + list(tail_inits), infer=True)
 
 
+# ------------------------------------------------------------ timing without a clock
+def fixed_timer(ratio: float):
+    """A stand-in for swapper.check.latency.measure_latency (same call): the model named "original" takes
+    1 ms, every other ``ratio`` ms (median, p10 and p90 alike), whatever the models are, so no test depends
+    on the machine's speed. ``timer.calls`` records each call's models, feeds and settings."""
+    from swapper.check.latency import LatencyStats
+
+    calls = []
+
+    def timer(models, feeds, **settings):
+        calls.append({"models": dict(models), "feeds": dict(feeds), **settings})
+        runs = settings.get("repeats", 30)
+        return {name: LatencyStats(*(3 * [1.0 if name == "original" else ratio]), runs) for name in sorted(models)}
+
+    timer.calls = calls
+    return timer
+
+
 # ------------------------------------------------------------ running models
 def run(model, feeds: dict[str, np.ndarray], outputs: list[str] | None = None) -> list[np.ndarray]:
     """``model`` (a ModelProto, its bytes or a path) run by onnxruntime on the CPU, one thread.

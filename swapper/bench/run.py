@@ -4,7 +4,7 @@ Transformation: models + calibration/validation sets (or the bundled demo
 models, plus a generated 16-block scale model) -> ``OUT/<UTC YYYYmmddTHHMMSSZ>/``
 holding ``results.json``, ``results.md`` and, with matplotlib, ``ladder.png``
 and ``speed.png``. Every model is benchmarked per surrogate *family*: the
-default surrogate of each site (named after it when all sites share one, e.g.
+surrogate the target's plan gives each site (named after it when all sites share one, e.g.
 ``hard_swish`` for SiLU/GELU/Mish models; ``default`` otherwise, e.g.
 hard_tanh + hard_sigmoid) and ``relu``. ``--quick`` keeps only the first family.
 
@@ -16,7 +16,8 @@ results.json, schema ``swapper.bench.run/1``:
 - ``settings``: ``command`` (reproduces the run), ``quick``, ``repeats`` (timed
   latency runs), ``batch_size`` (calibration/evaluation batch), ``latency_batches``,
   ``threads`` (1), ``graph_optimization`` ("all"), ``memory_factors``,
-  ``rungs``, ``family_rule``, ``scale`` (generator settings or null).
+  ``rungs``, ``family_rule``, ``target`` (the profile the plans are made for, null:
+  none), ``scale`` (generator settings or null).
 - ``models``: list, one object per model:
   - ``name``, ``path``, ``synthetic`` (bool: the generated scale model),
     ``calib_samples``, ``val_samples``, ``sites`` (ids swapped by the default plan);
@@ -90,6 +91,7 @@ from swapper.core.model_io import (
 from swapper.data.dataset import Dataset, batches, subset
 from swapper.data.demo import DEMO_DIR, demo_inputs
 from swapper.errors import SwapperError, UsageError
+from swapper.options import DEFAULT_TARGET
 from swapper.plan.plan import Plan, make_plan
 from swapper.report.paths import utc_stamp
 
@@ -128,14 +130,14 @@ def families_for(plan: Plan, *, quick: bool) -> list[tuple[str, str | None]]:
 
 
 def _command(models: list[Path], demo: bool, calib, val, out_root: Path, scale: bool, quick: bool,
-             repeats: int) -> str:
+             repeats: int, target: str | None) -> str:
     parts = ["swapper", "bench"] + [str(m) for m in models]
     parts += ["--demo"] if demo else []
     parts += [f"--calib {calib}"] if calib else []
     parts += [f"--val {val}"] if val else []
     parts += [f"--out {out_root}", "--scale" if scale else "--no-scale"]
     parts += ["--quick"] if quick else []
-    parts += [f"--repeats {repeats}"]
+    parts += [f"--repeats {repeats}", f"--target {target or 'none'}"]
     return " ".join(parts)
 
 
@@ -152,7 +154,7 @@ def _folder(out_root: Path) -> tuple[Path, str]:
 def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *, synthetic: bool,
                  calib_path: Path | None, settings: dict, log, memory_extra: dict) -> dict:
     """Every measurement for one model (all families, then memory)."""
-    plan = make_plan(loaded.model, api.scan(loaded).sites)
+    plan = make_plan(loaded.model, api.scan(loaded).sites, target=api.resolve_target(settings["target"]))
     fams = families_for(plan, quick=settings["quick"])
     entry = {"name": name, "path": str(loaded.path), "synthetic": synthetic, "calib_samples": calib.n,
              "val_samples": val.n, "sites": [s.site_id for s in plan.swaps], "families": [], "memory": None}
@@ -170,7 +172,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
     for family, to in fams:
         flog = lambda msg, f=family: log(f"{name} [{f}] {msg}")  # noqa: E731
         run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
-                             family=family_options(to, batch_size=batch, seed=SEED), log=flog)
+                             family=family_options(to, batch_size=batch, seed=SEED, target=settings["target"]),
+                             log=flog)
         fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
                "notes": run.notes}
         entry["families"].append(fam)
@@ -187,7 +190,7 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch, lat_batches=lat_batches,
                     repeats=settings["repeats"], log=flog)
     spec = {"model": str(loaded.path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
-            "to": fams[0][1], **memory_extra}
+            "to": fams[0][1], "target": settings["target"], **memory_extra}
     entry["memory"] = memory_section(spec, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
     entry["memory"]["base_samples"] = memory_extra.get("base") or calib.n
     return entry
@@ -225,19 +228,24 @@ def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None
 
 
 def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path | None, out_root: Path,
-              scale: bool, quick: bool, repeats: int, console=None) -> Path:
-    """Benchmark ``models`` (and/or the demo and scale models); return the results folder."""
+              scale: bool, quick: bool, repeats: int, console=None, target: str | None = DEFAULT_TARGET) -> Path:
+    """Benchmark ``models`` (and/or the demo and scale models); return the results folder.
+
+    ``target`` (a profile name or path; None: no target) decides the default family's surrogates and
+    forms, and every family's forms, as ``swapper swap --target`` does.
+    """
     todo = _inputs(models, demo, calib, val)
     if not todo and not scale:
         raise UsageError("nothing to benchmark: give models, --demo, or --scale")
     mode = QUICK if quick else FULL
     repeats = min(repeats, QUICK["repeats"]) if quick else repeats
     settings = {
-        "command": _command(models, demo, calib, val, out_root, scale, quick, repeats), "quick": quick,
+        "command": _command(models, demo, calib, val, out_root, scale, quick, repeats, target), "quick": quick,
+        "target": target,
         "repeats": repeats, "batch_size": BATCH, "latency_batches": f"1 and min({BATCH}, validation samples)", "threads": 1,
         "graph_optimization": "all", "memory_factors": mode["memory_factors"], "rungs": mode["rungs"],
-        "family_rule": "per-site default surrogate (named after it when all sites share one, else 'default'), "
-                       "then relu" + ("; --quick: first family only" if quick else ""),
+        "family_rule": "per-site surrogate the target's plan chooses (named after it when all sites share one, "
+                       "else 'default'), then relu" + ("; --quick: first family only" if quick else ""),
         "calib_limit": mode["calib"], "val_limit": mode["val"], "seed": SEED, "scale": None,
     }
 

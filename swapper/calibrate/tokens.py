@@ -36,6 +36,9 @@ def token_selection(model: onnx.ModelProto, sites: list[Site], dataset: Dataset,
     name, why = find_mask_input(input_specs(model), mask_input)
     if name is None or not any(is_token_site(s) for s in sites):
         return None, why if name is None else f"{why}; no token-shaped site to mask"
+    if name not in dataset.arrays or dataset.batch_axes.get(name):
+        # a constant feed, or samples along another axis: its positions are not the sites' [batch, tokens]
+        return None, f"{why}; not used: it is not fed as a [samples, tokens] array of the data set"
     selection = TokenSelection.of(dataset, name, cap=cap, seed=seed)
     return selection, f"{why}: {selection.describe()}"
 

@@ -60,6 +60,27 @@ def _split(value: str | None) -> list[str] | None:
     return [v.strip() for v in value.split(",") if v.strip()] if value else None
 
 
+def _target(value: str) -> str | None:
+    """``--target none`` plans without a target (registry defaults, no speed check)."""
+    return None if value.strip().lower() == "none" else value
+
+
+TARGET_HELP = "Target profile: a built-in name (see `swapper targets`) or a .json file; `none` for no target."
+
+
+# Data options shared by every command that reads data (see swapper/data/source.py for the file format).
+DataSpec = Annotated[Optional[Path], typer.Option("--data-spec", help="JSON data description: batch axes, constant inputs, image preprocessing.")]
+BatchAxis = Annotated[Optional[list[str]], typer.Option("--batch-axis", help="NAME=AXIS: the axis of input NAME that counts samples (repeatable).")]
+Constant = Annotated[Optional[list[str]], typer.Option("--constant", help="NAME=VALUE fed unchanged in every batch: a number, numbers a,b,c, zeros, or FILE.npy (repeatable).")]
+Prep = Annotated[Optional[list[str]], typer.Option("--prep", help="KEY=VALUE preprocessing of image folders: size=48x192, resize=stretch|crop|pad, channels=RGB|BGR|gray, layout, scale, mean, std (repeatable).")]
+
+
+def _source(path: Path | None, data_spec, batch_axis, constant, prep):
+    from swapper.data.source import data_source
+
+    return data_source(path, description=data_spec, batch_axes=batch_axis, constants=constant, prep=prep)
+
+
 @app.callback()
 def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debug details.")] = False) -> None:
     logging.basicConfig(level=logging.DEBUG if verbose else logging.WARNING, format="%(name)s: %(message)s")
@@ -69,13 +90,20 @@ def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debu
 def scan(
     model: Annotated[Path, typer.Argument(help="The .onnx model to inspect.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print the inventory as JSON (schema swapper.scan/1).")] = False,
+    calib: Annotated[Optional[Path], typer.Option(help="Data set whose first sample gives concrete sizes for cost shares.")] = None,
+    input_shape: Annotated[Optional[list[str]], typer.Option("--input-shape", help="NAME=1x3x48x320: an input's shape for cost shares (repeatable).")] = None,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """List every activation site: function, role, channels and cost share."""
     from swapper.report.tables import sites_table
+    from swapper.scan.shapes import parse_input_shapes
     from swapper.scan.sites import sites_to_json
 
     try:
-        result = api.scan(model)
+        if calib is not None and input_shape:
+            raise UsageError("--calib and --input-shape exclude each other (both give the sizes for cost shares)")
+        result = api.scan(model, calib=_source(calib, data_spec, batch_axis, constant, prep),
+                          input_shapes=parse_input_shapes(input_shape))
     except SwapperError as exc:
         _fail(exc)
     if as_json:
@@ -85,23 +113,51 @@ def scan(
         out.print(f"{model}: no activation sites found")
         return
     out.print(sites_table(result.sites, f"{model} (opset {result.loaded.opset}): {len(result.sites)} activation sites"))
+    if any(s.cost_share is None for s in result.sites):
+        out.print("cost share ?: sizes are symbolic; give --calib DATA or --input-shape NAME=DIMS", highlight=False)
 
 
 @app.command("functions")
 def list_functions() -> None:
-    """List the functions swapper knows: costly sources and cheap surrogates."""
+    """List the functions swapper knows: costly sources (with their default) and cheap surrogates (with their forms)."""
+    from swapper.functions.forms import forms_of
+
     for name in sorted(functions.REGISTRY):
         fn = functions.REGISTRY[name]
         kind = "surrogate" if fn.is_cheap else "source"
         default = functions.DEFAULT_TARGET.get(name, "")
-        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else ""))
+        forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
+                          for f in forms_of(name)) if fn.is_cheap else ""
+        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
+                  + (f"  forms: {forms}" if forms else ""), highlight=False)
+
+
+@app.command("targets")
+def list_targets(
+    as_json: Annotated[bool, typer.Option("--json", help="Print the profiles as JSON.")] = False,
+) -> None:
+    """List the built-in target profiles: name, precision, where costs come from, opsets, description."""
+    from swapper.targets import builtin_targets, load_target
+
+    try:
+        rows = [load_target(name) for name in builtin_targets()]
+    except SwapperError as exc:
+        _fail(exc)
+    if as_json:
+        sys.stdout.write(json.dumps([{"name": p.name, "precision": p.precision, "costs_from": p.costs_from,
+                                      "opset": {"min": p.opset_min, "max": p.opset_max},
+                                      "description": p.description} for p in rows], indent=2) + "\n")
+        return
+    for p in rows:
+        out.print(f"{p.name:13s} {p.precision:8s} {p.costs_from:9s} opsets {p.opset_min}..{p.opset_max}  "
+                  f"{p.description}", highlight=False)
 
 
 @app.command()
 def swap(
     model: Annotated[Path, typer.Argument(help="The .onnx model to rewrite (never modified).")],
     output: Annotated[Path, typer.Option("--output", "-o", help="Where to write the swapped model.")],
-    calib: Annotated[Optional[Path], typer.Option(help="Calibration set: .npz or a folder of .npy files.")] = None,
+    calib: Annotated[Optional[Path], typer.Option(help="Calibration set: .npz, a folder of .npy files, or a folder of images.")] = None,
     no_calibrate: Annotated[bool, typer.Option("--no-calibrate", help="Write the uncalibrated swap (starting parameters).")] = False,
     to: Annotated[Optional[str], typer.Option(help="Surrogate for every chosen site (default: per function).")] = None,
     sites: Annotated[Optional[str], typer.Option(help="Comma-separated site ids to swap (see `swapper scan`).")] = None,
@@ -122,19 +178,23 @@ def swap(
     min_cosine_p5: MinCosineP5Opt = None,
     min_sqnr: MinSqnrOpt = None,
     strict_data: StrictDataOpt = False,
-    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected (verdict kept in metadata).")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected or not faster on the target (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first (checked and compared; recorded in the report).")] = None,
     seed: Annotated[int, typer.Option(help="Seed for sampling; same inputs + seed = same bytes.")] = 0,
     batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
     threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
     cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
     from swapper.cli.run import run_swap
     from swapper.options import SwapOptions
 
     try:
+        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
@@ -146,6 +206,7 @@ def swap(
             to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
             fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
             mask_input=mask_input, batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            target=_target(target), opset=opset,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
                         strict_data=strict_data, force=force, int8=int8, report=report)
@@ -172,14 +233,18 @@ def check(
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
     batch_size: Annotated[int, typer.Option(min=1)] = 64,
     threads: Annotated[int, typer.Option(min=1)] = 1,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected, 3 cannot judge."""
     from swapper.cli.run import run_check
 
     try:
         rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
-                         calib=calib, report=report, batch_size=batch_size, threads=threads)
+                         calib=calib, report=report, batch_size=batch_size, threads=threads,
+                         target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -209,13 +274,14 @@ def bench(
     scale: Annotated[bool, typer.Option("--scale/--no-scale", help="Include the synthetic 16-block scale model.")] = True,
     quick: Annotated[bool, typer.Option("--quick", help="Few repeats, small data: a smoke run, not a measurement.")] = False,
     repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model for latency.")] = 50,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
     """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
     from swapper.bench.run import run_bench
 
     try:
         folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
-                           quick=quick, repeats=repeats, console=out)
+                           quick=quick, repeats=repeats, console=out, target=_target(target))
     except SwapperError as exc:
         _fail(exc)
     out.print(f"results: {folder}", highlight=False)

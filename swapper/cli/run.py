@@ -22,7 +22,7 @@ from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
 from swapper.report.paths import default_report_dir
-from swapper.report.tables import skipped_lines, swap_table
+from swapper.report.tables import skipped_lines, swap_table, target_lines
 
 logger = logging.getLogger(__name__)
 
@@ -88,6 +88,14 @@ def _print_check(console, result: api.CheckResult) -> None:
     s = result.size
     console.print(f"  nodes {s['original']['nodes']} → {s['candidate']['nodes']}, bytes "
                   f"{s['original']['bytes']} → {s['candidate']['bytes']}", highlight=False)
+    on = result.latency.get("target")
+    if on is not None:
+        if "ratio" in on:
+            console.print(f"  on {on['target']}: candidate {on['ratio']:.3f}× the original", highlight=False)
+        lacking = on.get("lacking_ops", {}).get("candidate")
+        if lacking:
+            console.print(f"  ops {on['target']} cannot run, still in the candidate: "
+                          + ", ".join(f"{op} ×{k}" for op, k in lacking.items()), highlight=False)
     if result.int8:
         q = result.int8["comparison"]
         console.print(f"  int8: top-1 original {pct(q.get('top1_original'))} candidate "
@@ -98,7 +106,8 @@ def _print_check(console, result: api.CheckResult) -> None:
 def run_check(original: Path, candidate: Path, val: Path, *, console=None, budget: float = 1.0,
               strict: bool = False, min_agreement: float | None = None, int8: bool = False,
               calib: Path | None = None, report: Path | None = None, batch_size: int = 64,
-              threads: int = 1, rule: GateRule | None = None, strict_data: bool = False) -> int:
+              threads: int = 1, rule: GateRule | None = None, strict_data: bool = False,
+              target: str | None = None) -> int:
     """`swapper check`: compare two model files; write the report; 0 approved, 1 rejected.
 
     ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement`` when given.
@@ -111,7 +120,7 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     _print_notes(console, val_ds, calib_ds)
     preflight(orig.model, val_ds, rule, batch_size=batch_size, threads=threads)  # CannotJudge before the work
     result = api.check(orig.model, cand.model, val_ds, budget=rule, int8=int8, calib=calib_ds,
-                       batch_size=batch_size, threads=threads, progress=_progress(console))
+                       batch_size=batch_size, threads=threads, progress=_progress(console), target=target)
     folder = report or default_report_dir(Path(original))
     paths = write_report(folder, original=orig, candidate_path=Path(candidate), candidate=cand.model,
                          check=result, val_path=val, calib_path=calib)
@@ -149,6 +158,8 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
         for line in skipped_lines(result.plan):
             console.print(f"  {line}", highlight=False)
+        for line in target_lines(result.plan):
+            console.print(f"  {line}", highlight=False)
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
@@ -161,17 +172,33 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             console.print(f"{path}: nothing to swap; no model written")
         return EXIT_OK
     candidate = result.candidate
+    timing = None
+    if result.target is not None and result.target.costs_from == "measured":
+        timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
+                                    batch_size=options.batch_size)
+        _set_metadata(candidate, "swapper.target", timing.to_dict())
+        if console is not None:
+            console.print(f"  {timing.line()}", highlight=False, markup=False)
+        if not timing.is_faster and not force:
+            if console is not None:
+                console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.2f}× the original; "
+                              "no model written", highlight=False)
+            return EXIT_OK
     check = None
     if val_ds is not None:
         check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
                           batch_size=options.batch_size, threads=options.threads, progress=progress)
         _record_verdict(candidate, check)
         _print_check(console, check)
+        if timing is not None:  # the report shows the target timing (printed above) next to the plain latency
+            check.latency["target"] = timing.to_dict()
     approved = check is None or check.verdict.approved
     if approved or force:
         save_model(candidate, output, inputs=(path,))
         if console is not None:
-            note = "" if approved else " (rejected; written because of --force)"
+            slower = timing is not None and not timing.is_faster
+            note = "" if approved and not slower else \
+                f" ({'rejected' if not approved else 'not faster on ' + timing.target}; written because of --force)"
             console.print(f"wrote {output}{note}", highlight=False)
     elif console is not None:
         console.print(f"not written: {output} (rejected)", highlight=False)
@@ -186,11 +213,18 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:
     """Keep the verdict with the model, so a forced write still says it was rejected."""
+    _set_metadata(candidate, "swapper.verdict", check.verdict.to_dict())  # the same entry as report.json's verdict
+
+
+def _set_metadata(model: onnx.ModelProto, key: str, entry: dict) -> None:
+    """Store ``entry`` as JSON under ``key`` in the model's metadata (replacing an older value)."""
     import json
 
-    entry = check.verdict.to_dict()  # the same entry as report.json's verdict
-    for prop in candidate.metadata_props:
-        if prop.key == "swapper.verdict":
-            prop.value = json.dumps(entry, sort_keys=True)
+    from swapper.core.jsonable import json_safe
+
+    value = json.dumps(json_safe(entry, [], key), sort_keys=True)
+    for prop in model.metadata_props:
+        if prop.key == key:
+            prop.value = value
             return
-    candidate.metadata_props.add(key="swapper.verdict", value=json.dumps(entry, sort_keys=True))
+    model.metadata_props.add(key=key, value=value)

@@ -42,6 +42,37 @@ def node_subgraphs(node: onnx.NodeProto) -> list[onnx.GraphProto]:
     return graphs
 
 
+def named_subgraphs(node: onnx.NodeProto) -> list[tuple[str, onnx.GraphProto]]:
+    """(attribute name, body) for each body ``node`` carries, in the order of :func:`node_subgraphs`.
+
+    A GRAPHS attribute gives one entry per graph, named ``"<attribute>[i]"``.
+    """
+    named = []
+    for a in sorted(node.attribute, key=lambda a: a.name):
+        if a.type == onnx.AttributeProto.GRAPH:
+            named.append((a.name, a.g))
+        elif a.type == onnx.AttributeProto.GRAPHS:
+            named.extend((f"{a.name}[{i}]", g) for i, g in enumerate(a.graphs))
+    return named
+
+
+def outer_names(graph: onnx.GraphProto) -> set[str]:
+    """The tensor names ``graph`` reads from enclosing graphs (bodies nested in it included).
+
+    ONNX lets an If/Loop/Scan body read any value of an enclosing graph by
+    name (ONNX IR spec, "Names Within a Graph": outer-scope values); those are
+    the names read but not defined here (inputs, initializers, node outputs).
+    """
+    defined = {v.name for v in graph.input} | {t.name for t in graph.initializer}
+    defined |= {o for node in graph.node for o in node.output if o}
+    read: set[str] = {o.name for o in graph.output}
+    for node in graph.node:
+        read.update(i for i in node.input if i)
+        for body in node_subgraphs(node):
+            read |= outer_names(body)
+    return read - defined
+
+
 def subgraphs(graph: onnx.GraphProto) -> Iterator[onnx.GraphProto]:
     """Every graph nested in ``graph`` (bodies of bodies included), depth first, in node order."""
     for node in graph.node:

@@ -1,8 +1,19 @@
 """Calibration and validation data: open, validate against the model, batch.
 
 Transformation: a ``.npz`` archive, a folder of ``.npy`` files (or one ``.npy``
-for a single-input model) becomes a :class:`Dataset` whose arrays line up with
-the model's inputs, then a stream of :class:`Batch` feeds in the model's dtypes.
+for a single-input model) or a folder of images (:mod:`swapper.data.images`;
+a folder is read as images when it holds PNG/JPEG files and no ``.npy``)
+becomes a :class:`Dataset` whose arrays line up with the model's inputs, then
+a stream of :class:`Batch` feeds in the model's dtypes.
+
+A :class:`~swapper.data.layout.DataLayout` says which axis of an input counts
+samples (0 by default) and which inputs take one constant value in every
+batch. Arrays are held samples-first (a view with the batch axis moved to the
+front) and each batch puts the axis back where the model wants it.
+
+Symbolic dimensions are not compared across arrays: when arrays disagree on a
+shared symbol (e.g. height and width both ``?``), the first sample is run
+through onnxruntime and the data is accepted if the model runs on it.
 
 Arrays are never unpickled and are memory-mapped where the format allows
 (:mod:`swapper.data.npy_files`); replicated sets are lazy views
@@ -12,7 +23,6 @@ batching never holds more than one chunk/batch in memory.
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Callable, Collection
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -21,15 +31,17 @@ from typing import Iterator
 import numpy as np
 import onnx
 
+from swapper.core.session import ORT_ERRORS, open_session
+from swapper.data.images import ImagePrep, holds_images, read_image_folder
+from swapper.data.layout import ConstantFeed, DataLayout
 from swapper.data.lazy_array import CycledArray, cycle, head  # noqa: F401  (CycledArray: re-exported, it lived here)
 from swapper.data.npy_files import read_folder, read_npz
-from swapper.errors import BadDataError, BadModelError
+from swapper.data.values import check_labels, check_targets, scan_values
+from swapper.errors import BadDataError, BadModelError, first_line
 
 logger = logging.getLogger(__name__)
 
 RESERVED = ("labels", "targets")
-# Validation scans arrays in chunks of about this many bytes so a memmap is never read whole.
-CHUNK_BYTES = 32 * 2**20
 
 
 @dataclass
@@ -64,9 +76,17 @@ def input_specs(model: onnx.ModelProto) -> list[InputSpec]:
     return specs
 
 
-def fixed_batch_size(specs: list[InputSpec]) -> int | None:
-    """The static batch dimension the model insists on (e.g. 1), or None when it is dynamic."""
-    sizes = {s.shape[0] for s in specs if s.shape and isinstance(s.shape[0], int) and s.shape[0] > 0}
+def fixed_batch_size(specs: list[InputSpec], axes: dict[str, int] | None = None) -> int | None:
+    """The static batch dimension the model insists on (e.g. 1), or None when it is dynamic.
+
+    ``axes`` gives an input's batch axis when it is not 0.
+    """
+    axes = axes or {}
+    sizes = set()
+    for s in specs:
+        axis = axes.get(s.name, 0)
+        if s.shape and len(s.shape) > axis and isinstance(s.shape[axis], int) and s.shape[axis] > 0:
+            sizes.add(s.shape[axis])
     return min(sizes) if sizes else None
 
 
@@ -82,6 +102,9 @@ class Dataset:
     dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
     max_batch: int | None = None  # the model's static batch dimension (e.g. 1): batches never exceed it
     notes: list[str] = field(default_factory=list)  # what loading left out (arrays the model does not read)
+    batch_axes: dict[str, int] = field(default_factory=dict)  # input -> its batch axis, where not 0
+    constants: dict[str, ConstantFeed] = field(default_factory=dict)  # inputs fed the same value every batch
+    classes: list[str] | None = None  # class-folder names of an image folder; label k = classes[k]
 
 
 @dataclass
@@ -116,7 +139,9 @@ def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path,
     missing = sorted(set(wanted) - set(data))
     unread = sorted(set(data) - set(wanted))
     if missing:
-        parts = [f"missing arrays for model inputs {missing}"] + ([f"unexpected arrays {unread}"] if unread else [])
+        parts = [f"missing arrays for model inputs {missing} (an input that takes one value in every "
+                 "batch can be declared constant: --constant NAME=VALUE)"]
+        parts += [f"unexpected arrays {unread}"] if unread else []
         raise BadDataError("; ".join(parts) + f" (model inputs: {', '.join(wanted)})", path)
     notes = []
     if unread:
@@ -153,19 +178,23 @@ def _fmt_shape(shape) -> str:
     return "(" + ", ".join("?" if d is None else str(d) for d in shape) + ")"
 
 
-def _check_shapes(arrays: dict, specs: list[InputSpec], names: dict[str, str], path: Path) -> None:
-    symbols: dict[str, tuple[str, int]] = {}
+def _check_shapes(arrays: dict, specs: list[InputSpec], names: dict[str, str], axes: dict[str, int],
+                  path: Path) -> list[tuple[str, str, int]]:
+    """Fixed dims must match; returns the (symbol, array name, size) uses of symbolic dims (not compared here)."""
+    uses = []
     for spec in specs:
-        arr, name = arrays[spec.name], names[spec.name]
+        arr, name, batch = arrays[spec.name], names[spec.name], axes.get(spec.name, 0)
         if spec.shape is None:
             continue
         if arr.ndim != len(spec.shape) or arr.ndim == 0:
             raise BadDataError(
                 f"array {name!r} has shape {tuple(arr.shape)}, model input expects {_fmt_shape(spec.shape)}"
-                " (first axis = samples)",
+                f" (axis {batch} = samples)",
                 path,
             )
-        for axis in range(1, arr.ndim):  # axis 0 is the sample axis, whatever the model says
+        for axis in range(arr.ndim):
+            if axis == batch:  # the sample axis, whatever the model says
+                continue
             want, got = spec.shape[axis], arr.shape[axis]
             if isinstance(want, int) and want > 0 and want != got:
                 raise BadDataError(
@@ -173,115 +202,102 @@ def _check_shapes(arrays: dict, specs: list[InputSpec], names: dict[str, str], p
                     f" {_fmt_shape(spec.shape)} (axis {axis}: {got} != {want})",
                     path,
                 )
-            if isinstance(want, str):  # the same symbolic dim must have one size across inputs
-                seen = symbols.setdefault(want, (name, got))
-                if seen[1] != got:
-                    raise BadDataError(
-                        f"dimension {want!r} is {seen[1]} in array {seen[0]!r} but {got} in array {name!r}", path
-                    )
+            if isinstance(want, str):
+                uses.append((want, name, got))
+    return uses
 
 
-def _chunks(arr, rows_hint: int | None = None) -> Iterator[tuple[int, np.ndarray]]:
-    row_bytes = max(1, math.prod(arr.shape[1:]) * arr.dtype.itemsize)
-    step = rows_hint or max(1, CHUNK_BYTES // row_bytes)
-    for start in range(0, len(arr), step):
-        yield start, np.asarray(arr[start : start + step])
+def _symbol_conflict(uses: list[tuple[str, str, int]]) -> str | None:
+    """The first shared symbolic dim that takes two sizes, described, or None."""
+    seen: dict[str, tuple[str, int]] = {}
+    for symbol, name, size in uses:
+        first = seen.setdefault(symbol, (name, size))
+        if first[1] != size:
+            return f"dimension {symbol!r} is {first[1]} in array {first[0]!r} but {size} in array {name!r}"
+    return None
 
 
-def _scan_values(name: str, arr: np.ndarray, target: np.dtype, path: Path) -> None:
-    """Reject NaN/Inf (first bad sample) and values the per-batch cast would not keep."""
-    src = arr.dtype
-    float_limit = None
-    if target.kind == "f" and src.kind == "f" and target.itemsize < src.itemsize:
-        float_limit = np.finfo(target).max  # e.g. float64 -> float32 would turn 1e300 into inf
-    int_range = None
-    if target.kind in "iu" and src.kind in "iu" and not np.can_cast(src, target, "safe"):
-        int_range = (np.iinfo(target).min, np.iinfo(target).max)
-    if src.kind != "f" and int_range is None:
-        return
-    for start, chunk in _chunks(arr):
-        flat = chunk.reshape(len(chunk), -1)
-        if src.kind == "f":
-            bad = ~np.isfinite(flat).all(axis=1)
-            if bad.any():
-                i = int(np.argmax(bad))
-                what = "NaN" if np.isnan(flat[i]).any() else "Inf"
-                raise BadDataError(f"array {name!r} contains {what} at sample {start + i}", path)
-            if float_limit is not None:
-                over = (np.abs(flat) > float_limit).any(axis=1)
-                if over.any():
-                    raise BadDataError(
-                        f"array {name!r} sample {start + int(np.argmax(over))} overflows {target}", path
-                    )
-        elif int_range is not None and flat.size:
-            over = ((flat < int_range[0]) | (flat > int_range[1])).any(axis=1)
-            if over.any():
-                raise BadDataError(f"array {name!r} sample {start + int(np.argmax(over))} does not fit {target}", path)
-
-
-def _check_labels(labels: np.ndarray, n: int, path: Path) -> None:
-    if labels.dtype.kind not in "iu":
-        raise BadDataError(f"'labels' must be integer class ids, got dtype {labels.dtype}", path)
-    if labels.ndim != 1 or len(labels) != n:
-        raise BadDataError(f"'labels' must be 1-D with {n} entries, got shape {tuple(labels.shape)}", path)
-    if labels.dtype.kind == "i":
-        for start, chunk in _chunks(labels, rows_hint=1 << 20):
-            neg = chunk < 0
-            if neg.any():
-                raise BadDataError(f"'labels' has a negative class id at sample {start + int(np.argmax(neg))}", path)
-
-
-def _check_targets(targets: np.ndarray, n: int, path: Path) -> None:
-    if targets.dtype.kind not in "fiu":
-        raise BadDataError(f"'targets' must be numeric, got dtype {targets.dtype}", path)
-    if targets.ndim == 0 or len(targets) != n:
-        raise BadDataError(f"'targets' must have {n} rows, got shape {tuple(targets.shape)}", path)
-    _scan_values("targets", targets, targets.dtype, path)
+def _runs_on_first_sample(ds: "Dataset", model: onnx.ModelProto, conflict: str, path: Path) -> None:
+    """Accept a symbol disagreement when onnxruntime runs the model on one sample; else a one-line error."""
+    feeds = next(batches(ds, 1)).feeds
+    try:
+        open_session(model, what="the model").run(None, feeds)
+    except ORT_ERRORS as exc:
+        raise BadDataError(f"{conflict}, and onnxruntime cannot run the model on the first sample: "
+                           f"{first_line(exc)}", path) from None
+    logger.info("%s: %s; onnxruntime runs the model on it, so the symbols are not tied", path, conflict)
 
 
 def load_dataset(
-    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False, strict: bool = False
+    path: str | Path, specs: list[InputSpec], *, require_labels: bool = False, layout: DataLayout | None = None,
+    images: ImagePrep | None = None, model: onnx.ModelProto | None = None, strict: bool = False,
 ) -> Dataset:
-    """Open an .npz / .npy-folder data set and validate it against the model inputs ``specs``.
+    """Open an .npz / .npy-folder / image-folder data set and validate it against the model inputs ``specs``.
 
-    ``require_labels`` demands a ``labels`` array. Arrays the model does not read are left out and
-    named in ``Dataset.notes`` (refused with ``strict``). Values are scanned for NaN/Inf/overflow in
-    one streaming pass. Raises BadDataError.
+    ``require_labels`` demands a ``labels`` array (class folders give them for images). ``layout``
+    gives per-input batch axes and constant inputs; ``images`` the preprocessing of an image folder.
+    Values are scanned for NaN/Inf/overflow in one streaming pass. With ``model``, arrays that
+    disagree on a shared symbolic dimension are accepted when onnxruntime runs the model on the first
+    sample (without it they are refused). Arrays the model does not read
+    are left out and named in ``Dataset.notes`` (refused with ``strict``). Raises BadDataError (UsageError
+    for a bad option).
     """
     path = Path(path)
     if not path.exists():
         raise BadDataError("no such file or folder", path)
     if not specs:
         raise BadDataError("the model has no inputs to feed", path)
-    raw = read_folder(path) if path.is_dir() else read_npz(path)
+    axes, constants = (layout or DataLayout()).resolve(specs)
+    fed = [s for s in specs if s.name not in constants]
+    if not fed:
+        raise BadDataError("every model input is declared constant; nothing is left to take samples from", path)
+    classes = None
+    if path.is_dir() and not any(path.glob("*.npy")):  # a folder with .npy files keeps meaning arrays
+        if not holds_images(path):
+            raise BadDataError("folder holds no .npy files and no PNG/JPEG images (judged by content)", path)
+        raw, classes = read_image_folder(path, fed, images)
+    else:
+        raw = read_folder(path) if path.is_dir() else read_npz(path)
     labels, targets = raw.get("labels"), raw.get("targets")
     if require_labels and labels is None:
         raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
-    arrays, names, notes = _match_names(raw, specs, path, strict)
-    dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in specs}
+    arrays, names, notes = _match_names(raw, fed, path, strict)
+    dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in fed}
     for name, arr in arrays.items():
         if arr.ndim == 0:
-            raise BadDataError(f"array {names[name]!r} is a scalar; expected a first axis of samples", path)
-    counts = {names[name]: arr.shape[0] for name, arr in arrays.items()}
+            raise BadDataError(f"array {names[name]!r} is a scalar; expected an axis of samples "
+                               "(a value for every batch is a constant input)", path)
+        if axes.get(name, 0) >= arr.ndim:
+            raise BadDataError(f"array {names[name]!r} has no axis {axes[name]} to take samples from", path)
+    counts = {names[name]: arr.shape[axes.get(name, 0)] for name, arr in arrays.items()}
     for extra_name, extra in (("labels", labels), ("targets", targets)):
         if extra is not None and extra.ndim:
             counts[extra_name] = extra.shape[0]
     if len(set(counts.values())) > 1:
         listed = ", ".join(f"{k}={v}" for k, v in counts.items())
         raise BadDataError(f"sample counts differ across arrays ({listed})", path)
-    _check_shapes(arrays, specs, names, path)
+    uses = _check_shapes(arrays, fed, names, axes, path)
     n = next(iter(counts.values()))
     if n < 1:
         raise BadDataError("no samples", path)
     if labels is not None:
-        _check_labels(labels, n, path)
+        check_labels(labels, n, path)
     if targets is not None:
-        _check_targets(targets, n, path)
-    for s in specs:
-        _scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
+        check_targets(targets, n, path)
+    for s in fed:
+        if not getattr(arrays[s.name], "finite", False):
+            scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
+    moved = {k: a for k, a in axes.items() if a and k in arrays}
+    arrays = {k: np.moveaxis(v, moved[k], 0) if k in moved else v for k, v in arrays.items()}
     logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
-    return Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
-                   max_batch=fixed_batch_size(specs), notes=notes)
+    ds = Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
+                 max_batch=fixed_batch_size(fed, axes), batch_axes=moved, constants=constants, classes=classes, notes=notes)
+    conflict = _symbol_conflict(uses)
+    if conflict and model is None:
+        raise BadDataError(conflict, path)
+    if conflict:
+        _runs_on_first_sample(ds, model, conflict, path)
+    return ds
 
 
 # ---------------------------------------------------------------- iteration and views
@@ -290,8 +306,9 @@ def load_dataset(
 def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterator[Batch]:
     """Yield samples in order, ``batch_size`` at a time (the last may be short), up to ``limit``.
 
-    Each batch owns fresh contiguous copies in the model's dtypes; nothing else is held. A model
-    with a static batch dimension gets batches of at most that size, whatever ``batch_size`` asks.
+    Each batch owns fresh contiguous copies in the model's dtypes, each input's batch axis where
+    the model wants it, plus the constant inputs; nothing else is held. A model with a static
+    batch dimension gets batches of at most that size, whatever ``batch_size`` asks.
     """
     if batch_size < 1:
         raise ValueError("batch_size must be >= 1")
@@ -299,10 +316,13 @@ def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterat
     total = ds.n if limit is None else max(0, min(int(limit), ds.n))
     for start in range(0, total, batch_size):
         stop = min(start + batch_size, total)
-        feeds = {
-            name: np.array(arr[start:stop], dtype=ds.dtypes.get(name, arr.dtype), order="C", copy=True)
-            for name, arr in ds.arrays.items()
-        }
+        feeds = {}
+        for name, arr in ds.arrays.items():
+            part = arr[start:stop]
+            if ds.batch_axes.get(name):
+                part = np.moveaxis(np.asarray(part), 0, ds.batch_axes[name])
+            feeds[name] = np.array(part, dtype=ds.dtypes.get(name, arr.dtype), order="C", copy=True)
+        feeds.update({name: const.batch(stop - start) for name, const in ds.constants.items()})
         labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
         targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
         yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
@@ -324,15 +344,8 @@ def replicate(ds: Dataset, times: int) -> Dataset:
     if times < 1:
         raise ValueError("times must be >= 1")
     n = ds.n * int(times)
-    return Dataset(
-        path=ds.path,
-        arrays={k: cycle(v, n) for k, v in ds.arrays.items()},
-        labels=cycle(ds.labels, n),
-        targets=cycle(ds.targets, n),
-        n=n,
-        dtypes=dict(ds.dtypes),
-        max_batch=ds.max_batch,
-    )
+    return replace(ds, arrays={k: cycle(v, n) for k, v in ds.arrays.items()}, labels=cycle(ds.labels, n),
+                   targets=cycle(ds.targets, n), n=n, dtypes=dict(ds.dtypes))
 
 
 def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
@@ -345,12 +358,5 @@ def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
     else:
         idx = np.sort(np.random.default_rng(seed).choice(ds.n, size=n, replace=False))
         take = lambda a: None if a is None else np.asarray(a[idx])  # noqa: E731
-    return Dataset(
-        path=ds.path,
-        arrays={k: take(v) for k, v in ds.arrays.items()},
-        labels=take(ds.labels),
-        targets=take(ds.targets),
-        n=n,
-        dtypes=dict(ds.dtypes),
-        max_batch=ds.max_batch,
-    )
+    return replace(ds, arrays={k: take(v) for k, v in ds.arrays.items()}, labels=take(ds.labels),
+                   targets=take(ds.targets), n=n, dtypes=dict(ds.dtypes))

@@ -6,11 +6,16 @@ when a part did not run):
 - ``schema``: "swapper.report/1"; ``created_utc``: ISO 8601 time.
 - ``tool``: versions of swapper, python, onnx, onnxruntime, numpy, scipy, scikit-learn.
 - ``inputs``: ``original``, ``candidate``, ``calibration``, ``validation``: each
-  ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written).
-- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`.
-- ``sites``: one entry per swapped site: ``site_id, source, target, placement
-  {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
-  bias_corrected, notes`` (mse values null without calibration).
+  ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written);
+  an image folder with class sub-folders also gives ``classes`` (folder name ->
+  integer label).
+- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
+  ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
+  record or null), ``remaining``, ``hints``.
+- ``sites``: one entry per swapped site: ``site_id, source, target, form``
+  (the emission form written), ``placement {a,b,c,d}, nodes_added,
+  folded_into, mse_start, mse_fit, level, bias_corrected, notes`` (mse values
+  null without calibration).
 - ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
@@ -21,7 +26,8 @@ when a part did not run):
   top1 | agreement | cosine | sqnr | rmse, null when the candidate was refused for
   NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
   ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
-  runs}`` plus ``ratio``, ``batch_size``, ``threads``; ``size``: per model
+  runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
+  ``target`` (see ``swapper.api.check``); ``size``: per model
   ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
   figures for quantized versions or null. All null when no validation ran.
 - ``caution``: the safety caution, verbatim.
@@ -60,8 +66,8 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
             "verdict", "latency", "size", "int8", "caution")
 
 
-SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
-             "level", "bias_corrected", "notes")
+SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
+             "mse_fit", "level", "bias_corrected", "notes")
 
 
 def _versions() -> dict:
@@ -81,16 +87,24 @@ def _file_entry(path) -> dict | None:
     if path is None:
         return None
     p = Path(path)
-    if p.is_dir():  # a folder of .npy files: hash the sorted file list and contents
+    if p.is_dir():  # a folder of .npy files or of images: hash the sorted file list and contents
         import hashlib
 
+        from swapper.data.images import holds_images, list_images
+
+        files, classes = sorted(p.glob("*.npy")), None
+        if not files and holds_images(p):
+            files, _, classes = list_images(p)
         digest = hashlib.sha256()
         total = 0
-        for f in sorted(p.glob("*.npy")):
-            digest.update(f.name.encode())
+        for f in files:
+            digest.update(f.relative_to(p).as_posix().encode())
             digest.update(bytes.fromhex(sha256_file(f)))
             total += f.stat().st_size
-        return {"path": str(p), "sha256": digest.hexdigest(), "bytes": total}
+        entry = {"path": str(p), "sha256": digest.hexdigest(), "bytes": total}
+        if classes:  # class sub-folders of an image folder: label k is the k-th name in sorted order
+            entry["classes"] = {name: k for k, name in enumerate(classes)}
+        return entry
     return {"path": str(p), "sha256": sha256_file(p), "bytes": p.stat().st_size}
 
 
@@ -105,7 +119,8 @@ def site_rows(plan, records, calibration) -> list[dict]:
     for s in plan.swaps:
         rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
         rows.append({
-            "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
+            "site_id": s.site_id, "source": s.source, "target": s.target,
+            "form": rec.form if rec else s.form, "placement": dict(s.placement),
             "nodes_added": rec.nodes_added if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
@@ -159,7 +174,7 @@ def validate_report(payload: dict) -> None:
         raise ValueError(f"missing keys: {missing}")
     for key in ("original", "candidate", "calibration", "validation"):
         entry = payload["inputs"].get(key, "absent")
-        if entry == "absent" or (entry is not None and set(entry) != {"path", "sha256", "bytes"}):
+        if entry == "absent" or (entry is not None and set(entry) - {"classes"} != {"path", "sha256", "bytes"}):
             raise ValueError(f"inputs.{key} malformed")
     for site in payload["sites"]:
         if set(site) != set(SITE_KEYS):

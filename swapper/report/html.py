@@ -159,16 +159,25 @@ def render_html(payload: dict) -> str:
                              f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
                              f"output channels.</p>")
     if payload["sites"]:
-        rows = [[s["site_id"], f"{s['source']} → {s['target']}",
+        rows = [[s["site_id"], f"{s['source']} → {s['target']}" + (f" ({s['form']})" if s.get("form") else ""),
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
                  num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
         parts.append("<h2>Swapped sites</h2>" + _table(
             ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted", "notes"],
             rows, numeric={3, 4, 5}))
-    skipped = (payload.get("plan") or {}).get("skipped", [])
+    plan = payload.get("plan") or {}
+    skipped = plan.get("skipped", [])
     if skipped:
         parts.append("<h2>Left alone</h2>" + _table(["site", "function", "reason"],
                                                     [[s["site_id"], s["function"], s["reason"]] for s in skipped]))
+    target_notes = ([f"planned for {plan['target']} at opset {plan.get('opset')}"] if plan.get("target") else []) \
+        + [f"remains: {r}" for r in plan.get("remaining", [])] + [f"hint: {h}" for h in plan.get("hints", [])]
+    if plan.get("conversion"):
+        c = plan["conversion"]
+        target_notes.append(f"converted opset {c['from']} → {c['to']}: max |difference| {num(c['max_abs_diff'])} "
+                            f"on {c['samples']} samples ({c['compared_on']})")
+    if target_notes:
+        parts.append("<h2>Target</h2>" + "".join(f"<p>{_e(t)}</p>" for t in target_notes))
     plots = _plots(payload)
     if plots:
         parts.append("<h2>Plots</h2>" + "".join(f"<figure><img alt='{_e(t)}' src='{uri}'><figcaption>{_e(t)}"

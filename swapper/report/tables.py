@@ -14,9 +14,9 @@ def sites_table(sites: list[Site], title: str) -> Table:
     for s in sites:
         shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
-        role = s.role if s.supported else f"unsupported: {s.reason}"
+        role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
         table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
-                      shape or "?", flow, f"{100 * s.cost_share:.1f}%")
+                      shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
     return table
 
 
@@ -28,7 +28,7 @@ def swap_table(rows: list[dict]) -> Table:
     for r in rows:
         table.add_row(
             r["site_id"],
-            f"{r['source']} → {r['target']}",
+            f"{r['source']} → {r['target']}" + (f" ({r['form']})" if r.get("form") else ""),
             *(r["placement"].get(p, "-") for p in "abcd"),
             "-" if r["nodes_added"] is None else str(r["nodes_added"]),
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
@@ -39,3 +39,15 @@ def swap_table(rows: list[dict]) -> Table:
 
 def skipped_lines(plan: Plan) -> list[str]:
     return [f"left {s.site_id} ({s.function}): {s.reason}" for s in plan.skipped]
+
+
+def target_lines(plan: Plan) -> list[str]:
+    """What the plan says about its target: the opset conversion, ops that remain, faster forms out of reach."""
+    lines = []
+    if plan.conversion:
+        c = plan.conversion
+        lines.append(f"converted opset {c['from']} → {c['to']} (max |Δ| {c['max_abs_diff']:.3g} on "
+                     f"{c['samples']} samples)")
+    lines += [f"remains: {r}" for r in plan.remaining]
+    lines += [f"hint: {h}" for h in plan.hints]
+    return lines

@@ -1,8 +1,9 @@
 """Apply a swap plan to a copy of a model.
 
 Transformation: for every swapped site, the site's nodes are replaced by
-``y = a·g(b·x + c) + d`` where ``g`` is the registry emitter of the target and
-each of a, b, c, d is placed exactly as the plan says: folded into the producer
+``y = a·g(b·x + c) + d`` written in the plan's emission form (``SiteSwap.form``,
+:mod:`swapper.functions.forms`: the form's exact re-parametrisation of a, b, c, d
+is applied first) and each of a, b, c, d is placed exactly as the plan says: folded into the producer
 of ``x`` (its output channels scaled/shifted), folded into the linear layers
 that read ``y``, directly or behind pools/reshapes/gates (their input-channel
 weights scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool),
@@ -40,6 +41,7 @@ from swapper.core.surgery import (
     used_names,
 )
 from swapper.errors import BadModelError, UsageError
+from swapper.functions.forms import Form, default_form, get_form
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.plan.fold_targets import (
     ConsumerFold,
@@ -67,6 +69,7 @@ class SiteRecord:
     folded_into: list[str]  # names of the nodes whose weights or bias changed
     nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
     notes: list[str] = field(default_factory=list)
+    form: str = ""  # the emission form written (swapper.functions.forms)
 
 
 @dataclass
@@ -199,8 +202,14 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
     plan folds nothing of this site). Raises UsageError where the plan cannot be carried out as it stands."""
     fn = functions.get(swap.target)
+    form = _form(swap, index.opset)
     vals = _vectors(swap)
     place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
+    vals = form.emitted_values(vals, swap.target_params)  # the values the form's own E(z) needs
+    moved = [p for p in PARAMS if place[p] == "held" and not _neutral(p, vals[p])]
+    if moved:
+        raise UsageError(f"site {site.id}: form {form.name} of {fn.name} moves {', '.join(moved)}, which the "
+                         "plan holds; re-plan for this form")
     if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not _neutral(p, vals[p]) for p in PARAMS}
@@ -246,7 +255,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
                                       vals["d"] if d_cons else None, em)
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
-    fn.emit(em, x, g_out, dict(swap.target_params))
+    form.emit(em, x, g_out, dict(swap.target_params))
     if a_node:
         em.node("Mul", [g_out, const("a", vals["a"])], None if d_node else site.output)
     if d_node:
@@ -254,7 +263,17 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
     return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes),
-                      list(swap.notes))
+                      list(swap.notes), form.name)
+
+
+def _form(swap: SiteSwap, opset: int) -> Form:
+    """The plan's form for ``swap`` (None: what the registry's emitter writes at ``opset``); UsageError if the
+    model's opset does not have it."""
+    form = get_form(swap.target, swap.form) if swap.form else default_form(swap.target, opset)
+    if opset < form.min_opset:
+        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.target} needs opset {form.min_opset}; "
+                         f"the model is opset {opset}")
+    return form
 
 
 # ------------------------------------------------------------------ public

@@ -10,54 +10,28 @@ lists them in the order :func:`swapper.scan.patterns.match_graph` tries them.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
-from typing import Callable
 
 import onnx
 
 from swapper.core.graph import GraphIndex
 from swapper.functions.formulas import GELU_TANH_C
 from swapper.scan.match import (
-    Match,
+    Inner,
+    Pattern,
     add_one,
     close,
     close_gate,
     close_product,
-    first_private_reason,
     gated_by,
     node_params,
+    polynomial_of,
     private_reason,
     produced_by,
     scaled_x,
-    sole_user,
 )
 
 SQRT2 = math.sqrt(2.0)
 SQRT_2_OVER_PI = math.sqrt(2.0 / math.pi)
-
-# What feeds a gate's anchor: (x, the nodes from x to the anchor in data-flow order, the function's params).
-Inner = tuple[str, list[onnx.NodeProto], dict]
-
-
-@dataclass
-class Pattern:
-    """A decomposed activation: the subgraph to look for, anchored at one op type."""
-
-    name: str  # the Site.form, "<function>/<shape>"
-    function: str
-    anchors: tuple[str, ...]
-    matcher: Callable[["Pattern", GraphIndex, onnx.NodeProto], "Match | str | None"] = field(repr=False)
-    # For x·h(x) gates sharing one matcher: finds x and the nodes between x and the anchor, or None.
-    inner: Callable[[GraphIndex, onnx.NodeProto], Inner | None] | None = field(default=None, repr=False)
-
-    def match(self, ix: GraphIndex, anchor: onnx.NodeProto) -> Match | str | None:
-        """None if ``anchor`` does not start this pattern; a reason if declined; else the Match."""
-        return self.matcher(self, ix, anchor)
-
-    def make(self, ix: GraphIndex, x: str, y: str, nodes, params=None) -> Match:
-        ordered = tuple(sorted({n.name for n in nodes}, key=lambda n: ix.node_position[n]))
-        return Match(self.name, self.function, dict(params or {}), x, y, ordered)
-
 
 def _match_gate(p: Pattern, ix: GraphIndex, anchor: onnx.NodeProto):
     """x·h(x) where h is the chain ``p.inner`` finds followed by ``anchor``; every link read by the chain alone."""
@@ -111,49 +85,21 @@ def _match_gelu_erf(p: Pattern, ix: GraphIndex, erf: onnx.NodeProto):
     return p.make(ix, x, y, [pre, erf, add, *muls])
 
 
-def _cube_of(ix: GraphIndex, tensor: str, x: str) -> list[onnx.NodeProto] | None:
-    """Nodes computing ``tensor`` = x³ as Pow(x, 3) or Mul(Mul(x, x), x) in any order."""
-    node = produced_by(ix, tensor, "Pow", "Mul")
-    if node is None:
-        return None
-    a, b = node.input
-    if node.op_type == "Pow":
-        return [node] if a == x and close(ix.scalar(b), 3.0) else None
-    for sq, lin in ((a, b), (b, a)):
-        inner = produced_by(ix, sq, "Mul")
-        if lin == x and inner is not None and list(inner.input) == [x, x]:
-            if getattr(sole_user(ix, sq), "name", None) == node.name:  # x·x read only by this Mul
-                return [inner, node]
-    return None
-
-
 # gelu_tanh(x) = 0.5·x·(1 + tanh(√(2/π)·(x + 0.044715·x³)))   (Hendrycks & Gimpel 2016)
+# The tanh argument may be written any way that is this cubic in x: Pow(x, 3) or x·x·x in any grouping,
+# the constants multiplied in first or last, or distributed (√(2/π)·x + √(2/π)·0.044715·x³).
 def _match_gelu_tanh(p: Pattern, ix: GraphIndex, tanh: onnx.NodeProto):
-    scaled = scaled_x(ix, tanh.input[0])
-    if scaled is None or scaled[2].op_type != "Mul":
-        return None
-    inner, k, outer_mul = scaled
-    add = produced_by(ix, inner, "Add")
-    if add is None:
-        return None
-    found = None
-    for x, w in ((add.input[0], add.input[1]), (add.input[1], add.input[0])):
-        term = scaled_x(ix, w)
-        if term is not None and term[2].op_type == "Mul":
-            cube = _cube_of(ix, term[0], x)
-            if cube is not None:
-                found = (x, w, term, cube)
-                break
+    found = polynomial_of(ix, tanh.input[0], tanh)
     if found is None:
         return None
-    x, w, (cube_out, c, cubic_mul), cube = found
+    x, poly, inner = found
+    if x is None or set(poly) != {1, 3} or not inner:
+        return None
+    k, c = poly[1], poly[3] / poly[1]
     if not close(k, SQRT_2_OVER_PI):
         return f"tanh argument scale {k:.6g}, expected √(2/π) = {SQRT_2_OVER_PI:.6g}"
     if not close(c, GELU_TANH_C):
         return f"cubic coefficient {c:.6g}, expected {GELU_TANH_C}"
-    reason = first_private_reason(ix, ((tanh.input[0], tanh), (inner, outer_mul), (w, add), (cube_out, cubic_mul)))
-    if reason:
-        return reason
     one, reason = add_one(ix, tanh.output[0], "tanh")
     if one is None:
         return reason or "tanh is not followed by Add 1"
@@ -161,7 +107,7 @@ def _match_gelu_tanh(p: Pattern, ix: GraphIndex, tanh: onnx.NodeProto):
     if isinstance(result, str):
         return result
     muls, y = result
-    return p.make(ix, x, y, [outer_mul, add, cubic_mul, *cube, tanh, one, *muls])
+    return p.make(ix, x, y, [*inner, tanh, one, *muls])
 
 
 # mish(x) = x·tanh(softplus(x)),  softplus(x) = ln(1 + eˣ)   (Misra 2019)

@@ -3,14 +3,16 @@
 Transformation: none by itself. :class:`Match` (an activation y = f(x)
 found in the graph, with the nodes between x and y) and :class:`Decline` (a
 pattern that looked right but was not claimed, and why) are the records
-:mod:`swapper.scan.patterns` returns; the functions read a node's neighbourhood
-(scalar constants, sole readers, x·c products, the 0.5·x·(...) closing
-product of GELU forms) with the rule that a site may only swallow tensors
-nobody else reads.
+:mod:`swapper.scan.patterns` returns; :class:`Pattern` is one decomposed form
+(the pattern modules each hold a tuple of them). The functions read a node's
+neighbourhood (scalar constants, sole readers, x·c products, the 0.5·x·(...)
+closing product of GELU forms, a polynomial in x) with the rule that a site
+may only swallow tensors nobody else reads.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Callable
 
 import onnx
 
@@ -42,6 +44,30 @@ class Decline:
     pattern: str
     anchor: str
     reason: str
+
+
+# What feeds a gate's anchor: (x, the nodes from x to the anchor in data-flow order, the function's params).
+Inner = tuple[str, list[onnx.NodeProto], dict]
+
+
+@dataclass
+class Pattern:
+    """A decomposed activation: the subgraph to look for, anchored at one op type."""
+
+    name: str  # the Site.form, "<function>/<shape>"
+    function: str
+    anchors: tuple[str, ...]
+    matcher: Callable[["Pattern", GraphIndex, onnx.NodeProto], "Match | str | None"] = field(repr=False)
+    # For x·h(x) gates sharing one matcher: finds x and the nodes between x and the anchor, or None.
+    inner: Callable[[GraphIndex, onnx.NodeProto], Inner | None] | None = field(default=None, repr=False)
+
+    def match(self, ix: GraphIndex, anchor: onnx.NodeProto) -> Match | str | None:
+        """None if ``anchor`` does not start this pattern; a reason if declined; else the Match."""
+        return self.matcher(self, ix, anchor)
+
+    def make(self, ix: GraphIndex, x: str, y: str, nodes, params=None) -> Match:
+        ordered = tuple(sorted({n.name for n in nodes}, key=lambda n: ix.node_position[n]))
+        return Match(self.name, self.function, dict(params or {}), x, y, ordered)
 
 
 def node_params(node: onnx.NodeProto, function: str) -> dict:
@@ -191,3 +217,56 @@ def close_gate(ix: GraphIndex, out: str, x: str, private=()) -> tuple[onnx.NodeP
         return result
     (mul,), y = result
     return mul, y
+
+
+def _times(p: dict[int, float], q: dict[int, float]) -> dict[int, float]:
+    out: dict[int, float] = {}
+    for i, a in p.items():
+        for j, b in q.items():
+            out[i + j] = out.get(i + j, 0.0) + a * b
+    return out
+
+
+def polynomial_of(ix: GraphIndex, tensor: str, reader: onnx.NodeProto, max_nodes: int = 10):
+    """``tensor`` (read by ``reader``) as Σ c_p·x^p of one tensor x: (x, {p: c_p}, nodes), or None.
+
+    Walks back through Mul, Add, Sub, Div by a scalar and Pow by a small whole
+    scalar, each read only by the node after it; the walk stops at x, the one
+    dynamic tensor it reaches that something else also reads (a site may only
+    swallow what nobody else reads). x is None when ``tensor`` is a constant.
+    """
+    nodes: list[onnx.NodeProto] = []
+    leaves: set[str] = set()
+
+    def walk(t: str, by: onnx.NodeProto) -> dict[int, float]:
+        c = ix.scalar(t)
+        if c is not None:
+            return {0: c}
+        node = produced_by(ix, t, "Mul", "Add", "Sub", "Div", "Pow")
+        user = sole_user(ix, t)
+        divisor = ix.scalar(node.input[1]) if node is not None and node.op_type in ("Div", "Pow") else None
+        if (node is None or user is None or user.name != by.name or len(nodes) >= max_nodes
+                or (node.op_type == "Div" and divisor in (None, 0.0))
+                or (node.op_type == "Pow" and divisor not in (1.0, 2.0, 3.0, 4.0))):
+            leaves.add(t)
+            return {1: 1.0}
+        nodes.append(node)
+        a = walk(node.input[0], node)
+        if node.op_type == "Pow":
+            out = {0: 1.0}
+            for _ in range(int(divisor)):
+                out = _times(out, a)
+            return out
+        if node.op_type == "Div":
+            return {k: v / divisor for k, v in a.items()}
+        b = walk(node.input[1], node)
+        if node.op_type == "Mul":
+            return _times(a, b)
+        sign = -1.0 if node.op_type == "Sub" else 1.0
+        return {k: a.get(k, 0.0) + sign * b.get(k, 0.0) for k in set(a) | set(b)}
+
+    poly = walk(tensor, reader)
+    if len(leaves) > 1 or any(not ix.is_dynamic(t) for t in leaves):
+        return None
+    poly = {k: v for k, v in poly.items() if v != 0.0}
+    return (next(iter(leaves)) if leaves else None), poly, nodes

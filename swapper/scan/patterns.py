@@ -9,11 +9,14 @@ Two kinds of matcher:
 - *single ops* (``Sigmoid``, ``Gelu``, com.microsoft ``QuickGelu`` ...),
   one table lookup each (:func:`match_single_op`);
 - *decomposed patterns*: the subgraphs exporters write (``x·Sigmoid(x)``, the
-  Erf form of GELU, ...). Each is a small :class:`Pattern` anchored at its one
-  transcendental node (Sigmoid, Erf, Tanh, HardSigmoid). ``match`` returns
+  Erf form of GELU, ...). Each is a small :class:`Pattern` anchored at one node
+  (the transcendental op of the form, or the last node of a clamp). ``match`` returns
   None when the neighbourhood does not look like the pattern at all, a
   *reason string* when it does but must be declined (a constant is off, an
-  intermediate tensor is read elsewhere), or a Match.
+  intermediate tensor is read elsewhere), or a Match. Other exporters'
+  spellings live in :mod:`swapper.scan.sigmoid_forms` (1/(1+exp(−x)), SiLU
+  across Casts) and :mod:`swapper.scan.clamped` (hard-swish / hard-sigmoid
+  written with Clip, Min/Max or Relu; leaky ReLU as max(x, α·x)).
 
 A pattern only claims nodes whose intermediate outputs are read by the pattern
 alone and are not graph outputs: rewriting the site replaces all of its nodes,
@@ -32,12 +35,15 @@ import onnx
 
 from swapper.core.graph import DEFAULT_DOMAINS, GraphIndex, attr
 from swapper.functions.formulas import QUICK_GELU_BETA
-from swapper.scan.decomposed import PATTERNS
+from swapper.scan import clamped, decomposed, sigmoid_forms
 from swapper.scan.match import Decline, Match, close, node_params
 
 logger = logging.getLogger(__name__)
 
 MS_DOMAIN = "com.microsoft"
+# Every decomposed form, in the order they are tried at an anchor: the measured forms first
+# (their costs are in swapper/functions/op_costs.json), then other exporters' spellings.
+PATTERNS = decomposed.PATTERNS + sigmoid_forms.PATTERNS + clamped.PATTERNS
 # (domain, op type) -> registry function; parameters come from the registry's
 # defaults overridden by the node's attributes (pattern_base.node_params).
 SINGLE_OPS: dict[tuple[str, str], str] = {

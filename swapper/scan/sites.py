@@ -5,10 +5,12 @@ the decomposed subgraph an exporter wrote (``x·Sigmoid(x)``, the Erf form of
 GELU, ...). ``find_sites`` runs the matchers of :mod:`swapper.scan.patterns` over
 the graph and describes each match.
 
-Transformation: shape-inferred ModelProto -> list[Site] in graph order, with
-ids s1, s2, ... given by the graph position of each site's first node. Sites in
-If/Loop/Scan bodies are numbered where their parent node stands and are
-reported with supported=False (subgraphs are never rewritten).
+Transformation: shape-inferred ModelProto -> list[Site]: first the main
+graph's sites, ids s1 ... sN by the graph position of each site's first node
+(so they do not depend on what bodies hold), then the sites inside If/Loop/Scan
+bodies, numbered on from N+1 depth first in node order, each with
+supported=False and a one-line reason naming its body (subgraphs are not
+rewritten yet).
 
 Channel axis (the axis per-channel parameters run along): rank 4/5 -> 1; rank
 2 -> 1 (= last); rank 3 -> 1 when x comes from Conv/BatchNormalization
@@ -17,23 +19,28 @@ tensors [N, T, C]); the producer is looked up through at most a few bias /
 scale Add/Sub/Mul/Div nodes. Anything else -> None. Rank 4/5 tensors that come
 from a MatMul (attention) use the last axis.
 
-Role: "output" if y is a graph output; "gate" if y is read by a Mul or Div whose
-other operand is a different dynamic tensor (squeeze-excite, GLU), unless that
-other operand is known to be broadcast onto y (then y is the feature map being
-gated, e.g. the SiLU output a squeeze-excite Sigmoid multiplies); else
-"pointwise".
+Role (:mod:`swapper.scan.roles`, following y through ops that pass values on
+unchanged, into and out of If/Loop/Scan bodies): "output" if y's values reach an
+output of the main graph; else "gate" if they are multiplied by a different
+dynamic tensor (squeeze-excite, GLU), unless that tensor is known to be
+broadcast onto them (then y is the feature map being gated); else "pointwise".
 
 Cost: elements per sample x relative cost of the site's function in the form
-the graph writes it (:mod:`swapper.functions.costs`, Relu = 1). A site whose elements
-are unknown (dynamic dims after the batch) has cost 0; cost_share = cost / sum
-of all costs (0 when the sum is 0).
+the graph writes it (:mod:`swapper.functions.costs`, Relu = 1). Elements come
+from concrete shapes when the caller measured them (``shapes``: from calibration
+data or given input shapes, :mod:`swapper.scan.shapes`), else from the model's
+static shapes. A site whose elements stay unknown (symbolic dims after the
+batch) has cost None; cost_share = cost / sum of all costs, None when that sum
+is unknown (a share is never made up as 0). A site in an If branch is counted
+as if its branch ran.
 
 JSON schema "swapper.scan/1" (``sites_to_json``), stable field by field:
 
 - ``schema``: the string "swapper.scan/1".
 - ``model``: the model path as given.
 - ``opset``: the default-domain opset of the model (int).
-- ``total_cost``: sum of the sites' ``cost`` (float, Relu-element units per sample).
+- ``total_cost``: sum of the sites' ``cost`` (float, Relu-element units per
+  sample; null when any site's cost is unknown).
 - ``sites``: list, one object per site in id order, with
   ``id`` ("s1"...), ``function`` (registry name), ``params`` (object; function
   parameters, tensor names for prelu "slope" / com.microsoft "bias"),
@@ -43,7 +50,7 @@ JSON schema "swapper.scan/1" (``sites_to_json``), stable field by field:
   ``channels`` (int|null), ``producer`` (op type of x's producer | null for a
   graph input), ``consumers`` (list of op types reading y, "<output>" for a
   graph output), ``role`` ("pointwise"|"gate"|"output"), ``elements``
-  (int|null), ``cost`` (float), ``cost_share`` (float in [0, 1]),
+  (int|null), ``cost`` (float|null), ``cost_share`` (float in [0, 1]|null),
   ``supported`` (bool), ``reason`` (string|null, why not swappable),
   ``domain`` (op domain, "" for the default one).
 """
@@ -57,10 +64,11 @@ from typing import Literal
 
 import onnx
 
-from swapper.core.graph import GraphIndex, is_op, node_subgraphs
+from swapper.core.graph import GraphIndex
 from swapper.functions.costs import relative_cost
 from swapper.scan.match import Decline, Match
 from swapper.scan.patterns import match_graph
+from swapper.scan.roles import Scope, role_of
 
 logger = logging.getLogger(__name__)
 
@@ -85,8 +93,8 @@ class Site:
     consumers: tuple[str, ...]  # op types reading y ("<output>" for graph outputs)
     role: Role
     elements: int | None  # elements per sample (product of the static dims after the batch)
-    cost: float  # elements x relative cost of the function (cost units per sample)
-    cost_share: float  # cost / total activation cost of the model
+    cost: float | None  # elements x relative cost of the function (cost units per sample); None: unknown
+    cost_share: float | None  # cost / total activation cost of the model; None when unknown
     supported: bool = True
     reason: str | None = None  # why a site cannot be swapped (e.g. inside a Loop body)
     domain: str = ""
@@ -145,28 +153,6 @@ def channel_axis(ix: GraphIndex, x: str, shape: tuple | None) -> int | None:
     return None
 
 
-def _strictly_broadcast(small: tuple | None, big: tuple | None) -> bool:
-    """True if ``small`` is known to broadcast onto the larger ``big`` (e.g. [N,C,1,1] onto [N,C,H,W])."""
-    if small is None or big is None or len(small) != len(big):
-        return False
-    if any(s != 1 and s != b for s, b in zip(small, big)):
-        return False
-    return any(s == 1 and b != 1 for s, b in zip(small, big))
-
-
-def role_of(ix: GraphIndex, y: str) -> str:
-    """"output", "gate" or "pointwise" for a site writing ``y`` (see module docstring)."""
-    if ix.is_graph_output(y):
-        return "output"
-    for user in ix.users(y):
-        if is_op(user, "Mul", "Div") and len(user.input) == 2:
-            others = [t for t in user.input if t != y]
-            # the feature map a squeeze-excite gate multiplies is gated, not a gate
-            if others and ix.is_dynamic(others[0]) and not _strictly_broadcast(ix.shape(others[0]), ix.shape(y)):
-                return "gate"
-    return "pointwise"
-
-
 def _elements(shape: tuple | None) -> int | None:
     if shape is None or len(shape) == 0:
         return None if shape is None else 1
@@ -176,71 +162,70 @@ def _elements(shape: tuple | None) -> int | None:
     return math.prod(dims)
 
 
-def _article(word: str) -> str:
-    return "an" if word[:1].upper() in "AEIOU" else "a"
-
-
-def _collect(ix: GraphIndex, key: tuple, inside: str | None, out: list, declines: list) -> None:
-    """Append (order key, index, match, reason-from-context) for this graph and its bodies."""
-    matches, declined = match_graph(ix)
+def _collect(scope: Scope, out: list, declines: list) -> None:
+    """Append (scope, match) for this graph's sites, then for its bodies' (depth first, in node order)."""
+    matches, declined = match_graph(scope.index)
     declines.extend(declined)
-    for m in matches:
-        out.append((key + (ix.node_position[m.nodes[0]],), ix, m, inside))
-    for node in ix.graph.node:
-        for k, body in enumerate(node_subgraphs(node)):
-            reason = f"inside {_article(node.op_type)} {node.op_type} body (subgraphs are not rewritten)"
-            _collect(GraphIndex.of_graph(body, ix.opsets), key + (ix.node_position[node.name], k), reason,
-                     out, declines)
+    out.extend((scope, m) for m in matches)
+    for node, attribute, graph in scope.bodies_here():
+        _collect(scope.body(node, attribute, graph), out, declines)
 
 
-def _cost(sid: str, ix: GraphIndex, m: Match) -> tuple[int | None, float]:
-    """(elements per sample, cost) of a match; cost 0 when the elements are unknown."""
-    shape = ix.shape(m.input)
-    elements = _elements(shape)
-    if elements is None:
-        logger.info("site %s: elements per sample unknown (shape %s); cost counted as 0", sid, shape)
-        return None, 0.0
-    return elements, float(elements * relative_cost(m.function, m.form, m.domain))
+def _elements_of(scope: Scope, m: Match, shapes: dict) -> int | None:
+    """Elements per sample of a match's input: from ``shapes`` (main graph) when given, else the model's shapes."""
+    if scope.owner is None and m.input in shapes:
+        return _elements(tuple(shapes[m.input]))
+    return _elements(scope.shape(m.input))
 
 
-def _describe(sid: str, ix: GraphIndex, m: Match, inside: str | None, measured: tuple[int | None, float],
-              total_cost: float) -> Site:
-    """The Site for a match; ``measured`` is its (elements, cost) from :func:`_cost`."""
-    shape = ix.shape(m.input)
-    axis = channel_axis(ix, m.input, shape)
+def _describe(sid: str, scope: Scope, m: Match, elements: int | None, total_cost: float | None) -> Site:
+    """The Site for a match with ``elements`` per sample, its share of ``total_cost`` (None: unknown)."""
+    ix = scope.index
+    shape = scope.shape(m.input)
+    axis = channel_axis(scope.defining(m.input).index, m.input, shape)
     channels = shape[axis] if axis is not None and isinstance(shape[axis], int) else None
-    producer = ix.producer.get(m.input)
+    producer = scope.defining(m.input).index.producer.get(m.input)
     consumers = [u.op_type for u in ix.users(m.output)]
     if ix.is_graph_output(m.output):
         consumers.append("<output>")
-    elements, cost = measured
+    cost = None if elements is None else float(elements * relative_cost(m.function, m.form, m.domain))
+    inside = None
+    if scope.owner is not None:
+        inside = f"inside {scope.where()}; subgraphs are not rewritten yet"
     return Site(
         id=sid, function=m.function, params=dict(m.params), input=m.input, output=m.output,
         nodes=tuple(m.nodes), form=m.form, shape=shape, channel_axis=axis, channels=channels,
         producer=producer.op_type if producer is not None else None, consumers=tuple(consumers),
-        role=role_of(ix, m.output), elements=elements, cost=cost,
-        cost_share=cost / total_cost if total_cost > 0 else 0.0,
+        role=role_of(scope, m.output), elements=elements, cost=cost,
+        cost_share=cost / total_cost if cost is not None and total_cost else None,
         supported=m.supported and inside is None, reason=inside or m.reason, domain=m.domain,
     )
 
 
-def find_sites(model: onnx.ModelProto, *, declines: list[Decline] | None = None) -> list[Site]:
-    """Every activation site of a loaded, shape-inferred model, in graph order (ids s1, s2, ...).
+def find_sites(model: onnx.ModelProto, *, declines: list[Decline] | None = None,
+               shapes: dict[str, tuple] | None = None) -> list[Site]:
+    """Every activation site of a loaded, shape-inferred model (ids s1, s2, ...; see the module docstring).
 
     Pass a list as ``declines`` to receive the decomposed patterns that were
-    seen but not claimed, with their reasons. Nodes are referred to by name, so
-    the model's nodes, subgraph bodies included, must be named as
-    :func:`swapper.core.model_io.load_model` leaves them (``name_unnamed_nodes``).
+    seen but not claimed, with their reasons. ``shapes`` maps main-graph tensor
+    names to concrete shapes (:func:`swapper.scan.shapes.measure_shapes`), used
+    for elements and cost where the model's own shapes are symbolic. Nodes are
+    referred to by name, so the model's nodes, subgraph bodies included, must be
+    named as :func:`swapper.core.model_io.load_model` leaves them (``name_unnamed_nodes``).
     """
     found: list = []
     seen_declines: list[Decline] = []
-    _collect(GraphIndex.of(model), (), None, found, seen_declines)
-    found.sort(key=lambda item: item[0])
-    ids = [f"s{i}" for i in range(1, len(found) + 1)]
-    measured = [_cost(sid, ix, m) for sid, (_, ix, m, _) in zip(ids, found)]
-    total = sum(cost for _, cost in measured)  # first, so each Site is built once, with its share
-    sites = [_describe(sid, ix, m, inside, cost, total)
-             for sid, (_, ix, m, inside), cost in zip(ids, found, measured)]
+    _collect(Scope.of(model), found, seen_declines)
+    elements = [_elements_of(scope, m, shapes or {}) for scope, m in found]
+    costs = [None if e is None else e * relative_cost(m.function, m.form, m.domain)
+             for e, (_, m) in zip(elements, found)]
+    unknown = [i for i, c in enumerate(costs) if c is None]
+    if unknown:
+        logger.info("%d of %d sites have symbolic sizes; cost shares unknown (give shapes or data)",
+                    len(unknown), len(found))
+    total = None if unknown else sum(costs)  # a share of an unknown total is unknown, never 0
+    sites = [_describe(f"s{i}", scope, m, e, total)
+             for i, ((scope, m), e) in enumerate(zip(found, elements), start=1)]
     if declines is not None:
         declines.extend(seen_declines)
     logger.info("found %d activation sites (%d declined patterns)", len(sites), len(seen_declines))
@@ -257,5 +242,5 @@ def sites_to_json(sites: list[Site], model_path: str | Path, opset: int) -> dict
         "model": str(model_path),
         "opset": int(opset),
         "sites": [s.to_dict() for s in sites],
-        "total_cost": float(sum(s.cost for s in sites)),
+        "total_cost": None if any(s.cost is None for s in sites) else float(sum(s.cost for s in sites)),
     }

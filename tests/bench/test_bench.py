@@ -23,7 +23,7 @@ SMALLEST = min(DEMO.glob("*.onnx"), key=lambda p: p.stat().st_size)
 TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
-            "memory_factors", "rungs", "family_rule", "scale"}
+            "memory_factors", "rungs", "family_rule", "target", "scale"}
 MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory"}
 FAMILY = {"family", "targets", "ladder", "cost", "speed", "int8", "notes"}
 LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "delta_pp", "n"}
@@ -64,6 +64,7 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     assert folder.name == data["created_utc"] and len(data["created_utc"]) == len("20240101T000000Z")
     assert MACHINE <= set(data["machine"]) and SETTINGS <= set(data["settings"])
     assert data["settings"]["quick"] is True and "--quick" in data["settings"]["command"]
+    assert data["settings"]["target"] == "ort-cpu" and "--target ort-cpu" in data["settings"]["command"]
     assert len(data["models"]) == 1
     model = data["models"][0]
     assert MODEL <= set(model) and model["synthetic"] is False and model["name"] == SMALLEST.stem

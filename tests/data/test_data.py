@@ -17,7 +17,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from onnx import TensorProto, helper
 
-from swapper.data import dataset as D
+from swapper.data import values as V
 from swapper.data.dataset import (
     InputSpec,
     batches,
@@ -270,13 +270,13 @@ def test_nan_inf_rejected_with_first_index(tmp_path_factory, n, data, bad, chunk
         x[i, i % 3, 1] = bad
     p = tmp_path_factory.mktemp("nan") / "d.npz"
     np.savez(p, x=x)
-    old = D.CHUNK_BYTES
-    D.CHUNK_BYTES = chunk_rows * 12 * 4  # small chunks: the scan must cross chunk boundaries correctly
+    old = V.CHUNK_BYTES
+    V.CHUNK_BYTES = chunk_rows * 12 * 4  # small chunks: the scan must cross chunk boundaries correctly
     try:
         with pytest.raises(BadDataError) as e:
             load_dataset(p, spec())
     finally:
-        D.CHUNK_BYTES = old
+        V.CHUNK_BYTES = old
     # source: IEEE 754 via numpy.isfinite; the first bad sample is the lowest index holding NaN/Inf
     assert_one_line_error(e, p, "array 'x'", f"at sample {first}", "NaN" if np.isnan(bad) else "Inf")
 
