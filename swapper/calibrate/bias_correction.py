@@ -46,7 +46,7 @@ from swapper.core.conv import conv_geometry, tap_windows
 from swapper.core.graph import GraphIndex, attr
 from swapper.core.session import open_session
 from swapper.core.slices import SliceRunner
-from swapper.core.surgery import all_names, set_const_input
+from swapper.core.surgery import all_names, drop_unused, set_const_input
 from swapper.plan.layers import Layer, Reach, linear_layer, reach_linear
 from swapper.scan.sites import Site
 
@@ -295,7 +295,7 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
     """
     index = GraphIndex.of(work)
     taken = all_names(work)
-    corrected = []
+    corrected, replaced = [], set()
     reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False)
     notes = [f"no bias correction: {why}" for why in dead_ends]
     for reach in reached:
@@ -318,9 +318,14 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
             continue
         shape = bias.shape if bias.size == shift.size else np.broadcast_shapes(bias.shape, shift.shape)
         # a bias other nodes share gets a copy of its own, so their outputs stay as they were
-        set_const_input(work, layer.bias_node, layer.bias_slot, (bias - shift).reshape(shape), layer.bias.dtype,
-                        taken, f"swapper/{site.id}/bias_correction", hint=node.name)
+        before = layer.bias_name()
+        after = set_const_input(work, layer.bias_node, layer.bias_slot, (bias - shift).reshape(shape),
+                                layer.bias.dtype, taken, f"swapper/{site.id}/bias_correction", hint=node.name)
+        if after != before:
+            replaced.add(before)
         corrected.append(node.name)
+    if replaced:  # Constant nodes nothing reads any more go (a shared one stays); after the loop, which holds nodes
+        drop_unused(work, replaced)
     return corrected, notes
 
 

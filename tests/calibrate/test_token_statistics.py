@@ -7,8 +7,11 @@ ReLU formulas (testkit, from their definitions); onnxruntime runs the inline mod
 """
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pytest
+from onnx import helper
 from scipy.special import erf
 from sklearn.linear_model import Ridge
 from testkit import hard_swish, in_memory, relu, token_batch, token_model
@@ -122,10 +125,28 @@ def test_an_all_ones_mask_calibrates_as_no_mask():
     assert with_mask.model.SerializeToString() == without.model.SerializeToString()
 
 
+def _as_constant_nodes(model):
+    """The same model with every initializer held by a Constant node instead (as some exporters write it)."""
+    out = copy.deepcopy(model)
+    nodes = [helper.make_node("Constant", [], [t.name], value=t, name=f"const_{t.name}") for t in out.graph.initializer]
+    del out.graph.initializer[:]
+    rest = list(out.graph.node)
+    del out.graph.node[:]
+    out.graph.node.extend(nodes + rest)
+    return out
+
+
+@pytest.mark.parametrize("constants", [False, True], ids=["initializers", "constant-nodes"])
 @pytest.mark.parametrize("to, g", [("relu", relu), ("hard_swish", hard_swish)])
-def test_bias_correction_cancels_the_mean_shift_over_real_tokens(to, g):
+def test_bias_correction_cancels_the_mean_shift_over_real_tokens(to, g, constants):
     model, batch = token_model(), token_batch(20, 6, seed=6)
+    if constants:
+        model = _as_constant_nodes(model)
     result, sites = _calibrate(model, batch, to, "auto")
+    assert result.sites[0].bias_corrected and not result.sites[0].notes
+    # nothing is left behind: every Constant node's output is read
+    read = {t for n in result.model.graph.node for t in n.input}
+    assert all(n.output[0] in read for n in result.model.graph.node if n.op_type == "Constant")
     swap = result.plan.swaps[0]
     ix, fixed = GraphIndex.of(model), GraphIndex.of(result.model)
     table, w1, b1, w2 = (ix.const(n).astype(np.float64) for n in ("table", "w1", "b1", "w2"))
