@@ -26,6 +26,7 @@ from swapper.options import SwapOptions
 from swapper.plan.plan import Plan, make_plan
 from swapper.progress import Silent
 from swapper.rewrite.apply import RewriteResult, rewrite
+from swapper.scan.body_sizes import measure_body_sizes
 from swapper.scan.shapes import measure_shapes, zero_feeds
 from swapper.scan.sites import Site, find_sites
 from swapper.targets import TargetProfile, load_target
@@ -95,7 +96,8 @@ def scan(model: str | Path | LoadedModel, *, calib: str | Path | DataSource | Da
 
     Cost shares need concrete sizes: with ``calib`` (a data set) the shapes one sample produces,
     else with ``input_shapes`` ({input: shape}) those of zero inputs of that shape; without
-    either, sites whose size is symbolic keep an unknown cost (None).
+    either, sites whose size is symbolic keep an unknown cost (None), and so do sites inside
+    If/Loop/Scan bodies (how often a body runs is known only by running it).
     """
     loaded = _as_loaded(model)
     sites = find_sites(loaded.model)
@@ -106,8 +108,9 @@ def scan(model: str | Path | LoadedModel, *, calib: str | Path | DataSource | Da
     elif input_shapes:
         feeds = zero_feeds(loaded.model, input_shapes)
     if feeds is not None:
-        shapes = measure_shapes(loaded.model, [s.input for s in sites], feeds)
-        sites = find_sites(loaded.model, shapes=shapes)
+        shapes = measure_shapes(loaded.model, [s.input for s in sites if not s.body], feeds)
+        body_sizes = measure_body_sizes(loaded.model, sites, feeds)  # sites inside If/Loop/Scan bodies
+        sites = find_sites(loaded.model, shapes=shapes, body_sizes=body_sizes)
     return ScanResult(loaded=loaded, sites=sites)
 
 

@@ -34,6 +34,7 @@ import onnx
 
 from swapper import functions
 from swapper.calibrate.bias_correction import DeltaSum, correct_bias
+from swapper.calibrate.bodies import observe_bodies
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads, row_spans
 from swapper.core.surgery import copy_model
@@ -138,9 +139,10 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
 
 
 def observer_for(swap: SiteSwap, seed: int, reservoir: int, rows: bool = False) -> ChannelObserver:
-    """An empty observer shaped for ``swap``'s channels; ``rows``: it is fed [tokens, channels] rows."""
+    """An empty observer shaped for ``swap``'s channels (count, x range and reservoir: what the fit reads);
+    ``rows``: it is fed [tokens, channels] rows."""
     axis = (-1 if rows else swap.channel_axis) if swap.channels > 1 else None
-    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
+    return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed, moments=False)
 
 
 def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
@@ -300,7 +302,8 @@ def calibrate(
     by_id = {s.id: s for s in sites}
     work = copy_model(original)  # bias corrections go here; the original stays the teacher
     index = GraphIndex.of(work)
-    levels = site_levels(index, sites, set(swaps))
+    inner = [sid for sid in swaps if by_id[sid].body]  # inside If/Loop/Scan bodies: fitted below, locally
+    levels = site_levels(index, sites, set(swaps) - set(inner))
     if mode == "local":
         levels = {k: 1 for k in levels}
     sched = _schedule(index, by_id, levels)
@@ -351,10 +354,27 @@ def calibrate(
                 cache.discard(key)  # no later level reads it
         stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
                  "memory_budget": cache.memory_budget}
+    if inner:  # ---- sites inside If/Loop/Scan bodies, on the original's own values (swapper.calibrate.bodies)
+        t0 = time.perf_counter()
+        seen = observe_bodies(original, [by_id[sid] for sid in inner], swaps, dataset, batch_size=batch_size,
+                              seed=seed, reservoir=reservoir, threads=threads, progress=progress)
+        for sid in inner:
+            results[sid] = _fit_observed(sid, swaps[sid], seen.observers[sid], seen.notes[sid])
+        timings["fit_s"] += time.perf_counter() - t0
     logger.info("calibration cache: %s", stats)
     ordered = [results[sid] for sid in swaps if sid in results]  # plan order
     return CalibrationResult(plan=fitted, model=work, sites=ordered, timings=timings, samples=dataset.n,
                              cache=stats, tokens=tokens_note)
+
+
+def _fit_observed(sid: str, swap: SiteSwap, observer: ChannelObserver, notes: list[str]) -> SiteCalibration:
+    """Fit a body site on what it was observed to see (level 1, as in local mode); an empty observer fits nothing."""
+    if observer.n == 0:
+        return SiteCalibration(sid, 1, float("nan"), float("nan"), notes=list(notes))
+    mse_start, mse_fit = fit_swap(swap, observer)
+    seen = observer.compute()
+    return SiteCalibration(sid, 1, mse_start, mse_fit, x_min=[float(v) for v in seen.min_x],
+                           x_max=[float(v) for v in seen.max_x], notes=list(notes))
 
 
 def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,

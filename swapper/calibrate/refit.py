@@ -140,7 +140,8 @@ def _schedule(index: GraphIndex, sites: list[Site], swapped: set[str]) -> list[_
     consumers found on ``index`` hold for the whole refit.
     """
     by_id = {s.id: s for s in sites}
-    blocked = {name for sid in swapped for name in by_id[sid].nodes}
+    # node names are unique per graph: a site inside an If/Loop/Scan body blocks nothing here
+    blocked = {name for sid in swapped if not by_id[sid].body for name in by_id[sid].nodes}
     levels = site_levels(index, sites, swapped)
     schedule = []
     for number in sorted(set(levels.values())):

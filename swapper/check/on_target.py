@@ -67,6 +67,14 @@ class TargetTiming:
     def to_dict(self) -> dict:
         return asdict(self)
 
+    def record(self) -> dict:
+        """What a written model keeps of this timing: how it was measured and whether the candidate was
+        faster, without the timings themselves (they differ from run to run, and the same inputs and seed
+        must give the same model bytes; the report holds the figures)."""
+        return {"target": self.target, "faster": self.is_faster, "batch": self.batch, "threads": self.threads,
+                "graph_optimization": self.graph_optimization, "quantized": self.quantized, "feeds": self.feeds,
+                "clock": self.clock, "runs": self.original.runs}
+
     def line(self) -> str:
         """One line for people: the ratio and both medians with their spread."""
         def ms(s: LatencyStats) -> str:

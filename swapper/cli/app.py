@@ -115,6 +115,10 @@ def scan(
     out.print(sites_table(result.sites, f"{model} (opset {result.loaded.opset}): {len(result.sites)} activation sites"))
     if any(s.cost_share is None for s in result.sites):
         out.print("cost share ?: sizes are symbolic; give --calib DATA or --input-shape NAME=DIMS", highlight=False)
+    idle = [s.id for s in result.sites if s.body and s.elements == 0]
+    if idle:  # body sites are costed by running their bodies on the measured sample
+        out.print(f"cost 0 for {', '.join(idle)}: their body did not run on the measured sample "
+                  "(an If branch it did not take)", highlight=False)
 
 
 @app.command("functions")

@@ -22,7 +22,7 @@ from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
 from swapper.report.paths import default_report_dir
-from swapper.report.tables import skipped_lines, swap_table, target_lines
+from swapper.report.tables import skipped_lines, swap_table, target_lines, unrun_lines
 
 logger = logging.getLogger(__name__)
 
@@ -167,6 +167,8 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
                 console.print(f"  token positions: {result.calibration.tokens}", highlight=False)
             console.print("  calibration time: " + ", ".join(f"{k[:-2]} {v:.2f}s" for k, v in t.items()),
                           highlight=False)
+        for line in unrun_lines(result.calibration):  # sites inside If/Loop/Scan bodies the data never ran
+            console.print(line, highlight=False)
     if not result.plan.swaps:
         if console is not None:
             console.print(f"{path}: nothing to swap; no model written")
@@ -176,7 +178,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     if result.target is not None and result.target.costs_from == "measured":
         timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
                                     batch_size=options.batch_size)
-        _set_metadata(candidate, "swapper.target", timing.to_dict())
+        _set_metadata(candidate, "swapper.target", timing.record())
         if console is not None:
             console.print(f"  {timing.line()}", highlight=False, markup=False)
         if not timing.is_faster and not force:

@@ -235,6 +235,7 @@ def make_plan(
     from swapper.core.graph import GraphIndex
     from swapper.core.model_io import MAX_OPSET
     from swapper.errors import UsageError
+    from swapper.plan.bodies import SiteGraphs
     from swapper.plan.choose import choose, chosen_line, opset_hints, site_options
 
     check_fold(fold)
@@ -251,12 +252,13 @@ def make_plan(
             )
     pinned = _parse_choices(choices, known)
     index = GraphIndex.of(model)
+    graphs = SiteGraphs(model, index)  # a site inside an If/Loop/Scan body is placed within its body
     opset = index.opset
     name = None if target is None else target.name
     swaps, skipped, remaining, hints = [], [], [], {}
     for site in sites:
         explicit = bool(site_ids) or site.id in pinned
-        lacking = [] if target is None else _lacking(index, site, target)
+        lacking = [] if target is None else _lacking(graphs.index_for(site), site, target)
 
         def skip(reason: str, site=site, lacking=lacking) -> None:
             skipped.append(Skipped(site.id, site.function, reason))
@@ -291,7 +293,7 @@ def make_plan(
         if not order or (fn.is_cheap and forced is None and not lacking):
             skip(f"no default surrogate for {site.function}; name one with --to")
             continue
-        opts = site_options(index, site, target, order, fold=fold, opset=opset)
+        opts = site_options(graphs.index_for(site), site, target, order, fold=fold, opset=opset)
         choice = choose(opts, order, opset, forced=forced, form=form)
         if target is not None and forced is None:
             for k, op in opset_hints(opts, order, opset, min(target.opset_max, MAX_OPSET), choice):

@@ -15,6 +15,8 @@ def sites_table(sites: list[Site], title: str) -> Table:
         shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
         role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
+        if s.body and s.supported:  # where a body site sits (an unswappable one's reason names its body)
+            role += " in " + " / ".join(f"{node}.{attribute}" for node, attribute in s.body)
         table.add_row(s.id, s.function, s.form, role, "-" if s.channels is None else str(s.channels),
                       shape or "?", flow, "?" if s.cost_share is None else f"{100 * s.cost_share:.1f}%")
     return table
@@ -51,3 +53,14 @@ def target_lines(plan: Plan) -> list[str]:
     lines += [f"remains: {r}" for r in plan.remaining]
     lines += [f"hint: {h}" for h in plan.hints]
     return lines
+
+
+def unrun_lines(calibration) -> list[str]:
+    """A warning naming the swapped body sites no calibration batch ran (an If branch the data never takes)."""
+    idle = [c.site_id for c in (calibration.sites if calibration is not None else [])
+            if any("did not run on any calibration batch" in n for n in c.notes)]
+    if not idle:
+        return []
+    line = (f"warning: {', '.join(idle)} sit in a body no calibration batch ran: they keep their starting "
+            "parameters, and validation data like it does not run them either")
+    return [line]

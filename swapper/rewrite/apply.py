@@ -52,6 +52,7 @@ from swapper.plan.fold_targets import (
 )
 from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
 from swapper.plan.plan import Plan, SiteSwap
+from swapper.rewrite.bodies import floor_with_bodies, has_body_swaps, node_count, rewrite_bodies
 from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
 from swapper.scan.sites import Site
 
@@ -279,6 +280,10 @@ def _form(swap: SiteSwap, opset: int) -> Form:
 # ------------------------------------------------------------------ public
 def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteResult:
     """A copy of ``model`` with every site of ``plan`` replaced by its surrogate, parameters placed."""
+    if has_body_swaps(sites, plan):  # sites inside If/Loop/Scan bodies: body by body (swapper.rewrite.bodies)
+        out, records = rewrite_bodies(model, sites, plan, rewrite)
+        _stamp_plan(out, plan)
+        return RewriteResult(out, node_count(model), node_count(out), records)
     out = copy_model(model)
     index = GraphIndex.of(out)
     if index.opset <= 0:
@@ -306,16 +311,23 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
     splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
-    kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
-    del out.metadata_props[:]
-    out.metadata_props.extend(kept)
-    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
+    _stamp_plan(out, plan)
     logger.info("rewrote %d sites: %d -> %d nodes", len(records), len(model.graph.node), len(out.graph.node))
     return RewriteResult(out, len(model.graph.node), len(out.graph.node), records)
 
 
+def _stamp_plan(out: onnx.ModelProto, plan: Plan) -> None:
+    """Record ``plan`` (without per-channel values) in the model's metadata, replacing an earlier one."""
+    kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
+    del out.metadata_props[:]
+    out.metadata_props.extend(kept)
+    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
+
+
 def rewrite_identity_floor(model: onnx.ModelProto, sites: list[Site]) -> onnx.ModelProto:
     """A copy of ``model`` with each site replaced by Identity: the speed floor of any swap."""
+    if any(s.body for s in sites):  # sites inside If/Loop/Scan bodies: body by body (swapper.rewrite.bodies)
+        return floor_with_bodies(model, sites, rewrite_identity_floor)
     out = copy_model(model)
     positions = site_positions(out, sites)
     taken = all_names(out)

@@ -57,7 +57,8 @@ def test_swap_that_does_not_pay_on_the_measured_target_writes_nothing(cli, model
     assert forced.exit_code == 0 and out.exists()
     assert "not faster on ort-cpu; written because of --force" in forced.stdout
     timing = json.loads(_meta(out)["swapper.target"])
-    assert timing["target"] == "ort-cpu" and timing["ratio"] == pytest.approx(1.03)
+    # the model keeps how it was timed and the answer, not the timings (same inputs, same bytes: README)
+    assert timing["target"] == "ort-cpu" and timing["faster"] is False and "ratio" not in timing
 
 
 def test_swap_on_a_faster_target_writes_and_records_the_timing(cli, models, tmp_path):
@@ -69,7 +70,7 @@ def test_swap_on_a_faster_target_writes_and_records_the_timing(cli, models, tmp_
     plan = json.loads(meta["swapper.plan"])
     assert plan["target"] == "ort-cpu-int8" and {s["form"] for s in plan["swaps"]} == {"Clip"}
     timing = json.loads(meta["swapper.target"])
-    assert timing["quantized"] and timing["ratio"] == pytest.approx(0.9)  # conftest's stand-in answer
+    assert timing["quantized"] and timing["faster"] is True  # conftest's stand-in answer: 0.9
 
 
 def test_declared_target_and_the_opset_hint(cli, models, tmp_path):
