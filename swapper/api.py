@@ -172,7 +172,7 @@ def swap(
     if dataset is not None and plan.swaps:
         t0 = time.perf_counter()
         run = {"batch_size": options.batch_size, "seed": options.seed, "threads": options.threads,
-               "progress": progress}
+               "progress": progress, "mask_input": options.mask_input}
         if options.cache_bytes() is not None:
             run["cache_bytes"] = options.cache_bytes()
         calibration = calibrate(work, sites, plan, dataset, mode=options.mode,

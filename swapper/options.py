@@ -80,7 +80,10 @@ class SwapOptions:
     function's default), ``site_ids`` (only these sites), ``only`` (only sites
     computing this function), ``include_gates``, ``include_outputs``.
     Placement: ``fold`` (one of FOLD_POLICIES). Calibration: ``mode`` (one of
-    MODES), ``bias_correction``, ``refit_consumers``, ``seed``. Running:
+    MODES), ``bias_correction``, ``refit_consumers``, ``seed``, ``mask_input``
+    ("auto": find the attention-mask input by its name, dtype and shape; "none":
+    no masking; else the input's name; its zero positions stay out of the
+    statistics of [batch, tokens, channels] sites, see swapper/data/token_mask.py). Running:
     ``batch_size`` (samples per onnxruntime call), ``threads`` (intra-op
     threads), ``cache_mb`` (recorded tensors kept in RAM up to this many MiB,
     on disk beyond; None = the cache's default).
@@ -99,6 +102,7 @@ class SwapOptions:
     bias_correction: bool = True
     refit_consumers: bool = False
     seed: int = 0
+    mask_input: str = "auto"
     batch_size: int = 64
     threads: int = 1
     cache_mb: float | None = None
@@ -122,6 +126,8 @@ class SwapOptions:
         check_threads(self.threads)
         check_seed(self.seed)
         check_cache_mb(self.cache_mb)
+        if not self.mask_input:
+            raise UsageError("mask_input must be 'auto', 'none' or an input name, got an empty string")
 
     def replace(self, **changes) -> SwapOptions:
         """A copy with ``changes`` (field names as keywords), validated again."""

@@ -164,6 +164,7 @@ def swap(
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
     refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,
+    mask_input: Annotated[str, typer.Option("--mask-input", help="Attention-mask input whose zero positions token sites' statistics skip: auto (found by name, dtype, shape), none, or the input's name.")] = "auto",
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
     budget: BudgetOpt = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
@@ -206,7 +207,8 @@ def swap(
             options = SwapOptions(
                 site_ids=split_ids(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
                 fold=fold, mode=mode, bias_correction=bias_correction, seed=seed, batch_size=batch_size,
-                threads=threads, cache_mb=cache_mb, target=target_name(target), opset=opset)
+                threads=threads, cache_mb=cache_mb, target=target_name(target), opset=opset,
+                mask_input=mask_input)
             code = run_auto_swap(model, output, calib=calib, val=val, rule=rule, options=options,
                                  settings=sweep_settings(jobs, scheduler, to), console=out, sweep_file=sweep_file,
                                  force=force, report=report, strict_data=strict_data,
@@ -225,7 +227,8 @@ def swap(
         options = SwapOptions(
             to=to, site_ids=split_ids(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
             fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
-            batch_size=batch_size, threads=threads, cache_mb=cache_mb, target=target_name(target), opset=opset,
+            mask_input=mask_input, batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            target=target_name(target), opset=opset,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
                         strict_data=strict_data, force=force, int8=int8, report=report,

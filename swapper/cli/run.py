@@ -205,6 +205,8 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
+            if result.calibration.tokens:
+                console.print(f"  token positions: {result.calibration.tokens}", highlight=False)
             console.print("  calibration time: " + ", ".join(f"{k[:-2]} {v:.2f}s" for k, v in t.items()),
                           highlight=False)
         for line in unrun_lines(result.calibration):  # sites inside If/Loop/Scan bodies the data never ran

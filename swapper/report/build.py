@@ -16,7 +16,8 @@ when a part did not run):
   (the emission form written), ``placement {a,b,c,d}, nodes_added,
   folded_into, mse_start, mse_fit, level, bias_corrected, notes`` (mse values
   null without calibration).
-- ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
+- ``calibration``: ``{"samples", "tokens", "timings_s", "sites"}`` (``tokens``: which attention mask the
+  statistics of token-shaped sites honoured and how many tokens they read, or why none; per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
   ``output_kinds``: output -> ``{kind, cue, sample_shape, dtype}``, and per output in
