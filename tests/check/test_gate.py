@@ -225,7 +225,9 @@ def test_check_a_model_against_itself_is_approved_with_no_change(cli, ws, tmp_pa
 def test_check_int8_adds_the_int8_section(cli, ws, approved, tmp_path):
     result = cli("check", ws["models"]["meter_cnn_silu"], approved[1], "--val", VAL, "--int8",
                  "--calib", CALIB, "--report", tmp_path / "r")
-    assert result.exit_code in (0, 1), result.output
+    # the candidate the swap approved (exit 0 above), judged by the same float rule: the verdict is decided
+    # before the int8 view is built (swapper.api.check), so --int8 adds figures and the exit code stays 0
+    assert result.exit_code == 0, result.output
     payload = json.loads((tmp_path / "r" / "report.json").read_text())
     q = payload["int8"]
     assert q is not None

@@ -120,7 +120,9 @@ def test_check_reports_the_target(cli, models, tmp_path):
     assert cli("swap", models / "meter_gelu_mlp.onnx", "-o", cand, "--no-calibrate", "--target", "none").exit_code == 0
     result = cli("check", models / "meter_gelu_mlp.onnx", cand, "--val", VAL, "--target", "npu-int8",
                  "--report", tmp_path / "r")
-    assert result.exit_code in (0, 1), result.output
+    # README "Measured results": the uncalibrated hard_swish swap of meter_gelu_mlp loses 0.22 points on
+    # val.npz, inside the default 1-point budget; a declared target's lacking ops are reported, not gated
+    assert result.exit_code == 0, result.output
     entry = json.loads((tmp_path / "r" / "report.json").read_text())["latency"]["target"]
     # npu-int8 cannot run Div or Erf (the erf-GELU of the original); the hard_swish candidate has neither
     assert entry["lacking_ops"] == {"original": {"Div": 2, "Erf": 2}, "candidate": {}}

@@ -201,7 +201,9 @@ def test_a_sub_folder_named_like_an_array_is_skipped(cli, tmp_path):
     # the report hashes exactly the files read, so the sub-folder does not break it either
     result = cli("swap", DEMO / "meter_mlp_tanh_sigmoid.onnx", "--calib", folder, "--val", DEMO / "val.npz",
                  "-o", tmp_path / "out.onnx", "--report", tmp_path / "rep", "--no-latency")
-    assert result.exit_code in (0, 1), result.output
+    # --calib with --val plans automatically, which keeps only a plan its own verification approved, or
+    # writes nothing; both end in 0 (README, "The sweep and the automatic plan")
+    assert result.exit_code == 0, result.output
     import json
 
     entry = json.loads((tmp_path / "rep" / "report.json").read_text())["inputs"]["calibration"]
