@@ -52,7 +52,8 @@ class Comparison:
     """Everything measured when running both models on the same samples.
 
     Accuracies and agreement are fractions in [0, 1]; ``delta_pp`` and the
-    interval are in percentage points (candidate − original).
+    interval are in percentage points (candidate − original); people read the
+    drop (original − candidate, :meth:`drop`), the one sign every page shows.
     """
 
     n: int
@@ -69,6 +70,7 @@ class Comparison:
     mcnemar_p: float | None = None
     interval: stats.Interval | None = None
     agreement: float | None = None  # fraction of samples with the same top-1 class
+    changed: dict | None = None  # the samples whose top-1 class changed (stats.changed_samples)
     regression: dict | None = None  # {"original": {mae, rmse}, "candidate": {mae, rmse}}
     # output name -> {max_abs, rmse, cosine, sqnr_db} and, for float outputs with >= 2 values per sample,
     # the per-sample cosine summary {cosine_mean, cosine_p5, cosine_min} (swapper.check.similarity)
@@ -82,9 +84,18 @@ class Comparison:
     signature_reason: str = ""
     notes: list[str] = field(default_factory=list)
 
+    def drop(self) -> tuple[float, float | None, float | None] | None:
+        """The top-1 drop (original − candidate, points) and its interval (lo, hi); None without labels."""
+        if self.delta_pp is None:
+            return None
+        if self.interval is None:
+            return 0.0 - self.delta_pp, None, None
+        return 0.0 - self.delta_pp, 0.0 - self.interval.hi, 0.0 - self.interval.lo  # 0.0 - x: never -0.0
+
     def to_dict(self) -> dict:
         """Plain-JSON view: no numpy types; non-finite floats become null with a note."""
         notes = list(self.notes)
+        drop = self.drop()
         raw = {
             "n": self.n,
             "task": self.task,
@@ -93,11 +104,14 @@ class Comparison:
             "top5_original": self.top5_original,
             "top5_candidate": self.top5_candidate,
             "delta_pp": self.delta_pp,
+            "drop_pp": None if drop is None else drop[0],
+            "drop_interval_pp": None if drop is None or drop[1] is None else [drop[1], drop[2]],
             "n01": self.n01,
             "n10": self.n10,
             "mcnemar_p": self.mcnemar_p,
             "interval": self.interval.to_dict() if self.interval else None,
             "agreement": self.agreement,
+            "changed": self.changed,
             "regression": self.regression,
             "output_errors": self.output_errors,
             "output_kinds": {k.name: k.to_dict() for k in self.output_kinds},
@@ -373,7 +387,7 @@ def compare(
     elif tally.cls is not None:
         comp.notes.append("class scores changed shape in the candidate; no accuracy computed")
     logger.info("compared %d samples (%s): %s", n, comp.task,
-                f"delta {comp.delta_pp:+.2f} pp" if comp.delta_pp is not None else "no labels")
+                f"drop {0.0 - comp.delta_pp:.2f} pp" if comp.delta_pp is not None else "no labels")
     return comp
 
 
@@ -381,9 +395,10 @@ def _fill_classification(comp: Comparison, preds, labels_seen, top5, level, meth
     po = np.concatenate(preds["original"])
     pc = np.concatenate(preds["candidate"])
     comp.agreement = stats.accuracy(po == pc)
-    if not labels_seen:
+    labels = np.concatenate(labels_seen) if labels_seen else None
+    comp.changed = stats.changed_samples(po, pc, labels)
+    if labels is None:
         return
-    labels = np.concatenate(labels_seen)
     co, cc = po == labels, pc == labels
     comp.top1_original, comp.top1_candidate = stats.accuracy(co), stats.accuracy(cc)
     if top5["original"]:

@@ -54,6 +54,12 @@ METRICS = ("top1", "agreement", "cosine", "sqnr", "rmse")
 DEFAULT_MIN_COSINE = 0.995  # rule of thumb, common practice, no source (see the module docstring)
 P5_SLACK = 2.0  # the worst 5% may lose this many times the mean's allowance of 1 - cos (our choice, no source)
 DEFAULT_MIN_SQNR_DB = 20.0  # same 10% relative error as cosine 0.995 (derived in the module docstring)
+# Travels with every verdict: the terminal line after it, the model's swapper.verdict entry, report.json/html.
+CAUTION = (
+    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
+    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
+    "and licensed practice."
+)
 
 
 @dataclass
@@ -151,8 +157,9 @@ class Verdict:
     thresholds: dict = field(default_factory=dict)  # the floors / budget applied, by name
 
     def to_dict(self) -> dict:
+        """The verdict as report.json and the model's ``swapper.verdict`` metadata hold it, with the caution."""
         return {"approved": bool(self.approved), "reason": self.reason, "rule": self.rule, "metric": self.metric,
-                "outputs": list(self.outputs), "thresholds": dict(self.thresholds)}
+                "outputs": list(self.outputs), "thresholds": dict(self.thresholds), "caution": CAUTION}
 
 
 @dataclass
@@ -246,24 +253,28 @@ def _pct(x: float) -> str:
     return f"{100.0 * x:.2f}%"
 
 
+def _pp(x: float) -> str:
+    """Points with two decimals; what rounds to zero is "0.00", never "-0.00"."""
+    return f"{round(float(x), 2) + 0.0:.2f}"
+
+
 def _top1(c: Comparison, b: Budget, outputs: list[str]) -> Verdict:
     if c.top1_original is None:
         raise CannotJudge("no top-1 accuracy was measured: the labels did not fit the class-score output "
                           f"({'; '.join(c.notes) or 'no labels'})")
-    drop = -float(c.delta_pp)
+    drop, _, upper = c.drop()  # original − candidate: a gain is a negative drop
     limits = {"max_drop_pp": b.max_drop_pp}
     if b.strict:
-        upper = -float(c.interval.lo)
         level = f"{100 * c.interval.level:g}%"
         rule = (f"approve when the upper end of the {level} {c.interval.method} interval for the "
                 f"top-1 drop is at most {b.max_drop_pp:.2f} pp (non-inferiority)")
         ok = upper <= b.max_drop_pp
-        reason = (f"drop upper bound {upper:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp "
-                  f"(measured drop {drop:.2f} pp)")
+        reason = (f"drop upper bound {_pp(upper)} pp {'<=' if ok else '>'} {_pp(b.max_drop_pp)} pp "
+                  f"(measured drop {_pp(drop)} pp)")
     else:
         rule = f"approve when the measured top-1 drop (original - candidate) is at most {b.max_drop_pp:.2f} pp"
         ok = drop <= b.max_drop_pp
-        reason = f"top-1 drop {drop:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp budget"
+        reason = f"top-1 drop {_pp(drop)} pp {'<=' if ok else '>'} {_pp(b.max_drop_pp)} pp budget"
     if b.min_agreement is not None and c.agreement is not None:
         limits["min_agreement"] = b.min_agreement
         rule += f", and top-1 agreement with the original is at least {_pct(b.min_agreement)}"

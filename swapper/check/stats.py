@@ -87,6 +87,29 @@ def discordant_counts(correct_orig: np.ndarray, correct_cand: np.ndarray) -> tup
     return int(np.count_nonzero(~a & b)), int(np.count_nonzero(a & ~b))
 
 
+CHANGED_SHOWN = 100  # changed samples listed in a report: enough to look at, a page a person reads (our choice)
+
+
+def changed_samples(pred_orig: np.ndarray, pred_cand: np.ndarray, labels: np.ndarray | None = None,
+                    cap: int = CHANGED_SHOWN) -> dict:
+    """The samples whose top-1 class changed, by index: the discordant pairs behind McNemar's test and more.
+
+    Returns ``{"count", "discordant", "shown", "samples"}``: ``count`` samples changed class,
+    ``discordant`` of them (``n01 + n10``, None without labels) changed from right to wrong or back,
+    and ``samples`` lists the first ``cap`` by sample index as ``{"index", "original", "candidate",
+    "label"}`` (``label`` None without labels). A changed sample both models got wrong is not
+    discordant: McNemar's test does not count it.
+    """
+    po = np.asarray(pred_orig).reshape(-1)
+    pc = np.asarray(pred_cand).reshape(-1)
+    lab = None if labels is None else np.asarray(labels).reshape(-1)
+    where = np.flatnonzero(po != pc)
+    discordant = None if lab is None else int(np.count_nonzero((po == lab) != (pc == lab)))
+    rows = [{"index": int(i), "original": int(po[i]), "candidate": int(pc[i]),
+             "label": None if lab is None else int(lab[i])} for i in where[:cap]]
+    return {"count": int(where.size), "discordant": discordant, "shown": len(rows), "samples": rows}
+
+
 def mcnemar_exact(n01: int, n10: int) -> float:
     """Two-sided exact McNemar p-value from the discordant counts.
 

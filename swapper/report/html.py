@@ -4,12 +4,13 @@ from __future__ import annotations
 import base64
 import html
 import io
+import json
 import logging
 
 import numpy as np
 
 from swapper import functions
-from swapper.report.numbers import num, pct
+from swapper.report.numbers import num, pct, signed
 from swapper.report.search import search_html
 
 logger = logging.getLogger(__name__)
@@ -23,7 +24,8 @@ h1{font-size:1.5rem} h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px soli
 table{border-collapse:collapse;margin:.5rem 0;font-size:.9rem} td,th{padding:.25rem .6rem;border-bottom:1px solid #e3e7ee;text-align:left}
 td.n{text-align:right;font-variant-numeric:tabular-nums} .side{display:flex;gap:2rem;flex-wrap:wrap}
 .side>div{flex:1 1 22rem;min-width:0}
-.caution{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
+.caution{margin:.5rem 0 0;padding:.6rem 1rem;border-left:4px solid #c9a227;background:#fdf8e6}
+.foot{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
 """
 
 
@@ -37,6 +39,56 @@ def _table(header: list[str], rows: list[list], numeric: set[int] = frozenset())
         "<tr>" + "".join(f"<td class='n'>{_e(v)}</td>" if i in numeric else f"<td>{_e(v)}</td>"
                          for i, v in enumerate(r)) + "</tr>" for r in rows)
     return f"<table><tr>{head}</tr>{body}</table>"
+
+
+_ROLES = (("original", "original model"), ("candidate", "candidate model"), ("calibration", "calibration set"),
+          ("validation", "validation set"))
+
+
+def _judged(payload: dict) -> str:
+    """What was judged: every input file with its sha256, then the settings the run was given."""
+    rows = []
+    for key, role in _ROLES:
+        entry = payload["inputs"].get(key)
+        if entry is None:
+            if key == "candidate" and payload["verdict"] is not None:
+                rows.append([role, "not written", "", ""])
+            continue
+        rows.append([role, entry["path"], entry["sha256"], entry["bytes"]])
+    files = _table(["", "path", "sha256", "bytes"], rows, numeric={3})
+    settings = []
+    options = payload.get("options") or {}
+    for group in ("swap", "gate", "run"):  # what to swap, how it is judged, how the command ran
+        for name, value in sorted((options.get(group) or {}).items()):
+            if value is not None and value != []:
+                settings.append([group, name, value if isinstance(value, str) else json.dumps(value)])
+    return ("<h2>What was judged</h2>" + files
+            + ("<p>Settings (unset ones left out):</p>" + _table(["", "setting", "value"], settings) if settings else ""))
+
+
+def _changed(c: dict) -> str:
+    """The validation samples whose top-1 class changed, by index: the pairs behind McNemar's test."""
+    ch = c.get("changed")
+    if not ch:
+        return ""
+    if not ch["count"]:
+        return "<h2>Samples that changed class</h2><p>No validation sample changed its top-1 class.</p>"
+    text = f"{ch['count']} of {c['n']} validation samples changed their top-1 class"
+    if ch["discordant"] is not None:
+        text += (f"; {ch['discordant']} of them went from right to wrong or back, the discordant pairs McNemar's "
+                 f"test counts ({c['n10']} now wrong, {c['n01']} now right); the rest were wrong both times")
+    text += "." + (f" The first {ch['shown']} by sample index:" if ch["shown"] < ch["count"] else "")
+
+    def effect(r: dict) -> str:
+        if r["label"] is None:
+            return ""
+        return {(True, False): "now wrong", (False, True): "now right"}.get(
+            (r["original"] == r["label"], r["candidate"] == r["label"]), "wrong both times")
+
+    rows = [[r["index"], "–" if r["label"] is None else r["label"], r["original"], r["candidate"], effect(r)]
+            for r in ch["samples"]]
+    return (f"<h2>Samples that changed class</h2><p>{_e(text)}</p>"
+            + _table(["sample index", "label", "original class", "candidate class", ""], rows, numeric={0, 1, 2, 3}))
 
 
 def _plots(payload: dict) -> list[tuple[str, str]]:
@@ -102,7 +154,8 @@ def render_html(payload: dict) -> str:
         banner = (f"<div class='verdict {cls}'><b>{word}</b>: {_e(v['reason'])}{decided}"
                   f"<br><small>Rule: {_e(v['rule'])}</small></div>")
     parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>swapper report: {_e(model)}</title>"
-             f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner]
+             f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner,
+             f"<p class='caution'>{_e(payload['caution'])}</p>", _judged(payload)]
     c = payload["comparison"]
     if c is not None:
         rows = [["samples", c["n"], ""]]
@@ -112,12 +165,15 @@ def render_html(payload: dict) -> str:
             rows.append(["top-5 accuracy", pct(c["top5_original"]), pct(c["top5_candidate"])])
         acc = _table(["", "original", "candidate"], rows)
         extra = []
-        if c.get("delta_pp") is not None:
+        if c.get("drop_pp") is not None:
             iv = c.get("interval") or {}
-            extra.append(["accuracy delta", f"{c['delta_pp']:+.2f} pp"])
-            if iv:
-                extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
-            extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
+            extra.append(["top-1 drop (original − candidate)", f"{signed(c['drop_pp'])} pp"])
+            if c.get("drop_interval_pp"):
+                lo, hi = c["drop_interval_pp"]
+                extra.append([f"{100 * iv.get('level', 0.95):g}% interval for the drop ({iv.get('method')})",
+                              f"[{signed(lo)}, {signed(hi)}] pp"])
+            extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} ({c['n10']} sample(s) now wrong, "
+                                             f"{c['n01']} now right)"])
         if c.get("agreement") is not None:
             extra.append(["top-1 agreement", pct(c["agreement"])])
         kinds = c.get("output_kinds") or {}
@@ -147,6 +203,7 @@ def render_html(payload: dict) -> str:
         speed = _table(["", "original", "candidate"], rows, numeric={1, 2})
         parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)
                      + f"</div><div>{speed}<small>{timing}</small></div></div>")
+        parts.append(_changed(c))
         ops = sorted(set(size["original"]["op_counts"]) | set(size["candidate"]["op_counts"]))
         parts.append("<h2>Operators</h2>" + _table(
             ["op", "original", "candidate"],
@@ -192,7 +249,6 @@ def render_html(payload: dict) -> str:
                                                  f"</figcaption></figure>" for t, uri in plots))
     parts.append(search_html(payload.get("search")))
     tool = payload["tool"]
-    parts.append(f"<p class='caution'>{_e(payload['caution'])}</p><p class='caution'>swapper {_e(tool['swapper'])}, "
-                 f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."
-                 f"</p></body></html>")
+    parts.append(f"<p class='foot'>swapper {_e(tool['swapper'])}, onnxruntime {_e(tool['onnxruntime'])}, "
+                 f"onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}.</p></body></html>")
     return "\n".join(parts)

@@ -92,7 +92,7 @@ def test_report_fields_follow_the_documented_schema(runs):
     # source: swapper/report/build.py module docstring, schema swapper.report/1 (every key present, null when not run)
     p = runs["gated"]["json"]
     assert set(p) == {"schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison",
-                      "budget", "verdict", "latency", "size", "int8", "search", "caution"}
+                      "budget", "verdict", "latency", "size", "int8", "search", "options", "caution"}
     assert p["schema"] == "swapper.report/1"
     assert p["search"] is None  # --plan all: no automatic plan
     created = datetime.fromisoformat(p["created_utc"])  # ISO 8601
@@ -151,7 +151,12 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert c["n"] == 450 and c["task"] == "classification"  # val.npz: 450 rows with labels
     assert c["has_nonfinite"] is False and c["signature_changed"] is False
     assert p["budget"] == {"max_drop_pp": 1.0, "strict": False, "min_agreement": None}  # README defaults
-    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
+    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds", "caution"}
+    assert p["verdict"]["caution"] == p["caution"]
+    # options: the swap's settings as given on the command line, the gate's, the command's own
+    assert set(p["options"]) == {"swap", "gate", "run"}
+    assert p["options"]["swap"]["fold"] == "exact" and p["options"]["swap"]["target"] == "ort-cpu"
+    assert p["options"]["gate"]["max_drop_pp"] == 1.0 and p["options"]["run"]["plan"] == "all"
     assert p["verdict"]["approved"] is True and p["verdict"]["metric"] == "top1"  # labels + class scores
     assert "1.00 pp" in p["verdict"]["rule"]  # README: the rule field states the rule with its numbers
 
@@ -239,6 +244,16 @@ def test_accuracy_figures_match_an_independent_computation(runs):
     assert c["agreement"] == pytest.approx(np.mean(pred_o == pred_c), abs=1e-12)
     iv = c["interval"]
     assert iv["level"] == 0.95 and iv["lo_pp"] <= c["delta_pp"] <= iv["hi_pp"]
+    # the drop people read: original − candidate, its interval the difference's interval mirrored
+    assert c["drop_pp"] == pytest.approx(100 * (accuracy_score(labels, pred_o) - accuracy_score(labels, pred_c)))
+    assert c["drop_interval_pp"] == pytest.approx([-iv["hi_pp"], -iv["lo_pp"]])
+    # the samples that changed class, recomputed from onnxruntime's outputs (argmax per row)
+    moved = np.flatnonzero(pred_o != pred_c)
+    ch = c["changed"]
+    assert ch["count"] == moved.size and ch["discordant"] == n01 + n10  # McNemar's discordant pairs
+    assert [r["index"] for r in ch["samples"]] == moved[:100].tolist()
+    assert all((r["original"], r["candidate"], r["label"]) == (pred_o[r["index"]], pred_c[r["index"]],
+                                                               labels[r["index"]]) for r in ch["samples"])
     # output errors, definitions from swapper/check/stats.py docstring (max |Δ|, RMSE, cosine, SQNR)
     err = c["output_errors"]["logits"]
     diff = (y_c - y_o).astype(np.float64)
@@ -256,7 +271,7 @@ def test_gate_decision_follows_the_readme_rule(runs):
         c, b = p["comparison"], p["budget"]
         drop = 100 * (c["top1_original"] - c["top1_candidate"])
         # README "The gate": point rule, or with --strict the upper end of the 95% interval for the drop
-        upper = -c["interval"]["lo_pp"] if b["strict"] else drop
+        upper = c["drop_interval_pp"][1] if b["strict"] else drop
         assert p["verdict"]["approved"] is (upper <= b["max_drop_pp"] + 1e-9), which
 
 
@@ -300,6 +315,43 @@ def test_html_shows_verdict_and_caution_and_is_self_contained(runs, which, word)
     assert not {"script", "link", "iframe", "object", "embed"} & set(parser.tags)
     styles = "".join(t for t in parser.text if "{" in t)  # the inline <style> text
     assert "@import" not in styles and "url(" not in styles.replace("url(data:", "")
+
+
+@pytest.mark.parametrize("which", ["gated", "rejected", "plain"])
+def test_html_puts_the_caution_directly_under_the_verdict(runs, which):
+    page = runs[which]["html"]
+    banner = page.index("<div class='verdict")
+    after = page[page.index("</div>", banner) + len("</div>"):].lstrip()
+    # the next element after the banner is the caution, before any section heading
+    assert after.startswith("<p class='caution'>"), after[:80]
+    assert after.index(runs[which]["json"]["caution"].split(".")[0]) < after.index("<h2>")
+
+
+@pytest.mark.parametrize("which", ["gated", "rejected"])
+def test_html_says_what_was_judged(runs, which):
+    p, page = runs[which]["json"], runs[which]["html"]
+    judged = page[page.index("<h2>What was judged</h2>"):page.index("<h2>Accuracy")]
+    for key in ("original", "validation"):
+        assert p["inputs"][key]["sha256"] in judged and p["inputs"][key]["path"] in judged
+    if which == "rejected":
+        assert "not written" in judged  # a rejected candidate is not on disk: no hash to show
+    assert ">fold<" in judged and ">max_drop_pp<" in judged  # the settings used
+
+
+def test_html_lists_the_samples_that_changed_class(runs):
+    c, page = runs["gated"]["json"]["comparison"], runs["gated"]["html"]
+    ch = c["changed"]
+    assert ch["count"] > 0  # measured: the calibrated relu swap moves a few of the 450 digits
+    section = page[page.index("<h2>Samples that changed class</h2>"):]
+    assert f"{ch['count']} of {c['n']} validation samples" in section
+    assert f"{c['n10']} now wrong, {c['n01']} now right" in section
+    for r in ch["samples"]:
+        assert f"<td class='n'>{r['index']}</td><td class='n'>{r['label']}</td>" in section
+
+
+def test_html_never_prints_a_negative_zero(runs):
+    for which in ("gated", "rejected"):
+        assert "-0.00" not in runs[which]["html"] and "−0.00" not in runs[which]["html"]
 
 
 def test_html_shows_the_measured_figures(runs):
