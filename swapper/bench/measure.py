@@ -130,9 +130,9 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
             run.swapped, run.swap_result = result.candidate, result
         if log:
             log(f"{rung}: {metric} {_fmt(score, metric)} ({time.perf_counter() - t0:.1f}s)")
-    ladder["delta_pp"] = {
+    ladder["drop_pp"] = {  # original − rung, in points: the one sign convention (a gain is negative)
         r: (None if ladder[r] is None or ladder["original"] is None or metric not in FRACTION_METRICS
-            else 100.0 * (ladder[r] - ladder["original"]))
+            else 100.0 * (ladder["original"] - ladder[r]))
         for r in RUNGS
     }
     ladder["n"] = val.n
@@ -244,8 +244,8 @@ def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.Mod
     scores = {"original": q_original.score, "swapped": _int8_score(original, swapped, val, batch_size)}
     metric = metric_for(original, val)
     view = {"metric": metric, "original": scores["original"], "swapped": scores["swapped"],
-            "delta_pp": None if None in scores.values() or metric not in FRACTION_METRICS
-            else 100.0 * (scores["swapped"] - scores["original"]),
+            "drop_pp": None if None in scores.values() or metric not in FRACTION_METRICS
+            else 100.0 * (scores["original"] - scores["swapped"]),
             "speed": {}}
     sessions = {"original": q_original.session, "swapped": swapped}
     for bs in batch_sizes:

@@ -21,6 +21,7 @@ from rich.text import Text
 from swapper import api, functions
 from swapper.cli.guard import OneLineGroup, configure_logging
 from swapper.cli.opts import (
+    FOLD_HELP,
     MAX_LATENCY_RUNS,
     TARGET_HELP,
     BatchAxis,
@@ -43,6 +44,7 @@ from swapper.cli.opts import (
     ThreadsOpt,
     data_source_of,
     finite,
+    fold_option,
     gate_rule,
     plan_word,
     split_ids,
@@ -121,7 +123,7 @@ def list_functions() -> None:
     for name in sorted(functions.REGISTRY):
         fn = functions.REGISTRY[name]
         kind = "surrogate" if fn.is_cheap else "source"
-        default = functions.DEFAULT_TARGET.get(name, "")
+        default = functions.DEFAULT_SURROGATE.get(name, "")
         forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
                           for f in forms_of(name)) if fn.is_cheap else ""
         out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
@@ -160,7 +162,7 @@ def swap(
     only: Annotated[Optional[str], typer.Option(help="Swap only sites computing this function.")] = None,
     include_gates: Annotated[bool, typer.Option("--include-gates", help="Also swap gate sites.")] = False,
     include_outputs: Annotated[bool, typer.Option("--include-outputs", help="Also swap sites that are graph outputs.")] = False,
-    fold: Annotated[str, typer.Option(help="exact | nodes | approximate | off (see README).")] = "exact",
+    fold: Annotated[str, typer.Option(callback=fold_option, help=FOLD_HELP)] = "exact",
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
     refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,

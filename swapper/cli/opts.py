@@ -27,6 +27,26 @@ def finite(value: float | None) -> float | None:
     return value
 
 
+def fold_option(value: str) -> str:
+    """Option callback for --fold: today's spelling of the policy; an older one works with a one-line note."""
+    from swapper.options import fold_note, fold_word
+
+    note = fold_note(value)
+    try:
+        word = fold_word(value)
+    except UsageError as exc:  # a usage error of the parser: one line, exit 2
+        raise typer.BadParameter(str(exc)) from None
+    if note:
+        typer.echo(f"note: {note}", err=True)
+    return word
+
+
+FOLD_HELP = ("Where a, b, c, d of y = a·g(b·x + c) + d go. exact: folded into neighbouring layers where that is "
+             "exact, the rest fixed at neutral values (adds no node); exact+nodes: the same folds, the rest as "
+             "Mul/Add nodes (older spelling: nodes); approximate: like exact, d also into zero-padded Conv biases "
+             "(inexact at borders); off: every parameter as a node.")
+
+
 # Running settings, shared by `swap`, `check` (and `bench` for latency).
 SeedOpt = Annotated[int, typer.Option(min=0, max=MAX_SEED, help="Seed for sampling; same inputs + seed = same bytes.")]
 BatchOpt = Annotated[int, typer.Option(min=1, max=MAX_BATCH_SIZE, help="Samples per onnxruntime call.")]

@@ -104,7 +104,7 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
             "verdict", "latency", "size", "int8", "search", "options", "caution")
 
 
-SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
+SITE_KEYS = ("site_id", "function", "surrogate", "form", "placement", "nodes_added", "folded_into", "mse_start",
              "mse_fit", "level", "bias_corrected", "notes")
 
 
@@ -158,7 +158,7 @@ def site_rows(plan, records, calibration) -> list[dict]:
     for s in plan.swaps:
         rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
         rows.append({
-            "site_id": s.site_id, "source": s.source, "target": s.target,
+            "site_id": s.site_id, "function": s.function, "surrogate": s.surrogate,
             "form": rec.form if rec else s.form, "placement": dict(s.placement),
             "nodes_added": rec.nodes_added if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],

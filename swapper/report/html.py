@@ -118,18 +118,18 @@ def _plots(payload: dict) -> list[tuple[str, str]]:
     for s in worst:
         swap = next(w for w in plan["swaps"] if w["site_id"] == s["site_id"])
         rng = ranges.get(s["site_id"], {})
-        f, g = functions.get(swap["source"]), functions.get(swap["target"])
+        f, g = functions.get(swap["function"]), functions.get(swap["surrogate"])
         fig, ax = plt.subplots(figsize=(7, 3))
         for ch in range(min(4, len(swap["a"]))):
             lo = (rng.get("x_min") or [-6.0] * len(swap["a"]))[ch]
             hi = (rng.get("x_max") or [6.0] * len(swap["a"]))[ch]
             x = np.linspace(lo, hi, 200) if hi > lo else np.linspace(lo - 1, lo + 1, 200)
-            line, = ax.plot(x, f.ref(x, **swap["source_params"]), lw=2, alpha=0.5)
-            ax.plot(x, swap["a"][ch] * g.ref(swap["b"][ch] * x + swap["c"][ch], **swap["target_params"])
+            line, = ax.plot(x, f.ref(x, **swap["function_params"]), lw=2, alpha=0.5)
+            ax.plot(x, swap["a"][ch] * g.ref(swap["b"][ch] * x + swap["c"][ch], **swap["surrogate_params"])
                     + swap["d"][ch], "--", color=line.get_color(), label=f"channel {ch}")
         ax.set_xlabel("site input (recorded range)")
         ax.legend(fontsize=7)
-        out.append((f"{s['site_id']}: {swap['source']} (solid) vs fitted {swap['target']} (dashed)", _png(fig, plt)))
+        out.append((f"{s['site_id']}: {swap['function']} (solid) vs fitted {swap['surrogate']} (dashed)", _png(fig, plt)))
     return out
 
 
@@ -224,7 +224,7 @@ def render_html(payload: dict) -> str:
                              f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
                              f"output channels.</p>")
     if payload["sites"]:
-        rows = [[s["site_id"], f"{s['source']} → {s['target']}" + (f" ({s['form']})" if s.get("form") else ""),
+        rows = [[s["site_id"], f"{s['function']} → {s['surrogate']}" + (f" ({s['form']})" if s.get("form") else ""),
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
                  num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
         parts.append("<h2>Swapped sites</h2>" + _table(

@@ -70,7 +70,7 @@ def pareto_png(points: list[tuple], front_ids: list[str], *, unit: str, saving: 
     except ImportError:
         return None
     fig, ax = plt.subplots(figsize=(7, 4))
-    for k, (fold, marker) in enumerate((("exact", "o"), ("nodes", "s"))):
+    for k, (fold, marker) in enumerate((("exact", "o"), ("exact+nodes", "s"))):
         for refit in (False, True):
             sel = [p for p in points if p[4] == fold and p[3] == refit]
             if sel:

@@ -37,7 +37,7 @@ def swap_table(rows: list[dict]) -> Table:
     for r in rows:
         cells = (
             r["site_id"],
-            f"{r['source']} → {r['target']}" + (f" ({r['form']})" if r.get("form") else ""),
+            f"{r['function']} → {r['surrogate']}" + (f" ({r['form']})" if r.get("form") else ""),
             *(r["placement"].get(p, "-") for p in "abcd"),
             "-" if r["nodes_added"] is None else str(r["nodes_added"]),
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",

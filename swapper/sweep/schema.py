@@ -32,7 +32,8 @@ Every key is always present; ``null`` where a figure does not apply.
 
   - ``id`` ("s3/relu:Relu/exact/refit"), ``site_id``, ``surrogate``,
     ``form`` (emission form), ``fold`` ("exact": no node added, parameters
-    that cannot fold are held; "nodes": those become Mul/Add nodes),
+    that cannot fold are fixed at their neutral values; "exact+nodes": those
+    become Mul/Add nodes; files written before read "nodes" for it),
     ``refit`` (consumer refit), ``placement`` ``{a, b, c, d}``, ``ops`` (the
     priced chain), ``prior_cost`` (the profile's cost of it per element),
     ``same_as`` (the id of a candidate that writes the same model, whose
@@ -60,6 +61,8 @@ from pathlib import Path
 
 from swapper.core.model_io import atomic_write_bytes
 from swapper.errors import UsageError
+from swapper.options import OLD_FOLD_WORDS
+from swapper.plan.placement import canonical_placement
 
 logger = logging.getLogger(__name__)
 
@@ -124,6 +127,9 @@ def read_sweep(path: str | Path) -> dict:
         validate_sweep(payload)
     except (OSError, ValueError) as exc:
         raise UsageError(f"{path}: not a {SCHEMA} file ({str(exc).splitlines()[0]})") from None
+    for _, c in candidates(payload):  # older files spell a placement policy the old way ("nodes")
+        c["fold"] = OLD_FOLD_WORDS.get(c["fold"], c["fold"])
+        c["placement"] = canonical_placement(c["placement"])
     return payload
 
 

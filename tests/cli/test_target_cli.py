@@ -111,7 +111,7 @@ def test_without_a_target_the_registry_defaults_come_back(cli, models, tmp_path)
     assert result.exit_code == 0, result.output
     plan = json.loads(_meta(out)["swapper.plan"])
     # README "What gets swapped": gelu -> hard_swish; opset 18 has the HardSwish op
-    assert plan["target"] is None and {(s["target"], s["form"]) for s in plan["swaps"]} == {("hard_swish", "HardSwish")}
+    assert plan["target"] is None and {(s["surrogate"], s["form"]) for s in plan["swaps"]} == {("hard_swish", "HardSwish")}
     assert "swapper.target" not in _meta(out)
 
 

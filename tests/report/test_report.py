@@ -116,20 +116,20 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert set(plan) == {"fold", "swaps", "skipped", "target", "opset", "conversion", "remaining", "hints"}
     assert plan["fold"] == "exact" and plan["target"] == "ort-cpu"  # README: exact and ort-cpu by default
     assert plan["opset"] == 17 and plan["conversion"] is None  # demo_models/manifest.json: opset 17
-    # README "What gets swapped": pointwise costly sites by default; relu is cheap, gates need --include-gates
+    # README "What gets swapped": hidden costly sites by default; relu is cheap, gates need --include-gates
     assert [s["site_id"] for s in plan["swaps"]] == ["s1", "s2", "s3"]
     assert sorted(s["site_id"] for s in plan["skipped"]) == ["s4", "s5"]
     # README "Targets": on ort-cpu x·Sigmoid(x) fuses to QuickGelu (1.16 in ort-cpu.json); hard_swish's cheapest
     # form there, HardSigmoid then Mul (1.0 + 1.295), does not pay; relu fuses into the Conv (0)
-    assert {s["source"]: (s["target"], s["form"]) for s in plan["swaps"]} == {"silu": ("relu", "Relu")}
+    assert {s["function"]: (s["surrogate"], s["form"]) for s in plan["swaps"]} == {"silu": ("relu", "Relu")}
 
     original = onnx.load(str(runs["gated"]["original"]))
     node_names = {n.name for n in original.graph.node}
     assert [s["site_id"] for s in p["sites"]] == ["s1", "s2", "s3"]
     for s in p["sites"]:
-        assert set(s) == {"site_id", "source", "target", "form", "placement", "nodes_added", "folded_into",
+        assert set(s) == {"site_id", "function", "surrogate", "form", "placement", "nodes_added", "folded_into",
                           "mse_start", "mse_fit", "level", "bias_corrected", "notes"}
-        assert (s["source"], s["target"], s["form"]) == ("silu", "relu", "Relu")
+        assert (s["function"], s["surrogate"], s["form"]) == ("silu", "relu", "Relu")
         assert set(s["placement"]) == {"a", "b", "c", "d"} and all(isinstance(v, str) for v in s["placement"].values())
         assert isinstance(s["nodes_added"], int) and s["nodes_added"] >= 0
         assert set(s["folded_into"]) <= node_names  # folds go into the original's own nodes
@@ -360,7 +360,7 @@ def test_html_shows_the_measured_figures(runs):
     assert f"{100 * c['top1_original']:.2f}%" in page and f"{100 * c['top1_candidate']:.2f}%" in page
     for s in p["sites"]:
         assert f">{s['site_id']}<" in page
-        assert f"{s['source']} → {s['target']} ({s['form']})" in page  # the form the plan chose and the graph holds
+        assert f"{s['function']} → {s['surrogate']} ({s['form']})" in page  # the form the plan chose and the graph holds
     assert f"planned for {p['plan']['target']} at opset {p['plan']['opset']}" in page
     # plots are embedded as PNG data URIs when the optional matplotlib is installed (report.py docstring)
     if importlib.util.find_spec("matplotlib") is not None:
