@@ -85,12 +85,12 @@ def metric_for(original: Reference, val: Dataset) -> str | None:
     """The gate's default metric for the original's outputs on ``val``, named as the bench names it.
 
     ``accuracy`` (labels + class scores), ``agreement`` (class scores), ``cosine`` (embeddings, dense
-    maps), ``sqnr`` (one value per sample), ``rmse`` (targets); None when the data cannot judge.
+    maps), ``sqnr`` (one value per sample), ``rmse`` (expected); None when the data cannot judge.
     """
     kinds = probe(original, val, batch_size=original.batch_size)  # from the stored outputs: no extra run
     try:
         choice = choose_metric(kinds, GateRule(), has_labels=val.labels is not None,
-                               has_targets=val.targets is not None)
+                               has_expected=val.expected is not None)
     except CannotJudge as exc:
         logger.info("no quality figure: %s", exc)
         return None

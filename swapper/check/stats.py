@@ -344,17 +344,17 @@ def output_errors(ref: np.ndarray, cand: np.ndarray) -> dict[str, float]:
 
 
 class RegressionAccumulator:
-    """Streaming MAE / RMSE of predictions against targets."""
+    """Streaming MAE / RMSE of predictions against expected."""
 
     def __init__(self) -> None:
         self.count = 0
         self.sum_abs = 0.0
         self.sum_sq = 0.0
 
-    def update(self, pred: np.ndarray, targets: np.ndarray) -> None:
-        """Add one batch; ``pred`` and ``targets`` must hold the same number of values."""
+    def update(self, pred: np.ndarray, expected: np.ndarray) -> None:
+        """Add one batch; ``pred`` and ``expected`` must hold the same number of values."""
         p = np.asarray(pred, dtype=np.float64)
-        t = np.asarray(targets, dtype=np.float64)
+        t = np.asarray(expected, dtype=np.float64)
         if p.size != t.size:
             raise ValueError(f"{p.size} predictions but {t.size} target values")
         err = p.ravel() - t.ravel()
@@ -369,8 +369,8 @@ class RegressionAccumulator:
         return {"mae": self.sum_abs / self.count, "rmse": math.sqrt(self.sum_sq / self.count)}
 
 
-def regression_errors(pred: np.ndarray, targets: np.ndarray) -> dict[str, float]:
+def regression_errors(pred: np.ndarray, expected: np.ndarray) -> dict[str, float]:
     """``mae = mean|pred−target|`` and ``rmse = sqrt(mean((pred−target)²))`` over all values."""
     acc = RegressionAccumulator()
-    acc.update(pred, targets)
+    acc.update(pred, expected)
     return acc.compute()

@@ -223,9 +223,9 @@ def test_a_fixed_batch_size_must_divide_the_samples(cli, tmp_path):
                    "calib.npz", "64 samples do not divide into batches of 7")
 
 
-def test_targets_for_a_classifier_are_refused_naming_the_file(cli, tmp_path):
+def test_expected_values_for_a_classifier_are_refused_naming_the_file(cli, tmp_path):
     with np.load(DEMO / "val.npz") as z:
-        np.savez(tmp_path / "val.npz", pixels=z["pixels"][:64], targets=np.zeros(64, np.float32))
+        np.savez(tmp_path / "val.npz", pixels=z["pixels"][:64], expected=np.zeros(64, np.float32))
     model = DEMO / "meter_mlp_tanh_sigmoid.onnx"  # 10 class scores per sample
     one_line_error(cli("check", model, model, "--val", tmp_path / "val.npz", "--report", tmp_path / "rep"),
-                   "val.npz", "'targets' has 1 value(s) per sample")
+                   "val.npz", "'expected' has 1 value(s) per sample")

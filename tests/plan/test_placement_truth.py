@@ -69,7 +69,7 @@ def _model(text: str, weights: dict[str, np.ndarray], tmp_path: Path):
 
 
 def _dataset(x: np.ndarray) -> Dataset:
-    return Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, targets=None, n=len(x),
+    return Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, expected=None, n=len(x),
                    dtypes={"X": np.dtype(np.float32)})
 
 
