@@ -211,7 +211,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
-            if result.calibration.tokens:
+            if result.calibration.tokens and _has_token_sites(result):  # a CNN has nothing a mask could mark
                 console.print(f"  token positions: {result.calibration.tokens}", highlight=False)
             console.print("  calibration time: " + ", ".join(f"{k[:-2]} {v:.2f}s" for k, v in t.items()),
                           highlight=False)
@@ -271,6 +271,14 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
         if console is not None:
             console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if approved else EXIT_REJECTED
+
+
+def _has_token_sites(result: api.SwapResult) -> bool:
+    """Whether any swapped site is shaped [batch, tokens, channels], the positions an attention mask marks."""
+    from swapper.calibrate.tokens import is_token_site
+
+    swapped = {s.site_id for s in result.plan.swaps}
+    return any(is_token_site(s) for s in result.sites if s.id in swapped)
 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:

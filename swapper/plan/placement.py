@@ -65,7 +65,7 @@ LEGEND = {
     "consumers-via-max": "folded into those layers through a max pool; exact only for a > 0, so a is kept > 0",
     "in-surrogate": "moved inside the surrogate: a·g(z) = g(a·z) for a > 0 (ReLU family)",
     "nodes": "a per-channel Mul or Add node added to the graph",
-    "fixed": "not fitted: kept at 1 (a, b) or 0 (c, d) because it has nowhere exact to go",
+    "fixed": "kept at 1 (a, b) or 0 (c, d) and not fitted: it has nowhere exact to go",
     "approx": "pushed into a zero-padded Conv's bias: inexact at the image borders",
 }
 

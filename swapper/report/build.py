@@ -11,11 +11,17 @@ when a part did not run):
   integer label).
 - ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
   ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
-  record or null), ``remaining``, ``hints``.
-- ``sites``: one entry per swapped site: ``site_id, source, target, form``
-  (the emission form written), ``placement {a,b,c,d}, nodes_added,
-  folded_into, mse_start, mse_fit, level, bias_corrected, notes`` (mse values
-  null without calibration).
+  record or null), ``remaining``, ``hints``. Each swap names ``function`` (what
+  the site computes) and ``surrogate`` (what is written instead), with their
+  ``function_params`` / ``surrogate_params``.
+- ``sites``: one entry per swapped site: ``site_id, function, surrogate, form``
+  (the emission form written), ``placement {a,b,c,d}`` (words of
+  swapper/plan/placement.py: producer, consumers, consumers-via-max,
+  in-surrogate, nodes, fixed, approx), ``nodes_added`` (how many nodes the graph
+  gained at the site: the nodes written there minus the original's nodes they
+  replace, 0 when it gained none, also when it shrank), ``site_nodes``
+  ``{"original", "written"}`` (both counts), ``folded_into, mse_start, mse_fit,
+  level, bias_corrected, notes`` (mse values null without calibration).
 - ``calibration``: ``{"samples", "tokens", "timings_s", "sites"}`` (``tokens``: which attention mask the
   statistics of token-shaped sites honoured and how many tokens they read, or why none; per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
@@ -69,9 +75,17 @@ when a part did not run):
   (``command``, ``plan``, ``force``, ``int8``, ``latency_runs``...).
 - ``caution``: the safety caution, verbatim.
 
-Added later in schema /1 (no earlier field changed meaning): ``options``,
-``verdict.caution``, ``comparison.drop_pp``, ``comparison.drop_interval_pp``,
-``comparison.changed``.
+Added later in schema /1: ``options``, ``verdict.caution``,
+``comparison.drop_pp``, ``comparison.drop_interval_pp``, ``comparison.changed``,
+``sites[].site_nodes``. Renamed, same values, so that "target" means a target
+profile only and "source" a citation only: ``sites[].source`` -> ``function``,
+``sites[].target`` -> ``surrogate``, and in ``plan.swaps`` also
+``source_params`` -> ``function_params``, ``target_params`` ->
+``surrogate_params``. Placement words renamed: ``held`` -> ``fixed``,
+``inner`` -> ``in-surrogate``, ``consumers+`` -> ``consumers-via-max``; fold
+``nodes`` -> ``exact+nodes``. Changed meaning: ``sites[].nodes_added`` counted
+every node written at the site (the surrogate op itself included, so a
+one-for-one swap read 1); it now counts what the graph gained there.
 
 report.html is self-contained (styles inline, plots as data: URIs): the verdict
 and its reason first with the caution directly under it, then what was judged
@@ -104,8 +118,8 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
             "verdict", "latency", "size", "int8", "search", "options", "caution")
 
 
-SITE_KEYS = ("site_id", "function", "surrogate", "form", "placement", "nodes_added", "folded_into", "mse_start",
-             "mse_fit", "level", "bias_corrected", "notes")
+SITE_KEYS = ("site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes", "folded_into",
+             "mse_start", "mse_fit", "level", "bias_corrected", "notes")
 
 
 def _versions() -> dict:
@@ -160,7 +174,9 @@ def site_rows(plan, records, calibration) -> list[dict]:
         rows.append({
             "site_id": s.site_id, "function": s.function, "surrogate": s.surrogate,
             "form": rec.form if rec else s.form, "placement": dict(s.placement),
-            "nodes_added": rec.nodes_added if rec else None,
+            # what the graph gained at the site: the written nodes against the original's nodes they replace
+            "nodes_added": max(0, rec.nodes_added - rec.nodes_replaced) if rec else None,
+            "site_nodes": {"original": rec.nodes_replaced, "written": rec.nodes_added} if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
             "level": fit.level if fit else None,

@@ -12,6 +12,7 @@ import numpy as np
 from swapper import functions
 from swapper.report.numbers import num, pct, signed
 from swapper.report.search import search_html
+from swapper.report.tables import placement_legend
 
 logger = logging.getLogger(__name__)
 
@@ -225,11 +226,15 @@ def render_html(payload: dict) -> str:
                              f"output channels.</p>")
     if payload["sites"]:
         rows = [[s["site_id"], f"{s['function']} → {s['surrogate']}" + (f" ({s['form']})" if s.get("form") else ""),
-                 " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
+                 " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"),
+                 "–" if not s.get("site_nodes") else f"{s['site_nodes']['original']} → {s['site_nodes']['written']}",
                  num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
+        legend = "".join(f"<li>{_e(line)}</li>" for line in placement_legend(payload["sites"]))
         parts.append("<h2>Swapped sites</h2>" + _table(
-            ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted", "notes"],
-            rows, numeric={3, 4, 5}))
+            ["site", "function → surrogate", "where a b c d live", "nodes (original → swapped)", "MSE start",
+             "MSE fitted", "notes"], rows, numeric={4, 5})
+            + "<p><small>Where a, b, c, d of y = a·g(b·x + c) + d live:</small></p><ul><small>" + legend
+            + "</small></ul><p><small>nodes: the site's nodes in the original → in the swapped model.</small></p>")
     plan = payload.get("plan") or {}
     skipped = plan.get("skipped", [])
     if skipped:

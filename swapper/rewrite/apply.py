@@ -68,9 +68,10 @@ class SiteRecord:
     surrogate: str
     placement: dict  # the plan's placement, as carried out (every parameter named)
     folded_into: list[str]  # names of the nodes whose weights or bias changed
-    nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
+    nodes_added: int  # nodes written for this site (surrogate plus parameter Mul/Add), not a net change
     notes: list[str] = field(default_factory=list)
     form: str = ""  # the emission form written (swapper.functions.forms)
+    nodes_replaced: int = 0  # the original's nodes at the site, which the written ones replace
 
 
 @dataclass
@@ -264,7 +265,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
     return SiteRecord(site.id, site.function, swap.surrogate, place, sorted(set(folded)), len(em.nodes),
-                      list(swap.notes), form.name)
+                      list(swap.notes), form.name, nodes_replaced=len(site.nodes))
 
 
 def _form(swap: SiteSwap, opset: int) -> Form:

@@ -127,8 +127,9 @@ def test_report_fields_follow_the_documented_schema(runs):
     node_names = {n.name for n in original.graph.node}
     assert [s["site_id"] for s in p["sites"]] == ["s1", "s2", "s3"]
     for s in p["sites"]:
-        assert set(s) == {"site_id", "function", "surrogate", "form", "placement", "nodes_added", "folded_into",
-                          "mse_start", "mse_fit", "level", "bias_corrected", "notes"}
+        assert set(s) == {"site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes",
+                          "folded_into", "mse_start", "mse_fit", "level", "bias_corrected", "notes"}
+        assert set(s["site_nodes"]) == {"original", "written"}
         assert (s["function"], s["surrogate"], s["form"]) == ("silu", "relu", "Relu")
         assert set(s["placement"]) == {"a", "b", "c", "d"} and all(isinstance(v, str) for v in s["placement"].values())
         assert isinstance(s["nodes_added"], int) and s["nodes_added"] >= 0
