@@ -356,7 +356,7 @@ class RegressionAccumulator:
         p = np.asarray(pred, dtype=np.float64)
         t = np.asarray(expected, dtype=np.float64)
         if p.size != t.size:
-            raise ValueError(f"{p.size} predictions but {t.size} target values")
+            raise ValueError(f"{p.size} predictions but {t.size} expected values")
         err = p.ravel() - t.ravel()
         self.count += err.size
         self.sum_abs += float(np.sum(np.abs(err)))
@@ -370,7 +370,7 @@ class RegressionAccumulator:
 
 
 def regression_errors(pred: np.ndarray, expected: np.ndarray) -> dict[str, float]:
-    """``mae = mean|pred−target|`` and ``rmse = sqrt(mean((pred−target)²))`` over all values."""
+    """``mae = mean|pred−expected|`` and ``rmse = sqrt(mean((pred−expected)²))`` over all values."""
     acc = RegressionAccumulator()
     acc.update(pred, expected)
     return acc.compute()

@@ -40,8 +40,11 @@ Every key is always present; ``null`` where a figure does not apply.
     results these are, or null);
   - ``status`` "ok" | "failed", ``reason`` (one line, null when ok);
   - ``metric``: ``{"name", "original", "candidate", "delta", "cost",
-    "interval"}`` (``interval``: [lo, hi] of the cost where the metric has one,
-    else null), null when failed; ``nonfinite``: the candidate produced
+    "interval"}`` (``cost``: what the candidate loses, larger = worse, the
+    sign every table shows, e.g. the top-1 drop original − candidate;
+    ``interval``: [lo, hi] of the cost where the metric has one, else null;
+    ``delta``: the raw difference candidate − original, kept for readers of
+    earlier files), null when failed; ``nonfinite``: the candidate produced
     NaN/Inf;
   - ``saving``: ``{"ms", "fraction", "units", "pooled_ms", "pooled_over",
     "value", "required", "how"}`` (:mod:`swapper.sweep.savings`);
