@@ -13,9 +13,18 @@ from swapper.plan.placement import LEGEND
 from swapper.plan.plan import Plan
 from swapper.scan.sites import Site
 
+SITE_WORDS = (
+    "role: hidden = an ordinary activation inside the network (swapped by default); gate = its output multiplies "
+    "another tensor (--include-gates); output = its values reach a graph output (--include-outputs)",
+    "cost share: the site's part of all sites' cost, elements per sample × the function's cost relative to Relu "
+    "(`swapper functions`)",
+)
+
 
 def sites_table(sites: list[Site], title: str) -> Table:
-    table = Table(title=Text(title), title_justify="left")
+    """What `swapper scan` found, one row per site, its words explained beneath it."""
+    table = Table(title=Text(title), title_justify="left", caption=Text("\n".join(SITE_WORDS)),
+                  caption_justify="left")
     for col in ("id", "function", "form", "role", "channels", "shape", "producer → consumers", "cost share"):
         table.add_column(col, justify="right" if col in ("channels", "cost share") else "left")
     for s in sites:
