@@ -111,7 +111,7 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     result rounded once on the final store, so the values are bit-equal to
     ``(a * g(b * x.astype(float64) + c) + d).astype(x.dtype)``.
     """
-    fn = functions.get(swap.target)
+    fn = functions.get(swap.surrogate)
     x = np.asarray(x)
     if x.ndim == 0:
         return surrogate_output(swap, x.reshape(1)).reshape(())
@@ -131,7 +131,7 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
         np.copyto(z, x[s])  # one widening copy, then same-dtype ufuncs (mixed dtypes go through slow buffers)
         np.multiply(z, pb, out=z)
         np.add(z, pc, out=z)
-        g = np.asarray(fn.ref(z, **swap.target_params), dtype=np.float64)
+        g = np.asarray(fn.ref(z, **swap.surrogate_params), dtype=np.float64)
         np.multiply(g, pa, out=z)
         np.add(z, pd, out=z)
         np.copyto(out[s], z, casting="same_kind")
@@ -147,7 +147,7 @@ def observer_for(swap: SiteSwap, seed: int, reservoir: int, rows: bool = False) 
 
 def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
     """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
-    g, dg = swap.surrogate()
+    g, dg = swap.bound_surrogate()
     swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
     fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()), dg=dg,
                           **swap.a_bounds())

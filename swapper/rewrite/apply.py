@@ -6,7 +6,7 @@ Transformation: for every swapped site, the site's nodes are replaced by
 is applied first) and each of a, b, c, d is placed exactly as the plan says: folded into the producer
 of ``x`` (its output channels scaled/shifted), folded into the linear layers
 that read ``y``, directly or behind pools/reshapes/gates (their input-channel
-weights scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool),
+weights scaled, ``W·d`` added to their bias; "consumers-via-max" = behind a max pool),
 moved inside ``g`` (homogeneous g), or emitted as per-channel Mul/Add nodes.
 The rewriter never moves a parameter: a plan whose values break what its
 placement asks (:func:`swapper.plan.placement.check_placement`, e.g. a < 0
@@ -64,13 +64,14 @@ PLAN_KEY = "swapper.plan"
 @dataclass
 class SiteRecord:
     site_id: str
-    source: str
-    target: str
+    function: str
+    surrogate: str
     placement: dict  # the plan's placement, as carried out (every parameter named)
     folded_into: list[str]  # names of the nodes whose weights or bias changed
-    nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
+    nodes_added: int  # nodes written for this site (surrogate plus parameter Mul/Add), not a net change
     notes: list[str] = field(default_factory=list)
     form: str = ""  # the emission form written (swapper.functions.forms)
+    nodes_replaced: int = 0  # the original's nodes at the site, which the written ones replace
 
 
 @dataclass
@@ -202,16 +203,16 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     """Emit one site's surrogate into ``em`` and fold its parameters as the plan places them; ``analysis`` is
     ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
     plan folds nothing of this site). Raises UsageError where the plan cannot be carried out as it stands."""
-    fn = functions.get(swap.target)
+    fn = functions.get(swap.surrogate)
     form = _form(swap, index.opset)
     vals = _vectors(swap)
     place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
-    vals = form.emitted_values(vals, swap.target_params)  # the values the form's own E(z) needs
-    moved = [p for p in PARAMS if place[p] == "held" and not _neutral(p, vals[p])]
+    vals = form.emitted_values(vals, swap.surrogate_params)  # the values the form's own E(z) needs
+    moved = [p for p in PARAMS if place[p] == "fixed" and not _neutral(p, vals[p])]
     if moved:
         raise UsageError(f"site {site.id}: form {form.name} of {fn.name} moves {', '.join(moved)}, which the "
                          "plan holds; re-plan for this form")
-    if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
+    if place["a"] == "in-surrogate":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not _neutral(p, vals[p]) for p in PARAMS}
     n = max(v.size for v in vals.values())
@@ -250,29 +251,29 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         if d_cons and not all(ok(f) and not f.reach.d_block for f in folds):
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
         if a_cons and place["a"] == "consumers" and any(f.reach.a_positive for f in folds):
-            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers+")
+            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers-via-max")
         for f in folds:
             folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
                                       vals["d"] if d_cons else None, em)
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
-    form.emit(em, x, g_out, dict(swap.target_params))
+    form.emit(em, x, g_out, dict(swap.surrogate_params))
     if a_node:
         em.node("Mul", [g_out, const("a", vals["a"])], None if d_node else site.output)
     if d_node:
         em.node("Add", [em.nodes[-1].output[0], const("d", d_emit)], site.output)
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
-    return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes),
-                      list(swap.notes), form.name)
+    return SiteRecord(site.id, site.function, swap.surrogate, place, sorted(set(folded)), len(em.nodes),
+                      list(swap.notes), form.name, nodes_replaced=len(site.nodes))
 
 
 def _form(swap: SiteSwap, opset: int) -> Form:
     """The plan's form for ``swap`` (None: what the registry's emitter writes at ``opset``); UsageError if the
     model's opset does not have it."""
-    form = get_form(swap.target, swap.form) if swap.form else default_form(swap.target, opset)
+    form = get_form(swap.surrogate, swap.form) if swap.form else default_form(swap.surrogate, opset)
     if opset < form.min_opset:
-        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.target} needs opset {form.min_opset}; "
+        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.surrogate} needs opset {form.min_opset}; "
                          f"the model is opset {opset}")
     return form
 
@@ -311,8 +312,8 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
     inserts, emitted, records = {}, [], []
     for swap in plan.swaps:
         site = by_id[swap.site_id]
-        if swap.source != site.function:
-            raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
+        if swap.function != site.function:
+            raise UsageError(f"site {site.id}: plan says {swap.function}, model has {site.function}")
         em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken, dtype=_site_dtype(index, site))
         records.append(_swap_site(index, weights, site, swap, em, analyses.get(site.id)))
         inserts[site.id] = list(em.nodes)

@@ -21,20 +21,20 @@ from swapper.scan.sites import find_sites
 SMALLEST = min(DEMO.glob("*.onnx"), key=lambda p: p.stat().st_size)
 
 # The fields the module docstring of swapper/bench/run.py documents for schema swapper.bench/1.
-TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
+TOP = {"schema", "created_utc", "machine", "settings", "models", "goals"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
             "memory_factors", "rungs", "family_rule", "target", "scale"}
 MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory"}
-FAMILY = {"family", "targets", "ladder", "cost", "speed", "int8", "notes"}
-LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "delta_pp", "n"}
+FAMILY = {"family", "surrogates", "ladder", "cost", "speed", "int8", "notes"}
+LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "drop_pp", "n"}
 COST = {"plain_pass_s", "record_s", "segments_s", "fit_s", "bias_correction_s", "total_s", "ratio_total",
         "ratio_record", "ratio_fit"}
 SPEED = {"original_ms", "swapped_ms", "floor_ms", "ratio", "saving_fraction", "note"}
-INT8 = {"metric", "original", "swapped", "delta_pp", "speed"}
+INT8 = {"metric", "original", "swapped", "drop_pp", "speed"}
 MEMORY = {"factors", "method", "ratio_16_1", "ratio_last_1", "peak_ratio_last_1", "time_ratio_last_1", "base_samples"}
 MEMORY_ROW = {"times", "samples", "baseline_kib", "peak_before_kib", "peak_kib", "delta_kib", "wall_s"}
-TARGET = {"target", "where", "measured", "met"}
+GOAL = {"goal", "where", "measured", "met"}
 
 
 def _tiny_sets(folder: Path) -> tuple[Path, Path]:
@@ -82,6 +82,9 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     assert fam["ladder"]["refit"] is None  # --quick drops the refit rung
     for rung in ("original", "naive", "local", "sequential", "sequential_bias"):
         assert 0.0 <= fam["ladder"][rung] <= 1.0
+        if rung != "original":  # the drop is original − rung, in points (bench/run.py docstring)
+            drop = fam["ladder"]["drop_pp"][rung]
+            assert drop == pytest.approx(100 * (fam["ladder"]["original"] - fam["ladder"][rung]))
     assert set(fam["speed"]) == {"1", "40"}  # batch 1 and the whole (40-sample) validation set
     for row in fam["speed"].values():
         assert SPEED <= set(row) and row["original_ms"] > 0 and row["swapped_ms"] > 0
@@ -91,7 +94,7 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     for k in mem["factors"]:
         assert MEMORY_ROW <= set(mem[str(k)]) and mem[str(k)]["samples"] == 24 * k
     assert mem["ratio_16_1"] is None  # 16x is not run with --quick
-    assert data["targets"] and all(TARGET <= set(t) for t in data["targets"])
+    assert data["goals"] and all(GOAL <= set(t) for t in data["goals"])
     md = (folder / "results.md").read_text()
     assert "## Quality ladder" in md and "## Tool cost" in md and "## Model speed" in md
     assert data["settings"]["command"] in md
@@ -112,7 +115,7 @@ def test_scale_model_is_valid_onnx_with_16_silu_sites():
     onnx.checker.check_model(model, full_check=True)  # source: ONNX checker (IR + operator spec)
     sites = find_sites(model)
     assert len(sites) == 16
-    assert all(s.function == "silu" and s.form == "silu/mul-sigmoid" and s.role == "pointwise" for s in sites)
+    assert all(s.function == "silu" and s.form == "silu/mul-sigmoid" and s.role == "hidden" for s in sites)
     assert [s.channels for s in sites] == [16] * 8 + [32] * 8
 
 
@@ -143,7 +146,7 @@ def _model_entry(name: str, families: list[dict], factors: list[int]) -> dict:
 
 def _family(name: str, cost: dict | None) -> dict:
     """A results.json family entry: no rung of its ladder measured, no speed rows, the given tool cost."""
-    ladder = {"metric": "top1", "original": None, **{r: None for r in RUNGS}, "delta_pp": {r: None for r in RUNGS}}
+    ladder = {"metric": "top1", "original": None, **{r: None for r in RUNGS}, "drop_pp": {r: None for r in RUNGS}}
     return {"family": name, "ladder": ladder, "speed": {}, "cost": cost}
 
 
