@@ -230,9 +230,10 @@ def _check_declared_dims(model: onnx.ModelProto, path: Path) -> None:
     g = model.graph
     for v in list(g.input) + list(g.output) + list(g.value_info):
         for dim in v.type.tensor_type.shape.dim:
-            if dim.HasField("dim_value") and not 0 <= dim.dim_value <= MAX_DECLARED_DIM:
+            # negative values are how some exporters write "unknown" (-1); onnxruntime reads them so
+            if dim.HasField("dim_value") and dim.dim_value > MAX_DECLARED_DIM:
                 raise BadModelError(f"{v.name!r} declares a dimension of {dim.dim_value} "
-                                    f"(allowed 0..{MAX_DECLARED_DIM})", path)
+                                    f"(at most {MAX_DECLARED_DIM})", path)
 
 
 def _checked_and_inferred(model: onnx.ModelProto, data: bytes, path: Path, *, has_external: bool,
