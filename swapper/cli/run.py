@@ -94,7 +94,7 @@ def _print_check(console, result: api.CheckResult) -> None:
     if lat is None:
         say("  latency: not measured (--no-latency)")
     else:
-        say(f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "
+        say(f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread, {lat.get('clock', 'wall time')}): original "
             f"{lat['original']['median_ms']:.3f} ms, candidate {lat['candidate']['median_ms']:.3f} ms, "
             f"ratio {lat['ratio']:.2f}")
     s = result.size

@@ -46,7 +46,7 @@ when a part did not run):
   ``thresholds``: the floors applied, by name; ``caution``: the text of the
   top-level ``caution``, so the model's ``swapper.verdict`` metadata, which holds
   this same entry, carries it too); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
-  runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
+  runs}`` plus ``ratio``, ``clock`` ("thread CPU time" with one thread, else "wall time"), ``batch_size``, ``threads`` and, with a target,
   ``target`` (see ``swapper.api.check``), or null when latency was not measured
   (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
   initializer_bytes}`` (``bytes``: the model file as written or read, external data

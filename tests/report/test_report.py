@@ -162,7 +162,8 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert "1.00 pp" in p["verdict"]["rule"]  # README: the rule field states the rule with its numbers
 
     lat = p["latency"]
-    assert set(lat) == {"original", "candidate", "ratio", "batch_size", "threads", "target"}
+    assert set(lat) == {"original", "candidate", "ratio", "clock", "batch_size", "threads", "target"}
+    assert lat["clock"] == "thread CPU time"  # one thread (the default): swapper/api.py _timed
     # the swap's timing on its target (ort-cpu by default; conftest's stand-in clock answers 0.9)
     assert lat["target"]["target"] == "ort-cpu" and lat["target"]["ratio"] == pytest.approx(0.9)
     for m in ("original", "candidate"):
