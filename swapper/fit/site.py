@@ -60,11 +60,13 @@ def fit_channels(
             raise ValueError(f"init[{p!r}] must be a scalar or have {C} values, got {v.size}")
         start[p] = np.broadcast_to(v, (C,))
     binned = method == "binned" and observer.held > 4 * bins
+    X, Y = observer.all_samples(dtype=None if binned else np.float64)
+    if not (np.isfinite(X).all() and np.isfinite(Y).all()):
+        # e.g. float64 site values beyond float32's range, kept in a float32 reservoir (found by the fuzzer)
+        raise BadDataError("site data holds values that are not finite in the precision they are kept in")
     if binned:  # stored precision: bins are sorted as stored and summed in float64
-        X, Y = observer.all_samples(dtype=None)
         out = fit_rows_binned(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, bins=bins, nonzero_a=nonzero_a)
     else:
-        X, Y = observer.all_samples()
         out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
     logger.debug(
         "fitted %d channels on %d samples each (%s): mse %.3g -> %.3g",
