@@ -303,9 +303,9 @@ def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: i
 
 def _timed(sessions: dict, feeds: dict, threads: int, repeats: int, progress, what: str = "timing latency") -> dict:
     """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
-    from swapper.check.latency import measure_latency
-
     import time
+
+    from swapper.check.latency import measure_latency
 
     # One intra-op thread computes on the calling thread: its CPU time does not grow while other processes
     # hold a shared CPU, wall time does (check/on_target.py measured wall ratios 0.35-0.94 for one pair).
