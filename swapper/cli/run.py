@@ -19,6 +19,7 @@ from rich.text import Text
 
 from swapper import api
 from swapper.check.gate import CAUTION, Budget, GateRule, preflight
+from swapper.check.on_target import MIN_SAVING
 from swapper.core.files import check_report_dir
 from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model, saved_size
 from swapper.errors import EXIT_OK, EXIT_REJECTED, BadDataError, CannotJudge, SwapperError
@@ -234,8 +235,9 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
             console.print(f"  {timing.line()}", highlight=False, markup=False)
         if not timing.is_faster and not force:
             if console is not None:
-                console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.2f}× the original; "
-                              "no model written", highlight=False, markup=False)
+                console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.3f}× the original, not "
+                              f"measurably faster (needs <= {1 - MIN_SAVING:.2f}×); no model written",
+                              highlight=False, markup=False)
             return EXIT_OK
     check = None
     if val_ds is not None:

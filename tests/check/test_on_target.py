@@ -40,7 +40,7 @@ def pair():
     return loaded.model, result.candidate, feeds
 
 
-@pytest.mark.parametrize("ratio", [0.8, 1.03])
+@pytest.mark.parametrize("ratio", [0.8, 0.99, 1.03])
 def test_fp32_target_times_both_models_at_the_profile_settings(pair, monkeypatch, ratio):
     timer = fixed_timer(ratio)
     monkeypatch.setattr("swapper.check.on_target.measure_latency", timer)
@@ -52,7 +52,8 @@ def test_fp32_target_times_both_models_at_the_profile_settings(pair, monkeypatch
     assert call["models"] == {"original": original, "candidate": candidate}  # timed as given, not quantized
     # one thread: CPU time of the calling thread (Python docs, time.thread_time_ns), as the profile was measured
     assert call["clock"] is time.thread_time_ns and timing.clock == "thread CPU time"
-    assert timing.ratio == pytest.approx(ratio) and timing.is_faster == (ratio < 1.0)
+    # 0.99 is within the timing noise MIN_SAVING allows for: not counted as faster
+    assert timing.ratio == pytest.approx(ratio) and timing.is_faster == (ratio <= 0.98)
     assert timing.batch == 64 and not timing.quantized
     assert f"candidate {ratio:.3f}× the original" in timing.line()
 
