@@ -50,9 +50,9 @@ def test_swap_that_does_not_pay_on_the_measured_target_writes_nothing(cli, model
     out = tmp_path / "o.onnx"
     result = cli("swap", models / "meter_mlp_tanh_sigmoid.onnx", "-o", out, "--no-calibrate")
     assert result.exit_code == 0, result.output
-    assert result.stdout.strip().splitlines()[-1] == \
+    assert result.stdout.strip().splitlines()[-1] == (
         "nothing pays on ort-cpu: candidate 1.030× the original, not measurably faster (needs <= 0.98×); "
-        "no model written"
+        "no model written")
     assert not out.exists()
     forced = cli("swap", models / "meter_mlp_tanh_sigmoid.onnx", "-o", out, "--no-calibrate", "--force")
     assert forced.exit_code == 0 and out.exists()
