@@ -144,7 +144,7 @@ def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
     g, dg = swap.surrogate()
     swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
     fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()), dg=dg,
-                          **swap.a_bounds())
+                          **swap.fit_bounds())
     swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
     return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 

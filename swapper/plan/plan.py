@@ -18,7 +18,10 @@ and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
 - ``"inner"``     (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
 - ``"nodes"``     emitted as per-channel Mul/Add nodes (adds nodes, always exact);
 - ``"held"``      kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
-- ``"approx"``    (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders).
+- ``"approx"``    (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders);
+- ``"through add"`` (b, c) carried through the residual Add that produces x into its
+                  operands' layers (b > 0); (d) into y's linear readers and through the
+                  residual Adds reading y (:mod:`swapper.plan.add_folds`).
 
 The placement is decided once, in :mod:`swapper.plan.placement`, which also
 says what it asks of the values of a (:func:`swapper.plan.placement.a_rule`);
@@ -35,7 +38,7 @@ import numpy as np
 
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.options import check_fold
-from swapper.plan.placement import a_rule, check_placement
+from swapper.plan.placement import a_rule, b_rule, check_placement
 
 logger = logging.getLogger(__name__)
 
@@ -53,7 +56,7 @@ class SiteSwap:
     b: np.ndarray
     c: np.ndarray
     d: np.ndarray
-    placement: dict  # param -> "producer" | "consumers" | "consumers+" | "inner" | "nodes" | "held" | "approx"
+    placement: dict  # param -> one of swapper.plan.placement.PLACEMENTS
     notes: list[str] = field(default_factory=list)
 
     def free(self) -> tuple[str, ...]:
@@ -69,6 +72,11 @@ class SiteSwap:
         """
         rule = a_rule(self.placement)
         return {"positive_a": rule == "positive", "nonzero_a": rule == "nonzero"}
+
+    def fit_bounds(self) -> dict[str, bool]:
+        """Every option the fitter takes from the placement: :meth:`a_bounds` and ``positive_b``
+        (b > 0 for "through add", :func:`swapper.plan.placement.b_rule`)."""
+        return {**self.a_bounds(), "positive_b": b_rule(self.placement) == "positive"}
 
     def check(self) -> dict[str, str]:
         """The placement with every parameter named; UsageError if the current values break it
@@ -187,6 +195,7 @@ def make_plan(
     from swapper import functions
     from swapper.core.graph import GraphIndex
     from swapper.errors import UsageError
+    from swapper.plan.add_folds import Upstream
     from swapper.plan.placement import decide_placement
 
     check_fold(fold)
@@ -203,6 +212,7 @@ def make_plan(
             )
     index = GraphIndex.of(model)
     swaps, skipped = [], []
+    upstream: dict[str, Upstream] = {}  # swapped sites decided so far, by output (b may pass into them)
     for site in sites:
         if site_ids and site.id not in site_ids:
             continue
@@ -238,7 +248,8 @@ def make_plan(
             continue
         target_fn = functions.get(target)
         tparams = functions.target_params(site.function, site.params, target)
-        placement, notes = decide_placement(index, site, target_fn, fold)
+        placement, notes = decide_placement(index, site, target_fn, fold, upstream)
+        upstream[site.output] = Upstream(site, placement, target_fn.homogeneous)
         channels = site.channels or 1
         swap = SiteSwap(
             site_id=site.id,
@@ -255,6 +266,9 @@ def make_plan(
         # the start keeps to what the placement asks of a, as every later fit does
         start = _starting_params(site.function, site.params, target, tparams, "".join(swap.free()),
                                  **swap.a_bounds())
+        if swap.fit_bounds()["positive_b"] and start[1] <= 0:  # and b > 0 where b passes through an add
+            start = _starting_params(site.function, site.params, target, tparams,
+                                     "".join(p for p in swap.free() if p != "b"), **swap.a_bounds())
         swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
         swaps.append(swap)
     return Plan(fold=fold, swaps=swaps, skipped=skipped)
