@@ -34,13 +34,13 @@ import onnx
 
 from swapper import functions
 from swapper.calibrate.bias_correction import DeltaSum, correct_bias
+from swapper.calibrate.site_fit import FitRules, fit_rules, fit_swap
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads, row_spans
 from swapper.core.surgery import copy_model
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
 from swapper.data.dataset import Dataset, input_batches
 from swapper.fit.observe import ChannelObserver
-from swapper.fit.site import fit_channels
 from swapper.options import MODES, check_mode  # noqa: F401 (MODES: re-exported for callers of this module)
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.progress import Silent
@@ -137,16 +137,6 @@ def observer_for(swap: SiteSwap, seed: int, reservoir: int) -> ChannelObserver:
     """An empty observer shaped for ``swap``'s channels."""
     axis = swap.channel_axis if swap.channels > 1 else None
     return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed)
-
-
-def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
-    """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
-    g, dg = swap.surrogate()
-    swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
-    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()), dg=dg,
-                          **swap.fit_bounds())
-    swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
-    return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 
 
 @dataclass
@@ -254,6 +244,7 @@ def calibrate(
     sched = _schedule(index, by_id, levels)
     results: dict[str, SiteCalibration] = {}
     n_batches = -(-dataset.n // batch_size)
+    rules = {sid: fit_rules(index, by_id[sid], swaps[sid], bias_correction) for sid in levels}
 
     with TensorCache(memory_budget=cache_bytes) as cache:
         source = input_batches(dataset, batch_size)
@@ -280,7 +271,7 @@ def calibrate(
             with progress.task(f"level {level}: fitting {len(group)} site(s)", len(group)) as advance:
                 for sid in group:
                     shifts[sid] = _fit_site(by_id[sid], swaps[sid], level, sched, cache, dataset.n, batch_size,
-                                            seed, reservoir, bias_correction, results, timings)
+                                            seed, reservoir, bias_correction, results, timings, rules[sid])
                     advance(1)
 
             if bias_correction:
@@ -288,7 +279,8 @@ def calibrate(
                 for sid in group:
                     done, notes = correct_bias(work, by_id[sid], recorded, sched.student[sid], sched.teacher[sid],
                                                shifts[sid])
-                    results[sid].bias_corrected, results[sid].notes = done, notes
+                    results[sid].bias_corrected = done
+                    results[sid].notes += notes
                 timings["bias_correction_s"] += time.perf_counter() - t0
             for key in sched.last.done(level):
                 cache.discard(key)  # no later level reads it
@@ -301,7 +293,8 @@ def calibrate(
 
 
 def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,
-              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict):
+              batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict,
+              rules: FitRules):
     """Observe, fit and record one site's swapped output; returns its output shift sum (or None)."""
     t0 = time.perf_counter()
     sid, x, teacher, student = site.id, sched.inputs[site.id], sched.teacher[site.id], sched.student[site.id]
@@ -309,10 +302,11 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
     for start in range(0, n, batch_size):
         stop = min(start + batch_size, n)
         observer.update(cache.read(x, start, stop), cache.read(teacher, start, stop))
-    mse_start, mse_fit = fit_swap(swap, observer)
+    mse_start, mse_fit, notes = fit_swap(swap, observer, rules)
     seen = observer.compute()
     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
-                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x])
+                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x],
+                                   notes=notes)
     # the swapped output feeds the next levels' segments (and the bias correction below)
     delta = DeltaSum() if shift else None
     t_shift = 0.0

@@ -67,7 +67,6 @@ from swapper.calibrate.loop import (
     CANDIDATE,
     ORIGINAL,
     CalibrationResult,
-    fit_swap,
     observer_for,
     site_levels,
 )
@@ -81,6 +80,7 @@ from swapper.calibrate.ridge import (  # noqa: F401
     choose_ridge,
     ridge_toward_prior,
 )
+from swapper.calibrate.site_fit import fit_rules, fit_swap
 from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads
@@ -214,6 +214,7 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int
     fits them. The original's outputs in ``keep`` are recorded on the way (later levels start from them).
     """
     swaps = plan.by_site()
+    index = GraphIndex.of(work)
     model = rewrite(work, sites, _nodes_plan(plan)).model
     ins = [s.input for s in group]
     outs = [s.output for s in group]
@@ -225,7 +226,8 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int
                 observers[s.id].update(xs[s.input], ys[s.output])
             advance(1)
     for s in group:
-        mse_start, mse_fit = fit_swap(swaps[s.id], observers[s.id])  # calibration's own fit, same rules
+        # calibration's own fit, same rules (bias correction ran there: a held d's mean is the readers')
+        mse_start, mse_fit, _ = fit_swap(swaps[s.id], observers[s.id], fit_rules(index, s, swaps[s.id], True))
         _note(notes, s.id, f"a, b, c, d re-fitted on the refitted upstream layers: MSE "
                             f"{mse_start:.4g} -> {mse_fit:.4g}")
 
