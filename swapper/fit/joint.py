@@ -36,6 +36,7 @@ from swapper.fit.common import Func, apply_g
 logger = logging.getLogger(__name__)
 
 RIDGE = 1e-9  # relative to the mean diagonal: keeps a singular system (dead channels) solvable
+ROWS_PER_CHANNEL = 20  # samples per channel below which C x C covariances are not trusted (rule of thumb)
 
 
 @dataclass
@@ -65,7 +66,8 @@ def objective(a: np.ndarray, metric: np.ndarray, szz: np.ndarray, szy: np.ndarra
 
 
 def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.ndarray, c: np.ndarray,
-                 metric: np.ndarray, *, positive_a: bool = False, nonzero_a: bool = False) -> JointSlopes:
+                 metric: np.ndarray, *, positive_a: bool = False, nonzero_a: bool = False,
+                 folds: int = 0) -> JointSlopes:
     """The slopes a minimising J (module docstring) for the given b, c; ``X``, ``Y`` (C, n) aligned samples.
 
     ``a`` is the per-channel answer, kept when the joint one breaks ``positive_a`` / ``nonzero_a``,
@@ -80,6 +82,8 @@ def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.nda
     def keep(why: str) -> JointSlopes:
         return JointSlopes(a, my - a * mz, before, before, False, why)
 
+    if X.shape[1] < ROWS_PER_CHANNEL * len(a):
+        return keep(f"{X.shape[1]} samples are too few for {len(a)} channels' cross-covariances")
     system = metric * szz
     scale = float(np.trace(system)) / max(len(system), 1)
     if not np.isfinite(scale) or scale <= 0:
@@ -97,4 +101,31 @@ def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.nda
     after = objective(joint, metric, szz, szy, syy)
     if not after < before:
         return keep("no lower than the per-channel a")
+    if folds:
+        held_out = _held_out_gain(X, Y, g, b, c, metric, folds)
+        if held_out is not None and not held_out < 0:
+            return keep(f"no lower on held-out samples ({folds}-fold, {held_out:+.3g} of the per-channel error)")
     return JointSlopes(joint, my - joint * mz, before, after, True)
+
+
+def _held_out_gain(X, Y, g, b, c, metric, folds: int) -> float | None:
+    """Relative change of J on held-out samples, joint vs per-channel slopes, both fitted on the other folds."""
+    n = X.shape[1]
+    if folds < 2 or n < 2 * folds:
+        return None
+    fold_of = np.arange(n) % folds
+    joint_err = plain_err = 0.0
+    for k in range(folds):
+        train, test = fold_of != k, fold_of == k
+        _, _, szz, szy, _ = centred_moments(X[:, train], Y[:, train], g, b, c)
+        plain = np.diag(szy) / np.where(np.diag(szz) > 0, np.diag(szz), 1.0)
+        system = metric * szz
+        scale = float(np.trace(system)) / max(len(system), 1)
+        try:
+            joint = np.linalg.solve(system + RIDGE * max(scale, 1e-300) * np.eye(len(system)), np.diag(szy @ metric))
+        except np.linalg.LinAlgError:
+            return None
+        moments = centred_moments(X[:, test], Y[:, test], g, b, c)[2:]
+        joint_err += objective(joint, metric, *moments)
+        plain_err += objective(plain, metric, *moments)
+    return (joint_err - plain_err) / plain_err if plain_err > 0 else None
