@@ -129,14 +129,15 @@ def swap(
             run["cache_bytes"] = options.cache_bytes()
         calibration = calibrate(loaded.model, sites, plan, dataset, mode=options.mode,
                                 bias_correction=options.bias_correction, **run)
-        if options.refit_consumers:
+        if options.refit_consumers is not False:  # the default: each site's refit judged on held-out samples
             from swapper.calibrate.refit import refit_consumers
 
-            refit = refit_consumers(loaded.model, calibration.model, sites, calibration.plan, dataset, **run)
+            refit = refit_consumers(loaded.model, calibration.model, sites, calibration.plan, dataset, outputs=False,
+                                    **run)
             calibration = refit.apply_to(calibration)
         plan, base = calibration.plan, calibration.model
         timings["calibrate_s"] = time.perf_counter() - t0
-    elif options.refit_consumers:
+    elif options.refit_consumers is True:
         raise UsageError("--refit-consumers needs a calibration set (--calib)")
     t0 = time.perf_counter()
     result = rewrite(base, sites, plan)

@@ -40,7 +40,10 @@ class SwapOptions:
     function's default), ``site_ids`` (only these sites), ``only`` (only sites
     computing this function), ``include_gates``, ``include_outputs``.
     Placement: ``fold`` (one of FOLD_POLICIES). Calibration: ``mode`` (one of
-    MODES), ``bias_correction``, ``refit_consumers``, ``seed``. Running:
+    MODES), ``bias_correction``, ``refit_consumers`` (None, the default: refit
+    whenever there is a calibration set, each site's refit kept only where it
+    wins on held-out samples; True: also ask for it, an error without a
+    calibration set; False: never), ``seed``. Running:
     ``batch_size`` (samples per onnxruntime call), ``threads`` (intra-op
     threads), ``cache_mb`` (recorded tensors kept in RAM up to this many MiB,
     on disk beyond; None = the cache's default).
@@ -57,7 +60,7 @@ class SwapOptions:
     fold: str = "exact"
     mode: str = "sequential"
     bias_correction: bool = True
-    refit_consumers: bool = False
+    refit_consumers: bool | None = None
     seed: int = 0
     batch_size: int = 64
     threads: int = 1

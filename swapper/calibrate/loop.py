@@ -62,6 +62,7 @@ class SiteCalibration:
     x_max: list[float] = field(default_factory=list)
     bias_corrected: list[str] = field(default_factory=list)  # consumer node names
     notes: list[str] = field(default_factory=list)
+    refit: dict | None = None  # the consumer refit's decision (swapper.calibrate.refit_decision), when one ran
 
 
 @dataclass

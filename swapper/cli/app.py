@@ -133,7 +133,9 @@ def swap(
     fold: Annotated[str, typer.Option(help="exact | nodes | approximate | off (see README).")] = "exact",
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
-    refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,
+    refit_consumers: Annotated[Optional[bool], typer.Option(
+        "--refit-consumers/--no-refit-consumers",
+        help="Ridge-refit linear consumers (default: with --calib, kept per site where held-out samples agree).")] = None,
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
     budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,

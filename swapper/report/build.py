@@ -12,7 +12,9 @@ when a part did not run):
 - ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`.
 - ``sites``: one entry per swapped site: ``site_id, source, target, placement
   {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
-  bias_corrected, notes`` (mse values null without calibration).
+  bias_corrected, refit, notes`` (mse values null without calibration;
+  ``refit``: ``{refitted, held_out_samples, mse_current, mse_refit, consumers}``,
+  the consumer refit's decision for the site, or null when none was weighed).
 - ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
@@ -63,7 +65,7 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
 
 
 SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
-             "level", "bias_corrected", "notes")
+             "level", "bias_corrected", "refit", "notes")
 
 
 def _versions() -> dict:
@@ -121,6 +123,7 @@ def site_rows(plan, records, calibration) -> list[dict]:
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
             "level": fit.level if fit else None,
             "bias_corrected": list(fit.bias_corrected) if fit else [],
+            "refit": dict(fit.refit) if fit and fit.refit else None,
             # plan, rewrite and fit may each record the same fact; keep the first of each, in order
             "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
                                         + (list(fit.notes) if fit else []))),

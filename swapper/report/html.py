@@ -161,9 +161,11 @@ def render_html(payload: dict) -> str:
     if payload["sites"]:
         rows = [[s["site_id"], f"{s['source']} → {s['target']}",
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
-                 num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
+                 num(s["mse_start"]), num(s["mse_fit"]), _refit(s.get("refit")), "; ".join(s["notes"])]
+                for s in payload["sites"]]
         parts.append("<h2>Swapped sites</h2>" + _table(
-            ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted", "notes"],
+            ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted",
+             "consumer refit (held-out MSE current → refitted)", "notes"],
             rows, numeric={3, 4, 5}))
     skipped = (payload.get("plan") or {}).get("skipped", [])
     if skipped:
@@ -178,3 +180,13 @@ def render_html(payload: dict) -> str:
                  f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."
                  f"</p></body></html>")
     return "\n".join(parts)
+
+
+def _refit(refit: dict | None) -> str:
+    """The site's consumer refit decision with its held-out figures, or "-" when none was weighed."""
+    if not refit:
+        return "-"
+    word = "taken" if refit["refitted"] else "not taken"
+    if refit.get("mse_current") is None:
+        return word
+    return f"{word}: {refit['mse_current']:.4g} → {refit['mse_refit']:.4g} ({refit['held_out_samples']} samples)"

@@ -23,7 +23,8 @@ def sites_table(sites: list[Site], title: str) -> Table:
 def swap_table(rows: list[dict]) -> Table:
     """The per-site summaries of :func:`swapper.report.build.site_rows` as a terminal table."""
     table = Table(title="swapped sites", title_justify="left")
-    for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted"):
+    for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes added", "mse start", "mse fitted",
+                "refit (held-out mse)"):
         table.add_column(col)
     for r in rows:
         table.add_row(
@@ -33,9 +34,20 @@ def swap_table(rows: list[dict]) -> Table:
             "-" if r["nodes_added"] is None else str(r["nodes_added"]),
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
             "-" if r["mse_fit"] is None else f"{r['mse_fit']:.3g}",
+            _refit_cell(r.get("refit")),
         )
     return table
 
 
 def skipped_lines(plan: Plan) -> list[str]:
     return [f"left {s.site_id} ({s.function}): {s.reason}" for s in plan.skipped]
+
+
+def _refit_cell(refit: dict | None) -> str:
+    """"yes 0.26 → 0.15" / "no 0.12 → 0.13": the site's consumer refit and its held-out figures."""
+    if not refit:
+        return "-"
+    word = "yes" if refit["refitted"] else "no"
+    if refit.get("mse_current") is None:
+        return word
+    return f"{word} {refit['mse_current']:.3g} → {refit['mse_refit']:.3g}"

@@ -159,7 +159,9 @@ def test_refit_after_sequential_calibration_two_levels():
     # of this chain gave 0.146 -> 0.112, 0.128 -> 0.112, 0.160 -> 0.135)
     assert mse_refit < 0.95 * mse_calibrated, (mse_calibrated, mse_refit)
     notes = {s.site_id: " ".join(s.notes) for s in calibration.sites}
-    assert "refit Conv 'conv2'" in notes["s1"] and "'conv3'" in notes["s2"], notes
+    assert "refit candidate Conv 'conv2'" in notes["s1"] and "'conv3'" in notes["s2"], notes
+    # each site's refit was weighed on samples held out from the ridge fit, and taken
+    assert all(s.refit["refitted"] and s.refit["mse_refit"] < s.refit["mse_current"] for s in calibration.sites)
     # s2 sits downstream of the refitted conv2: its a, b, c, d were re-fitted on the new inputs
     assert "re-fitted on the refitted upstream layers" in notes["s2"], notes
     onnx.checker.check_model(out, full_check=True)  # source: ONNX checker

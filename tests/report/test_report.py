@@ -122,7 +122,7 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert [s["site_id"] for s in p["sites"]] == ["s1", "s2", "s3"]
     for s in p["sites"]:
         assert set(s) == {"site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start",
-                          "mse_fit", "level", "bias_corrected", "notes"}
+                          "mse_fit", "level", "bias_corrected", "refit", "notes"}
         assert (s["source"], s["target"]) == ("silu", "hard_swish")
         assert set(s["placement"]) == {"a", "b", "c", "d"} and all(isinstance(v, str) for v in s["placement"].values())
         assert isinstance(s["nodes_added"], int) and s["nodes_added"] >= 0
