@@ -23,7 +23,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from swapper.calibrate.ridge import FoldedGram, choose_ridge, solve_on_all, sse
+from swapper.calibrate.ridge import FoldedGram, RidgeChoice, choose_ridge, solve_on_all, sse
 from swapper.core.graph import GraphIndex
 from swapper.plan.layers import Consumer, theta_of, write_theta
 
@@ -63,6 +63,35 @@ def split_samples(n: int, folds: int, holdout: float, seed: int) -> tuple[np.nda
     return part, folds, held
 
 
+@dataclass
+class Weighing:
+    """The ridge choices of one site's consumers and what they do on the held-out part."""
+
+    choices: list[RidgeChoice]  # per consumer, chosen and solved on the folds alone
+    take: bool  # refit: some consumer's CV accepts it, and (with a held-out part) it lowers the held-out error
+    mse_current: float | None  # held-out MSE over the consumers' outputs, current weights
+    mse_refit: float | None  # the same with the choices' weights (current ones where a choice was refused)
+
+
+def weigh(grams: list[FoldedGram], priors: list[np.ndarray], currents: list[np.ndarray], held: int | None,
+          factors) -> Weighing:
+    """Choose each consumer's ridge on the folds (every part but ``held``) and judge the lot on ``held``."""
+    choices, current_sse, refit_sse, count = [], 0.0, 0.0, 0
+    for gram, prior, current in zip(grams, priors, currents):
+        choice = choose_ridge(gram.without(held) if held is not None else gram, prior, current, factors)
+        choices.append(choice)
+        if held is not None:
+            part = gram.parts[held]
+            current_sse += sse(part, current)
+            refit_sse += sse(part, choice.theta)  # the current weights where the choice was refused
+            count += part.n * current.shape[1]
+    accepted = any(c.accepted for c in choices)
+    if held is None:
+        return Weighing(choices, accepted, None, None)
+    return Weighing(choices, accepted and refit_sse < current_sse, current_sse / max(count, 1),
+                    refit_sse / max(count, 1))
+
+
 def decide_site(work, index: GraphIndex, taken: set[str], orig_index: GraphIndex, site_id: str,
                 consumers: list[Consumer], grams: dict[str, FoldedGram], held: int | None, held_samples: int,
                 factors) -> tuple[RefitDecision, list[str]]:
@@ -71,21 +100,13 @@ def decide_site(work, index: GraphIndex, taken: set[str], orig_index: GraphIndex
     ``index`` is of ``work`` from before this level's writes (what write_theta asks for). Returns the
     decision and notes, one per consumer and one for the site.
     """
-    notes, chosen = [], []
-    current_sse = refit_sse = 0.0
-    rows = 0
-    for c in consumers:
-        gram = grams[c.node]
-        prior, current = theta_of(orig_index, c), theta_of(index, c)
-        choice = choose_ridge(gram.without(held) if held is not None else gram, prior, current, factors)
+    priors = [theta_of(orig_index, c) for c in consumers]
+    weighing = weigh([grams[c.node] for c in consumers], priors, [theta_of(index, c) for c in consumers], held,
+                     factors)
+    notes = []
+    for c, choice in zip(consumers, weighing.choices):
         op = index.nodes_by_name[c.node].op_type
-        if held is not None:
-            part = gram.parts[held]
-            current_sse += sse(part, current)
-            refit_sse += sse(part, choice.theta)
-            rows += part.n * current.shape[1]
         if choice.accepted:
-            chosen.append((c, choice, prior))
             notes.append(f"refit candidate {op} {c.node!r}: lambda = {choice.factor:g} x mean diag(XtX) "
                          f"(CV over the other samples: MSE {choice.cv_mse:.4g} vs current {choice.current_mse:.4g})")
         elif math.isnan(choice.cv_mse):
@@ -93,19 +114,17 @@ def decide_site(work, index: GraphIndex, taken: set[str], orig_index: GraphIndex
         else:
             notes.append(f"kept current weights of {op} {c.node!r}: best cross-validated MSE {choice.cv_mse:.4g} "
                          f"is not below current {choice.current_mse:.4g}")
-    if held is None:
-        take = bool(chosen)
-        decision = RefitDecision(site_id, take, 0, None, None)
-    else:
-        mse_cur, mse_new = current_sse / max(rows, 1), refit_sse / max(rows, 1)
-        take = bool(chosen) and refit_sse < current_sse
-        decision = RefitDecision(site_id, take, held_samples, mse_cur, mse_new)
-        notes.append(f"consumer refit {'taken' if take else 'not taken'}: held-out MSE at its consumers "
-                     f"{mse_cur:.4g} current vs {mse_new:.4g} refitted ({held_samples} held-out samples)")
-    if take:
-        for c, choice, prior in chosen:
-            theta = solve_on_all(grams[c.node], choice.factor, prior) if held is not None else choice.theta
-            write_theta(work, c, theta, index=index, taken=taken)
-            decision.consumers.append(c.node)
-    logger.info("site %s: consumer refit %s", site_id, "taken" if take else "not taken")
+    decision = RefitDecision(site_id, weighing.take, held_samples if held is not None else 0, weighing.mse_current,
+                             weighing.mse_refit)
+    if held is not None:
+        notes.append(f"consumer refit {'taken' if weighing.take else 'not taken'}: held-out MSE at its consumers "
+                     f"{weighing.mse_current:.4g} current vs {weighing.mse_refit:.4g} refitted "
+                     f"({held_samples} held-out samples)")
+    if weighing.take:
+        for c, choice, prior in zip(consumers, weighing.choices, priors):
+            if choice.accepted:
+                theta = solve_on_all(grams[c.node], choice.factor, prior) if held is not None else choice.theta
+                write_theta(work, c, theta, index=index, taken=taken)
+                decision.consumers.append(c.node)
+    logger.info("site %s: consumer refit %s", site_id, "taken" if weighing.take else "not taken")
     return decision, notes
