@@ -9,7 +9,7 @@
 """
 __version__ = "0.1.0"
 
-__all__ = ["__version__", "scan", "swap", "check", "load_data", "ScanResult", "SwapResult", "CheckResult",
+__all__ = ["__version__", "scan", "swap", "sweep", "check", "load_data", "ScanResult", "SwapResult", "CheckResult",
            "SwapperError", "SwapOptions"]
 
 

@@ -1,14 +1,17 @@
 """One exception per broken promise.
 
 Every error a user can cause derives from :class:`SwapperError`. The CLI prints
-its message on one line and exits with ``exit_code``; anything else is a bug and
-keeps its traceback. The exit codes, defined here and nowhere else:
+its message on one line and exits with ``exit_code``; anything else is a bug: one
+line and exit 4 (the traceback with ``--verbose``). The exit codes, defined here and nowhere else:
 
 - 0: done, or the gate approved the candidate;
 - 1: the gate rejected the candidate (:data:`EXIT_REJECTED`; nothing else exits 1);
 - 2: bad input or usage (:class:`SwapperError` and most subclasses);
 - 3: the validation data cannot judge this model (:class:`CannotJudge`): a figure the
-  rule needs is missing (no labels for top-1, no float output to compare, ...).
+  rule needs is missing (no labels for top-1, no float output to compare, ...);
+- 4: an internal error (:data:`EXIT_INTERNAL`): an exception that is not a SwapperError, i.e. a
+  bug in swapper or a library. The command line prints one line and a pointer to ``--verbose``,
+  which shows the traceback; never 1, so a bug is never read as a rejection.
 """
 from __future__ import annotations
 
@@ -27,6 +30,7 @@ EXIT_OK = 0
 EXIT_REJECTED = 1
 EXIT_BAD_INPUT = 2
 EXIT_CANNOT_JUDGE = 3
+EXIT_INTERNAL = 4
 
 
 class SwapperError(Exception):
@@ -39,6 +43,13 @@ class SwapperError(Exception):
         self.path = str(path) if path is not None else None
         text = f"{self.path}: {message}" if self.path else message
         super().__init__(" ".join(text.split()))  # always one line
+
+    def naming(self, path: str | Path | None) -> "SwapperError":
+        """This error, its message led by ``path`` when it names no file yet (the README promises the file)."""
+        if self.path is None and path is not None:
+            self.path = str(path)
+            self.args = (" ".join(f"{self.path}: {self.args[0] if self.args else ''}".split()),)
+        return self
 
 
 class BadModelError(SwapperError):

@@ -25,10 +25,22 @@ from __future__ import annotations
 
 import onnx
 import pytest
+from testkit import fixed_timer
 from typer.testing import CliRunner
 
 from swapper.cli.app import app
 from swapper.core.model_io import load_model
+
+
+@pytest.fixture(scope="session", autouse=True)
+def no_target_timing():
+    """No test times a target: swap and check verify a candidate on a measured target through
+    swapper.check.on_target.measure_latency, answered here by testkit.fixed_timer (candidate 0.9× the
+    original), so what a command writes does not depend on the machine's load. Session-wide, so module
+    fixtures that run commands see it too; tests of the timing patch it again with their own answer."""
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr("swapper.check.on_target.measure_latency", fixed_timer(0.9))
+        yield
 
 
 @pytest.fixture(scope="session")

@@ -31,7 +31,7 @@ LAYERS = [
     ("check",),
     ("report",),
     ("sweep",),
-    ("api",),
+    ("api", "autoplan"),
     ("bench",),
     ("cli",),
 ]

@@ -19,7 +19,7 @@ from swapper.cli.app import app
 from swapper.core.model_io import load_model
 from swapper.data.dataset import subset
 from swapper.errors import UsageError
-from swapper.options import FOLD_POLICIES, MODES, SwapOptions
+from swapper.options import FOLD_POLICIES, MAX_BATCH_SIZE, MAX_CACHE_MB, MAX_THREADS, MODES, SwapOptions
 from swapper.plan.plan import make_plan
 from swapper.scan.sites import find_sites
 
@@ -30,9 +30,17 @@ needs_demo = pytest.mark.skipif(not (DEMO / "calib.npz").exists(), reason="demo 
 @pytest.mark.parametrize("changes, message", [
     ({"fold": "tight"}, "unknown fold policy 'tight'; valid: exact, nodes, approximate, off"),
     ({"mode": "global"}, "unknown mode 'global'; valid: sequential, local"),
-    ({"threads": 0}, "threads must be >= 1, got 0"),
-    ({"batch_size": 0}, "batch_size must be >= 1, got 0"),
-    ({"cache_mb": -1.0}, "cache_mb must be >= 0, got -1.0"),
+    ({"threads": 0}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), got 0"),
+    ({"threads": MAX_THREADS + 1}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), "
+                                   f"got {MAX_THREADS + 1}"),
+    ({"batch_size": 0}, f"batch_size must be a whole number in 1..{MAX_BATCH_SIZE}, got 0"),
+    ({"batch_size": MAX_BATCH_SIZE + 1}, f"batch_size must be a whole number in 1..{MAX_BATCH_SIZE}, "
+                                         f"got {MAX_BATCH_SIZE + 1}"),
+    ({"seed": -1}, f"seed must be a whole number in 0..{2**32 - 1}, got -1"),
+    ({"seed": 2**32}, f"seed must be a whole number in 0..{2**32 - 1}, got {2**32}"),
+    ({"cache_mb": -1.0}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got -1.0"),
+    ({"cache_mb": float("inf")}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got inf"),
+    ({"cache_mb": float("nan")}, f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got nan"),
 ])
 def test_bad_settings_are_usage_errors(changes, message):
     with pytest.raises(UsageError) as err:
@@ -49,6 +57,7 @@ def test_words_and_defaults():
     o = SwapOptions()
     assert (o.fold, o.mode, o.bias_correction, o.refit_consumers, o.batch_size, o.threads, o.seed) == \
         ("exact", "sequential", True, None, 64, 1, 0)  # refit: None = with a calibration set, judged per site
+    assert (o.target, o.opset, o.choices) == ("ort-cpu", None, None)  # README "Targets": ort-cpu by default
     assert o.cache_bytes() is None and SwapOptions(cache_mb=1.5).cache_bytes() == 3 << 19
 
 
@@ -60,6 +69,13 @@ def test_frozen_hashable_and_replace_checks_names():
     with pytest.raises(TypeError, match="unknown swap option"):
         o.replace(moed="local")
     assert o.replace(mode="local").mode == "local" and o.mode == "sequential"
+    # per-site choices come as a dict and are kept as sorted pairs, so the options stay hashable
+    pinned = SwapOptions(choices={"s2": "relu", "s1": "hard_swish:Mul-Clip"})
+    assert pinned.choices == (("s1", "hard_swish:Mul-Clip"), ("s2", "relu")) and hash(pinned)
+    assert pinned.plan_settings()["choices"] == {"s1": "hard_swish:Mul-Clip", "s2": "relu"}
+    assert SwapOptions(target=Path("board.json")).target == "board.json"
+    with pytest.raises(UsageError, match="opset must be a positive integer"):
+        SwapOptions(opset=0)
 
 
 @needs_demo

@@ -146,6 +146,24 @@ def conv_tanh(tail, tail_inits, outputs, *, extra_inputs=(), hw: int = 6, channe
                        inits + list(tail_inits), infer=True)
 
 
+# ------------------------------------------------------------ timing without a clock
+def fixed_timer(ratio: float):
+    """A stand-in for swapper.check.latency.measure_latency (same call): the model named "original" takes
+    1 ms, every other ``ratio`` ms (median, p10 and p90 alike), whatever the models are, so no test depends
+    on the machine's speed. ``timer.calls`` records each call's models, feeds and settings."""
+    from swapper.check.latency import LatencyStats
+
+    calls = []
+
+    def timer(models, feeds, **settings):
+        calls.append({"models": dict(models), "feeds": dict(feeds), **settings})
+        runs = settings.get("repeats", 30)
+        return {name: LatencyStats(*(3 * [1.0 if name == "original" else ratio]), runs) for name in sorted(models)}
+
+    timer.calls = calls
+    return timer
+
+
 # ------------------------------------------------------------ running models
 def run(model, feeds: dict[str, np.ndarray], outputs: list[str] | None = None) -> list[np.ndarray]:
     """``model`` (a ModelProto, its bytes or a path) run by onnxruntime on the CPU, one thread.
@@ -267,3 +285,74 @@ def wmse(y, yhat, w=None) -> float:
     """Weighted mean squared error Σw(y − ŷ)² / Σw (plain mean without weights)."""
     w = np.ones_like(y) if w is None else w
     return float(np.sum(w * (y - yhat) ** 2) / np.sum(w))
+
+
+# ------------------------------------------------------------ sweep / automatic plan
+def two_elu_model() -> onnx.ModelProto:
+    """Two ELU sites by construction: ``za = x·x + 0.5`` is always positive, where ELU(z) = z = Relu(z)
+    (ONNX Elu: z for z > 0), so swapping it to relu costs nothing; ``zb = Gemm(x)`` takes both signs, where
+    relu cannot follow ELU's α·(exp(z) − 1). Output: a Gemm over both, [N, 5]."""
+    rng = np.random.default_rng(3)
+    nodes = [helper.make_node("Mul", ["x", "x"], ["sq"]), helper.make_node("Add", ["sq", "half"], ["za"]),
+             helper.make_node("Elu", ["za"], ["ya"]),
+             helper.make_node("Gemm", ["x", "w2", "b2"], ["zb"]), helper.make_node("Elu", ["zb"], ["yb"]),
+             helper.make_node("Concat", ["ya", "yb"], ["cat"], axis=1),
+             helper.make_node("Gemm", ["cat", "w3", "b3"], ["out"])]
+    inits = [init("half", np.full((1, 4), 0.5)), init("w2", rng.normal(size=(4, 4))), init("b2", np.zeros(4)),
+             init("w3", rng.normal(size=(8, 5))), init("b3", rng.normal(size=5))]
+    return as_loaded(float_model(nodes, [("x", ["N", 4])], [("out", ["N", 5])], inits, opset=17))
+
+
+def two_elu_data(n: int, seed: int) -> np.ndarray:
+    return np.random.default_rng(seed).normal(size=(n, 4)).astype(np.float32)
+
+
+# ------------------------------------------------------------ a token model
+def token_model(vocab: int = 12, d: int = 4, hidden: int = 6, *, seed: int = 0, mask_name: str = "attention_mask",
+                ids_name: str = "input_ids") -> onnx.ModelProto:
+    """A small sentence encoder, written as ONNX text: token ids [N, T] -> Gather embedding -> MatMul+Add ->
+    exact GELU (the Erf form, 0.5·x·(1 + erf(x/√2))) -> MatMul+Add -> mean over the tokens the mask keeps.
+
+    Like demo_models/status_encoder_gelu.onnx without attention: each position is computed on its own, so the
+    real tokens' activations do not depend on what the padding positions hold.
+    """
+    rng = np.random.default_rng(seed)
+    text = f"""
+    <ir_version: 8, opset_import: ["" : {OPSET}]>
+    encoder (int64[N, T] {ids_name}, int64[N, T] {mask_name}) => (float[N, {d}] embedding) {{
+        x = Gather <axis = 0> (table, {ids_name})
+        h0 = MatMul (x, w1)
+        h = Add (h0, b1)
+        hs = Div (h, sqrt2)
+        e = Erf (hs)
+        e1 = Add (e, one)
+        g0 = Mul (h, e1)
+        g = Mul (g0, half)
+        z0 = MatMul (g, w2)
+        z = Add (z0, b2)
+        m = Cast <to = 1> ({mask_name})
+        axes = Constant <value = int64[1] {{2}}> ()
+        m3 = Unsqueeze (m, axes)
+        zm = Mul (z, m3)
+        one_axis = Constant <value = int64[1] {{1}}> ()
+        total = ReduceSum <keepdims = 0> (zm, one_axis)
+        count = ReduceSum <keepdims = 0> (m3, one_axis)
+        embedding = Div (total, count)
+    }}
+    """
+    model = onnx.parser.parse_model(text)
+    model.graph.initializer.extend([
+        init("table", rng.normal(size=(vocab, d))), init("w1", rng.normal(size=(d, hidden))),
+        init("b1", rng.normal(size=hidden) * 0.5), init("w2", rng.normal(size=(hidden, d)) / np.sqrt(hidden)),
+        init("b2", rng.normal(size=d) * 0.1), init("sqrt2", np.sqrt(2.0)), init("one", 1.0), init("half", 0.5)])
+    return as_loaded(model)
+
+
+def token_batch(n: int, t: int, vocab: int = 12, *, seed: int = 0, pad_id: int = 0) -> dict[str, np.ndarray]:
+    """``n`` sentences of 1..t real tokens (ids 1..vocab−1), padded with ``pad_id`` to ``t``: input_ids and
+    attention_mask, int64 [n, t]."""
+    rng = np.random.default_rng(seed)
+    lengths = rng.integers(1, t + 1, size=n)
+    mask = (np.arange(t)[None, :] < lengths[:, None]).astype(np.int64)
+    ids = np.where(mask == 1, rng.integers(1, vocab, size=(n, t)), pad_id).astype(np.int64)
+    return {"input_ids": ids, "attention_mask": mask}

@@ -41,6 +41,7 @@ from swapper.core.session import open_session
 from swapper.data.dataset import Dataset, batches
 from swapper.errors import CannotJudge, SwapperError
 from swapper.options import SwapOptions
+from swapper.progress import Silent
 from swapper.rewrite.apply import rewrite_identity_floor
 
 logger = logging.getLogger(__name__)
@@ -182,13 +183,18 @@ def _first_feeds(ds: Dataset, batch: int) -> dict[str, np.ndarray]:
 
 
 def speed(original: ort.InferenceSession | onnx.ModelProto, swapped: onnx.ModelProto, floor: onnx.ModelProto,
-          val: Dataset, *, batch_sizes: list[int], repeats: int) -> dict:
-    """Median latency (ms) of original / swapped / floor per batch size, and the saving achieved."""
+          val: Dataset, *, batch_sizes: list[int], repeats: int, progress=None) -> dict:
+    """Median latency (ms) of original / swapped / floor per batch size, and the saving achieved.
+
+    ``progress`` (swapper.progress) shows each batch size's timed rounds.
+    """
+    progress = progress or Silent()
     sessions = open_sessions({"original": original, "swapped": swapped, "floor": floor}, threads=THREADS,
                              graph_optimization="all")
     out = {}
     for bs in batch_sizes:
-        timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats)
+        with progress.task(f"timing batch {bs}", repeats) as advance:
+            timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats, advance=advance)
         t_o, t_s, t_f = (timed[k].median_ms for k in ("original", "swapped", "floor"))
         row = {
             "original_ms": t_o, "swapped_ms": t_s, "floor_ms": t_f,
@@ -231,8 +237,9 @@ def int8_original(original: Reference, q_original: onnx.ModelProto, val: Dataset
 
 
 def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.ModelProto, val: Dataset,
-              *, batch_sizes: list[int], repeats: int, batch_size: int) -> dict:
+              *, batch_sizes: list[int], repeats: int, batch_size: int, progress=None) -> dict:
     """Accuracy (or agreement with the fp32 original) and latency of int8 original vs int8 swapped."""
+    progress = progress or Silent()
     swapped = open_session(q_swapped, threads=THREADS)
     scores = {"original": q_original.score, "swapped": _int8_score(original, swapped, val, batch_size)}
     metric = metric_for(original, val)
@@ -242,7 +249,8 @@ def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.Mod
             "speed": {}}
     sessions = {"original": q_original.session, "swapped": swapped}
     for bs in batch_sizes:
-        timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats)
+        with progress.task(f"timing int8 batch {bs}", repeats) as advance:
+            timed = measure_latency(sessions, _first_feeds(val, bs), repeats=repeats, advance=advance)
         t_o, t_s = timed["original"].median_ms, timed["swapped"].median_ms
         view["speed"][str(bs)] = {"original_ms": t_o, "swapped_ms": t_s, "ratio": t_s / t_o}
     return view

@@ -61,7 +61,8 @@ def _child(spec: dict) -> dict:
     baseline = _rss_kib()
     peak_before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     t0 = time.perf_counter()
-    family = family_options(spec.get("to"), batch_size=spec["batch_size"])
+    family = family_options(spec.get("to"), batch_size=spec["batch_size"], **({"target": spec["target"]}
+                                                                                if "target" in spec else {}))
     api.swap(loaded, calib=ds, options=rung_options("sequential_bias", family))
     wall = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss

@@ -4,7 +4,7 @@ Transformation: models + calibration/validation sets (or the bundled demo
 models, plus a generated 16-block scale model) -> ``OUT/<UTC YYYYmmddTHHMMSSZ>/``
 holding ``results.json``, ``results.md`` and, with matplotlib, ``ladder.png``
 and ``speed.png``. Every model is benchmarked per surrogate *family*: the
-default surrogate of each site (named after it when all sites share one, e.g.
+surrogate the target's plan gives each site (named after it when all sites share one, e.g.
 ``hard_swish`` for SiLU/GELU/Mish models; ``default`` otherwise, e.g.
 hard_tanh + hard_sigmoid) and ``relu``. ``--quick`` keeps only the first family.
 
@@ -16,7 +16,8 @@ results.json, schema ``swapper.bench.run/1``:
 - ``settings``: ``command`` (reproduces the run), ``quick``, ``repeats`` (timed
   latency runs), ``batch_size`` (calibration/evaluation batch), ``latency_batches``,
   ``threads`` (1), ``graph_optimization`` ("all"), ``memory_factors``,
-  ``rungs``, ``family_rule``, ``scale`` (generator settings or null).
+  ``rungs``, ``family_rule``, ``target`` (the profile the plans are made for, null:
+  none), ``scale`` (generator settings or null).
 - ``models``: list, one object per model:
   - ``name``, ``path``, ``synthetic`` (bool: the generated scale model),
     ``calib_samples``, ``val_samples``, ``sites`` (ids swapped by the default plan);
@@ -80,6 +81,7 @@ from swapper.bench.measure import (
 from swapper.bench.memory import memory_ratios, memory_section
 from swapper.bench.rungs import family_options
 from swapper.check.compare import Reference
+from swapper.core.files import ensure_folder
 from swapper.core.jsonable import json_safe
 from swapper.core.model_io import (
     LoadedModel,
@@ -90,7 +92,9 @@ from swapper.core.model_io import (
 from swapper.data.dataset import Dataset, batches, subset
 from swapper.data.demo import DEMO_DIR, demo_inputs
 from swapper.errors import SwapperError, UsageError
+from swapper.options import DEFAULT_TARGET
 from swapper.plan.plan import Plan, make_plan
+from swapper.progress import RichBars, Silent
 from swapper.report.paths import utc_stamp
 
 logger = logging.getLogger(__name__)
@@ -128,31 +132,32 @@ def families_for(plan: Plan, *, quick: bool) -> list[tuple[str, str | None]]:
 
 
 def _command(models: list[Path], demo: bool, calib, val, out_root: Path, scale: bool, quick: bool,
-             repeats: int) -> str:
+             repeats: int, target: str | None) -> str:
     parts = ["swapper", "bench"] + [str(m) for m in models]
     parts += ["--demo"] if demo else []
     parts += [f"--calib {calib}"] if calib else []
     parts += [f"--val {val}"] if val else []
     parts += [f"--out {out_root}", "--scale" if scale else "--no-scale"]
     parts += ["--quick"] if quick else []
-    parts += [f"--repeats {repeats}"]
+    parts += [f"--latency-runs {repeats}"] if repeats else ["--no-latency"]
+    parts += [f"--target {target or 'none'}"]
     return " ".join(parts)
 
 
 def _folder(out_root: Path) -> tuple[Path, str]:
     stamp = utc_stamp()
+    ensure_folder(out_root, "results folder")
     folder, k = Path(out_root) / stamp, 0
     while folder.exists():  # two runs in one second: keep both
         k += 1
         folder = Path(out_root) / f"{stamp}-{k}"
-    folder.mkdir(parents=True)
-    return folder, stamp
+    return ensure_folder(folder, "results folder"), stamp
 
 
 def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *, synthetic: bool,
-                 calib_path: Path | None, settings: dict, log, memory_extra: dict) -> dict:
+                 calib_path: Path | None, settings: dict, log, memory_extra: dict, progress=None) -> dict:
     """Every measurement for one model (all families, then memory)."""
-    plan = make_plan(loaded.model, api.scan(loaded).sites)
+    plan = make_plan(loaded.model, api.scan(loaded).sites, target=api.resolve_target(settings["target"]))
     fams = families_for(plan, quick=settings["quick"])
     entry = {"name": name, "path": str(loaded.path), "synthetic": synthetic, "calib_samples": calib.n,
              "val_samples": val.n, "sites": [s.site_id for s in plan.swaps], "families": [], "memory": None}
@@ -170,7 +175,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
     for family, to in fams:
         flog = lambda msg, f=family: log(f"{name} [{f}] {msg}")  # noqa: E731
         run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
-                             family=family_options(to, batch_size=batch, seed=SEED), log=flog)
+                             family=family_options(to, batch_size=batch, seed=SEED, target=settings["target"]),
+                             log=flog)
         fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
                "notes": run.notes}
         entry["families"].append(fam)
@@ -180,21 +186,25 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         fam["targets"] = {s.site_id: s.target for s in run.swap_result.plan.swaps}
         fam["cost"] = tool_cost(run.swap_result, plain)
         flog(f"cost: calibration {fam['cost']['total_s']:.3f}s = {fam['cost']['ratio_total']:.1f}x plain pass")
-        floor = floor_model(loaded, run.swap_result)
-        fam["speed"] = speed(original.session, run.swapped, floor, val, batch_sizes=lat_batches,
-                             repeats=settings["repeats"])
-        flog("speed: " + ", ".join(f"batch {b} ratio {s['ratio']:.3f}" for b, s in fam["speed"].items()))
-        _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch, lat_batches=lat_batches,
-                    repeats=settings["repeats"], log=flog)
+        if settings["repeats"]:
+            floor = floor_model(loaded, run.swap_result)
+            fam["speed"] = speed(original.session, run.swapped, floor, val, batch_sizes=lat_batches,
+                                 repeats=settings["repeats"], progress=progress)
+            flog("speed: " + ", ".join(f"batch {b} ratio {s['ratio']:.3f}" for b, s in fam["speed"].items()))
+        else:
+            fam["notes"].append("latency not measured (--no-latency)")
+        _bench_int8(fam, run, loaded, original, int8_cache, calib, val, batch=batch,
+                    lat_batches=lat_batches if settings["repeats"] else [], repeats=settings["repeats"], log=flog,
+                    progress=progress)
     spec = {"model": str(loaded.path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
-            "to": fams[0][1], **memory_extra}
+            "to": fams[0][1], "target": settings["target"], **memory_extra}
     entry["memory"] = memory_section(spec, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
     entry["memory"]["base_samples"] = memory_extra.get("base") or calib.n
     return entry
 
 
 def _bench_int8(fam: dict, run: FamilyRun, loaded: LoadedModel, original: Reference, int8_cache: dict, calib: Dataset,
-                val: Dataset, *, batch: int, lat_batches: list[int], repeats: int, log) -> None:
+                val: Dataset, *, batch: int, lat_batches: list[int], repeats: int, log, progress=None) -> None:
     """Fill ``fam["int8"]``, or note why it could not be measured (quantization is allowed to fail)."""
     from swapper.check.int8 import quantize_int8
 
@@ -205,11 +215,19 @@ def _bench_int8(fam: dict, run: FamilyRun, loaded: LoadedModel, original: Refere
                                                    batch_size=batch)
         q_swapped = quantize_int8(run.swapped, feeds())
         fam["int8"] = int8_view(original, int8_cache["original"], q_swapped, val, batch_sizes=lat_batches,
-                                repeats=repeats, batch_size=batch)
-        log(f"int8: {fam['int8']['metric']} {fam['int8']['original']} -> {fam['int8']['swapped']}")
+                                repeats=repeats, batch_size=batch, progress=progress)
+        log(f"int8: {fam['int8']['metric']} {_figure(fam['int8']['original'])} -> "
+            f"{_figure(fam['int8']['swapped'])}")
     except SwapperError as exc:
         fam["notes"].append(f"int8 not measured: {exc}")
         log(f"int8 not measured: {exc}")
+
+
+def _figure(value) -> str:
+    """A ladder figure for a log line: fractions as percentages, dB and RMSE to 4 significant digits."""
+    if value is None:
+        return "n/a"
+    return f"{100 * value:.2f}%" if 0.0 <= value <= 1.0 else f"{value:.4g}"
 
 
 def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None) -> list[tuple[Path, Path, Path | None]]:
@@ -225,21 +243,27 @@ def _inputs(models: list[Path], demo: bool, calib: Path | None, val: Path | None
 
 
 def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path | None, out_root: Path,
-              scale: bool, quick: bool, repeats: int, console=None) -> Path:
-    """Benchmark ``models`` (and/or the demo and scale models); return the results folder."""
+              scale: bool, quick: bool, repeats: int, console=None, target: str | None = DEFAULT_TARGET) -> Path:
+    """Benchmark ``models`` (and/or the demo and scale models); return the results folder.
+
+    ``target`` (a profile name or path; None: no target) decides the default family's surrogates and
+    forms, and every family's forms, as ``swapper swap --target`` does.
+    """
     todo = _inputs(models, demo, calib, val)
     if not todo and not scale:
         raise UsageError("nothing to benchmark: give models, --demo, or --scale")
     mode = QUICK if quick else FULL
-    repeats = min(repeats, QUICK["repeats"]) if quick else repeats
+    repeats = min(repeats, QUICK["repeats"]) if quick else repeats  # 0: latency not measured
     settings = {
-        "command": _command(models, demo, calib, val, out_root, scale, quick, repeats), "quick": quick,
+        "command": _command(models, demo, calib, val, out_root, scale, quick, repeats, target), "quick": quick,
+        "target": target,
         "repeats": repeats, "batch_size": BATCH, "latency_batches": f"1 and min({BATCH}, validation samples)", "threads": 1,
         "graph_optimization": "all", "memory_factors": mode["memory_factors"], "rungs": mode["rungs"],
-        "family_rule": "per-site default surrogate (named after it when all sites share one, else 'default'), "
-                       "then relu" + ("; --quick: first family only" if quick else ""),
+        "family_rule": "per-site surrogate the target's plan chooses (named after it when all sites share one, "
+                       "else 'default'), then relu" + ("; --quick: first family only" if quick else ""),
         "calib_limit": mode["calib"], "val_limit": mode["val"], "seed": SEED, "scale": None,
     }
+    progress = RichBars() if console is not None and console.is_terminal else Silent()
 
     def log(msg: str) -> None:
         logger.info(msg)
@@ -257,14 +281,14 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
         calib_ds = subset(calib_ds, mode["calib"]) if mode["calib"] else calib_ds
         val_ds = subset(val_ds, mode["val"]) if mode["val"] else val_ds
         entry = _bench_model(model_path.stem, loaded, calib_ds, val_ds, synthetic=False, calib_path=calib_path,
-                             settings=settings, log=log,
+                             settings=settings, log=log, progress=progress,
                              memory_extra={"base": mode["calib"]} if mode["calib"] else {})
         if val_path is None:
             for fam in entry["families"]:
                 fam["notes"].append("no --val: scored on the calibration set")
         results["models"].append(entry)
     if scale:
-        results["models"].append(_bench_scale(folder, settings, quick, log))
+        results["models"].append(_bench_scale(folder, settings, quick, log, progress))
     results["targets"] = check_targets(results)
     _write_json(results, folder / "results.json", log)
     write_markdown(results, folder / "results.md")
@@ -274,7 +298,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
     return folder
 
 
-def _bench_scale(folder: Path, settings: dict, quick: bool, log) -> dict:
+def _bench_scale(folder: Path, settings: dict, quick: bool, log, progress=None) -> dict:
     """Generate the synthetic scale model into the results folder and benchmark it."""
     from swapper.bench.scale_model import build_scale_model, scale_data
 
@@ -292,7 +316,7 @@ def _bench_scale(folder: Path, settings: dict, quick: bool, log) -> dict:
     # 16x of the full 256 would stream ~20 GB of recorded tensors through the disk cache.
     extra = {"synthetic_n": cfg["calib"], "synthetic_seed": cfg["calib_seed"], "base": cfg["memory_base"]}
     return _bench_model("scale_16x_conv_silu", load_model(path), calib, val, synthetic=True, calib_path=None,
-                        settings=settings, log=log, memory_extra=extra)
+                        settings=settings, log=log, memory_extra=extra, progress=progress)
 
 
 def _write_json(results: dict, path: Path, log) -> None:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import logging
 
-from swapper.options import SwapOptions
+from swapper.options import DEFAULT_TARGET, SwapOptions
 
 logger = logging.getLogger(__name__)
 
@@ -25,9 +25,10 @@ RUNG_OPTIONS = {
 }
 
 
-def family_options(to: str | None, *, batch_size: int, seed: int = 0) -> SwapOptions:
-    """The settings every rung of a family shares: its surrogate ``to``, seed, batch size, one thread."""
-    return SwapOptions(to=to, seed=seed, batch_size=batch_size, threads=THREADS)
+def family_options(to: str | None, *, batch_size: int, seed: int = 0,
+                   target: str | None = DEFAULT_TARGET) -> SwapOptions:
+    """The settings every rung of a family shares: its surrogate ``to``, target, seed, batch size, one thread."""
+    return SwapOptions(to=to, seed=seed, batch_size=batch_size, threads=THREADS, target=target)
 
 
 def rung_options(rung: str, family: SwapOptions) -> SwapOptions:

@@ -52,7 +52,7 @@ from swapper.core.conv import conv_geometry, tap_windows
 from swapper.core.graph import GraphIndex, attr
 from swapper.core.session import open_session
 from swapper.core.slices import SliceRunner
-from swapper.core.surgery import all_names, set_const_input
+from swapper.core.surgery import all_names, drop_unused, set_const_input
 from swapper.plan.add_folds import add_readers, residual_readers
 from swapper.plan.layers import Layer, Reach, linear_layer, reach_linear
 from swapper.scan.sites import Site
@@ -107,7 +107,7 @@ def _difference_model(work: onnx.ModelProto, index: GraphIndex, site: Site, reac
         layer = onnx.NodeProto()
         layer.CopyFrom(reach.node)
         layer.input[:], layer.output[:] = [diff, reach.node.input[1]], [f"{_TMP}shift"]
-        consts[reach.node.input[1]] = index.initializers[reach.node.input[1]]
+        consts[reach.node.input[1]] = numpy_helper.from_array(index.const(reach.node.input[1]), reach.node.input[1])
         nodes.append(layer)
     graph = helper.make_graph(nodes, "difference",
                               [helper.make_tensor_value_info(n, elem, None) for n in model_inputs],
@@ -122,14 +122,21 @@ class DeltaSum:
     Fed batch by batch while the student output is computed, so bias
     correction of linear paths needs no second pass over the recorded tensors:
     E[L(Δ)] = L(E[Δ]) for a linear L, so one run of L on the mean gives the shift.
+
+    Given ``keep`` (a [batch, tokens] boolean of the token positions to count,
+    for [batch, tokens, channels] outputs), it also sums Δ over those positions
+    only: the mean over real tokens, which a layer reading the site output
+    directly applies to (:meth:`token_mean`).
     """
 
     def __init__(self):
         self.total: np.ndarray | None = None
         self.n = 0
         self.dtype: np.dtype | None = None
+        self.token_total: np.ndarray | None = None
+        self.tokens = 0
 
-    def add(self, student: np.ndarray, teacher: np.ndarray) -> None:
+    def add(self, student: np.ndarray, teacher: np.ndarray, keep: np.ndarray | None = None) -> None:
         if student.ndim == 0 or student.shape[0] == 0:
             return
         # Σ student − Σ teacher, each summed in float64 by the reduction itself (no float64 copy of the
@@ -141,10 +148,21 @@ class DeltaSum:
         else:
             self.total += batch
         self.n += student.shape[0]
+        if keep is not None:
+            rows = np.add.reduce(student[keep], axis=0, dtype=np.float64)
+            rows -= np.add.reduce(teacher[keep], axis=0, dtype=np.float64)
+            self.token_total = rows if self.token_total is None else self.token_total + rows
+            self.tokens += int(np.count_nonzero(keep))
 
     def mean(self) -> np.ndarray:
         """E[Δ] as one sample (leading axis of 1), float64."""
         return (self.total / max(self.n, 1))[None]
+
+    def token_mean(self) -> np.ndarray | None:
+        """E[Δ] over the kept token positions, shaped [1, 1, channels] (None: no positions were given)."""
+        if self.token_total is None:
+            return None
+        return (self.token_total / max(self.tokens, 1))[None, None]
 
 
 def _channel_sums(out: np.ndarray, axis: int) -> tuple[np.ndarray, int]:
@@ -217,9 +235,12 @@ def _from_mean(work, index, site, reach, delta: DeltaSum, in_numpy):
     or at its output (Conv, ConvTranspose, batched MatMul); None when a step reads a run-time
     tensor, NotImplemented when onnxruntime cannot run the steps on one sample.
     """
-    x = delta.mean()
     node = reach.node
     in_ort = node.op_type == "ConvTranspose"  # no numpy twin here: onnxruntime runs it with the steps
+    tokens = delta.token_mean()
+    # the layer reads the site output itself, row by row: its mean input over real tokens is the token mean
+    # (through reshapes or pools the rows would move, so the mean over every position is used there)
+    x = tokens if tokens is not None and in_numpy and not reach.steps else delta.mean()
     if reach.steps or in_ort:
         model = _difference_model(work, index, site, reach, False, with_layer=in_ort)
         if model is None:
@@ -281,7 +302,7 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
     """
     index = GraphIndex.of(work)
     taken = all_names(work)
-    corrected = []
+    corrected, replaced = [], set()
     adds = residual_readers(index, site)
     reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False, skip=adds)
     notes = [f"no bias correction: {why}" for why in dead_ends]
@@ -309,9 +330,14 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
             continue
         shape = bias.shape if bias.size == shift.size else np.broadcast_shapes(bias.shape, shift.shape)
         # a bias other nodes share gets a copy of its own, so their outputs stay as they were
-        set_const_input(work, layer.bias_node, layer.bias_slot, (bias - shift).reshape(shape), layer.bias.dtype,
-                        taken, f"swapper/{site.id}/bias_correction", hint=node.name)
+        before = layer.bias_name()
+        after = set_const_input(work, layer.bias_node, layer.bias_slot, (bias - shift).reshape(shape),
+                                layer.bias.dtype, taken, f"swapper/{site.id}/bias_correction", hint=node.name)
+        if after != before:
+            replaced.add(before)
         corrected.append(node.name)
+    if replaced:  # Constant nodes nothing reads any more go (a shared one stays); after the loop, which holds nodes
+        drop_unused(work, replaced)
     return corrected, notes
 
 
@@ -343,13 +369,18 @@ def covers_mean(index: GraphIndex, site: Site) -> tuple[bool, str]:
 
 
 def _no_correction(index: GraphIndex, layer: Layer) -> str:
-    """Why a linear layer's bias is not corrected (no bias, not in initializers, beta = 0), or ""."""
+    """Why a linear layer's bias is not corrected (no bias, not constant, beta = 0), or "".
+
+    Weights and biases held by Constant nodes (as some exporters write every
+    parameter) are corrected like initializers: the difference model copies
+    the weight's value, and the corrected bias goes to a fresh initializer
+    (``set_const_input`` rewires the slot and leaves the Constant node as it was).
+    """
     name = layer.node.name
     if not layer.bias_name():
         return f"{name} has no constant bias"
-    if not all(t in index.initializers for t in (layer.node.input[1], layer.bias_name())):
-        # the difference model takes the weight, and the correction the bias, as initializers
-        return f"{name} keeps its weight or bias in a Constant node"
+    if any(index.const(t) is None for t in (layer.node.input[1], layer.bias_name())):
+        return f"{name} computes its weight or bias at run time"
     if layer.kind == "gemm" and float(attr(layer.node, "beta", 1.0)) == 0.0:
         return f"{name} has beta = 0"
     return ""

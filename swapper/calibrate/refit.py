@@ -92,12 +92,14 @@ from swapper.calibrate.ridge import (  # noqa: F401
     ridge_toward_prior,
 )
 from swapper.calibrate.site_fit import fit_rules, fit_swap
+from swapper.calibrate.tokens import is_token_site, observe, token_selection
 from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads
 from swapper.core.surgery import all_names, copy_model
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
 from swapper.data.dataset import Dataset, input_batches
+from swapper.data.token_mask import AUTO, TOKEN_CAP, TokenSelection, token_rows
 from swapper.plan.layers import Consumer, find_consumers, theta_of
 from swapper.plan.plan import Plan
 from swapper.progress import Silent
@@ -151,7 +153,8 @@ def _schedule(index: GraphIndex, sites: list[Site], swapped: set[str], outputs: 
     consumers found on ``index`` hold for the whole refit.
     """
     by_id = {s.id: s for s in sites}
-    blocked = {name for sid in swapped for name in by_id[sid].nodes}
+    # node names are unique per graph: a site inside an If/Loop/Scan body blocks nothing here
+    blocked = {name for sid in swapped if not by_id[sid].body for name in by_id[sid].nodes}
     levels = site_levels(index, sites, swapped)
     schedule = []
     for number in sorted(set(levels.values())):
@@ -183,9 +186,18 @@ def _schedule(index: GraphIndex, sites: list[Site], swapped: set[str], outputs: 
 
 # -------------------------------------------------------------- accumulation
 def accumulate(gram: FoldedGram, c: Consumer, conv: onnx.NodeProto | None, kernel: tuple[int, ...],
-               x: np.ndarray, y: np.ndarray, fold_of_sample: np.ndarray) -> None:
-    """Add one batch: ``x`` the candidate site output, ``y`` the original consumer output."""
+               x: np.ndarray, y: np.ndarray, fold_of_sample: np.ndarray, keep: np.ndarray | None = None) -> None:
+    """Add one batch: ``x`` the candidate site output, ``y`` the original consumer output.
+
+    ``keep`` ([batch, tokens] booleans, token-shaped sites only): the rows of
+    the kept token positions alone enter the Grams.
+    """
     nb = x.shape[0]
+    if keep is not None and c.kind != "conv":
+        rows = np.nonzero(keep)[0]  # the sample each kept row comes from
+        gram.update(token_rows(x, keep, f"input of {c.node}"), token_rows(y, keep, f"output of {c.node}"),
+                    fold_of_sample[rows])
+        return
     if c.kind == "conv":
         begin, end, strides, dilations, out = conv_geometry(conv, kernel, tuple(x.shape[2:]))
         per_sample = math.prod(out)
@@ -226,7 +238,8 @@ def _downstream(model: onnx.ModelProto, tensors: set[str]) -> set[str]:
 
 
 def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int, progress, notes: list,
-                 cand: SliceRunner, orig: SliceRunner, n: int, batch_size: int, keep: list[str]) -> None:
+                 cand: SliceRunner, orig: SliceRunner, n: int, batch_size: int, keep: list[str],
+                 tokens: TokenSelection | None = None) -> None:
     """Re-fit a, b, c, d of ``group`` (in ``plan``, refit's own copy) on their inputs in ``work``, as calibration
     fits them. The original's outputs in ``keep`` are recorded on the way (later levels start from them).
     """
@@ -235,12 +248,14 @@ def _refit_sites(work, original, sites, group: list[Site], plan: Plan, seed: int
     model = rewrite(work, sites, _nodes_plan(plan)).model
     ins = [s.input for s in group]
     outs = [s.output for s in group]
-    observers = {s.id: observer_for(swaps[s.id], seed, RESERVOIR) for s in group}
+    masked = {s.id: tokens is not None and is_token_site(s) for s in group}
+    observers = {s.id: observer_for(swaps[s.id], seed, RESERVOIR, rows=masked[s.id]) for s in group}
     label = f"re-fitting {len(group)} site(s) on refitted layers"
     with progress.task(label, -(-n // batch_size)) as advance:
-        for (_, xs), (_, ys) in zip(cand.stream(model, ins), orig.stream(original, outs, store=keep)):
+        for (batch, xs), (_, ys) in zip(cand.stream(model, ins), orig.stream(original, outs, store=keep)):
+            rows = None if tokens is None else tokens.keep(batch.start, batch.stop)
             for s in group:
-                observers[s.id].update(xs[s.input], ys[s.output])
+                observe(observers[s.id], xs[s.input], ys[s.output], rows if masked[s.id] else None)
             advance(1)
     for s in group:
         # calibration's own fit, same rules (bias correction ran there: a held d's mean is the readers')
@@ -266,6 +281,8 @@ def refit_consumers(
     cache_bytes: int = MEMORY_BUDGET,
     holdout: float = HOLDOUT,
     outputs: bool = True,
+    mask_input: str = AUTO,
+    token_cap: int = TOKEN_CAP,
 ) -> RefitResult:
     """Refit the linear consumers of swapped sites in a copy of ``base`` (module docstring).
 
@@ -278,7 +295,10 @@ def refit_consumers(
     judges each site's refit (:mod:`swapper.calibrate.refit_decision`; 0: each
     consumer is judged by its cross-validation alone). ``outputs``: also refit
     layers whose output is a graph output (the swap pipeline passes False,
-    module docstring). Neither model nor the plan is mutated; node names are kept.
+    module docstring). ``mask_input`` / ``token_cap``: the token positions
+    token-shaped sites' Grams and re-fits read, as in calibration
+    (:func:`swapper.calibrate.tokens.token_selection`). Neither model nor the
+    plan is mutated; node names are kept.
     """
     progress = progress or Silent()
     t_start = time.perf_counter()
@@ -286,6 +306,9 @@ def refit_consumers(
     plan = copy.deepcopy(plan)  # re-fitted swaps go here
     notes: list[tuple[str, str]] = []
     schedule = _schedule(GraphIndex.of(work), sites, set(plan.by_site()), outputs)
+    swapped = [s for s in sites if s.id in set(plan.by_site())]
+    tokens, tokens_note = token_selection(original, swapped, dataset, mask_input, seed, token_cap)
+    logger.info("refit: %s", tokens_note)
     k = max(1, min(int(folds), dataset.n))
     fold_of, held, held_samples = split_samples(dataset.n, k, holdout, seed)  # part of each sample index
     parts = k + (held is not None)
@@ -303,14 +326,14 @@ def refit_consumers(
             moved = [s for s in level.sites if s.input in dirty]
             if moved:
                 _refit_sites(work, original, sites, moved, plan, seed, progress, notes, cand, orig, dataset.n,
-                             batch_size, level.keep)
+                             batch_size, level.keep, tokens)
             for site_id, text in level.notes:
                 _note(notes, site_id, text)
             if level.consumers or level.keep:
                 index = GraphIndex.of(work)
                 grams = accumulate_level(work, original, sites, plan, level.consumers, dataset, parts, fold_of,
                                          batch_size, threads, progress, f"refit level {level.number}",
-                                         index=index, cache=cache, keep=level.keep)
+                                         index=index, cache=cache, keep=level.keep, tokens=tokens)
                 for site in level.sites:
                     mine = [c for c in level.consumers if c.site_id == site.id]
                     if not mine:
@@ -329,14 +352,16 @@ def refit_consumers(
 
 def accumulate_level(work, original, sites, plan, consumers: list[Consumer], dataset: Dataset, k: int,
                      fold_of: np.ndarray, batch_size: int, threads: int, progress, label: str, *,
-                     index: GraphIndex | None = None, cache: TensorCache | None = None, keep=()
-                     ) -> dict[str, FoldedGram]:
+                     index: GraphIndex | None = None, cache: TensorCache | None = None, keep=(),
+                     tokens: TokenSelection | None = None) -> dict[str, FoldedGram]:
     """Per-fold Grams of every consumer: candidate site outputs (X) against original consumer outputs (Y).
 
     ``index``: of ``work``, if at hand. ``cache``: site outputs recorded at
     earlier levels, where both models start (without one they run from the
     graph inputs); the site outputs in ``keep`` are recorded in it, of both models.
+    ``tokens``: consumers of token-shaped sites read only these token positions.
     """
+    token_sites = {s.id for s in sites if is_token_site(s)} if tokens is not None else set()
     index = GraphIndex.of(work) if index is None else index
     cand = rewrite(work, sites, _nodes_plan(plan)).model
     grams, kernels, convs = {}, {}, {}
@@ -354,7 +379,9 @@ def accumulate_level(work, original, sites, plan, consumers: list[Consumer], dat
         with progress.task(f"{label}: {len(consumers)} consumer(s)", -(-dataset.n // batch_size)) as advance:
             for (batch, xs), (_, ys) in zip(xs_all, ys_all):
                 f = fold_of[batch.start:batch.stop]
+                rows = tokens.keep(batch.start, batch.stop) if token_sites else None
                 for c in consumers:
-                    accumulate(grams[c.node], c, convs[c.node], kernels[c.node], xs[c.data], ys[c.output], f)
+                    accumulate(grams[c.node], c, convs[c.node], kernels[c.node], xs[c.data], ys[c.output], f,
+                               rows if c.site_id in token_sites else None)
                 advance(1)
     return grams

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+ROWS = 4096  # rows widened to float64 at a time (4096 × 1537 columns: 50 MB)
 # λ / mean(diag XᵀX); the smallest is "almost plain least squares"
 DEFAULT_FACTORS = (1e-8, 1e-6, 1e-4, 1e-3, 1e-2, 3e-2, 1e-1, 3e-1, 1.0, 10.0, 100.0)
 
@@ -29,15 +30,24 @@ class FoldedGram:
         self.parts = [GramAccumulator(self.dim) for _ in range(folds)]
 
     def update(self, X: np.ndarray, Y: np.ndarray, fold_of_row: np.ndarray) -> None:
-        """Add rows ``X`` (n, inputs) with targets ``Y`` (n, outputs); ``fold_of_row`` (n,) ints."""
-        Xa = np.empty((X.shape[0], self.dim))
-        Xa[:, :-1] = X
-        Xa[:, -1] = 1.0
-        Y = np.asarray(Y, dtype=np.float64)
+        """Add rows ``X`` (n, inputs) with targets ``Y`` (n, outputs); ``fold_of_row`` (n,) ints.
+
+        Rows are widened to float64 ``ROWS`` at a time, fold by fold (one
+        stable sort of the rows by fold), so a batch of many tokens never
+        exists as one float64 copy: memory stays at a block, whatever the batch.
+        """
+        X, Y = np.asarray(X), np.asarray(Y)
+        fold_of_row = np.asarray(fold_of_row)
+        order = np.argsort(fold_of_row, kind="stable")
+        bounds = np.searchsorted(fold_of_row[order], np.arange(len(self.parts) + 1))
         for k, part in enumerate(self.parts):
-            rows = np.nonzero(fold_of_row == k)[0]
-            if rows.size:
-                part.update(Xa[rows], Y[rows])
+            rows = order[bounds[k]:bounds[k + 1]]
+            for i in range(0, rows.size, ROWS):
+                block = rows[i:i + ROWS]
+                Xa = np.empty((block.size, self.dim))
+                Xa[:, :-1] = X[block]
+                Xa[:, -1] = 1.0
+                part.update(Xa, np.asarray(Y[block], dtype=np.float64))
 
     def without(self, part: int) -> FoldedGram:
         """A view of the other parts (the same accumulators): the folds once ``part`` is held out."""
@@ -75,12 +85,27 @@ class RidgePath:
         vals, self.vecs = np.linalg.eigh(acc.xtx)
         self.vals = np.clip(vals, 0.0, None)  # XᵀX is PSD; rounding can leave tiny negatives
         self.qty = self.vecs.T @ acc.xty
+        self._prior: tuple[np.ndarray, np.ndarray] | None = None  # (prior, Qᵀ·prior) of the last solve
+
+    def _qtp(self, prior: np.ndarray) -> np.ndarray:
+        # Qᵀ·prior does not depend on λ: computed once for the whole grid (the same prior every call)
+        if self._prior is None or self._prior[0] is not prior:
+            self._prior = (prior, self.vecs.T @ prior)
+        return self._prior[1]
 
     def solve(self, lam: float, prior: np.ndarray) -> np.ndarray:
         """θ(lam) toward ``prior`` (inputs + 1, outputs); ``lam`` must be > 0."""
-        if not lam > 0:
-            raise ValueError(f"RidgePath needs lam > 0, got {lam}")
-        return self.vecs @ ((self.qty + lam * (self.vecs.T @ prior)) / (self.vals + lam)[:, None])
+        return self.solve_many([lam], prior)[0]
+
+    def solve_many(self, lams, prior: np.ndarray) -> np.ndarray:
+        """θ(λ) for every λ of ``lams`` (each > 0), stacked on a first axis: one product with Q for all."""
+        lams = np.asarray(lams, dtype=np.float64).reshape(-1)
+        if not (lams > 0).all():
+            raise ValueError(f"RidgePath needs lam > 0, got {lams}")
+        qtp = self._qtp(prior)
+        coords = np.concatenate([(self.qty + lam * qtp) / (self.vals + lam)[:, None] for lam in lams], axis=1)
+        thetas = self.vecs @ coords  # (inputs + 1, len(lams) · outputs)
+        return np.moveaxis(thetas.reshape(thetas.shape[0], lams.size, -1), 1, 0)
 
 
 def _scale(acc: GramAccumulator) -> float:
@@ -127,16 +152,15 @@ def choose_ridge(gram: FoldedGram, prior: np.ndarray, current: np.ndarray,
     active = [k for k, p in enumerate(gram.parts) if p.n > 0]
     if len(active) < 2:
         return RidgeChoice(float("nan"), float("nan"), float("nan"), current_mse, False, current, total.n)
-    trains = {k: gram.total(skip=k) for k in active}
-    paths = {k: RidgePath(trains[k]) for k in active}
+    errors = np.zeros(len(factors))
+    for k in active:  # one fold at a time: its eigendecomposition, then every factor of the grid at once
+        train = gram.total(skip=k)
+        thetas = RidgePath(train).solve_many([f * _scale(train) for f in factors], prior)
+        errors += [_sse(gram.parts[k], theta) for theta in thetas]
     best_f, best_err = None, math.inf
-    for f in factors:  # grid order breaks ties toward the first (smallest) factor
-        err = 0.0
-        for k in active:
-            theta = paths[k].solve(f * _scale(trains[k]), prior)
-            err += _sse(gram.parts[k], theta)
+    for f, err in zip(factors, errors):  # grid order breaks ties toward the first (smallest) factor
         if err < best_err:
-            best_f, best_err = f, err
+            best_f, best_err = f, float(err)
     lam = best_f * _scale(total)
     cv_mse = best_err / count
     if not cv_mse < current_mse:

@@ -27,7 +27,14 @@ import onnx
 import onnxruntime as ort
 
 from swapper.check import stats
-from swapper.check.kinds import OutputKind, class_output, default_metric, detect_kinds, regression_output
+from swapper.check.kinds import (
+    OutputKind,
+    check_targets_fit,
+    class_output,
+    default_metric,
+    detect_kinds,
+    regression_output,
+)
 from swapper.check.similarity import CosineAccumulator
 from swapper.core.jsonable import json_safe
 from swapper.core.session import ORT_ERRORS, open_session
@@ -220,6 +227,7 @@ class _Tally:
 
     def __init__(self, dataset: Dataset, names: list[str]) -> None:
         self.names = names
+        self.path = dataset.path
         self.labels_given = dataset.labels is not None
         self.targets_given = dataset.targets is not None
         self.kinds: list[OutputKind] = []
@@ -234,8 +242,9 @@ class _Tally:
         self.use_labels = False
         self.notes: list[str] = []
 
-    def start(self, outs_o: list[np.ndarray], targets) -> None:
+    def start(self, outs_o: list[np.ndarray], targets, path=None) -> None:
         self.kinds = detect_kinds(self.names, outs_o, targets=targets)
+        check_targets_fit(self.kinds, targets, path)
         self.errors = {k.name: stats.OutputErrorAccumulator() for k, o in zip(self.kinds, outs_o) if _is_numeric(o)}
         self.cosines = {k.name: CosineAccumulator() for k in self.kinds if k.is_float and k.values_per_sample >= 2}
         self.cls = class_output(self.kinds, any_view=True)
@@ -277,7 +286,7 @@ class _Tally:
             if self.cls.kind == "scores":
                 raise BadDataError(
                     f"labels of samples {batch.start}..{batch.stop - 1} do not fit output {self.cls.name!r} with "
-                    f"{so.shape[1]} classes (need integers in [0, {so.shape[1]}))")
+                    f"{so.shape[1]} classes (need integers in [0, {so.shape[1]}))", self.path)
             self.use_labels = False  # an embedding read as classes: its width need not match the label range
             self.labels_seen.clear()
             self.top5 = {"original": [], "candidate": []}
@@ -335,7 +344,7 @@ def compare(
             has_nonfinite |= _nonfinite(outs_c)
             orig_nonfinite |= _nonfinite(outs_o)
             if n == 0:
-                tally.start(outs_o, dataset.targets)
+                tally.start(outs_o, dataset.targets, dataset.path)
             shape_change = tally.update(batch, outs_o, outs_c)  # always folds the batch in
             reason = reason or shape_change
             n += batch.stop - batch.start

@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from swapper.check.compare import Comparison, probe
-from swapper.check.kinds import OutputKind, class_output, default_metric, regression_output
+from swapper.check.kinds import OutputKind, check_targets_fit, class_output, default_metric, regression_output
 from swapper.data.dataset import Dataset
 from swapper.errors import BadDataError, CannotJudge, UsageError
 
@@ -225,6 +225,7 @@ def preflight(original, dataset: Dataset, rule: GateRule | Budget | None = None,
     """
     rule = as_rule(rule)
     kinds = probe(original, dataset, batch_size=batch_size, threads=threads)
+    check_targets_fit(kinds, dataset.targets, dataset.path)
     choice = choose_metric(kinds, rule, has_labels=dataset.labels is not None,
                            has_targets=dataset.targets is not None, source=str(dataset.path))
     cls = next((k for k in kinds if k.name == choice.outputs[0]), None)

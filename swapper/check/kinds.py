@@ -35,6 +35,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from swapper.errors import BadDataError
+
 logger = logging.getLogger(__name__)
 
 KINDS = ("scores", "embedding", "dense", "scalar", "regression", "non-float")
@@ -137,6 +139,20 @@ def detect_kinds(names: list[str], outputs: list[np.ndarray], *, targets: np.nda
     for k in kinds:
         logger.info("output %s", k.describe())
     return kinds
+
+
+def check_targets_fit(kinds: list[OutputKind], targets: np.ndarray | None, path) -> None:
+    """BadDataError (naming ``path``) when ``targets`` are given but no float output has their size per sample.
+
+    ``targets`` are what one output should produce (README "Data files"): when none
+    can, the file does not fit the model, as labels beyond the class count do not.
+    """
+    if targets is None or regression_output(kinds) is not None:
+        return
+    per_sample = 1 if np.ndim(targets) <= 1 else math.prod(np.shape(targets)[1:])
+    outputs = ", ".join(f"{k.name} {k.values_per_sample}" for k in kinds if k.is_float) or "none"
+    raise BadDataError(f"'targets' has {per_sample} value(s) per sample, but no float output of the model has "
+                       f"as many (values per sample: {outputs}); targets are what one output should produce", path)
 
 
 def class_output(kinds: list[OutputKind], *, any_view: bool = False) -> OutputKind | None:

@@ -56,13 +56,15 @@ def time_interleaved(
     warmup: int = 5,
     repeats: int = 30,
     clock: Callable[[], int] = time.perf_counter_ns,
+    advance: Callable[[int], None] | None = None,
 ) -> dict[str, list[int]]:
     """Call each runner ``warmup`` times, then ``repeats`` rounds of one call per runner.
 
     Runners are visited in sorted-name order in every round (round-robin), and
     each call is timed alone with ``clock`` (integer nanoseconds). Returns the
     timed durations per runner name, in call order. ``clock`` is injectable so
-    the schedule can be checked without real timing.
+    the schedule can be checked without real timing; ``advance(1)`` is called
+    after each round (progress), outside the timed calls.
     """
     if warmup < 0:
         raise UsageError(f"warmup must be >= 0, got {warmup}")
@@ -79,6 +81,8 @@ def time_interleaved(
             start = clock()
             runners[name]()
             durations[name].append(clock() - start)
+        if advance is not None:
+            advance(1)
     return durations
 
 
@@ -121,6 +125,7 @@ def measure_latency(
     repeats: int = 30,
     graph_optimization: str = "all",
     clock: Callable[[], int] = time.perf_counter_ns,
+    advance: Callable[[int], None] | None = None,
 ) -> dict[str, LatencyStats]:
     """Time every model on the same ``feeds`` with interleaved runs; stats per model name.
 
@@ -130,7 +135,7 @@ def measure_latency(
     with (see :func:`open_sessions`). Feeds a model does not declare as inputs
     are ignored. The result is keyed in sorted-name order. Raises UsageError
     for bad settings, BadModelError if onnxruntime cannot load a model,
-    BadDataError if the feeds do not fit it.
+    BadDataError if the feeds do not fit it. ``advance(1)`` after each timed round (progress).
     """
     sessions = open_sessions(models, threads=threads, graph_optimization=graph_optimization)
     runners: dict[str, Callable[[], object]] = {}
@@ -145,7 +150,7 @@ def measure_latency(
         "timing %d model(s): %d warm-up + %d interleaved runs each, %d thread(s), optimisation %s",
         len(runners), warmup, repeats, threads, graph_optimization,
     )
-    durations = time_interleaved(runners, warmup=warmup, repeats=repeats, clock=clock)
+    durations = time_interleaved(runners, warmup=warmup, repeats=repeats, clock=clock, advance=advance)
     return {name: stats_from_ns(durations[name]) for name in sorted(durations)}
 
 

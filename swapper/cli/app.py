@@ -1,7 +1,10 @@
 """The `swapper` command line: parses options, calls the API, maps errors to exit codes.
 
 Exit codes (swapper/errors.py): 0 done / approved, 1 rejected by the gate, 2 bad
-input or usage, 3 the validation data cannot judge the model.
+input or usage, 3 the validation data cannot judge the model, 4 internal error
+(cli/guard.py turns any other exception into one line; ``--verbose`` shows the
+traceback). User text (paths, names, messages) is never read as console markup:
+both consoles have markup off.
 """
 from __future__ import annotations
 
@@ -13,69 +16,66 @@ from typing import Annotated, Optional
 
 import typer
 from rich.console import Console
+from rich.text import Text
 
 from swapper import api, functions
+from swapper.cli.guard import OneLineGroup, configure_logging
+from swapper.cli.opts import (
+    MAX_LATENCY_RUNS,
+    TARGET_HELP,
+    BatchAxis,
+    BatchOpt,
+    BudgetOpt,
+    Constant,
+    DataSpec,
+    JobsOpt,
+    LatencyRunsOpt,
+    MetricOpt,
+    MinAgreementOpt,
+    MinCosineOpt,
+    MinCosineP5Opt,
+    MinSqnrOpt,
+    NoLatencyOpt,
+    Prep,
+    SchedulerOpt,
+    SeedOpt,
+    StrictDataOpt,
+    ThreadsOpt,
+    data_source_of,
+    finite,
+    gate_rule,
+    plan_word,
+    split_ids,
+    sweep_settings,
+    target_name,
+)
 from swapper.errors import SwapperError, UsageError
+from swapper.options import MAX_CACHE_MB
+
+logger = logging.getLogger(__name__)
 
 app = typer.Typer(
+    cls=OneLineGroup,
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
     help="Find costly activations in an ONNX model, swap them for cheap calibrated ones, and check the cost.",
 )
-out = Console(soft_wrap=True)
-err = Console(stderr=True, soft_wrap=True)
+out = Console(soft_wrap=True, markup=False)
+err = Console(stderr=True, soft_wrap=True, markup=False)
 if not out.is_terminal:  # pipes and CI logs: wide enough that tables keep one row per line
     out.width = max(out.width, 160)
 
 
 def _fail(exc: SwapperError) -> None:
-    err.print(f"[bold red]{exc.label}:[/] {exc}", highlight=False, soft_wrap=True)
+    err.print(Text.assemble((f"{exc.label}:", "bold red"), " ", str(exc)), highlight=False, soft_wrap=True)
     raise typer.Exit(exc.exit_code)
 
 
-# The gate's options, shared by `swap` and `check`; gathered into one GateRule by _gate_rule.
-MetricOpt = Annotated[Optional[str], typer.Option(
-    help="What decides: top1 | agreement | cosine | sqnr | rmse (default: from the outputs and the data).")]
-MinCosineOpt = Annotated[Optional[float], typer.Option(
-    help="Least mean per-sample cosine similarity to the original's output (default 0.995).")]
-MinCosineP5Opt = Annotated[Optional[float], typer.Option(
-    "--min-cosine-p5", help="Least cosine of the worst 5% of samples (default 1 - 2*(1 - min-cosine)).")]
-MinSqnrOpt = Annotated[Optional[float], typer.Option(
-    help="Least SQNR of each output against the original's, in dB (default 20).")]
-StrictDataOpt = Annotated[bool, typer.Option(
-    "--strict-data", help="Refuse data files holding arrays the model does not read (default: ignore them).")]
-
-
-def _gate_rule(budget: float, strict: bool, min_agreement: float | None, metric: str | None,
-               min_cosine: float | None, min_cosine_p5: float | None, min_sqnr: float | None):
-    """The one place the gate options become a GateRule (UsageError, exit 2, when they contradict)."""
-    from swapper.check.gate import Budget, GateRule
-
-    return GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement), metric=metric,
-                    min_cosine=min_cosine, min_cosine_p5=min_cosine_p5, min_sqnr_db=min_sqnr)
-
-
-def _split(value: str | None) -> list[str] | None:
-    return [v.strip() for v in value.split(",") if v.strip()] if value else None
-
-
-# Data options shared by every command that reads data (see swapper/data/source.py for the file format).
-DataSpec = Annotated[Optional[Path], typer.Option("--data-spec", help="JSON data description: batch axes, constant inputs, image preprocessing.")]
-BatchAxis = Annotated[Optional[list[str]], typer.Option("--batch-axis", help="NAME=AXIS: the axis of input NAME that counts samples (repeatable).")]
-Constant = Annotated[Optional[list[str]], typer.Option("--constant", help="NAME=VALUE fed unchanged in every batch: a number, numbers a,b,c, zeros, or FILE.npy (repeatable).")]
-Prep = Annotated[Optional[list[str]], typer.Option("--prep", help="KEY=VALUE preprocessing of image folders: size=48x192, resize=stretch|crop|pad, channels=RGB|BGR|gray, layout, scale, mean, std (repeatable).")]
-
-
-def _source(path: Path | None, data_spec, batch_axis, constant, prep):
-    from swapper.data.source import data_source
-
-    return data_source(path, description=data_spec, batch_axes=batch_axis, constants=constant, prep=prep)
-
-
 @app.callback()
-def main(verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Log debug details.")] = False) -> None:
-    logging.basicConfig(level=logging.DEBUG if verbose else logging.WARNING, format="%(name)s: %(message)s")
+def main(verbose: Annotated[bool, typer.Option(
+        "--verbose", "-v", help="Log debug details; on an internal error, show the traceback.")] = False) -> None:
+    configure_logging(verbose)
 
 
 @app.command()
@@ -94,7 +94,7 @@ def scan(
     try:
         if calib is not None and input_shape:
             raise UsageError("--calib and --input-shape exclude each other (both give the sizes for cost shares)")
-        result = api.scan(model, calib=_source(calib, data_spec, batch_axis, constant, prep),
+        result = api.scan(model, calib=data_source_of(calib, data_spec, batch_axis, constant, prep),
                           input_shapes=parse_input_shapes(input_shape))
     except SwapperError as exc:
         _fail(exc)
@@ -102,21 +102,51 @@ def scan(
         sys.stdout.write(json.dumps(sites_to_json(result.sites, str(model), result.loaded.opset), indent=2) + "\n")
         return
     if not result.sites:
-        out.print(f"{model}: no activation sites found")
+        out.print(f"{model}: no activation sites found", highlight=False)
         return
     out.print(sites_table(result.sites, f"{model} (opset {result.loaded.opset}): {len(result.sites)} activation sites"))
     if any(s.cost_share is None for s in result.sites):
         out.print("cost share ?: sizes are symbolic; give --calib DATA or --input-shape NAME=DIMS", highlight=False)
+    idle = [s.id for s in result.sites if s.body and s.elements == 0]
+    if idle:  # body sites are costed by running their bodies on the measured sample
+        out.print(f"cost 0 for {', '.join(idle)}: their body did not run on the measured sample "
+                  "(an If branch it did not take)", highlight=False)
 
 
 @app.command("functions")
 def list_functions() -> None:
-    """List the functions swapper knows: costly sources and cheap surrogates."""
+    """List the functions swapper knows: costly sources (with their default) and cheap surrogates (with their forms)."""
+    from swapper.functions.forms import forms_of
+
     for name in sorted(functions.REGISTRY):
         fn = functions.REGISTRY[name]
         kind = "surrogate" if fn.is_cheap else "source"
         default = functions.DEFAULT_TARGET.get(name, "")
-        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else ""))
+        forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
+                          for f in forms_of(name)) if fn.is_cheap else ""
+        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
+                  + (f"  forms: {forms}" if forms else ""), highlight=False)
+
+
+@app.command("targets")
+def list_targets(
+    as_json: Annotated[bool, typer.Option("--json", help="Print the profiles as JSON.")] = False,
+) -> None:
+    """List the built-in target profiles: name, precision, where costs come from, opsets, description."""
+    from swapper.targets import builtin_targets, load_target
+
+    try:
+        rows = [load_target(name) for name in builtin_targets()]
+    except SwapperError as exc:
+        _fail(exc)
+    if as_json:
+        sys.stdout.write(json.dumps([{"name": p.name, "precision": p.precision, "costs_from": p.costs_from,
+                                      "opset": {"min": p.opset_min, "max": p.opset_max},
+                                      "description": p.description} for p in rows], indent=2) + "\n")
+        return
+    for p in rows:
+        out.print(f"{p.name:13s} {p.precision:8s} {p.costs_from:9s} opsets {p.opset_min}..{p.opset_max}  "
+                  f"{p.description}", highlight=False)
 
 
 @app.command()
@@ -136,22 +166,31 @@ def swap(
     refit_consumers: Annotated[Optional[bool], typer.Option(
         "--refit-consumers/--no-refit-consumers",
         help="Ridge-refit linear consumers (default: with --calib, kept per site where held-out samples agree).")] = None,
+    mask_input: Annotated[str, typer.Option("--mask-input", help="Attention-mask input whose zero positions token sites' statistics skip: auto (found by name, dtype, shape), none, or the input's name.")] = "auto",
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
-    budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
+    budget: BudgetOpt = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
-    min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
     min_cosine_p5: MinCosineP5Opt = None,
     min_sqnr: MinSqnrOpt = None,
     strict_data: StrictDataOpt = False,
-    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected (verdict kept in metadata).")] = False,
+    force: Annotated[bool, typer.Option("--force", help="Write the model even when rejected or not faster on the target (verdict kept in metadata).")] = False,
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
-    seed: Annotated[int, typer.Option(help="Seed for sampling; same inputs + seed = same bytes.")] = 0,
-    batch_size: Annotated[int, typer.Option(min=1, help="Samples per onnxruntime call.")] = 64,
-    threads: Annotated[int, typer.Option(min=1, help="onnxruntime intra-op threads.")] = 1,
-    cache_mb: Annotated[Optional[float], typer.Option(min=0, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first (checked and compared; recorded in the report).")] = None,
+    seed: SeedOpt = 0,
+    batch_size: BatchOpt = 64,
+    threads: ThreadsOpt = 1,
+    cache_mb: Annotated[Optional[float], typer.Option(min=0, max=MAX_CACHE_MB, callback=finite, help="Recorded tensors kept in RAM up to this many MiB (default 8), on disk beyond.")] = None,
+    latency_runs: LatencyRunsOpt = 30,
+    no_latency: NoLatencyOpt = False,
+    plan: Annotated[Optional[str], typer.Option(help="auto: the fastest plan within the budget, from a sweep of every single-site swap (default with --val); all: every eligible site.")] = None,
+    sweep_file: Annotated[Optional[Path], typer.Option("--sweep", help="Plan from this sweep JSON (`swapper sweep -o`) instead of sweeping again.")] = None,
+    jobs: JobsOpt = 1,
+    scheduler: SchedulerOpt = None,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Swap costly activations for cheap surrogates, calibrate them, and (with --val) gate the result."""
@@ -159,21 +198,90 @@ def swap(
     from swapper.options import SwapOptions
 
     try:
-        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+        plan = plan_word(plan, val, calib)
+        if plan == "auto":
+            from swapper.cli.auto_run import run_auto_swap
+
+            if no_calibrate or calib is None:
+                raise UsageError("--plan auto calibrates every candidate: give --calib (or use --plan all)")
+            calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+            rule = gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+            options = SwapOptions(
+                site_ids=split_ids(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
+                fold=fold, mode=mode, bias_correction=bias_correction, seed=seed, batch_size=batch_size,
+                threads=threads, cache_mb=cache_mb, target=target_name(target), opset=opset,
+                mask_input=mask_input)
+            code = run_auto_swap(model, output, calib=calib, val=val, rule=rule, options=options,
+                                 settings=sweep_settings(jobs, scheduler, to), console=out, sweep_file=sweep_file,
+                                 force=force, report=report, strict_data=strict_data,
+                                 latency_runs=0 if no_latency else latency_runs)
+            raise typer.Exit(code)
+        if sweep_file is not None:
+            raise UsageError("--sweep feeds the automatic plan: add --plan auto (and --val)")
+        calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         if calib is None and not no_calibrate:
             raise UsageError("give a calibration set with --calib, or --no-calibrate for the uncalibrated swap")
         if calib is not None and no_calibrate:
             raise UsageError("--calib and --no-calibrate exclude each other")
-        rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        rule = gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
         if val is None and (metric, min_cosine, min_cosine_p5, min_sqnr) != (None,) * 4:
             raise UsageError("--metric, --min-cosine, --min-cosine-p5 and --min-sqnr judge a validation set: add --val")
         options = SwapOptions(
-            to=to, site_ids=_split(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
+            to=to, site_ids=split_ids(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
             fold=fold, mode=mode, bias_correction=bias_correction, refit_consumers=refit_consumers, seed=seed,
-            batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            mask_input=mask_input, batch_size=batch_size, threads=threads, cache_mb=cache_mb,
+            target=target_name(target), opset=opset,
         )
         code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
-                        strict_data=strict_data, force=force, int8=int8, report=report)
+                        strict_data=strict_data, force=force, int8=int8, report=report,
+                        latency_runs=0 if no_latency else latency_runs)
+    except SwapperError as exc:
+        _fail(exc)
+    raise typer.Exit(code)
+
+
+@app.command()
+def sweep(
+    model: Annotated[Path, typer.Argument(help="The .onnx model to sweep (never modified).")],
+    calib: Annotated[Path, typer.Option(help="Calibration set: .npz, a folder of .npy files, or a folder of images.")],
+    val: Annotated[Path, typer.Option(help="Validation set: what each single-site swap costs is measured on it.")],
+    output: Annotated[Optional[Path], typer.Option("--output", "-o", help="Where to write the sweep JSON (default reports/<model>-<UTC time>/sweep.json); the Pareto plot goes beside it.")] = None,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the sweep JSON (schema swapper.sweep/1) on stdout.")] = False,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    jobs: JobsOpt = 1,
+    scheduler: SchedulerOpt = None,
+    to: Annotated[Optional[str], typer.Option(help="Only this surrogate (default: every candidate of each function).")] = None,
+    paying_only: Annotated[bool, typer.Option("--paying-only", help="Only surrogates the target's profile says are cheaper than the site's own ops.")] = False,
+    no_refit: Annotated[bool, typer.Option("--no-refit", help="Skip the candidates with the consumer refit.")] = False,
+    repeats: Annotated[int, typer.Option(min=1, max=1000, help="Timed runs per model and candidate on a measured target.")] = 20,
+    sites: Annotated[Optional[str], typer.Option(help="Comma-separated site ids to sweep.")] = None,
+    only: Annotated[Optional[str], typer.Option(help="Sweep only sites computing this function.")] = None,
+    include_gates: Annotated[bool, typer.Option("--include-gates", help="Also sweep gate sites.")] = False,
+    include_outputs: Annotated[bool, typer.Option("--include-outputs", help="Also sweep sites that are graph outputs.")] = False,
+    budget: Annotated[float, typer.Option(help="Accuracy budget (points) recorded as the allowance.")] = 1.0,
+    metric: MetricOpt = None,
+    min_cosine: MinCosineOpt = None,
+    min_sqnr: MinSqnrOpt = None,
+    opset: Annotated[Optional[int], typer.Option(help="Convert the model to this ONNX opset first.")] = None,
+    seed: SeedOpt = 0,
+    batch_size: BatchOpt = 64,
+    strict_data: StrictDataOpt = False,
+    data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
+) -> None:
+    """Swap every eligible site alone, per surrogate, placement and refit: accuracy cost and saving on the target."""
+    from swapper.cli.auto_run import run_sweep
+    from swapper.options import SwapOptions
+
+    try:
+        calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+        rule = gate_rule(budget, False, None, metric, min_cosine, None, min_sqnr)
+        options = SwapOptions(site_ids=split_ids(sites), only=only, include_gates=include_gates,
+                              include_outputs=include_outputs, seed=seed, batch_size=batch_size,
+                              target=target_name(target), opset=opset)
+        settings = sweep_settings(jobs, scheduler, to, paying_only=paying_only, repeats=repeats,
+                                   refit=(False,) if no_refit else (False, True))
+        code = run_sweep(model, calib=calib, val=val, rule=rule, options=options, settings=settings, console=out,
+                         output=output, as_json=as_json, strict_data=strict_data)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -184,9 +292,9 @@ def check(
     original: Annotated[Path, typer.Argument(help="The original .onnx model.")],
     candidate: Annotated[Path, typer.Argument(help="The swapped .onnx model.")],
     val: Annotated[Path, typer.Option(help="Validation set (.npz or .npy folder), with `labels` for accuracy.")],
-    budget: Annotated[float, typer.Option(help="Largest accepted accuracy drop, in percentage points.")] = 1.0,
+    budget: BudgetOpt = 1.0,
     strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end.")] = False,
-    min_agreement: Annotated[Optional[float], typer.Option(help="Also require this top-1 agreement (0..1).")] = None,
+    min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
     min_cosine_p5: MinCosineP5Opt = None,
@@ -195,18 +303,22 @@ def check(
     int8: Annotated[bool, typer.Option("--int8", help="Also compare int8-quantized versions.")] = False,
     calib: Annotated[Optional[Path], typer.Option(help="Calibration set for --int8 (default: the validation set).")] = None,
     report: Annotated[Optional[Path], typer.Option(help="Report folder (default reports/<model>-<UTC time>/).")] = None,
-    batch_size: Annotated[int, typer.Option(min=1)] = 64,
-    threads: Annotated[int, typer.Option(min=1)] = 1,
+    batch_size: BatchOpt = 64,
+    threads: ThreadsOpt = 1,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
+    latency_runs: LatencyRunsOpt = 30,
+    no_latency: NoLatencyOpt = False,
     data_spec: DataSpec = None, batch_axis: BatchAxis = None, constant: Constant = None, prep: Prep = None,
 ) -> None:
     """Compare a candidate with its original on a validation set; exit 0 approved, 1 rejected, 3 cannot judge."""
     from swapper.cli.run import run_check
 
     try:
-        rule = _gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
-        calib, val = (_source(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
+        rule = gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
+        calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         code = run_check(original, candidate, val, console=out, rule=rule, strict_data=strict_data, int8=int8,
-                         calib=calib, report=report, batch_size=batch_size, threads=threads)
+                         calib=calib, report=report, batch_size=batch_size, threads=threads,
+                         latency_runs=0 if no_latency else latency_runs, target=target_name(target))
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
@@ -235,18 +347,21 @@ def bench(
     out_root: Annotated[Path, typer.Option("--out", help="Results go to OUT/<UTC time>/.")] = Path("reports/bench"),
     scale: Annotated[bool, typer.Option("--scale/--no-scale", help="Include the synthetic 16-block scale model.")] = True,
     quick: Annotated[bool, typer.Option("--quick", help="Few repeats, small data: a smoke run, not a measurement.")] = False,
-    repeats: Annotated[int, typer.Option(min=1, help="Timed runs per model for latency.")] = 50,
+    repeats: Annotated[int, typer.Option(
+        "--latency-runs", "--repeats", min=1, max=MAX_LATENCY_RUNS, help="Timed runs per model for latency.")] = 50,
+    no_latency: NoLatencyOpt = False,
+    target: Annotated[str, typer.Option(help=TARGET_HELP)] = "ort-cpu",
 ) -> None:
     """Measure accuracy recovered, the tool's own cost, and the swapped models' speed."""
     from swapper.bench.run import run_bench
 
     try:
         folder = run_bench(models or [], demo=demo_models, calib=calib, val=val, out_root=out_root, scale=scale,
-                           quick=quick, repeats=repeats, console=out)
+                           quick=quick, repeats=0 if no_latency else repeats, console=out, target=target_name(target))
     except SwapperError as exc:
         _fail(exc)
     out.print(f"results: {folder}", highlight=False)
 
 
 if __name__ == "__main__":  # pragma: no cover
-    app()
+    app(prog_name="swapper")

@@ -3,8 +3,11 @@
 Each function prints a short summary on the given console and returns the exit
 code: 0 done or approved, 1 rejected. Bad input raises SwapperError (exit 2); data
 that cannot judge the model raises CannotJudge (exit 3), found from one batch of
-the original before any calibration or timing. The input model is never
-overwritten; models and reports are written atomically.
+the original before any calibration or timing. Every output location (model and
+report folder) is checked before any work: it must be writable and must not be,
+or resolve to, any file the run reads (the model, its external data, the data
+sets and the files in data folders). Models and reports are written atomically.
+Names and paths are printed as they are, never read as console markup.
 """
 from __future__ import annotations
 
@@ -12,17 +15,19 @@ import logging
 from pathlib import Path
 
 import onnx
+from rich.text import Text
 
 from swapper import api
 from swapper.check.gate import Budget, GateRule, preflight
-from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model
-from swapper.errors import EXIT_OK, EXIT_REJECTED
+from swapper.core.files import check_report_dir
+from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model, saved_size
+from swapper.errors import EXIT_OK, EXIT_REJECTED, BadDataError, CannotJudge, SwapperError
 from swapper.options import SwapOptions
 from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
 from swapper.report.numbers import pct
 from swapper.report.paths import default_report_dir
-from swapper.report.tables import skipped_lines, swap_table
+from swapper.report.tables import skipped_lines, swap_table, target_lines, unrun_lines
 
 logger = logging.getLogger(__name__)
 
@@ -37,7 +42,7 @@ def _print_notes(console, *datasets) -> None:
         return
     notes = [note for ds in datasets if ds is not None for note in ds.notes]
     for note in dict.fromkeys(notes):  # the same file given twice says it once
-        console.print(f"note: {note}", highlight=False)
+        console.print(f"note: {note}", highlight=False, markup=False)
 
 
 def _figures(name: str, kind, errs: dict) -> str:
@@ -58,14 +63,15 @@ def _print_check(console, result: api.CheckResult) -> None:
     if console is None:
         return
     c, v = result.comparison, result.verdict
-    word = "[bold green]APPROVED[/]" if v.approved else "[bold red]REJECTED[/]"
-    console.print(f"{word}: {v.reason}", highlight=False)
+    word = ("APPROVED", "bold green") if v.approved else ("REJECTED", "bold red")
+    console.print(Text.assemble(word, f": {v.reason}"), highlight=False)
+    say = lambda line: console.print(line, highlight=False, markup=False)  # noqa: E731 - names come from the model
     if v.metric is not None:
-        console.print(f"  decided by: {v.metric} on {', '.join(v.outputs) or 'the class scores'}", highlight=False)
-    console.print(f"  rule: {v.rule}", highlight=False)
+        say(f"  decided by: {v.metric} on {', '.join(v.outputs) or 'the class scores'}")
+    say(f"  rule: {v.rule}")
     kinds = {k.name: k for k in c.output_kinds}
     for name, errs in c.output_errors.items():
-        console.print(_figures(name, kinds.get(name), errs), highlight=False)
+        say(_figures(name, kinds.get(name), errs))
     cls = kinds.get(c.class_output)
     show_classes = v.metric in ("top1", "agreement") or cls is None or cls.kind == "scores"
     if show_classes and c.top1_original is not None and c.top1_candidate is not None:
@@ -75,120 +81,210 @@ def _print_check(console, result: api.CheckResult) -> None:
             line += f" [{c.interval.lo:+.2f}, {c.interval.hi:+.2f}] (95%, {c.interval.method})"
         if c.mcnemar_p is not None:
             line += f"  McNemar p={c.mcnemar_p:.3g} (n01={c.n01}, n10={c.n10})"
-        console.print(line, highlight=False)
+        say(line)
     if show_classes and c.agreement is not None:
-        console.print(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples", highlight=False)
+        say(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples")
     for note in c.notes:
-        console.print(f"  note: {note}", highlight=False)
+        say(f"  note: {note}")
     lat = result.latency
-    console.print(
-        f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "
-        f"{lat['original']['median_ms']:.3f} ms, candidate {lat['candidate']['median_ms']:.3f} ms, "
-        f"ratio {lat['ratio']:.2f}", highlight=False)
+    if lat is None:
+        say("  latency: not measured (--no-latency)")
+    else:
+        say(f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "
+            f"{lat['original']['median_ms']:.3f} ms, candidate {lat['candidate']['median_ms']:.3f} ms, "
+            f"ratio {lat['ratio']:.2f}")
     s = result.size
-    console.print(f"  nodes {s['original']['nodes']} → {s['candidate']['nodes']}, bytes "
-                  f"{s['original']['bytes']} → {s['candidate']['bytes']}", highlight=False)
+    say(f"  nodes {s['original']['nodes']} → {s['candidate']['nodes']}, bytes "
+        f"{s['original']['bytes']} → {s['candidate']['bytes']}")
+    on = (lat or {}).get("target")
+    if on is not None:
+        if "ratio" in on:
+            say(f"  on {on['target']}: candidate {on['ratio']:.3f}× the original")
+        lacking = on.get("lacking_ops", {}).get("candidate")
+        if lacking:
+            say(f"  ops {on['target']} cannot run, still in the candidate: "
+                + ", ".join(f"{op} ×{k}" for op, k in lacking.items()))
     if result.int8:
         q = result.int8["comparison"]
-        console.print(f"  int8: top-1 original {pct(q.get('top1_original'))} candidate "
-                      f"{pct(q.get('top1_candidate'))}, latency ratio {result.int8['latency']['ratio']:.2f}",
-                      highlight=False)
+        ratio = "not measured" if result.int8["latency"] is None else f"{result.int8['latency']['ratio']:.2f}"
+        say(f"  int8: top-1 original {pct(q.get('top1_original'))} candidate {pct(q.get('top1_candidate'))}, "
+            f"latency ratio {ratio}")
+
+
+def _named(exc: SwapperError, val, original, candidate) -> SwapperError:
+    """A checking error with the file it is about: the data set for data errors, else the model it names."""
+    if isinstance(exc, (BadDataError, CannotJudge)):
+        return exc.naming(val)
+    return exc.naming(original if "original" in str(exc) else candidate)
 
 
 def run_check(original: Path, candidate: Path, val: Path, *, console=None, budget: float = 1.0,
               strict: bool = False, min_agreement: float | None = None, int8: bool = False,
               calib: Path | None = None, report: Path | None = None, batch_size: int = 64,
-              threads: int = 1, rule: GateRule | None = None, strict_data: bool = False) -> int:
+              threads: int = 1, rule: GateRule | None = None, strict_data: bool = False,
+              latency_runs: int = 30, target: str | None = None) -> int:
     """`swapper check`: compare two model files; write the report; 0 approved, 1 rejected.
 
     ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement`` when given.
+    ``latency_runs`` timed runs per model (0: latency not measured).
     """
     rule = rule or GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement))
+    inputs = [("the original model", original), ("the candidate model", candidate), ("the validation set", val),
+              ("the calibration set", calib)]
+    folder = report or default_report_dir(Path(original))
+    check_report_dir(folder, inputs=inputs)  # before any work: an unwritable report folder is bad input
     orig = load_model(original)
     cand = load_model(candidate)
+    check_report_dir(folder, inputs=inputs + orig.files() + cand.files())
     val_ds = api.load_data(val, orig, strict=strict_data)
     calib_ds = api.load_data(calib, orig, strict=strict_data) if calib is not None else None
     _print_notes(console, val_ds, calib_ds)
-    preflight(orig.model, val_ds, rule, batch_size=batch_size, threads=threads)  # CannotJudge before the work
-    result = api.check(orig.model, cand.model, val_ds, budget=rule, int8=int8, calib=calib_ds,
-                       batch_size=batch_size, threads=threads, progress=_progress(console))
-    folder = report or default_report_dir(Path(original))
+    try:
+        preflight(orig.model, val_ds, rule, batch_size=batch_size, threads=threads)  # CannotJudge before the work
+        result = api.check(orig.model, cand.model, val_ds, budget=rule, int8=int8, calib=calib_ds,
+                           batch_size=batch_size, threads=threads, progress=_progress(console),
+                           latency_repeats=latency_runs, target=target)
+    except SwapperError as exc:
+        raise _named(exc, val, original, candidate) from None
+    result.size["original"]["bytes"] = orig.file_bytes  # the files as they are on disk (external data included)
+    result.size["candidate"]["bytes"] = cand.file_bytes
     paths = write_report(folder, original=orig, candidate_path=Path(candidate), candidate=cand.model,
                          check=result, val_path=val, calib_path=calib)
     _print_check(console, result)
     if console is not None:
-        console.print(f"report: {paths[1]}", highlight=False)
+        console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if result.verdict.approved else EXIT_REJECTED
 
 
 def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | None = None, console=None,
              calib: Path | None = None, val: Path | None = None, budget: float = 1.0, strict: bool = False,
              min_agreement: float | None = None, force: bool = False, int8: bool = False,
-             report: Path | None = None, rule: GateRule | None = None, strict_data: bool = False) -> int:
+             report: Path | None = None, rule: GateRule | None = None, strict_data: bool = False,
+             latency_runs: int = 30) -> int:
     """`swapper swap`: plan, calibrate, rewrite; with ``val``, gate before writing ``output``.
 
     ``model`` is a path or an already loaded model (the demo has loaded it to show its sites);
     ``options`` say what to swap and how (default ``SwapOptions()``; its batch size and threads also
     serve the check). ``rule`` (metric, floors and budget) replaces ``budget``/``strict``/``min_agreement``
-    when given.
+    when given. ``latency_runs`` timed runs per model in the check (0: latency not measured).
     """
     options = options or SwapOptions()
     path = model.path if isinstance(model, LoadedModel) else Path(model)
-    check_output_path(output, inputs=(path,))  # before any work: a bad output path is a usage error
+    inputs = [("the input model", path), ("the calibration set", calib), ("the validation set", val)]
+    # before any work: a bad output path or report folder is bad input, found in a second, not after calibration
+    check_output_path(output, inputs=inputs)
+    folder = (report or default_report_dir(path)) if val is not None or report is not None else None
+    if folder is not None:
+        check_report_dir(folder, inputs=inputs + [("the output model", output)])
     rule = rule or GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement))
     loaded = model if isinstance(model, LoadedModel) else load_model(path)
+    inputs += loaded.files()
+    check_output_path(output, inputs=inputs)  # its external data files are known now
+    if folder is not None:
+        check_report_dir(folder, inputs=inputs + [("the output model", output)])
     calib_ds = api.load_data(calib, loaded, strict=strict_data) if calib is not None else None
     val_ds = api.load_data(val, loaded, strict=strict_data) if val is not None else None
     _print_notes(console, calib_ds, val_ds)
     if val_ds is not None:  # CannotJudge now, not after minutes of calibration
-        preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
+        try:
+            preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
+        except SwapperError as exc:
+            raise _named(exc, val, path, path) from None
     progress = _progress(console)
-    result = api.swap(loaded, calib=calib_ds, options=options, progress=progress)
+    try:
+        result = api.swap(loaded, calib=calib_ds, options=options, progress=progress)
+    except SwapperError as exc:  # data errors are about the calibration set, the rest about the model
+        raise (exc.naming(calib) if isinstance(exc, BadDataError) else exc.naming(path)) from None
     if console is not None:
         if result.plan.swaps:
             console.print(swap_table(site_rows(result.plan, result.rewrite.records, result.calibration)))
         for line in skipped_lines(result.plan):
-            console.print(f"  {line}", highlight=False)
+            console.print(f"  {line}", highlight=False, markup=False)
+        for line in target_lines(result.plan):
+            console.print(f"  {line}", highlight=False, markup=False)
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
+            if result.calibration.tokens:
+                console.print(f"  token positions: {result.calibration.tokens}", highlight=False)
             console.print("  calibration time: " + ", ".join(f"{k[:-2]} {v:.2f}s" for k, v in t.items()),
                           highlight=False)
+        for line in unrun_lines(result.calibration):  # sites inside If/Loop/Scan bodies the data never ran
+            console.print(line, highlight=False)
     if not result.plan.swaps:
         if console is not None:
-            console.print(f"{path}: nothing to swap; no model written")
+            console.print(f"{path}: nothing to swap; no model written", highlight=False, markup=False)
         return EXIT_OK
     candidate = result.candidate
+    timing = None
+    if result.target is not None and result.target.costs_from == "measured":
+        try:
+            timing = api.time_on_target(loaded.model, candidate, result.target, calib=calib_ds,
+                                        batch_size=options.batch_size)
+        except SwapperError as exc:  # the model (or its swap) does not run on the timing batch
+            raise exc.naming(path) from None
+        _set_metadata(candidate, "swapper.target", timing.record())
+        if console is not None:
+            console.print(f"  {timing.line()}", highlight=False, markup=False)
+        if not timing.is_faster and not force:
+            if console is not None:
+                console.print(f"nothing pays on {timing.target}: candidate {timing.ratio:.2f}× the original; "
+                              "no model written", highlight=False, markup=False)
+            return EXIT_OK
     check = None
     if val_ds is not None:
-        check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
-                          batch_size=options.batch_size, threads=options.threads, progress=progress)
+        try:
+            check = api.check(loaded.model, candidate, val_ds, budget=rule, int8=int8, calib=calib_ds,
+                              batch_size=options.batch_size, threads=options.threads, progress=progress,
+                              latency_repeats=latency_runs)
+        except SwapperError as exc:
+            raise _named(exc, val, path, output) from None
         _record_verdict(candidate, check)
-        _print_check(console, check)
+        check.size["original"]["bytes"] = loaded.file_bytes
+        if timing is not None and check.latency is not None:  # the target timing (printed above) in the report
+            check.latency["target"] = timing.to_dict()
     approved = check is None or check.verdict.approved
     if approved or force:
-        save_model(candidate, output, inputs=(path,))
-        if console is not None:
-            note = "" if approved else " (rejected; written because of --force)"
-            console.print(f"wrote {output}{note}", highlight=False)
+        save_model(candidate, output, inputs=inputs)
+        if check is not None:  # the size of what was written (with external data: every file)
+            check.size["candidate"]["bytes"] = saved_size(output)
+    if check is not None:
+        _print_check(console, check)
+    if console is not None and (approved or force):
+        slower = timing is not None and not timing.is_faster
+        note = "" if approved and not slower else \
+            f" ({'rejected' if not approved else 'not faster on ' + timing.target}; written because of --force)"
+        console.print(f"wrote {output}{note}", highlight=False, markup=False)
     elif console is not None:
-        console.print(f"not written: {output} (rejected)", highlight=False)
-    if check is not None or report is not None:
-        folder = report or default_report_dir(path)
+        console.print(f"not written: {output} (rejected)", highlight=False, markup=False)
+    if folder is not None:
         paths = write_report(folder, original=loaded, candidate_path=output if (approved or force) else None,
                              candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib)
         if console is not None:
-            console.print(f"report: {paths[1]}", highlight=False)
+            console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if approved else EXIT_REJECTED
 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:
     """Keep the verdict with the model, so a forced write still says it was rejected."""
+    _set_metadata(candidate, "swapper.verdict", check.verdict.to_dict())  # the same entry as report.json's verdict
+
+
+def _set_metadata(model: onnx.ModelProto, key: str, entry: dict) -> None:
+    """Store ``entry`` as JSON under ``key`` in the model's metadata (replacing an older value)."""
     import json
 
-    entry = check.verdict.to_dict()  # the same entry as report.json's verdict
-    for prop in candidate.metadata_props:
-        if prop.key == "swapper.verdict":
-            prop.value = json.dumps(entry, sort_keys=True)
+    from swapper.core.jsonable import json_safe
+
+    value = json.dumps(json_safe(entry, [], key), sort_keys=True)
+    for prop in model.metadata_props:
+        if prop.key == key:
+            prop.value = value
             return
-    candidate.metadata_props.add(key="swapper.verdict", value=json.dumps(entry, sort_keys=True))
+    model.metadata_props.add(key=key, value=value)
+
+
+# Public names for the other command modules (cli/auto_run.py).
+print_check = _print_check
+progress_for = _progress
+record_in_model = _set_metadata

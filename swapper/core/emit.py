@@ -13,11 +13,18 @@ from onnx import helper, numpy_helper
 
 
 class Emitter:
-    """Collects nodes and float32 initializers for one site, at one opset."""
+    """Collects nodes and initializers for one site, at one opset.
 
-    def __init__(self, prefix: str, opset: int, taken: set[str] | None = None):
+    Constants are made in ``dtype``, the element type of the tensors the site
+    computes on (float32 by default): ONNX ops such as Clip and Mul take all
+    their inputs in one type, so a float16 or float64 site needs its limits and
+    factors in float16 or float64 (ONNX operator spec, type constraint T).
+    """
+
+    def __init__(self, prefix: str, opset: int, taken: set[str] | None = None, dtype=np.float32):
         self.prefix = prefix.rstrip("/")
         self.opset = opset
+        self.dtype = np.dtype(dtype)
         self.nodes: list[onnx.NodeProto] = []
         self.initializers: list[onnx.TensorProto] = []
         self._taken = taken if taken is not None else set()
@@ -32,9 +39,10 @@ class Emitter:
         self._taken.add(name)
         return name
 
-    def const(self, value: Any, hint: str, dtype=np.float32) -> str:
-        """Add an initializer holding ``value`` and return its name."""
+    def const(self, value: Any, hint: str, dtype=None) -> str:
+        """Add an initializer holding ``value`` (in ``dtype``, default the emitter's) and return its name."""
         name = self.fresh(hint)
+        dtype = self.dtype if dtype is None else dtype
         self.initializers.append(numpy_helper.from_array(np.asarray(value, dtype=dtype), name))
         return name
 
@@ -47,7 +55,7 @@ class Emitter:
         return out
 
     def mul_const(self, x: str, k: float, y: str | None = None) -> str:
-        """Add Mul(x, k) with k a new float32 scalar initializer; return its output (``y`` if given)."""
+        """Add Mul(x, k) with k a new scalar initializer (the emitter's dtype); return its output (``y`` if given)."""
         return self.node("Mul", [x, self.const(k, "k")], y)
 
     def identity(self, x: str, y: str) -> str:

@@ -1,7 +1,9 @@
 """A read-only index over an ONNX graph: who produces and who consumes each tensor.
 
 Built once per model (or after each edit); plain protobuf underneath, so every
-module that reads graphs uses the same look-ups.
+module that reads graphs uses the same look-ups. A node carrying an If/Loop/Scan
+body that reads a tensor of the graph by name (an outer-scope value) counts as
+one of that tensor's consumers, like a node that reads it as an input.
 """
 from __future__ import annotations
 
@@ -122,6 +124,11 @@ class GraphIndex:
             for inp in node.input:
                 if inp:
                     index.consumers[inp].append(node)
+            # A node whose body reads a tensor of this graph by name (outer-scope value) consumes it too:
+            # a site may not swallow it, nor a fold change it, behind that body's back.
+            explicit = set(node.input)
+            for name in sorted(set().union(*map(outer_names, node_subgraphs(node))) - explicit):
+                index.consumers[name].append(node)
         index.graph_inputs = [v.name for v in g.input if v.name not in index.initializers]
         index.graph_outputs = [v.name for v in g.output]
         for vi in list(g.input) + list(g.value_info) + list(g.output):

@@ -1,9 +1,13 @@
 """Load, validate and save ONNX models safely.
 
 ``load_model`` turns every way a model file can be broken into a one-line
-:class:`BadModelError` naming the file; ``save_model`` writes atomically
-(temporary file in the target folder, then rename) and refuses to overwrite
-the model it was given.
+:class:`BadModelError` naming the file: not a regular file, too big, not a
+protobuf, unsupported opset, external data that is not a plain file inside the
+model's folder, tensors whose bytes do not match their dims, checker and
+shape-inference failures. ``save_model`` refuses a model that holds non-finite
+weights, fails ``onnx.checker`` or does not load in onnxruntime, refuses to
+overwrite any input it is given, and writes atomically (temporary file in the
+target folder, then rename).
 """
 from __future__ import annotations
 
@@ -11,13 +15,23 @@ import hashlib
 import logging
 import os
 import tempfile
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import onnx
 from google.protobuf.message import DecodeError, EncodeError
 
+from swapper.core.files import (  # noqa: F401  (check_output_path, atomic_write_bytes: used from here too)
+    Inputs,
+    atomic_write_bytes,
+    check_output_path,
+    clashing_input,
+    open_regular,
+    os_reason,
+    path_problem,
+)
 from swapper.core.graph import DEFAULT_DOMAINS, subgraphs
+from swapper.core.tensor_check import check_tensor_sizes, nonfinite_tensor, undecodable_text
 from swapper.errors import BadModelError, BadOutputError, first_line
 
 logger = logging.getLogger(__name__)
@@ -40,6 +54,12 @@ class LoadedModel:
     path: Path
     opset: int
     file_bytes: int  # the .onnx file plus any external data files
+    external_files: list[Path] = field(default_factory=list)  # the external data files the model reads
+
+    def files(self) -> list[tuple[str, Path]]:
+        """(role, path) of every file this model was read from: the .onnx file and its external data."""
+        return [("the input model", self.path)] + [("the input model's external data", f)
+                                                    for f in self.external_files]
 
 
 def default_opset(model: onnx.ModelProto) -> int | None:
@@ -50,30 +70,64 @@ def default_opset(model: onnx.ModelProto) -> int | None:
     return None
 
 
-def _external_locations(model: onnx.ModelProto) -> list[str]:
-    locations = []
-    for tensor in onnx.external_data_helper._get_all_tensors(model):
-        if tensor.data_location == onnx.TensorProto.EXTERNAL:
-            for entry in tensor.external_data:
-                if entry.key == "location":
-                    locations.append(entry.value)
-    return locations
+def _external_file(location: str, base: Path, path: Path) -> Path:
+    """The file an external-data ``location`` names, once it is a plain regular file inside ``base``."""
+    shown = repr(location[:60] + ("..." if len(location) > 60 else ""))
+    problem = "\0" in location and "holds a NUL byte" or path_problem(base / location)
+    if problem:
+        raise BadModelError(f"external data location {shown}: {problem.replace('the path ', '')} (refused)", path)
+    parts = Path(location).parts
+    if os.path.isabs(location) or ".." in parts or not parts:
+        raise BadModelError(f"external data location {shown} points outside the model's folder (absolute "
+                            "paths and '..' are refused)", path)
+    try:
+        target = (base / location).resolve(strict=True)
+    except FileNotFoundError:
+        raise BadModelError(f"external data file {shown} is missing", path) from None
+    except (OSError, ValueError, RuntimeError) as exc:
+        raise BadModelError(f"external data location {shown}: {os_reason(exc)} (refused)", path) from None
+    if not target.is_relative_to(base):
+        raise BadModelError(f"external data location {shown} points outside the model's folder "
+                            "(through a symbolic link; refused)", path)
+    try:
+        with open_regular(target, BadModelError, what="external data file"):
+            pass  # a FIFO or device is refused here, without blocking
+    except BadModelError as exc:
+        raise BadModelError(f"external data location {shown}: {exc}", path) from None
+    return target
 
 
-def _check_external_paths(model: onnx.ModelProto, path: Path) -> int:
-    """Refuse external-data locations outside the model's folder; return their total size."""
-    base = path.parent.resolve()
-    total = 0
-    for location in sorted(set(_external_locations(model))):
-        target = (base / location).resolve()
-        if os.path.isabs(location) or not target.is_relative_to(base):
-            raise BadModelError(
-                f"external data location {location!r} points outside the model's folder (refused)", path
-            )
-        if not target.is_file():
-            raise BadModelError(f"external data file {location!r} is missing", path)
-        total += target.stat().st_size
-    return total
+def _check_external_paths(model: onnx.ModelProto, path: Path) -> tuple[list[Path], int]:
+    """Refuse external-data locations that are not plain files inside the model's folder.
+
+    Returns the files and their total size. Offsets and lengths must lie inside the file.
+    """
+    try:
+        base = path.parent.resolve(strict=True)
+    except (OSError, RuntimeError) as exc:
+        raise BadModelError(f"cannot resolve the model's folder: {os_reason(exc)}", path) from None
+    files: dict[str, Path] = {}
+    for tensor in _external_tensors(model):
+        entries = {e.key: e.value for e in tensor.external_data}
+        location = entries.get("location", "")
+        if location not in files:
+            files[location] = _external_file(location, base, path)
+        size = files[location].stat().st_size
+        try:
+            offset, length = int(entries.get("offset", 0)), int(entries.get("length", size))
+        except ValueError:
+            raise BadModelError(f"tensor {tensor.name!r}: external data offset/length are not integers", path) \
+                from None
+        if offset < 0 or length < 0 or offset + length > size:
+            raise BadModelError(f"tensor {tensor.name!r}: external data bytes {offset}..{offset + length} lie "
+                                f"outside {location!r} ({size} bytes)", path)
+    unique = sorted(set(files.values()))
+    return unique, sum(f.stat().st_size for f in unique)
+
+
+def _external_tensors(model: onnx.ModelProto) -> list[onnx.TensorProto]:
+    return [t for t in onnx.external_data_helper._get_all_tensors(model)
+            if t.data_location == onnx.TensorProto.EXTERNAL]
 
 
 def name_unnamed_nodes(model: onnx.ModelProto) -> None:
@@ -103,33 +157,38 @@ def load_model(path: str | Path) -> LoadedModel:
     data = _read(path)
     model = _parse(data, path)
     opset = _supported_opset(model, path)
-    external_bytes = _check_external_paths(model, path)
+    external_files, external_bytes = _check_external_paths(model, path)
+    check_tensor_sizes(model, path)  # in-place tensors; external ones once their bytes are known
     is_large = len(data) + external_bytes > PROTOBUF_LIMIT
     try:
-        model = _checked_and_inferred(model, data, path, has_external=external_bytes > 0, is_large=is_large)
+        model = _checked_and_inferred(model, data, path, has_external=bool(external_files), is_large=is_large)
     except onnx.checker.ValidationError as exc:
         raise BadModelError(f"invalid graph: {first_line(exc)}", path) from None
     except onnx.shape_inference.InferenceError as exc:
         raise BadModelError(f"shape inference failed: {first_line(exc)}", path) from None
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RuntimeError) as exc:  # onnx's C++ side raises RuntimeError for odd graphs
         raise BadModelError(f"cannot load: {first_line(exc)}", path) from None
     name_unnamed_nodes(model)
     logger.debug("loaded %s: opset %d, %d nodes", path, opset, len(model.graph.node))
-    return LoadedModel(model=model, path=path, opset=opset, file_bytes=len(data) + external_bytes)
+    return LoadedModel(model=model, path=path, opset=opset, file_bytes=len(data) + external_bytes,
+                       external_files=external_files)
 
 
 def _read(path: Path) -> bytes:
-    if not path.exists():
-        raise BadModelError("no such file", path)
-    if path.is_dir():
-        raise BadModelError("is a directory, expected an .onnx file", path)
-    try:
-        with open(path, "rb") as fh:
-            data = fh.read()
-    except OSError as exc:
-        raise BadModelError(f"cannot read: {exc.strerror or exc}", path) from None
+    """The bytes of a regular file of at most 2 GiB (protobuf's limit for one .onnx file)."""
+    with open_regular(path, BadModelError, what=".onnx file") as fh:
+        size = os.fstat(fh.fileno()).st_size
+        if size > PROTOBUF_LIMIT:
+            raise BadModelError(f"file is {size} bytes, above protobuf's 2 GiB limit for one .onnx file "
+                                "(large models keep their weights as external data)", path)
+        try:
+            data = fh.read(PROTOBUF_LIMIT + 1)
+        except OSError as exc:
+            raise BadModelError(f"cannot read: {os_reason(exc)}", path) from None
     if not data:
         raise BadModelError("file is empty", path)
+    if len(data) > PROTOBUF_LIMIT:  # grew while being read
+        raise BadModelError("file is above protobuf's 2 GiB limit for one .onnx file", path)
     return data
 
 
@@ -137,10 +196,14 @@ def _parse(data: bytes, path: Path) -> onnx.ModelProto:
     model = onnx.ModelProto()
     try:
         model.ParseFromString(data)
-    except (DecodeError, RuntimeError, ValueError) as exc:
-        raise BadModelError(f"not an ONNX protobuf or truncated ({type(exc).__name__})", path) from None
+    except (DecodeError, RuntimeError, ValueError):
+        raise BadModelError("not an ONNX model: the bytes do not parse as one (truncated or another format)", path) \
+            from None
     if not model.HasField("graph") or len(model.graph.node) == 0 and len(model.graph.output) == 0:
         raise BadModelError("not an ONNX model (no graph inside)", path)
+    damaged = undecodable_text(model)
+    if damaged:
+        raise BadModelError(f"text field {damaged} is not valid UTF-8 (a damaged file)", path)
     return model
 
 
@@ -170,44 +233,10 @@ def _checked_and_inferred(model: onnx.ModelProto, data: bytes, path: Path, *, ha
     else:
         if has_external:  # inference reads initializer values (e.g. Reshape shapes): bring them in
             onnx.load_external_data_for_model(model, str(path.parent))
+            check_tensor_sizes(model, path)  # the external bytes are in place now
             data = model.SerializeToString()
         onnx.checker.check_model(data)
     return onnx.shape_inference.infer_shapes(data, check_type=True, strict_mode=True, data_prop=True)
-
-
-def check_output_path(out: str | Path, *, inputs: tuple[str | Path, ...] = ()) -> Path:
-    """Fail early (one line) if ``out`` cannot be written or would overwrite an input."""
-    out = Path(out)
-    for given in inputs:
-        if given is not None and Path(given).exists() and out.resolve() == Path(given).resolve():
-            raise BadOutputError("refusing to overwrite the input model; choose another output path", out)
-    parent = out.resolve().parent
-    if not parent.is_dir():
-        raise BadOutputError(f"folder {str(parent)!r} does not exist", out)
-    if out.is_dir():
-        raise BadOutputError("is a directory, expected a file path", out)
-    if not os.access(parent, os.W_OK):
-        raise BadOutputError(f"folder {str(parent)!r} is not writable", out)
-    return out
-
-
-def atomic_write_bytes(data: bytes, out: str | Path) -> Path:
-    """Write ``data`` to ``out`` via a temporary file in the same folder and a rename."""
-    out = Path(out)
-    fd, tmp = tempfile.mkstemp(prefix=f".{out.name}.", suffix=".tmp", dir=out.resolve().parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, out)
-    except OSError as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise BadOutputError(f"cannot write: {exc.strerror or exc}", out) from None
-    return out
 
 
 def _serialise(model: onnx.ModelProto) -> bytes | None:
@@ -218,42 +247,87 @@ def _serialise(model: onnx.ModelProto) -> bytes | None:
         return None
 
 
-def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: tuple[str | Path, ...] = (),
+def save_model(model: onnx.ModelProto, out: str | Path, *, inputs: Inputs = (),
                external_above: int = PROTOBUF_LIMIT) -> Path:
     """Serialise ``model`` to ``out`` atomically; never overwrite any path in ``inputs``.
 
-    Models larger than ``external_above`` bytes (default: the 2 GiB protobuf
-    limit) keep their weights in ``<out>.data`` beside the model.
+    ``inputs`` are the files and folders the run read, as paths or ``(role, path)``
+    pairs. The model is refused (BadModelError, nothing written) when an
+    initializer holds NaN/Inf, when it fails ``onnx.checker`` (full check) or when
+    onnxruntime cannot load it. Models larger than ``external_above`` bytes
+    (default: the 2 GiB protobuf limit) keep their weights in ``<out>.data``
+    beside the model.
     """
+    inputs = list(inputs)
     out = check_output_path(out, inputs=inputs)
+    bad = nonfinite_tensor(model)
+    if bad is not None:
+        raise BadModelError(f"initializer {bad!r} holds NaN or infinite values (e.g. a weight that overflows "
+                            "its type when a parameter is folded into it); model not written", out)
     data = _serialise(model)
     if data is not None and len(data) <= external_above:
+        _verify(data, out)
         return atomic_write_bytes(data, out)
     del data  # the external-data path writes its own bytes; do not hold two copies
     data_name = out.name + ".data"
-    for given in inputs:
-        if given is not None and (out.resolve().parent / data_name) == Path(given).resolve():
-            raise BadOutputError(f"refusing to overwrite the input file {data_name}", out)
+    clash = clashing_input(out.resolve().parent / data_name, inputs)
+    if clash:
+        raise BadOutputError(f"refusing to overwrite {clash[0]} ({clash[1]}) with the weights file {data_name}",
+                             out)
     # saving with external data rewrites the tensors it is given: work on a copy
     copy = onnx.ModelProto()
     copy.CopyFrom(model)
-    with tempfile.TemporaryDirectory(prefix=f".{out.name}.", dir=out.resolve().parent) as tmp:
+    try:
+        staging = tempfile.TemporaryDirectory(prefix=f".{out.name}.", dir=out.resolve().parent)
+    except OSError as exc:
+        raise BadOutputError(f"cannot write: {os_reason(exc)}", out) from None
+    with staging as tmp:
         staged = Path(tmp) / out.name
         try:
             onnx.save_model(copy, str(staged), save_as_external_data=True, all_tensors_to_one_file=True,
                             location=data_name, size_threshold=0)
+            _verify(staged, out)
             # weights first, then the model that points at them: a reader never sees a model without its data
             if (Path(tmp) / data_name).exists():  # absent when every tensor is below the threshold
                 os.replace(Path(tmp) / data_name, out.resolve().parent / data_name)
             os.replace(staged, out)
         except OSError as exc:
-            raise BadOutputError(f"cannot write: {exc.strerror or exc}", out) from None
+            raise BadOutputError(f"cannot write: {os_reason(exc)}", out) from None
     return out
+
+
+def _verify(model: bytes | Path, out: Path) -> None:
+    """Refuse (BadModelError naming ``out``) a model that fails onnx.checker or does not load in onnxruntime.
+
+    ``model`` is the serialised model, or a staged file whose external data lies beside it.
+    """
+    from swapper.core.session import ORT_ERRORS, open_session
+
+    try:
+        onnx.checker.check_model(model if isinstance(model, bytes) else str(model), full_check=True)
+    except (onnx.checker.ValidationError, onnx.shape_inference.InferenceError, ValueError, RuntimeError) as exc:
+        raise BadModelError(f"the model to write fails onnx.checker ({first_line(exc)}); not written", out) \
+            from None
+    try:
+        open_session(model, graph_optimization="disabled", what="the model to write")
+    except BadModelError as exc:
+        raise BadModelError(f"{exc}; not written", out) from None
+    except ORT_ERRORS as exc:  # pragma: no cover - open_session maps these
+        raise BadModelError(f"onnxruntime cannot load the model to write ({first_line(exc)}); not written", out) \
+            from None
+
+
+def saved_size(path: str | Path) -> int:
+    """Bytes of a written model: the .onnx file plus the external data files it names (each counted once)."""
+    path = Path(path)
+    model = onnx.load(str(path), load_external_data=False)
+    files = {path.parent / e.value for t in _external_tensors(model) for e in t.external_data if e.key == "location"}
+    return path.stat().st_size + sum(f.stat().st_size for f in files if f.is_file())
 
 
 def sha256_file(path: str | Path) -> str:
     digest = hashlib.sha256()
-    with open(path, "rb") as fh:
+    with open_regular(path, BadOutputError) as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             digest.update(chunk)
     return digest.hexdigest()

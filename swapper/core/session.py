@@ -10,6 +10,7 @@ reads come back one batch at a time with ``np.fromfile``).
 from __future__ import annotations
 
 import logging
+import os
 
 import onnx
 import onnxruntime as ort
@@ -18,6 +19,7 @@ from onnxruntime.capi import onnxruntime_pybind11_state as _ort_state
 
 from swapper.core.graph import GraphIndex
 from swapper.errors import BadModelError, UsageError, first_line
+from swapper.options import check_threads
 
 logger = logging.getLogger(__name__)
 
@@ -30,11 +32,18 @@ OPTIMIZATION_LEVELS: dict[str, ort.GraphOptimizationLevel] = {
 }
 
 
+# onnxruntime's own logger writes errors to stderr before swapper can say anything; swapper reports every
+# failure itself in one line, so only fatal messages are let through (severity 4 = fatal, onnxruntime's
+# logging levels 0 verbose .. 4 fatal).
+ORT_LOG_SEVERITY = 4
+ort.set_default_logger_severity(ORT_LOG_SEVERITY)
+
 # onnxruntime raises its own exception classes (not RuntimeError subclasses).
 ORT_ERRORS: tuple[type[Exception], ...] = tuple(
     getattr(_ort_state, name)
     for name in ("Fail", "InvalidArgument", "InvalidGraph", "InvalidProtobuf", "NoSuchFile",
-                 "NotImplemented", "RuntimeException")
+                 "NotImplemented", "RuntimeException", "EPFail", "EngineError", "NoModel", "NotFound",
+                 "ModelRequiresCompilation")
     if hasattr(_ort_state, name)
 )
 
@@ -44,8 +53,7 @@ def session_options(threads: int = 1, graph_optimization: str = "all") -> ort.Se
     if graph_optimization not in OPTIMIZATION_LEVELS:
         known = ", ".join(OPTIMIZATION_LEVELS)
         raise UsageError(f"unknown graph optimisation level {graph_optimization!r} (known: {known})")
-    if threads < 1:
-        raise UsageError(f"threads must be >= 1, got {threads}")
+    check_threads(threads)
     options = ort.SessionOptions()
     options.intra_op_num_threads = threads
     # One inter-op thread in sequential mode: parallel branches would make results and
@@ -53,29 +61,46 @@ def session_options(threads: int = 1, graph_optimization: str = "all") -> ort.Se
     options.inter_op_num_threads = 1
     options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
     options.graph_optimization_level = OPTIMIZATION_LEVELS[graph_optimization]
-    options.log_severity_level = 3  # errors only; warnings would flood calibration and benchmark logs
+    options.log_severity_level = ORT_LOG_SEVERITY  # errors are reported by swapper, in one line
     return options
 
 
-def open_session(model: onnx.ModelProto | bytes | bytearray, *, threads: int = 1, graph_optimization: str = "all",
-                 what: str = "the model") -> ort.InferenceSession:
+def open_session(model: onnx.ModelProto | bytes | bytearray | os.PathLike, *, threads: int = 1,
+                 graph_optimization: str = "all", what: str = "the model") -> ort.InferenceSession:
     """A CPU session of ``model`` with :func:`session_options`.
 
-    ``graph_optimization`` is one of all|extended|basic|disabled. Raises
-    UsageError for bad settings and BadModelError (one line, naming ``what``)
-    when onnxruntime cannot load the model.
+    ``model`` is a ModelProto, its serialised bytes, or the path of a model file
+    (whose external data onnxruntime finds beside it). ``graph_optimization`` is
+    one of all|extended|basic|disabled. Raises UsageError for bad settings and
+    BadModelError (one line, naming ``what``) when onnxruntime cannot load the model.
     """
     options = session_options(threads, graph_optimization)
     if isinstance(model, onnx.ModelProto):
         data = model.SerializeToString()
     elif isinstance(model, (bytes, bytearray)):
         data = bytes(model)
+    elif isinstance(model, os.PathLike):
+        data = os.fspath(model)
     else:  # a caller's bug, not a bad model file
-        raise TypeError(f"{what} must be an onnx.ModelProto or serialized bytes, got {type(model).__name__}")
+        raise TypeError(f"{what} must be an onnx.ModelProto, serialized bytes or a path, got {type(model).__name__}")
     try:
         return ort.InferenceSession(data, options, providers=["CPUExecutionProvider"])
-    except ORT_ERRORS as exc:
+    except (*ORT_ERRORS, RuntimeError) as exc:  # RuntimeError: failures pybind raises as itself
         raise BadModelError(f"onnxruntime cannot load {what}: {first_line(exc)}") from None
+
+
+def run_session(session: ort.InferenceSession, outputs: list[str] | None, feeds: dict, *,
+                what: str = "the model", data: str = "the data") -> list:
+    """``session.run(outputs, feeds)``, its failures as one BadModelError line naming ``what`` and ``data``.
+
+    For runs over user data (calibration, bias correction, refit), where a model
+    that loads can still fail: a batch dimension fixed to another size, a shape
+    only some inputs reach, a kernel refusing values.
+    """
+    try:
+        return session.run(outputs, feeds)
+    except (*ORT_ERRORS, RuntimeError) as exc:
+        raise BadModelError(f"onnxruntime failed running {what} on {data}: {first_line(exc)}") from None
 
 
 def expose(model: onnx.ModelProto, names: list[str]) -> onnx.ModelProto:

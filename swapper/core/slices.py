@@ -18,7 +18,7 @@ import onnx
 from onnx.utils import Extractor
 
 from swapper.core.graph import GraphIndex
-from swapper.core.session import expose, open_session
+from swapper.core.session import expose, open_session, run_session
 from swapper.core.tensor_cache import TensorCache
 
 logger = logging.getLogger(__name__)
@@ -161,7 +161,7 @@ class SliceRunner:
             values = dict(batch.feeds)
             if session is not None:
                 inputs = {n: values[n] if n in values else self._read(n, keys, batch) for n in feeds}
-                values.update(zip(compute, session.run(compute, inputs)))
+                values.update(zip(compute, run_session(session, compute, inputs, data="the calibration data")))
             for t in store:
                 self.cache.append(self.key(t), values[t], owned=True)  # a fresh array of this batch: no copy
             yield batch, {t: values[t] if t in values else self._read(t, keys, batch) for t in wanted}

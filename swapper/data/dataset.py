@@ -23,6 +23,8 @@ batching never holds more than one chunk/batch in memory.
 from __future__ import annotations
 
 import logging
+import os
+import stat
 from collections.abc import Callable, Collection
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -31,6 +33,7 @@ from typing import Iterator
 import numpy as np
 import onnx
 
+from swapper.core.files import os_reason, path_problem
 from swapper.core.session import ORT_ERRORS, open_session
 from swapper.data.images import ImagePrep, holds_images, read_image_folder
 from swapper.data.layout import ConstantFeed, DataLayout
@@ -243,8 +246,7 @@ def load_dataset(
     for a bad option).
     """
     path = Path(path)
-    if not path.exists():
-        raise BadDataError("no such file or folder", path)
+    is_dir = _is_folder(path)
     if not specs:
         raise BadDataError("the model has no inputs to feed", path)
     axes, constants = (layout or DataLayout()).resolve(specs)
@@ -252,12 +254,12 @@ def load_dataset(
     if not fed:
         raise BadDataError("every model input is declared constant; nothing is left to take samples from", path)
     classes = None
-    if path.is_dir() and not any(path.glob("*.npy")):  # a folder with .npy files keeps meaning arrays
+    if is_dir and not any(path.glob("*.npy")):  # a folder with .npy files keeps meaning arrays
         if not holds_images(path):
             raise BadDataError("folder holds no .npy files and no PNG/JPEG images (judged by content)", path)
         raw, classes = read_image_folder(path, fed, images)
     else:
-        raw = read_folder(path) if path.is_dir() else read_npz(path)
+        raw = read_folder(path) if is_dir else read_npz(path)
     labels, targets = raw.get("labels"), raw.get("targets")
     if require_labels and labels is None:
         raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
@@ -290,14 +292,33 @@ def load_dataset(
     moved = {k: a for k, a in axes.items() if a and k in arrays}
     arrays = {k: np.moveaxis(v, moved[k], 0) if k in moved else v for k, v in arrays.items()}
     logger.debug("%s: %d samples, inputs %s", path, n, {k: tuple(v.shape) for k, v in arrays.items()})
+    max_batch = fixed_batch_size(fed, axes)
+    if max_batch is not None and max_batch > 1 and n % max_batch:
+        # onnxruntime refuses a short last batch, and padding it would put made-up samples into the figures
+        raise BadDataError(f"{n} samples do not divide into batches of {max_batch}, the batch size the model "
+                           f"fixes (give a multiple of {max_batch} samples, or export the model with a dynamic "
+                           "batch dimension)", path)
     ds = Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
-                 max_batch=fixed_batch_size(fed, axes), batch_axes=moved, constants=constants, classes=classes, notes=notes)
+                 max_batch=max_batch, batch_axes=moved, constants=constants, classes=classes, notes=notes)
     conflict = _symbol_conflict(uses)
     if conflict and model is None:
         raise BadDataError(conflict, path)
     if conflict:
         _runs_on_first_sample(ds, model, conflict, path)
     return ds
+
+
+def _is_folder(path: Path) -> bool:
+    """True for a folder, False for a file; BadDataError (one line) when the path names neither."""
+    problem = path_problem(path)
+    if problem:
+        raise BadDataError(problem, path)
+    try:
+        return stat.S_ISDIR(os.stat(path).st_mode)
+    except FileNotFoundError:
+        raise BadDataError("no such file or folder", path) from None
+    except (OSError, ValueError) as exc:
+        raise BadDataError(f"cannot read: {os_reason(exc)}", path) from None
 
 
 # ---------------------------------------------------------------- iteration and views

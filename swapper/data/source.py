@@ -34,6 +34,7 @@ import math
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
+from swapper.core.files import open_regular, os_reason
 from swapper.data.images import CHANNELS, LAYOUTS, RESIZE_MODES, ImagePrep
 from swapper.data.layout import DataLayout, from_description, parse_options
 from swapper.errors import BadDataError, UsageError
@@ -41,6 +42,7 @@ from swapper.errors import BadDataError, UsageError
 logger = logging.getLogger(__name__)
 
 TOP_KEYS = ("batch_axis", "constant", "images")
+MAX_DESCRIPTION_BYTES = 1 << 20  # a description is a few lines; anything longer is not one
 
 
 @dataclass
@@ -144,10 +146,14 @@ def read_description(path: str | Path) -> tuple[DataLayout, ImagePrep | None]:
     """The layout and image preprocessing of a data description file (module docstring)."""
     path = Path(path)
     try:
-        entries = json.loads(path.read_text(encoding="utf-8"))
+        with open_regular(path, BadDataError) as fh:
+            text = fh.read(MAX_DESCRIPTION_BYTES + 1)
+        if len(text) > MAX_DESCRIPTION_BYTES:
+            raise BadDataError(f"larger than {MAX_DESCRIPTION_BYTES >> 20} MiB; not a data description", path)
+        entries = json.loads(text.decode("utf-8"))
     except OSError as exc:
-        raise BadDataError(f"cannot read: {exc.strerror or exc}", path) from None
-    except (ValueError, UnicodeDecodeError) as exc:
+        raise BadDataError(f"cannot read: {os_reason(exc)}", path) from None
+    except (ValueError, UnicodeDecodeError, RecursionError) as exc:
         raise BadDataError(f"not a valid JSON data description ({exc})", path) from None
     if not isinstance(entries, dict):
         raise BadDataError("a data description is a JSON object", path)

@@ -55,8 +55,9 @@ The closed-form (a, d) and the projected (b, c) problem live in
 :mod:`swapper.fit.varpro`; this module holds the API and the safeguards above.
 
 :func:`fit_channel` is the one-channel scipy path described above.
-:func:`fit_channels` (every channel of a site) takes the batched path of
-:mod:`swapper.fit.rows`: the same candidates and safeguards, with the
+:func:`swapper.fit.site.fit_channels` (every channel of a site) takes the batched path of
+:mod:`swapper.fit.rows`, by default on quantile bins of the sample
+(:mod:`swapper.fit.binned`): the same candidates and safeguards, with the
 projected search done for all channels at once by row-wise
 Levenberg–Marquardt (:mod:`swapper.fit.varpro_rows`), falling back to
 :func:`fit_channel` only for channels that search could not move. Measured
@@ -87,7 +88,7 @@ from swapper.fit.param_scale import (
     linear_pieces,
 )
 from swapper.fit.varpro import DEGENERATE, Projected, outer_solve
-from swapper.fit.varpro_rows import score_rows
+from swapper.fit.varpro_rows import row_weights, score_rows, wsum
 
 logger = logging.getLogger(__name__)
 
@@ -199,11 +200,11 @@ def fit_channel(
 
 
 def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.ndarray, free: str,
-                moving: np.ndarray) -> None:
+                moving: np.ndarray, x_range: tuple[np.ndarray, np.ndarray] | None = None) -> None:
     """Give every row of ``best`` well-scaled parameters, in place (see the module docstring).
 
     ``best`` maps "a".."d" and "mse" to (rows,) arrays: the fit so far on
-    ``X``, ``Y`` (rows, n) with weights ``w``. Two steps, each re-scored on the
+    ``X``, ``Y`` (rows, n) with weights ``w`` ((n,) or per row (rows, n)). Two steps, each re-scored on the
     data: (1) with all of a, b, c, d free, the weighted affine fit y = s·x + t,
     written on a sloped linear piece of g (:func:`swapper.fit.param_scale.affine_params`),
     is a candidate kept only when strictly better; (2) rows whose z range lies
@@ -211,7 +212,10 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     rewritten exactly (:func:`swapper.fit.param_scale.canonical_params`) and keep the
     new values unless they score more than rounding (``SAME_MSE``) above the
     old ones or above ``mse_init``. Held parameters never change, nor do rows
-    not in ``moving`` (constant x: b, c keep their start values).
+    not in ``moving`` (constant x: b, c keep their start values). ``x_range``
+    = (x_lo, x_hi) per row is the recorded range the rewrites must be exact on
+    (default: the range of ``X``; the binned fit passes its sample's range, its
+    points being summaries).
     """
     if not {"a", "b", "c"} <= set(free):
         return  # no scale freedom: a·g(b·x + c) needs a and b, c together to trade scale
@@ -219,11 +223,11 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
     homogeneous = is_homogeneous(g)
     if not pieces and not homogeneous:
         return
-    x_lo, x_hi = X.min(axis=1), X.max(axis=1)
+    x_lo, x_hi = (X.min(axis=1), X.max(axis=1)) if x_range is None else x_range
 
     def offer(new: tuple, rows: np.ndarray, limit: np.ndarray, note: str) -> None:
         a, b, c, d = (v[rows] for v in new)
-        m = score_rows(X[rows], Y[rows], w, g, a, b, c, d)
+        m = score_rows(X[rows], Y[rows], row_weights(w, rows), g, a, b, c, d)
         keep = m <= limit[rows]
         r = rows[keep]
         for k, v in zip(("a", "b", "c", "d", "mse"), (a, b, c, d, m)):
@@ -231,10 +235,10 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
         notes[r] = [f"{t}, {note}" for t in notes[r]]
 
     if "d" in free and pieces:
-        mx, my = X @ w, Y @ w
+        mx, my = wsum(X, w), wsum(Y, w)
         dx = X - mx[:, None]
         with np.errstate(all="ignore"):
-            s = ((dx * w) * (Y - my[:, None])).sum(axis=1) / ((dx * dx) @ w)
+            s = ((dx * w) * (Y - my[:, None])).sum(axis=1) / wsum(dx * dx, w)
         t = my - s * mx
         choices = [affine_params(s, t, x_lo, x_hi, p) for p in pieces]
         a_all = np.stack([ch[0] for ch in choices])  # the piece with the smallest a (NaN: unusable)
@@ -246,7 +250,7 @@ def well_scaled(X, Y, w, g: Func, best: dict, mse_init: np.ndarray, notes: np.nd
                                     homogeneous, free)
     rows = np.flatnonzero(changed & moving)
     if rows.size:
-        scale2 = (Y * Y) @ w
+        scale2 = wsum(Y * Y, w)
         limit = np.minimum(mse_init, best["mse"] * (1 + SAME_MSE) + 1e-20 * scale2)
         offer(new, rows, limit, "rescaled")
 

@@ -57,9 +57,18 @@ def check_free(free: str) -> None:
 
 
 def normalised_weights(weights, n: int) -> np.ndarray:
-    """Weights normalised to sum 1 (uniform when None)."""
+    """Weights normalised to sum 1 (uniform when None).
+
+    ``weights`` of shape (n,) are shared by every row; a (rows, n) array gives
+    each row its own weights (the binned fit's), each row normalised.
+    """
     if weights is None:
         return np.full(n, 1.0 / n)
+    if np.ndim(weights) == 2:
+        w = np.asarray(weights, dtype=np.float64)
+        if w.shape[1] != n or not np.isfinite(w).all() or (w < 0).any() or not (w.sum(axis=1) > 0).all():
+            raise ValueError("per-row weights must be (rows, n) finite non-negative numbers, each row with a positive sum")
+        return w / w.sum(axis=1, keepdims=True)
     w = np.asarray(weights, dtype=np.float64).reshape(-1)
     if w.shape[0] != n or not np.isfinite(w).all() or (w < 0).any() or w.sum() <= 0:
         raise ValueError("weights must be n finite non-negative numbers with a positive sum")

@@ -60,6 +60,8 @@ from swapper.fit.varpro_rows import (
     LAMBDA0,
     lm_projected,
     outer_solve_rows,
+    row_weights,
+    wsum,
 )
 from swapper.functions.params import PARAMS
 
@@ -76,7 +78,7 @@ POLISH_ITER = 40  # it starts near the optimum: typically 3-10 (measured)
 def _mse_rows(Z, Y, w, a, d) -> np.ndarray:
     with np.errstate(all="ignore"):
         R = Y - a[:, None] * Z - d[:, None]
-        m = (R * R) @ w
+        m = wsum(R * R, w)
     return np.where(np.isfinite(m) & np.isfinite(Z).all(axis=1), m, np.inf)
 
 
@@ -91,6 +93,7 @@ def fit_rows(
     dg: Func | None = None,
     weights: np.ndarray | None = None,
     nonzero_a: bool = False,
+    x_range: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> SiteFit:
     """Fit y ≈ a·g(b·x + c) + d on every row of ``X``, ``Y`` (channels, n) together.
 
@@ -101,8 +104,11 @@ def fit_rows(
     move (g overflowing at the start, or no accepted step at a point that is
     not flat) are refitted one by one with :func:`fit_channel` (scipy),
     keeping whichever result scores lower. ``init`` maps "a".."d" to
-    (channels,) arrays; ``weights`` (n,) are shared by every row. ``positive_a``
-    keeps a > 0, ``nonzero_a`` keeps a away from 0 (:func:`fit_channel`).
+    (channels,) arrays; ``weights`` (n,) are shared by every row, (channels, n) give each its own. ``positive_a``
+    keeps a > 0, ``nonzero_a`` keeps a away from 0 (:func:`fit_channel`). ``x_range``
+    (x_lo, x_hi), each (channels,), is the recorded range the rescaling rules
+    must be exact on when X holds summaries (:mod:`swapper.fit.bins`), X's own
+    range by default.
     """
     check_free(free)
     X = np.asarray(X, dtype=np.float64)
@@ -132,8 +138,9 @@ def fit_rows(
         rows = rows if of is None else of[rows]
         with np.errstate(all="ignore"):
             Z = apply_g(g, b[:, None] * X[rows] + c[:, None])
-        a, d, _ = outer_solve_rows(Z, Y[rows], w, a0[rows], d0[rows], fa, fd, positive_a, z_floor, nonzero_a)
-        m = _mse_rows(Z, Y[rows], w, a, d)
+        wr = row_weights(w, rows)
+        a, d, _ = outer_solve_rows(Z, Y[rows], wr, a0[rows], d0[rows], fa, fd, positive_a, z_floor, nonzero_a)
+        m = _mse_rows(Z, Y[rows], wr, a, d)
         better = m < best["mse"][rows]
         r = rows[better]
         for k, v in (("a", a), ("b", b), ("c", c), ("d", d), ("mse", m)):
@@ -145,15 +152,15 @@ def fit_rows(
         consider(everyone, b0, c0, "outer only")
     ok = np.ones(C, dtype=bool)
     if fb or fc:
-        mx = X @ w
-        sx = np.sqrt(((X - mx[:, None]) ** 2) @ w)
+        mx = wsum(X, w)
+        sx = np.sqrt(wsum((X - mx[:, None]) ** 2, w))
         ok = sx > DEGENERATE * np.hypot(mx, sx)
         notes[~ok] = ["constant x, " + t for t in notes[~ok]]
         rows = np.nonzero(ok)[0]
         if rows.size:
             _project_rows(rows, X, Y, w, g, dg, (a0, b0, c0, d0), mx, sx, free, (positive_a, nonzero_a), z_floor,
                           consider, best, notes)
-    well_scaled(X, Y, w, g, best, mse_init, notes, free, ok)
+    well_scaled(X, Y, w, g, best, mse_init, notes, free, ok, x_range)
     return SiteFit(a=best["a"], b=best["b"], c=best["c"], d=best["d"], mse_init=mse_init, mse=best["mse"],
                    notes=[str(t) for t in notes])
 
@@ -163,8 +170,8 @@ def _subsample(n: int, w: np.ndarray):
     if n <= 2 * SUBSAMPLE:
         return None, w
     keep = np.sort(np.random.default_rng(SUBSAMPLE_SEED).permutation(n)[:SUBSAMPLE])
-    ws = w[keep]
-    return keep, ws / ws.sum()
+    ws = w[..., keep]
+    return keep, ws / ws.sum(axis=-1, keepdims=True)
 
 
 def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, consider, best, notes) -> None:
@@ -181,6 +188,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, co
     V, q0, q1, second, half, to_bc = std.V, std.q0, std.q1, std.second, std.half, std.to_bc
     Yr = Y[rows]
     opts = dict(fa="a" in free, fd="d" in free, positive_a=positive_a, z_floor=z_floor, nonzero_a=nonzero_a)
+    w = row_weights(w, rows)  # from here on, rows are indices into ``rows``
     keep, ws = _subsample(V.shape[1], w)
     Vs, Ys = (V, Yr) if keep is None else (V[:, keep], Yr[:, keep])
 
@@ -190,7 +198,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, co
     sel = np.concatenate([np.arange(rows.size), two, np.arange(rows.size)])
     q_start = np.concatenate([q0, q1[two], q0])
     lam0 = np.concatenate([np.full(rows.size, LAMBDA0), np.full(two.size, LAMBDA0), np.full(rows.size, CAREFUL_LAMBDA)])
-    res = lm_projected(Vs[sel], Ys[sel], ws, g, dg, q_start, (fb, fc), -half[sel], half[sel], a0[sel], d0[sel],
+    res = lm_projected(Vs[sel], Ys[sel], row_weights(ws, sel), g, dg, q_start, (fb, fc), -half[sel], half[sel], a0[sel], d0[sel],
                        lam0=lam0, ftol=SEARCH_FTOL, **opts)
     moved = np.any(res.q != q_start, axis=1)
     stuck = np.ones(rows.size, dtype=bool)  # no start moved
@@ -231,7 +239,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, co
         if not fc:
             q_go[:, 1] = q0[sel, 1]  # held c: band_starts' γ must not move it
         lo, hi = band_box(q_go, half[sel]) if fb else (-half[sel], half[sel])
-        res = lm_projected(V[sel], Yr[sel], w, g, dg, np.clip(q_go, lo, hi), (fb, fc), lo, hi, a0[sel], d0[sel],
+        res = lm_projected(V[sel], Yr[sel], row_weights(w, sel), g, dg, np.clip(q_go, lo, hi), (fb, fc), lo, hi, a0[sel], d0[sel],
                            ftol=POLISH_FTOL, max_iter=POLISH_ITER, **opts)
         at = 0
         for gi, _, note in groups:  # one group at a time: a row appears at most once per call
@@ -245,7 +253,7 @@ def _project_rows(rows, X, Y, w, g, dg, start, mx, sx, free, bounds, z_floor, co
     for i in np.nonzero(needs_scipy)[0]:
         ch = rows[i]
         r = fit_channel(X[ch], Y[ch], g, init=(a0[i], b0[i], c0[i], d0[i]), free=free,
-                        positive_a=positive_a, dg=dg, weights=w, nonzero_a=nonzero_a)
+                        positive_a=positive_a, dg=dg, weights=row_weights(w, i), nonzero_a=nonzero_a)
         if r.mse < best["mse"][ch]:
             best["a"][ch], best["b"][ch], best["c"][ch], best["d"][ch], best["mse"][ch] = r.a, r.b, r.c, r.d, r.mse
             notes[ch] = f"scipy fallback: {r.note}"

@@ -51,6 +51,16 @@ FD_STEP = 1e-6  # central-difference step (relative to max(1, |u|)) when g' is n
 CONVERGED, FLAT, CAPPED, BAD_START = 0, 1, 2, 3
 
 
+def wsum(A: np.ndarray, w: np.ndarray) -> np.ndarray:
+    """Row-wise weighted sums of A (rows, n): Σⱼ A[i, j]·w[j] for shared weights (n,), Σⱼ A[i, j]·w[i, j] for (rows, n)."""
+    return A @ w if w.ndim == 1 else _dot(A, w)
+
+
+def row_weights(w: np.ndarray, rows) -> np.ndarray:
+    """The weights of ``rows``: shared weights (n,) as they are, per-row weights (rows, n) indexed."""
+    return w if w.ndim == 1 else w[rows]
+
+
 def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_floor: float = 0.0,
                      nonzero_a: bool = False):
     """Row-wise weighted LS of Y on [Z, 1] over the free ones of (a, d). Returns (a, d, solved), each (rows,).
@@ -61,21 +71,21 @@ def outer_solve_rows(Z, Y, w, a0, d0, fa: bool, fd: bool, positive_a: bool, z_fl
     """
     rows = Z.shape[0]
     if not fa:
-        d = (Y - a0[:, None] * Z) @ w if fd else d0.copy()
+        d = wsum(Y - a0[:, None] * Z, w) if fd else d0.copy()
         return a0.copy(), d, np.zeros(rows, dtype=bool)
     with np.errstate(all="ignore"):  # constant or overflowing rows are caught by `solved`/finiteness
         if fd:
-            my, mz = Y @ w, Z @ w
+            my, mz = wsum(Y, w), wsum(Z, w)
             dy = Y - my[:, None]
             dz = Z - mz[:, None]
             wdz = dz * w
-            szz, szy, syy = (wdz * dz).sum(axis=1), (wdz * dy).sum(axis=1), (dy * dy) @ w
+            szz, szy, syy = (wdz * dz).sum(axis=1), (wdz * dy).sum(axis=1), wsum(dy * dy, w)
             rms2 = szz + mz * mz
         else:  # regression through the held offset d0
             my = mz = np.zeros(rows)
             yd = Y - d0[:, None]
             wz = Z * w
-            szz, szy, syy = (wz * Z).sum(axis=1), (wz * yd).sum(axis=1), (yd * yd) @ w
+            szz, szy, syy = (wz * Z).sum(axis=1), (wz * yd).sum(axis=1), wsum(yd * yd, w)
             rms2 = szz
         a, solved = slope_rows(szz, szy, syy, rms2, a0, positive_a, z_floor, nonzero_a)
         d = my - a * mz if fd else d0.copy()
@@ -87,7 +97,7 @@ def score_rows(X, Y, w, g: Func, a, b, c, d) -> np.ndarray:
     with np.errstate(all="ignore"):
         Z = apply_g(g, b[:, None] * X + c[:, None])
         R = Y - a[:, None] * Z - d[:, None]
-        m = (R * R) @ w
+        m = wsum(R * R, w)
     return np.where(np.isfinite(m), m, np.inf)
 
 
@@ -123,8 +133,9 @@ class _Problem:
         self.nonzero_a = nonzero_a
         # uniform weights (every calibration fit) need no weighting pass at all
         self.w = w
-        self.uniform = bool(np.all(w == w[0]))
-        self.my = Y @ w
+        self.uniform = w.ndim == 1 and bool(np.all(w == w[0]))
+        self.rowwise = w.ndim == 2  # per-row weights: each left operand is weighted once, then reused
+        self.my = wsum(Y, w)
         self.Yc = Y - (self.my if fd else d0)[:, None]
         self.syy = self.mean(self.Yc * self.Yc) if not self.uniform else _dot(self.Yc, self.Yc) * w[0]
         self.ones = None
@@ -134,22 +145,36 @@ class _Problem:
         out.__dict__.update(self.__dict__)
         for k in ("V", "a0", "d0", "my", "Yc", "syy"):
             setattr(out, k, getattr(self, k)[keep])
+        out.w = row_weights(self.w, keep)
         return out
 
     def mean(self, A: np.ndarray) -> np.ndarray:
-        return A @ self.w
+        return wsum(A, self.w)
 
     def wdot(self, A: np.ndarray, B: np.ndarray) -> np.ndarray:
         return _dot(A, B) * self.w[0] if self.uniform else _dot(A * self.w, B)
+
+    def weighted(self, A: np.ndarray):
+        """A made ready as the left operand of :meth:`dot` (weighted once when weights are per row)."""
+        return A * self.w if self.rowwise else A
+
+    def dot(self, Aw: np.ndarray, B: np.ndarray) -> np.ndarray:
+        """Weighted row-wise Σ A·B from ``Aw`` = :meth:`weighted` (A)."""
+        return _dot(Aw, B) if self.rowwise else self.wdot(Aw, B)
+
+    def total(self, Aw: np.ndarray) -> np.ndarray:
+        """Weighted row sums of A from ``Aw`` = :meth:`weighted` (A)."""
+        return Aw.sum(axis=1) if self.rowwise else self.mean(Aw)
 
     def evaluate(self, q):
         """Projected cost, (a, d, solved) and the Kaufman normal equations (H, grad) at q."""
         with np.errstate(all="ignore"):
             U = q[:, :1] * self.V + q[:, 1:]
             Z = apply_g(self.g, U)
-            mz = self.mean(Z) if self.fd else np.zeros(Z.shape[0])
-            zz = self.wdot(Z, Z)
-            szy = self.wdot(Z, self.Yc)  # the targets are centred when d is solved
+            Zw = self.weighted(Z)
+            mz = self.total(Zw) if self.fd else np.zeros(Z.shape[0])
+            zz = self.dot(Zw, Z)
+            szy = self.dot(Zw, self.Yc)  # the targets are centred when d is solved
             szz = zz - mz * mz if self.fd else zz
             if self.fa:
                 a, solved = slope_rows(szz, szy, self.syy, zz, self.a0, self.positive_a, self.z_floor,
@@ -172,13 +197,14 @@ class _Problem:
             gp = (apply_g(self.g, U + h) - apply_g(self.g, U - h)) / (2.0 * h)
         G = a[:, None] * gp
         GV = G * self.V
+        GVw, Gw = self.weighted(GV), self.weighted(G)
         H = np.empty((U.shape[0], 2, 2))
-        H[:, 0, 0] = self.wdot(GV, GV)
-        H[:, 0, 1] = H[:, 1, 0] = self.wdot(GV, G)
-        H[:, 1, 1] = self.wdot(G, G)
-        dz = np.stack([self.wdot(GV, Z), self.wdot(G, Z)], axis=1)  # <D_j, z>
-        dy = np.stack([self.wdot(GV, self.Yc), self.wdot(G, self.Yc)], axis=1)  # <D_j, ŷ>
-        d1 = np.stack([self.mean(GV), self.mean(G)], axis=1) if self.fd else np.zeros_like(dz)  # <D_j, 1>
+        H[:, 0, 0] = self.dot(GVw, GV)
+        H[:, 0, 1] = H[:, 1, 0] = self.dot(GVw, G)
+        H[:, 1, 1] = self.dot(Gw, G)
+        dz = np.stack([self.dot(GVw, Z), self.dot(Gw, Z)], axis=1)  # <D_j, z>
+        dy = np.stack([self.dot(GVw, self.Yc), self.dot(Gw, self.Yc)], axis=1)  # <D_j, ŷ>
+        d1 = np.stack([self.total(GVw), self.total(Gw)], axis=1) if self.fd else np.zeros_like(dz)  # <D_j, 1>
         dzc = dz - mz[:, None] * d1  # <D_j, z − mz>
         grad = dy - a[:, None] * dzc  # <D_j, r>
         if self.fd:  # <1, r> = 0: only H loses the direction 1
@@ -201,7 +227,7 @@ def lm_projected(V, Y, w, g: Func, dg: Func | None, q0, free: tuple[bool, bool],
                  lam0: float | np.ndarray = LAMBDA0, ftol: float = FTOL) -> LMResult:
     """Levenberg–Marquardt on the projected residual of every row of u = q₀·V + q₁.
 
-    ``V``, ``Y`` are (rows, n); ``w`` (n,) weights summing to 1; ``q0``,
+    ``V``, ``Y`` are (rows, n); ``w`` (n,) weights summing to 1 (or (rows, n), each row summing to 1); ``q0``,
     ``lo``, ``hi`` (rows, 2); ``free`` says which of (q₀, q₁) move (held ones
     stay at ``q0``); ``a0``, ``d0`` (rows,) are the held/fallback values of the
     linear parameters. ``dg`` is g's derivative (central differences when None).

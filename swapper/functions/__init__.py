@@ -1,9 +1,10 @@
 """The function registry: every activation swapper knows, and the surrogate parametrisation.
 
-    registry.py   Function, REGISTRY, DEFAULT_TARGET, get(), target_params()
+    registry.py   Function, REGISTRY, DEFAULT_TARGET, ALTERNATIVES, get(), candidates(), target_params()
     formulas.py   float64 numpy references and derivatives
     emitters.py   ONNX emitters (standard ops at the model's opset)
     pwl.py        the piecewise-linear surrogate
+    forms.py      emission forms: the equivalent ONNX forms of each surrogate, their re-parametrisation
     costs.py      measured relative cost per function (op_costs.json)
     params.py     PARAMS and NEUTRAL of y = a·g(b·x + c) + d (a leaf: no imports)
 
@@ -11,13 +12,16 @@
 """
 from swapper.functions import costs
 from swapper.functions.registry import (
+    ALTERNATIVES,
     DEFAULT_TARGET,
     REGISTRY,
     Function,
+    candidates,
     get,
     sources,
     surrogates,
     target_params,
 )
 
-__all__ = ["DEFAULT_TARGET", "REGISTRY", "Function", "costs", "get", "sources", "surrogates", "target_params"]
+__all__ = ["ALTERNATIVES", "DEFAULT_TARGET", "REGISTRY", "Function", "candidates", "costs", "get", "sources",
+           "surrogates", "target_params"]

@@ -15,7 +15,9 @@ CONTRACT (the rest of the package relies on it):
   writes ``y``.
 - ``Function.homogeneous``: g(s·z) = s·g(z) for every s > 0 (relu, leaky_relu),
   so an outer scale a > 0 can be moved inside.
-- ``DEFAULT_TARGET[source] -> surrogate name``.
+- ``DEFAULT_TARGET[source] -> surrogate name``; ``ALTERNATIVES[source]`` the
+  surrogates tried next on a target where the default does not pay;
+  ``candidates(source)`` both, in order.
 - ``target_params(source, source_params, target) -> dict``: the surrogate's own
   fixed parameters for a given source (e.g. the knots of a piecewise-linear fit);
   {} for surrogates without any.
@@ -144,6 +146,29 @@ DEFAULT_TARGET: dict[str, str] = {
     "sigmoid": "hard_sigmoid", "tanh": "hard_tanh", "softsign": "hard_tanh",
     "softplus": "relu", "elu": "relu", "selu": "relu", "celu": "relu",
 }
+
+
+# Tried after the default when a target is given and the default does not pay there
+# (:mod:`swapper.plan.choose`): among these, the cheapest on the target that pays wins and ties go to the
+# earlier entry. Each list starts with the shapes closest to its source (common practice, no source).
+ALTERNATIVES: dict[str, tuple[str, ...]] = {
+    **{s: ("relu", "leaky_relu", "relu6") for s in ("silu", "swish", "gelu", "gelu_tanh", "quick_gelu", "mish")},
+    "sigmoid": ("hard_tanh", "relu6"), "tanh": ("hard_sigmoid", "relu6"), "softsign": ("hard_sigmoid", "relu6"),
+    **{s: ("leaky_relu", "relu6") for s in ("softplus", "elu", "selu", "celu")},
+}
+
+
+def candidates(source: str) -> list[str]:
+    """The surrogates tried for ``source``, in order: its default, then its alternatives.
+
+    A cheap function is its own only candidate (re-emitted in another form
+    where a target lacks its op); a function without a default has none.
+    """
+    fn = get(source)
+    if fn.is_cheap:
+        return [source]
+    default = DEFAULT_TARGET.get(source)
+    return [] if default is None else list(dict.fromkeys([default, *ALTERNATIVES.get(source, ())]))
 
 
 def get(name: str) -> Function:

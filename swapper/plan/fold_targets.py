@@ -124,8 +124,10 @@ def producer_fold(index: GraphIndex, site: Site, tensor: str | None = None,
     """
     x = site.input if tensor is None else tensor
     node = index.producer.get(x)
-    if node is None:
-        return None, f"{x!r} is a graph input"
+    if node is None:  # in a body: its formal input, or a value of an enclosing graph (never folded into)
+        where = "a graph input" if x in index.graph_inputs else \
+            "a constant" if x in index.initializers else "read from an enclosing graph"
+        return None, f"{x!r} is {where}"
     if index.is_graph_output(x):
         return None, f"{x!r} is also a graph output"
     inside = set(site.nodes if readers is None else readers)

@@ -27,6 +27,15 @@ The placement is decided once, in :mod:`swapper.plan.placement`, which also
 says what it asks of the values of a (:func:`swapper.plan.placement.a_rule`);
 calibration keeps to it and the rewriter carries it out unchanged, so the
 plan written into the model and the report is what the graph holds.
+
+With a target profile, :mod:`swapper.plan.choose` picks per site the
+surrogate and its emission form (``SiteSwap.form``, one of
+:mod:`swapper.functions.forms`; its costs on the target in ``SiteSwap.cost``)
+or keeps the site (``Skipped.reason``); ``Plan.target``, ``Plan.opset``,
+``Plan.conversion`` (an ``--opset`` conversion), ``Plan.remaining`` (sites
+left with ops the target cannot run) and ``Plan.hints`` record the rest.
+The fitted a, b, c, d stay in the surrogate's own parametrisation; the
+rewriter applies the form's exact re-parametrisation when it writes the graph.
 """
 from __future__ import annotations
 
@@ -58,6 +67,9 @@ class SiteSwap:
     d: np.ndarray
     placement: dict  # param -> one of swapper.plan.placement.PLACEMENTS
     notes: list[str] = field(default_factory=list)
+    # the emission form (swapper.functions.forms); None: the one the registry's emitter writes at the model's opset
+    form: str | None = None
+    cost: dict | None = None  # on the plan's target: {"original": x, "candidate": y} (null: cannot run)
 
     def free(self) -> tuple[str, ...]:
         """The parameters a fitter may move."""
@@ -125,6 +137,11 @@ class Plan:
     fold: str  # one of swapper.options.FOLD_POLICIES
     swaps: list[SiteSwap]
     skipped: list[Skipped] = field(default_factory=list)
+    target: str | None = None  # the target profile planned for (None: no target, registry defaults)
+    opset: int | None = None  # the default-domain opset planned at
+    conversion: dict | None = None  # {"from", "to", "max_abs_diff", "samples"} when the opset was converted
+    remaining: list[str] = field(default_factory=list)  # sites left with ops the target cannot run, and why
+    hints: list[str] = field(default_factory=list)  # e.g. a faster form that needs a higher opset
 
     def by_site(self) -> dict[str, SiteSwap]:
         return {s.site_id: s for s in self.swaps}
@@ -134,6 +151,11 @@ class Plan:
             "fold": self.fold,
             "swaps": [s.to_dict() for s in self.swaps],
             "skipped": [asdict(s) for s in self.skipped],
+            "target": self.target,
+            "opset": self.opset,
+            "conversion": self.conversion,
+            "remaining": list(self.remaining),
+            "hints": list(self.hints),
         }
 
     def summary_json(self) -> str:
@@ -150,6 +172,8 @@ class Plan:
             fold=d["fold"],
             swaps=[SiteSwap.from_dict(s) for s in d["swaps"]],
             skipped=[Skipped(**s) for s in d.get("skipped", [])],
+            target=d.get("target"), opset=d.get("opset"), conversion=d.get("conversion"),
+            remaining=list(d.get("remaining", [])), hints=list(d.get("hints", [])),
         )
 
     @classmethod
@@ -175,6 +199,24 @@ def _starting_params(source: str, source_params: dict, target: str, target_param
     return _STARTS[key]
 
 
+def _parse_choices(choices: dict[str, str] | None, known: set[str]) -> dict[str, tuple[str, str | None, str | None]]:
+    """{site id: (surrogate, form or None, fold policy or None)} from {site id: "surrogate[:form][@fold]"}."""
+    from swapper import functions
+    from swapper.errors import UsageError
+
+    out = {}
+    for site_id, text in (choices or {}).items():
+        if site_id not in known:
+            raise UsageError(f"no site with id {site_id}; valid ids: {', '.join(sorted(known)) or 'none'}")
+        text, _, site_fold = str(text).partition("@")
+        name, _, form = text.partition(":")
+        functions.get(name)
+        if site_fold:
+            check_fold(site_fold)
+        out[site_id] = (name, form or None, site_fold or None)
+    return out
+
+
 def make_plan(
     model,
     sites: list,
@@ -185,18 +227,29 @@ def make_plan(
     include_gates: bool = False,
     include_outputs: bool = False,
     fold: str = "exact",
+    target=None,
+    choices: dict[str, str] | None = None,
 ) -> Plan:
-    """Choose sites and surrogates; set each swap's starting parameters and placement.
+    """Choose sites, surrogates and emission forms; set each swap's starting parameters and placement.
 
     Default: every supported *pointwise* site whose function is costly; gates only
     with ``include_gates``; graph outputs only with ``include_outputs``.
     ``site_ids`` and ``only`` (a source function name) narrow the choice.
+    ``target`` (a :class:`~swapper.targets.profile.TargetProfile`) decides per
+    site which surrogate and form pay on it, and keeps sites where none does
+    (:mod:`swapper.plan.choose`); a site whose ops the target cannot run is
+    swapped even when it is a gate, an output or already cheap, and named in
+    ``Plan.remaining`` when it must stay. ``to`` forces one surrogate for every
+    chosen site, ``choices`` one per site id ("relu" or "hard_swish:Mul-Clip"; "relu@nodes" also sets
+    that site's fold policy, "relu:Relu@exact" both).
     """
     from swapper import functions
     from swapper.core.graph import GraphIndex
+    from swapper.core.model_io import MAX_OPSET
     from swapper.errors import UsageError
     from swapper.plan.add_folds import Upstream
-    from swapper.plan.placement import decide_placement
+    from swapper.plan.bodies import SiteGraphs
+    from swapper.plan.choose import choose, chosen_line, opset_hints, site_options
 
     check_fold(fold)
     if to is not None:
@@ -210,19 +263,28 @@ def make_plan(
             raise UsageError(
                 f"no site with id {', '.join(unknown)}; valid ids: {', '.join(s.id for s in sites) or 'none'}"
             )
+    pinned = _parse_choices(choices, known)
     index = GraphIndex.of(model)
-    swaps, skipped = [], []
-    upstream: dict[str, Upstream] = {}  # swapped sites decided so far, by output (b may pass into them)
+    graphs = SiteGraphs(model, index)  # a site inside an If/Loop/Scan body is placed within its body
+    opset = index.opset
+    name = None if target is None else target.name
+    swaps, skipped, remaining, hints = [], [], [], {}
+    # swapped sites decided so far, by graph (main graph or one body) and output: b may pass into them
+    upstreams: dict[tuple, dict[str, Upstream]] = {}
     for site in sites:
-        if site_ids and site.id not in site_ids:
-            continue
-        if only and site.function != only:
-            continue
-        explicit = bool(site_ids)
+        explicit = bool(site_ids) or site.id in pinned
+        lacking = [] if target is None else _lacking(graphs.index_for(site), site, target)
 
-        def skip(reason: str) -> None:
+        def skip(reason: str, site=site, lacking=lacking) -> None:
             skipped.append(Skipped(site.id, site.function, reason))
+            if lacking:
+                remaining.append(f"{site.id} ({site.function}): {', '.join(lacking)} cannot run on {name}; {reason}")
 
+        if (site_ids and site.id not in site_ids) or (only and site.function != only):
+            if lacking:
+                remaining.append(f"{site.id} ({site.function}): {', '.join(lacking)} cannot run on {name}; "
+                                 "not selected (--sites / --only)")
+            continue
         if not site.supported:
             skip(site.reason or "not supported")
             continue
@@ -230,45 +292,78 @@ def make_plan(
         if fn is None:
             skip(f"no registry entry for {site.function}")
             continue
-        if fn.is_cheap and not explicit:
+        forced, form, site_fold = pinned.get(site.id, (to, None, None))
+        if fn.is_cheap and not (explicit or lacking):
             skip(f"{site.function} is already cheap")
             continue
-        if site.role == "gate" and not (include_gates or explicit):
+        notes = [f"swapped although a {site.role}: {', '.join(lacking)} cannot run on {name}"] \
+            if lacking and site.role != "pointwise" else []
+        if site.role == "gate" and not (include_gates or explicit or lacking):
             skip("gate (its output multiplies another tensor); use --include-gates")
             continue
-        if site.role == "output" and not (include_outputs or explicit):
+        if site.role == "output" and not (include_outputs or explicit or lacking):
             skip("graph output; use --include-outputs")
             continue
-        target = to or functions.DEFAULT_TARGET.get(site.function)
-        if target is None:
+        order = [forced] if forced else functions.candidates(site.function)
+        if not order or (fn.is_cheap and forced is None and not lacking):
             skip(f"no default surrogate for {site.function}; name one with --to")
             continue
-        if target == site.function and to is None:
-            skip("already its own surrogate")
+        upstream = upstreams.setdefault(site.body, {})
+        opts = site_options(graphs.index_for(site), site, target, order, fold=site_fold or fold, opset=opset,
+                            upstream=upstream)
+        choice = choose(opts, order, opset, forced=forced, form=form)
+        if target is not None and forced is None:
+            for k, op in opset_hints(opts, order, opset, min(target.opset_max, MAX_OPSET), choice):
+                hints.setdefault((k, op), []).append(site.id)
+        if choice.option is None:
+            skip(choice.reason)
             continue
-        target_fn = functions.get(target)
-        tparams = functions.target_params(site.function, site.params, target)
-        placement, notes = decide_placement(index, site, target_fn, fold, upstream)
-        upstream[site.output] = Upstream(site, placement, target_fn.homogeneous)
-        channels = site.channels or 1
-        swap = SiteSwap(
-            site_id=site.id,
-            source=site.function,
-            source_params=dict(site.params),
-            target=target,
-            target_params=tparams,
-            channel_axis=site.channel_axis if site.channels else None,
-            channels=channels,
-            **{p: np.full(channels, NEUTRAL[p]) for p in PARAMS},
-            placement=placement,
-            notes=list(notes),
-        )
-        # the start keeps to what the placement asks of a, as every later fit does
-        start = _starting_params(site.function, site.params, target, tparams, "".join(swap.free()),
-                                 **swap.a_bounds())
-        if swap.fit_bounds()["positive_b"] and start[1] <= 0:  # and b > 0 where b passes through an add
-            start = _starting_params(site.function, site.params, target, tparams,
-                                     "".join(p for p in swap.free() if p != "b"), **swap.a_bounds())
-        swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
-        swaps.append(swap)
-    return Plan(fold=fold, swaps=swaps, skipped=skipped)
+        option = choice.option
+        if target is not None:
+            notes.append(chosen_line(opts, option))
+        swaps.append(_site_swap(site, option, notes, None if target is None else
+                                {"original": opts.original.cost, "candidate": option.cost}))
+        upstream[site.output] = Upstream(site, dict(option.placement), functions.get(option.surrogate).homogeneous)
+    plan = Plan(fold=fold, swaps=swaps, skipped=skipped, target=name, opset=opset, remaining=remaining,
+                hints=[f"{op} needs opset {k}; this model is opset {opset}; rerun with --opset {k} "
+                       f"(sites {', '.join(ids)})" for (k, op), ids in sorted(hints.items())])
+    if target is not None and not target.accepts_opset(opset):
+        plan.hints.append(f"{name} accepts opsets {target.opset_min}..{target.opset_max}; this model is "
+                          f"opset {opset}")
+    return plan
+
+
+def _lacking(index, site, target) -> list[str]:
+    """The site's own op types the target cannot run (support "none"), in graph order."""
+    ops = [index.nodes_by_name[n].op_type for n in site.nodes if n in index.nodes_by_name]
+    return target.allows(ops)[1]
+
+
+def _site_swap(site, option, notes: list[str], cost: dict | None) -> SiteSwap:
+    """The SiteSwap for ``option`` at ``site``, its starting a, b, c, d fitted within the placement."""
+    from swapper import functions
+
+    channels = site.channels or 1
+    tparams = functions.target_params(site.function, site.params, option.surrogate)
+    swap = SiteSwap(
+        site_id=site.id,
+        source=site.function,
+        source_params=dict(site.params),
+        target=option.surrogate,
+        target_params=tparams,
+        channel_axis=site.channel_axis if site.channels else None,
+        channels=channels,
+        **{p: np.full(channels, NEUTRAL[p]) for p in PARAMS},
+        placement=dict(option.placement),
+        notes=list(option.notes) + list(notes),
+        form=option.form.name,
+        cost=cost,
+    )
+    # the start keeps to what the placement asks of a, as every later fit does
+    start = _starting_params(site.function, site.params, option.surrogate, tparams, "".join(swap.free()),
+                             **swap.a_bounds())
+    if swap.fit_bounds()["positive_b"] and start[1] <= 0:  # and b > 0 where b passes through an add
+        start = _starting_params(site.function, site.params, option.surrogate, tparams,
+                                 "".join(p for p in swap.free() if p != "b"), **swap.a_bounds())
+    swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
+    return swap

@@ -9,13 +9,17 @@ when a part did not run):
   ``{"path", "sha256", "bytes"}`` or null (candidate path is null when not written);
   an image folder with class sub-folders also gives ``classes`` (folder name ->
   integer label).
-- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`.
-- ``sites``: one entry per swapped site: ``site_id, source, target, placement
-  {a,b,c,d}, nodes_added, folded_into, mse_start, mse_fit, level,
-  bias_corrected, refit, notes`` (mse values null without calibration;
-  ``refit``: ``{refitted, held_out_samples, mse_current, mse_refit, consumers}``,
-  the consumer refit's decision for the site, or null when none was weighed).
-- ``calibration``: ``{"samples", "timings_s", "sites"}`` (per-site fit details,
+- ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
+  ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
+  record or null), ``remaining``, ``hints``.
+- ``sites``: one entry per swapped site: ``site_id, source, target, form``
+  (the emission form written), ``placement {a,b,c,d}, nodes_added,
+  folded_into, mse_start, mse_fit, level, bias_corrected, refit, notes`` (mse
+  values null without calibration; ``refit``: ``{refitted, held_out_samples,
+  mse_current, mse_refit, consumers}``, the consumer refit's decision for the
+  site, or null when none was weighed).
+- ``calibration``: ``{"samples", "tokens", "timings_s", "sites"}`` (``tokens``: which attention mask the
+  statistics of token-shaped sites honoured and how many tokens they read, or why none; per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
   ``output_kinds``: output -> ``{kind, cue, sample_shape, dtype}``, and per output in
@@ -25,9 +29,27 @@ when a part did not run):
   top1 | agreement | cosine | sqnr | rmse, null when the candidate was refused for
   NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
   ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
-  runs}`` plus ``ratio``, ``batch_size``, ``threads``; ``size``: per model
-  ``{bytes, nodes, op_counts, initializer_bytes}``; ``int8``: the same
-  figures for quantized versions or null. All null when no validation ran.
+  runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
+  ``target`` (see ``swapper.api.check``), or null when latency was not measured
+  (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
+  initializer_bytes}`` (``bytes``: the model file as written or read, external data
+  files included; a candidate that was not written counts its serialised bytes);
+  ``int8``: the same figures for quantized versions or null. All null when no
+  validation ran.
+- ``search``: the automatic plan (``swap --plan auto``), null otherwise:
+  ``{"target": {"name", "costs_from", "how"}`` (how savings were obtained:
+  measured in context on the target / declared by the profile),
+  ``"metric": {"name", "outputs", "unit", "allowance"}``, ``"reason"`` (one
+  line), ``"sites"``: per swept site ``{"site_id", "function", "chosen"`` (a
+  sweep candidate id or null), ``"why"``, ``"candidates"``: each tried alone
+  ``{"id", "surrogate", "form", "fold", "refit", "status", "reason", "cost",
+  "saving", "saving_ms", "on_front"}}``, ``"attempts"``: the verifications of
+  the combined plan ``{"chosen", "passed", "faster", "detail", "dropped",
+  "why_dropped"}``, ``"first_estimate"`` ``{"saving", "cost", "sites"}``,
+  ``"pareto"`` (candidate ids), ``"saving_label"``, ``"sweep_run"`` (the
+  sweep's ``run`` entry, :mod:`swapper.sweep.schema`), ``"lacking_ops"``
+  (declared target: ops of the written model it cannot run, or null)}``.
+  Added in schema /1: no earlier field changed meaning.
 - ``caution``: the safety caution, verbatim.
 
 report.html is self-contained (styles inline, plots as data: URIs): the verdict
@@ -45,8 +67,8 @@ from pathlib import Path
 
 import numpy as np
 
+from swapper.core.files import ensure_folder
 from swapper.core.model_io import atomic_write_bytes, sha256_file
-from swapper.errors import BadOutputError
 from swapper.report.html import render_html
 
 logger = logging.getLogger(__name__)
@@ -61,11 +83,11 @@ CAUTION = (
 
 VERDICT_KEYS = {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
 TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
-            "verdict", "latency", "size", "int8", "caution")
+            "verdict", "latency", "size", "int8", "search", "caution")
 
 
-SITE_KEYS = ("site_id", "source", "target", "placement", "nodes_added", "folded_into", "mse_start", "mse_fit",
-             "level", "bias_corrected", "refit", "notes")
+SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
+             "mse_fit", "level", "bias_corrected", "refit", "notes")
 
 
 def _versions() -> dict:
@@ -89,8 +111,9 @@ def _file_entry(path) -> dict | None:
         import hashlib
 
         from swapper.data.images import holds_images, list_images
+        from swapper.data.npy_files import npy_folder_files
 
-        files, classes = sorted(p.glob("*.npy")), None
+        files, classes = npy_folder_files(p), None  # exactly the files the data set was read from
         if not files and holds_images(p):
             files, _, classes = list_images(p)
         digest = hashlib.sha256()
@@ -117,7 +140,8 @@ def site_rows(plan, records, calibration) -> list[dict]:
     for s in plan.swaps:
         rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
         rows.append({
-            "site_id": s.site_id, "source": s.source, "target": s.target, "placement": dict(s.placement),
+            "site_id": s.site_id, "source": s.source, "target": s.target,
+            "form": rec.form if rec else s.form, "placement": dict(s.placement),
             "nodes_added": rec.nodes_added if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
@@ -132,7 +156,7 @@ def site_rows(plan, records, calibration) -> list[dict]:
 
 
 def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
-                 calib_path=None) -> dict:
+                 calib_path=None, search=None) -> dict:
     """Assemble the report.json payload (see the module docstring for its schema)."""
     from swapper.core.jsonable import json_safe
 
@@ -152,6 +176,7 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
         "latency": check.latency if check else None,
         "size": check.size if check else None,
         "int8": check.int8 if check else None,
+        "search": search,
         "caution": CAUTION,
     }
     return json_safe(payload, [], "report")
@@ -186,11 +211,7 @@ def validate_report(payload: dict) -> None:
 
 def write_report(folder, **parts) -> tuple[Path, Path]:
     """Write report.json and report.html into ``folder`` (created); return both paths."""
-    folder = Path(folder)
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise BadOutputError(f"cannot create report folder: {exc.strerror or exc}", folder) from None
+    folder = ensure_folder(folder, "report folder")
     payload = build_report(**parts)
     validate_report(payload)
     json_path = atomic_write_bytes(json.dumps(payload, indent=2, allow_nan=False).encode(), folder / "report.json")

@@ -10,6 +10,7 @@ import numpy as np
 
 from swapper import functions
 from swapper.report.numbers import num, pct
+from swapper.report.search import search_html
 
 logger = logging.getLogger(__name__)
 
@@ -130,17 +131,22 @@ def render_html(payload: dict) -> str:
                           f"{num(errs.get('max_abs'))}, RMSE {num(errs.get('rmse'))}, "
                           f"cosine over all values {num(errs.get('cosine'), '.6f')}"])
         lat, size = payload["latency"], payload["size"]
-        speed = _table(["", "original", "candidate"], [
-            ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],
-            ["p10–p90 (ms)", f"{num(lat['original']['p10_ms'])}–{num(lat['original']['p90_ms'])}",
-             f"{num(lat['candidate']['p10_ms'])}–{num(lat['candidate']['p90_ms'])}"],
-            ["latency ratio", "", f"{lat['ratio']:.3f}"],
-            ["serialized bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
-            ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]],
-        ], numeric={1, 2})
+        rows = [["file bytes", size["original"]["bytes"], size["candidate"]["bytes"]],
+                ["nodes", size["original"]["nodes"], size["candidate"]["nodes"]]]
+        if lat is None:
+            timing = "latency not measured (--no-latency)"
+        else:
+            rows = [
+                ["median latency (ms)", num(lat["original"]["median_ms"]), num(lat["candidate"]["median_ms"])],
+                ["p10–p90 (ms)", f"{num(lat['original']['p10_ms'])}–{num(lat['original']['p90_ms'])}",
+                 f"{num(lat['candidate']['p10_ms'])}–{num(lat['candidate']['p90_ms'])}"],
+                ["latency ratio", "", f"{lat['ratio']:.3f}"],
+            ] + rows
+            timing = (f"batch {lat['batch_size']}, {lat['threads']} thread(s), median of "
+                      f"{lat['original']['runs']} interleaved runs")
+        speed = _table(["", "original", "candidate"], rows, numeric={1, 2})
         parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)
-                     + f"</div><div>{speed}<small>batch {lat['batch_size']}, {lat['threads']} thread(s), "
-                       f"median of {lat['original']['runs']} interleaved runs</small></div></div>")
+                     + f"</div><div>{speed}<small>{timing}</small></div></div>")
         ops = sorted(set(size["original"]["op_counts"]) | set(size["candidate"]["op_counts"]))
         parts.append("<h2>Operators</h2>" + _table(
             ["op", "original", "candidate"],
@@ -150,7 +156,9 @@ def render_html(payload: dict) -> str:
             q = payload["int8"]
             parts.append("<h2>int8 view</h2>" + _table(["", "original", "candidate"], [
                 ["top-1 accuracy", pct(q["comparison"].get("top1_original")), pct(q["comparison"].get("top1_candidate"))],
-                ["median latency (ms)", num(q["latency"]["original"]["median_ms"]), num(q["latency"]["candidate"]["median_ms"])],
+                ["median latency (ms)", *((num(q["latency"]["original"]["median_ms"]),
+                                           num(q["latency"]["candidate"]["median_ms"])) if q["latency"]
+                                          else ("not measured", "not measured"))],
                 ["file bytes", q["size"]["original_bytes"], q["size"]["candidate_bytes"]],
             ]) + f"<small>{_e(q['quantization'])}</small>")
             for w in q.get("lossy_weights") or []:
@@ -159,7 +167,7 @@ def render_html(payload: dict) -> str:
                              f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
                              f"output channels.</p>")
     if payload["sites"]:
-        rows = [[s["site_id"], f"{s['source']} → {s['target']}",
+        rows = [[s["site_id"], f"{s['source']} → {s['target']}" + (f" ({s['form']})" if s.get("form") else ""),
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
                  num(s["mse_start"]), num(s["mse_fit"]), _refit(s.get("refit")), "; ".join(s["notes"])]
                 for s in payload["sites"]]
@@ -167,14 +175,24 @@ def render_html(payload: dict) -> str:
             ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted",
              "consumer refit (held-out MSE current → refitted)", "notes"],
             rows, numeric={3, 4, 5}))
-    skipped = (payload.get("plan") or {}).get("skipped", [])
+    plan = payload.get("plan") or {}
+    skipped = plan.get("skipped", [])
     if skipped:
         parts.append("<h2>Left alone</h2>" + _table(["site", "function", "reason"],
                                                     [[s["site_id"], s["function"], s["reason"]] for s in skipped]))
+    target_notes = ([f"planned for {plan['target']} at opset {plan.get('opset')}"] if plan.get("target") else []) \
+        + [f"remains: {r}" for r in plan.get("remaining", [])] + [f"hint: {h}" for h in plan.get("hints", [])]
+    if plan.get("conversion"):
+        c = plan["conversion"]
+        target_notes.append(f"converted opset {c['from']} → {c['to']}: max |difference| {num(c['max_abs_diff'])} "
+                            f"on {c['samples']} samples ({c['compared_on']})")
+    if target_notes:
+        parts.append("<h2>Target</h2>" + "".join(f"<p>{_e(t)}</p>" for t in target_notes))
     plots = _plots(payload)
     if plots:
         parts.append("<h2>Plots</h2>" + "".join(f"<figure><img alt='{_e(t)}' src='{uri}'><figcaption>{_e(t)}"
                                                  f"</figcaption></figure>" for t, uri in plots))
+    parts.append(search_html(payload.get("search")))
     tool = payload["tool"]
     parts.append(f"<p class='caution'>{_e(payload['caution'])}</p><p class='caution'>swapper {_e(tool['swapper'])}, "
                  f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."

@@ -1,8 +1,9 @@
 """Apply a swap plan to a copy of a model.
 
 Transformation: for every swapped site, the site's nodes are replaced by
-``y = a·g(b·x + c) + d`` where ``g`` is the registry emitter of the target and
-each of a, b, c, d is placed exactly as the plan says: folded into the producer
+``y = a·g(b·x + c) + d`` written in the plan's emission form (``SiteSwap.form``,
+:mod:`swapper.functions.forms`: the form's exact re-parametrisation of a, b, c, d
+is applied first) and each of a, b, c, d is placed exactly as the plan says: folded into the producer
 of ``x`` (its output channels scaled/shifted), folded into the linear layers
 that read ``y``, directly or behind pools/reshapes/gates (their input-channel
 weights scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool),
@@ -41,6 +42,7 @@ from swapper.core.surgery import (
     used_names,
 )
 from swapper.errors import BadModelError, UsageError
+from swapper.functions.forms import Form, default_form, get_form
 from swapper.functions.params import PARAMS
 from swapper.plan.add_folds import THROUGH_ADD, residual_readers
 from swapper.plan.fold_targets import (
@@ -50,6 +52,7 @@ from swapper.plan.fold_targets import (
 )
 from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
 from swapper.plan.plan import Plan, SiteSwap
+from swapper.rewrite.bodies import floor_with_bodies, has_body_swaps, node_count, rewrite_bodies
 from swapper.rewrite.folding import border_note
 from swapper.rewrite.transport import Transport
 from swapper.rewrite.weights import Weights, apply_consumer, apply_producer, is_neutral
@@ -69,6 +72,7 @@ class SiteRecord:
     folded_into: list[str]  # names of the nodes whose weights or bias changed
     nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
     notes: list[str] = field(default_factory=list)
+    form: str = ""  # the emission form written (swapper.functions.forms)
 
 
 @dataclass
@@ -112,8 +116,14 @@ def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, 
     rewired (None when the plan folds nothing of this site); ``transport`` carries "through add" folds.
     Raises UsageError where the plan cannot be carried out as it stands."""
     fn = functions.get(swap.target)
+    form = _form(swap, index.opset)
     vals = _vectors(swap)
     place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
+    vals = form.emitted_values(vals, swap.target_params)  # the values the form's own E(z) needs
+    moved = [p for p in PARAMS if place[p] == "held" and not is_neutral(p, vals[p])]
+    if moved:
+        raise UsageError(f"site {site.id}: form {form.name} of {fn.name} moves {', '.join(moved)}, which the "
+                         "plan holds; re-plan for this form")
     if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not is_neutral(p, vals[p]) for p in PARAMS}
@@ -170,19 +180,41 @@ def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, 
             notes += [border_note(index, f, vals["d"]) for f in folds + transport.onward(site.id) if not f.d_exact]
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
-    fn.emit(em, x, g_out, dict(swap.target_params))
+    form.emit(em, x, g_out, dict(swap.target_params))
     if a_node:
         em.node("Mul", [g_out, const("a", vals["a"])], None if d_node else site.output)
     if d_node:
         em.node("Add", [em.nodes[-1].output[0], const("d", d_emit)], site.output)
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
-    return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes), notes)
+    return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes),
+                      notes, form.name)
+
+
+def _form(swap: SiteSwap, opset: int) -> Form:
+    """The plan's form for ``swap`` (None: what the registry's emitter writes at ``opset``); UsageError if the
+    model's opset does not have it."""
+    form = get_form(swap.target, swap.form) if swap.form else default_form(swap.target, opset)
+    if opset < form.min_opset:
+        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.target} needs opset {form.min_opset}; "
+                         f"the model is opset {opset}")
+    return form
+
+
+def _site_dtype(index: GraphIndex, site: Site) -> np.dtype:
+    """The float type the site computes in (float32 when unknown): its emitted constants take it."""
+    elem = index.dtypes.get(site.input, onnx.TensorProto.FLOAT)
+    dtype = np.dtype(helper.tensor_dtype_to_np_dtype(elem)) if elem else np.dtype(np.float32)
+    return dtype if dtype.kind == "f" else np.dtype(np.float32)
 
 
 # ------------------------------------------------------------------ public
 def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteResult:
     """A copy of ``model`` with every site of ``plan`` replaced by its surrogate, parameters placed."""
+    if has_body_swaps(sites, plan):  # sites inside If/Loop/Scan bodies: body by body (swapper.rewrite.bodies)
+        out, records = rewrite_bodies(model, sites, plan, rewrite)
+        _stamp_plan(out, plan)
+        return RewriteResult(out, node_count(model), node_count(out), records)
     out = copy_model(model)
     index = GraphIndex.of(out)
     if index.opset <= 0:
@@ -214,22 +246,29 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
         site = by_id[swap.site_id]
         if swap.source != site.function:
             raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
-        em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken)
+        em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken, dtype=_site_dtype(index, site))
         records[site.id] = _swap_site(index, weights, site, swap, em, analyses.get(site.id), transport)
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
     records = [records[s.site_id] for s in plan.swaps]
     splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
-    kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
-    del out.metadata_props[:]
-    out.metadata_props.extend(kept)
-    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
+    _stamp_plan(out, plan)
     logger.info("rewrote %d sites: %d -> %d nodes", len(records), len(model.graph.node), len(out.graph.node))
     return RewriteResult(out, len(model.graph.node), len(out.graph.node), records)
 
 
+def _stamp_plan(out: onnx.ModelProto, plan: Plan) -> None:
+    """Record ``plan`` (without per-channel values) in the model's metadata, replacing an earlier one."""
+    kept = [p for p in out.metadata_props if p.key != PLAN_KEY]
+    del out.metadata_props[:]
+    out.metadata_props.extend(kept)
+    out.metadata_props.add(key=PLAN_KEY, value=plan.summary_json())
+
+
 def rewrite_identity_floor(model: onnx.ModelProto, sites: list[Site]) -> onnx.ModelProto:
     """A copy of ``model`` with each site replaced by Identity: the speed floor of any swap."""
+    if any(s.body for s in sites):  # sites inside If/Loop/Scan bodies: body by body (swapper.rewrite.bodies)
+        return floor_with_bodies(model, sites, rewrite_identity_floor)
     out = copy_model(model)
     positions = site_positions(out, sites)
     taken = all_names(out)

@@ -8,9 +8,12 @@ the graph and describes each match.
 Transformation: shape-inferred ModelProto -> list[Site]: first the main
 graph's sites, ids s1 ... sN by the graph position of each site's first node
 (so they do not depend on what bodies hold), then the sites inside If/Loop/Scan
-bodies, numbered on from N+1 depth first in node order, each with
-supported=False and a one-line reason naming its body (subgraphs are not
-rewritten yet).
+bodies, numbered on from N+1 depth first in node order, each with the path of
+its body (``body``: (node name, attribute) steps from the main graph inward).
+A body site is swappable like a main-graph one when its body can be run on its
+own as its node runs it (:func:`swapper.core.bodies.why_not_runnable`: If, Loop
+and Scan bodies passing tensors); otherwise supported=False with a one-line
+reason naming the body.
 
 Channel axis (the axis per-channel parameters run along): rank 4/5 -> 1; rank
 2 -> 1 (= last); rank 3 -> 1 when x comes from Conv/BatchNormalization
@@ -31,8 +34,11 @@ from concrete shapes when the caller measured them (``shapes``: from calibration
 data or given input shapes, :mod:`swapper.scan.shapes`), else from the model's
 static shapes. A site whose elements stay unknown (symbolic dims after the
 batch) has cost None; cost_share = cost / sum of all costs, None when that sum
-is unknown (a share is never made up as 0). A site in an If branch is counted
-as if its branch ran.
+is unknown (a share is never made up as 0). A body site's elements are what its
+body computes on the measured feeds, summed over the body's runs (every
+iteration of a Loop/Scan; 0 for an If branch the feeds did not take;
+:mod:`swapper.scan.body_sizes`); unmeasured, they are unknown, since how often
+a body runs is known only by running it.
 
 JSON schema "swapper.scan/1" (``sites_to_json``), stable field by field:
 
@@ -52,7 +58,9 @@ JSON schema "swapper.scan/1" (``sites_to_json``), stable field by field:
   graph output), ``role`` ("pointwise"|"gate"|"output"), ``elements``
   (int|null), ``cost`` (float|null), ``cost_share`` (float in [0, 1]|null),
   ``supported`` (bool), ``reason`` (string|null, why not swappable),
-  ``domain`` (op domain, "" for the default one).
+  ``domain`` (op domain, "" for the default one), ``body`` (list of
+  [node name, attribute] steps from the main graph to the site's body; empty
+  for a main-graph site).
 """
 from __future__ import annotations
 
@@ -64,6 +72,7 @@ from typing import Literal
 
 import onnx
 
+from swapper.core.bodies import why_not_runnable
 from swapper.core.graph import GraphIndex
 from swapper.functions.costs import relative_cost
 from swapper.scan.match import Decline, Match
@@ -96,14 +105,16 @@ class Site:
     cost: float | None  # elements x relative cost of the function (cost units per sample); None: unknown
     cost_share: float | None  # cost / total activation cost of the model; None when unknown
     supported: bool = True
-    reason: str | None = None  # why a site cannot be swapped (e.g. inside a Loop body)
+    reason: str | None = None  # why a site cannot be swapped (e.g. inside a body that is not run on its own)
     domain: str = ""
+    body: tuple[tuple[str, str], ...] = ()  # (node name, attribute) steps to the site's body; () = main graph
 
     def to_dict(self) -> dict:
         d = asdict(self)
         d["nodes"] = list(self.nodes)
         d["consumers"] = list(self.consumers)
         d["shape"] = list(self.shape) if self.shape is not None else None
+        d["body"] = [list(step) for step in self.body]
         return d
 
 
@@ -171,9 +182,26 @@ def _collect(scope: Scope, out: list, declines: list) -> None:
         _collect(scope.body(node, attribute, graph), out, declines)
 
 
-def _elements_of(scope: Scope, m: Match, shapes: dict) -> int | None:
-    """Elements per sample of a match's input: from ``shapes`` (main graph) when given, else the model's shapes."""
-    if scope.owner is None and m.input in shapes:
+def _steps(scope: Scope) -> list[tuple[onnx.NodeProto, str, onnx.GraphProto]]:
+    """(owner node, attribute, body) from the main graph inward to ``scope``; [] for the main graph."""
+    steps = []
+    while scope.owner is not None:
+        steps.append((scope.owner, scope.attribute, scope.index.graph))
+        scope = scope.parent
+    return steps[::-1]
+
+
+def body_path(scope: Scope) -> tuple[tuple[str, str], ...]:
+    """The ``Site.body`` of a site in ``scope``: (node name, attribute) steps from the main graph."""
+    return tuple((owner.name, attribute) for owner, attribute, _ in _steps(scope))
+
+
+def _elements_of(scope: Scope, m: Match, shapes: dict, sizes: dict) -> int | None:
+    """Elements per sample of a match's input: from ``shapes`` (main graph) when given, else the model's shapes;
+    in a body, from ``sizes`` (summed over the body's runs) or unknown."""
+    if scope.owner is not None:
+        return sizes.get((body_path(scope), m.input))
+    if m.input in shapes:
         return _elements(tuple(shapes[m.input]))
     return _elements(scope.shape(m.input))
 
@@ -189,9 +217,7 @@ def _describe(sid: str, scope: Scope, m: Match, elements: int | None, total_cost
     if ix.is_graph_output(m.output):
         consumers.append("<output>")
     cost = None if elements is None else float(elements * relative_cost(m.function, m.form, m.domain))
-    inside = None
-    if scope.owner is not None:
-        inside = f"inside {scope.where()}; subgraphs are not rewritten yet"
+    inside = why_not_runnable(_steps(scope)) if scope.owner is not None else None
     return Site(
         id=sid, function=m.function, params=dict(m.params), input=m.input, output=m.output,
         nodes=tuple(m.nodes), form=m.form, shape=shape, channel_axis=axis, channels=channels,
@@ -199,24 +225,27 @@ def _describe(sid: str, scope: Scope, m: Match, elements: int | None, total_cost
         role=role_of(scope, m.output), elements=elements, cost=cost,
         cost_share=cost / total_cost if cost is not None and total_cost else None,
         supported=m.supported and inside is None, reason=inside or m.reason, domain=m.domain,
+        body=body_path(scope),
     )
 
 
 def find_sites(model: onnx.ModelProto, *, declines: list[Decline] | None = None,
-               shapes: dict[str, tuple] | None = None) -> list[Site]:
+               shapes: dict[str, tuple] | None = None, body_sizes: dict | None = None) -> list[Site]:
     """Every activation site of a loaded, shape-inferred model (ids s1, s2, ...; see the module docstring).
 
     Pass a list as ``declines`` to receive the decomposed patterns that were
     seen but not claimed, with their reasons. ``shapes`` maps main-graph tensor
     names to concrete shapes (:func:`swapper.scan.shapes.measure_shapes`), used
-    for elements and cost where the model's own shapes are symbolic. Nodes are
+    for elements and cost where the model's own shapes are symbolic; ``body_sizes``
+    maps (body path, tensor) to the elements a body site's input takes over the
+    body's runs (:func:`swapper.scan.body_sizes.measure_body_sizes`). Nodes are
     referred to by name, so the model's nodes, subgraph bodies included, must be
     named as :func:`swapper.core.model_io.load_model` leaves them (``name_unnamed_nodes``).
     """
     found: list = []
     seen_declines: list[Decline] = []
     _collect(Scope.of(model), found, seen_declines)
-    elements = [_elements_of(scope, m, shapes or {}) for scope, m in found]
+    elements = [_elements_of(scope, m, shapes or {}, body_sizes or {}) for scope, m in found]
     costs = [None if e is None else e * relative_cost(m.function, m.form, m.domain)
              for e, (_, m) in zip(elements, found)]
     unknown = [i for i, c in enumerate(costs) if c is None]

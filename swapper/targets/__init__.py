@@ -8,6 +8,7 @@
 The file format is documented in :mod:`swapper.targets.profile`.
 """
 from swapper.targets.profile import (
+    ChainPart,
     Fusion,
     Measurement,
     OpSupport,
@@ -23,6 +24,7 @@ from swapper.targets.schema import SCHEMA, BadTargetError, read_profile
 __all__ = [
     "SCHEMA",
     "BadTargetError",
+    "ChainPart",
     "Fusion",
     "Measurement",
     "OpSupport",

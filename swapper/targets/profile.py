@@ -129,6 +129,15 @@ class Fusion:
 
 
 @dataclass(frozen=True)
+class ChainPart:
+    """One step of a priced chain: a lone op at its own cost, or a fused pattern at the fusion's cost."""
+
+    ops: tuple[str, ...]
+    cost: float
+    fusion: Fusion | None = None
+
+
+@dataclass(frozen=True)
 class Quantization:
     """How a measured int8 profile quantizes a model before timing it."""
 
@@ -218,20 +227,29 @@ class TargetProfile:
         fusion wins, then the earlier entry. None when any op is unsupported;
         0.0 for an empty chain.
         """
+        parts = self.cost_parts(ops, after, linear=linear)
+        return None if parts is None else sum(p.cost for p in parts)
+
+    def cost_parts(self, ops: Sequence[str], after: str | None = None, *,
+                   linear: bool = False) -> list["ChainPart"] | None:
+        """How :meth:`cost_of` prices the chain: one :class:`ChainPart` per fused pattern or lone op, in order.
+
+        None when any op is unsupported; [] for an empty chain. The costs sum to ``cost_of``.
+        """
         chain = _op_list(ops)
         if any(self.cost(op) is None for op in chain):
             return None
-        total, i = 0.0, 0
+        parts, i = [], 0
         while i < len(chain):
             producer = after if i == 0 else None
             fusion = self._longest_fusion(chain, i, producer, whole=not linear)
             if fusion is None:
-                total += self.cost(chain[i])
+                parts.append(ChainPart((chain[i],), self.cost(chain[i])))
                 i += 1
             else:
-                total += fusion.cost
+                parts.append(ChainPart(fusion.ops, fusion.cost, fusion))
                 i += len(fusion.ops)
-        return total
+        return parts
 
     def _longest_fusion(self, chain: list[str], i: int, producer: str | None, whole: bool) -> Fusion | None:
         best: Fusion | None = None

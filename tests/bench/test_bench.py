@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -23,7 +24,7 @@ SMALLEST = min(DEMO.glob("*.onnx"), key=lambda p: p.stat().st_size)
 TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
-            "memory_factors", "rungs", "family_rule", "scale"}
+            "memory_factors", "rungs", "family_rule", "target", "scale"}
 MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory"}
 FAMILY = {"family", "targets", "ladder", "cost", "speed", "int8", "notes"}
 LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "delta_pp", "n"}
@@ -53,17 +54,25 @@ def quick_run(cli, tmp_path_factory):
     assert result.exit_code == 0, result.output
     folders = sorted(p for p in out.iterdir() if p.is_dir())
     assert len(folders) == 1
-    return folders[0], val
+    return folders[0], val, result.output
+
+
+def test_bench_prints_no_library_log_lines_or_raw_floats(quick_run):
+    _, _, output = quick_run
+    # onnxruntime's quantizer logs through the root logger ("root: ..."); figures are printed rounded
+    assert not [line for line in output.splitlines() if line.startswith("root:") or "WARNING" in line]
+    assert not re.search(r"\d\.\d{9,}", output), output
 
 
 def test_quick_bench_writes_every_documented_field(quick_run):
-    folder, _ = quick_run
+    folder, _, _ = quick_run
     # source: the schema swapper.bench/1 as documented in the swapper/bench/run.py module docstring
     data = json.loads((folder / "results.json").read_text())
     assert TOP <= set(data) and data["schema"] == "swapper.bench/1"
     assert folder.name == data["created_utc"] and len(data["created_utc"]) == len("20240101T000000Z")
     assert MACHINE <= set(data["machine"]) and SETTINGS <= set(data["settings"])
     assert data["settings"]["quick"] is True and "--quick" in data["settings"]["command"]
+    assert data["settings"]["target"] == "ort-cpu" and "--target ort-cpu" in data["settings"]["command"]
     assert len(data["models"]) == 1
     model = data["models"][0]
     assert MODEL <= set(model) and model["synthetic"] is False and model["name"] == SMALLEST.stem
@@ -89,7 +98,7 @@ def test_quick_bench_writes_every_documented_field(quick_run):
 
 
 def test_ladder_original_matches_independent_accuracy(quick_run):
-    folder, val = quick_run
+    folder, val, _ = quick_run
     data = json.loads((folder / "results.json").read_text())
     with np.load(val) as v:
         pixels, labels = v["pixels"], v["labels"]

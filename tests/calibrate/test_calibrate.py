@@ -57,8 +57,8 @@ def spy(monkeypatch):
     seen = {"x": {}, "held": {}, "held_bytes": {}, "observers": {}, "caches": []}
     real = cal.observer_for
 
-    def observer(swap, seed, reservoir):
-        obs = real(swap, seed, reservoir)
+    def observer(swap, seed, reservoir, rows=False):
+        obs = real(swap, seed, reservoir, rows)
         sid = swap.site_id
         seen["x"][sid], seen["held"][sid], seen["held_bytes"][sid] = [], [], []
         seen["observers"][sid] = obs
@@ -522,3 +522,39 @@ def test_results_do_not_depend_on_the_cache_budget(monkeypatch):
         assert (result.cache["bytes_written"] > 0) == (budget < 1 << 30)
         out[budget] = rewrite(result.model, sites, result.plan).model.SerializeToString(deterministic=True)
     assert len(set(out.values())) == 1  # spilled or not, the same bytes come back
+
+
+def test_a_residual_stream_is_recorded_once_not_recomputed_per_level(monkeypatch):
+    # The status encoder's residual stream runs past both GELU sites (demo_models/README.md), so level 2 needs
+    # the stream from level 1. It is recorded by level 1's segments and read back, and the fit is bit for bit
+    # the one computed by re-running the model from its inputs. Re-running is had by emptying the private
+    # _cut (no frontier): there is no public switch, and the point is that the two agree.
+    from testkit import DEMO
+
+    from swapper.core.model_io import load_model
+
+    loaded = load_model(DEMO / "status_encoder_gelu.onnx")
+    from swapper import api
+
+    data = api.load_data(DEMO / "status_calib.npz", loaded)
+    sites = find_sites(loaded.model)
+    plan = make_plan(loaded.model, sites, to="relu")
+    reads = []
+
+    class RecordingCache(TensorCache):
+        def read(self, name, start, stop):
+            reads.append(name)
+            return super().read(name, start, stop)
+
+    monkeypatch.setattr(cal, "TensorCache", RecordingCache)
+    with_frontier = cal.calibrate(loaded.model, sites, plan, data, batch_size=64)
+    site_keys = {p + t for s in sites for t in (s.input, s.output) for p in (cal.ORIGINAL, cal.CANDIDATE)}
+    assert set(reads) - site_keys, "level 2 should read a recorded tensor other than the sites' own"
+    monkeypatch.setattr(cal, "_cut", lambda *args: set())
+    reads.clear()
+    rerun = cal.calibrate(loaded.model, sites, plan, data, batch_size=64)
+    assert not set(reads) - site_keys
+    for a, b in zip(with_frontier.plan.swaps, rerun.plan.swaps):
+        for p in "abcd":
+            np.testing.assert_array_equal(getattr(a, p), getattr(b, p))
+    assert with_frontier.model.SerializeToString() == rerun.model.SerializeToString()

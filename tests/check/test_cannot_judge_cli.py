@@ -47,7 +47,7 @@ def encoder(tmp_path_factory):
     shutil.copyfile(ENCODER, model)
     before = model.read_bytes()
     out = root / "swapped.onnx"
-    result = invoke("swap", model, "-o", out, "--calib", CALIB, "--val", VAL, "--to", "hard_swish",
+    result = invoke("swap", model, "-o", out, "--calib", CALIB, "--val", VAL, "--to", "hard_swish", "--plan", "all",
                     "--report", root / "rep")
     yield {"root": root, "model": model, "out": out, "result": result, "report": root / "rep" / "report.json"}
     assert model.read_bytes() == before  # README: the input model is never overwritten

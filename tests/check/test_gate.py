@@ -65,8 +65,8 @@ def _swap_cnn(cli, ws, label: str, *options):
     """`swapper swap` of meter_cnn_silu with --calib/--val and ``options``; (result, output path, report folder)."""
     out = ws["root"] / f"{label}.onnx"
     rep = ws["root"] / f"rep-{label}"
-    result = cli("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, *options,
-                 "--report", rep)
+    result = cli("swap", ws["models"]["meter_cnn_silu"], "-o", out, "--calib", CALIB, "--val", VAL, "--plan", "all",
+                 *options, "--report", rep)
     return result, out, rep
 
 

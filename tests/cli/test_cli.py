@@ -136,7 +136,8 @@ def test_scan_json_lists_the_documented_sites(cli, workspace, name):
     fields = {"id": str, "function": str, "params": dict, "input": str, "output": str, "nodes": list, "form": str,
               "shape": (list, type(None)), "channel_axis": (int, type(None)), "channels": (int, type(None)),
               "producer": (str, type(None)), "consumers": list, "role": str, "elements": (int, type(None)),
-              "cost": float, "cost_share": float, "supported": bool, "reason": (str, type(None)), "domain": str}
+              "cost": float, "cost_share": float, "supported": bool, "reason": (str, type(None)), "domain": str,
+                  "body": list}
     for s in sites:
         assert set(s) == set(fields), sorted(set(s) ^ set(fields))
         for key, typ in fields.items():
@@ -320,7 +321,13 @@ def test_not_an_onnx_file(cli, tmp_path):
 # ----------------------------------------------------------------------------- demo
 
 
-def test_demo_writes_one_report_per_model(cli, tmp_path):
+def test_demo_writes_one_report_per_model(cli, tmp_path, monkeypatch):
+    from swapper.sweep.run import SweepSettings
+
+    # the demo's automatic plan sweeps in two worker processes, where the session's stand-in clock
+    # (conftest.no_target_timing) does not reach; here it sweeps in this process, fewer candidates
+    monkeypatch.setattr("swapper.cli.demo.demo_sweep",
+                        lambda: SweepSettings(surrogates=("relu",), placements=("exact",), refit=(False,)))
     out = tmp_path / "demo"
     result = cli("demo", "--out", out)
     # README "Exit codes": every demo model runs to a verdict, so the demo exits 0
@@ -346,3 +353,21 @@ def test_demo_writes_one_report_per_model(cli, tmp_path):
         assert payload["verdict"]["metric"] == {"classification": "top1", "embedding": "cosine"}[task]
     for name in ran:
         assert name in result.stdout
+    # the ResNet's report holds the automatic plan: per site the candidates tried and the choice
+    search = json.loads(next(out.glob("meter_resnet_silu-*/report.json")).read_text())["search"]
+    assert len(search["sites"]) == 13 and all(s["candidates"] for s in search["sites"])
+
+
+@pytest.mark.parametrize("plan", ["all", "auto"])
+def test_same_inputs_and_seed_give_the_same_model_bytes(cli, tmp_path, plan):
+    # README "Calibration": same inputs and --seed give the same output bytes, whatever the machine's load
+    # (timings measured on the target go to the report, never into the written model; the automatic
+    # plan's choice follows its timings, here the session's stand-in clock)
+    written = []
+    for k in range(2):
+        out = tmp_path / f"m{k}.onnx"
+        result = cli("swap", DEMO / "meter_gelu_mlp.onnx", "-o", out, "--calib", CALIB, "--val", VAL,
+                     "--plan", plan, "--report", tmp_path / f"r{k}")
+        assert result.exit_code == 0, result.output
+        written.append(out.read_bytes())
+    assert written[0] == written[1]

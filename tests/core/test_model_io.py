@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import os
 import pickle
+from pathlib import Path
 
 import numpy as np
 import onnx
@@ -153,16 +154,16 @@ def test_save_is_atomic_and_never_overwrites_the_input(tmp_path):
 def test_save_into_missing_or_readonly_folder(tmp_path):
     with pytest.raises(BadOutputError, match="does not exist"):
         save_model(tiny_model(), tmp_path / "nope" / "m.onnx")
-    ro = tmp_path / "ro"
-    ro.mkdir()
-    ro.chmod(0o500)
-    try:
-        if os.access(ro, os.W_OK):  # root ignores permission bits
-            pytest.skip("running as a user that can write to read-only folders")
-        with pytest.raises(BadOutputError, match="not writable"):
-            save_model(tiny_model(), ro / "m.onnx")
-    finally:
-        ro.chmod(0o700)
+    # Read-only places that stay read-only for root (a chmod 0500 folder does not: root ignores the mode):
+    # a path whose parent is a regular file (ENOTDIR) and procfs, which refuses new files (proc(5)).
+    taken = tmp_path / "taken.txt"
+    taken.write_text("x")
+    with pytest.raises(BadOutputError, match="is not a folder"):
+        save_model(tiny_model(), taken / "m.onnx")
+    if Path("/proc/self").is_dir():
+        with pytest.raises(BadOutputError, match="cannot write in folder '/proc'"):
+            save_model(tiny_model(), "/proc/m.onnx")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["taken.txt"]  # nothing left behind
 
 
 def test_errors_are_one_line_exceptions(tmp_path):

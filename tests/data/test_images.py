@@ -273,7 +273,7 @@ def test_cli_swap_from_image_folders_reports_the_class_mapping(tmp_path):
                     (base + rng.integers(-30, 30, size=(9, 7, 3))).clip(0, 255))
     out, report = tmp_path / "out.onnx", tmp_path / "report"
     result = CliRunner().invoke(app, ["swap", str(classifier(tmp_path / "m.onnx")), "-o", str(out),
-                                      "--calib", str(tmp_path / "calib"), "--val", str(tmp_path / "val"),
+                                      "--calib", str(tmp_path / "calib"), "--val", str(tmp_path / "val"), "--plan", "all",
                                       "--prep", "size=6x6", "--prep", "mean=0.5", "--budget", "100",
                                       "--report", str(report)])
     assert result.exit_code == 0, result.output

@@ -31,6 +31,7 @@ from swapper.errors import UsageError
 from swapper.fit.channel import outer_fit
 from swapper.fit.observe import ChannelObserver
 from swapper.fit.site import fit_channels
+from swapper.functions.forms import get_form
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.plan.plan import Plan, make_plan
 from swapper.report.build import write_report
@@ -105,13 +106,16 @@ def _assert_truthful(loaded, result: api.SwapResult, feeds: dict, tmp_path: Path
     assert payload["sites"][0]["placement"] == placement and payload["plan"]["swaps"][0]["placement"] == placement
     assert " ".join(f"{p}:{placement[p]}" for p in PARAMS) in html_path.read_text()
 
-    # parameter nodes: one Mul (a, b) or Add (c, d) per non-neutral parameter placed as "nodes", none else
+    # parameter nodes: one Mul (a, b) or Add (c, d) per non-neutral parameter placed as "nodes", none else,
+    # next to the ops of the plan's emission form
+    assert Plan.from_json(meta[PLAN_KEY]).swaps[0].form == swap.form == record.form
     prefix = f"swapper/{swap.site_id}/"
     added = [n for n in candidate.graph.node if n.name.startswith(prefix)]
     assert record.nodes_added == len(added)
+    form_ops = get_form(swap.target, swap.form).op_types(swap.target_params)
     for op, params in (("Mul", "ab"), ("Add", "cd")):
         want = sum(placement[p] == "nodes" and not np.all(getattr(swap, p) == NEUTRAL[p]) for p in params)
-        assert sum(n.op_type == op for n in added) == want, (op, placement)
+        assert sum(n.op_type == op for n in added) == want + form_ops.count(op), (op, placement, form_ops)
 
     # a layer's weights or bias changed exactly when the record says something folded into it
     base = result.calibration.model

@@ -67,8 +67,8 @@ def test_sigmoid_inside_an_if_branch_reaching_the_output():
               [("X", [2, 3, 4]), ("c", [])], [("Y", [2, 12])])
     sites = {s.function: s for s in find_sites(m)}
     sig, relu = sites["sigmoid"], sites["relu"]
-    assert (sig.role, sig.supported) == ("output", False) and relu.role == "output"
-    assert sig.reason.startswith("inside the then_branch of If ") and sig.reason.endswith("subgraphs are not rewritten yet")
+    assert (sig.role, sig.supported) == ("output", True) and relu.role == "output"
+    assert sig.body == (("If_0", "then_branch"),) and sig.reason is None
     # source: ONNX operator spec, If returns the taken branch's outputs; Flatten keeps the values
     got = run(m, X=X, c=np.array(True))[0]
     np.testing.assert_allclose(got.ravel(), expit(X.astype(np.float64)).ravel(), rtol=1e-5, atol=1e-7)
@@ -98,7 +98,7 @@ def test_loop_carried_sigmoid_leaves_through_the_loop_output():
     m = build([nd("Loop", ["trips", "", "X"], ["L"], body=body), nd("Transpose", ["L"], ["Y"], perm=[0, 2, 1])],
               [("X", [2, 3, 4])], [("Y", [2, 4, 3])], [("trips", np.array(1, np.int64))])
     (site,) = find_sites(m)
-    assert (site.function, site.role, site.supported) == ("sigmoid", "output", False)
+    assert (site.function, site.role, site.supported) == ("sigmoid", "output", True)
     # source: ONNX operator spec, Loop: final loop-carried value = body output 1 after the last trip
     np.testing.assert_allclose(run(m, X=X)[0], expit(X.astype(np.float64)).transpose(0, 2, 1), rtol=1e-5, atol=1e-7)
 

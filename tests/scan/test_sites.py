@@ -132,12 +132,11 @@ def loop_model():
     return build(nodes, [("X", [1, 4])], [("Y", [1, 4])], [("trips", np.array(3, np.int64))])
 
 
-def test_loop_body_site_reported_unsupported_after_main_graph_sites():
+def test_loop_body_site_listed_after_main_graph_sites_with_its_body():
     # main-graph ids do not depend on what bodies hold: s1, s2 there, body sites numbered on
     sites = find_sites(loop_model())
-    assert [(s.id, s.function, s.supported) for s in sites] == [
-        ("s1", "tanh", True), ("s2", "relu", True), ("s3", "sigmoid", False)]
-    assert sites[2].reason.startswith("inside the body of Loop ")
+    assert [(s.id, s.function, s.supported, s.body) for s in sites] == [
+        ("s1", "tanh", True, ()), ("s2", "relu", True, ()), ("s3", "sigmoid", True, (("Loop_1", "body"),))]
 
 
 def test_if_branches_are_scanned():
@@ -151,8 +150,8 @@ def test_if_branches_are_scanned():
               [("X", [1, 4])], [("Y", [1, 4])], [("c", np.array(True))])
     sites = find_sites(m)
     # attributes in name order: else_branch before then_branch
-    assert [(s.function, s.supported) for s in sites] == [("elu", False), ("softplus", False)]
-    assert [s.reason.split(" of If")[0] for s in sites] == ["inside the else_branch", "inside the then_branch"]
+    assert [(s.function, s.supported) for s in sites] == [("elu", True), ("softplus", True)]
+    assert [s.body for s in sites] == [(("If_0", "else_branch"),), (("If_0", "then_branch"),)]
 
 
 # ----------------------------------------------------------------- cost, JSON
@@ -176,7 +175,8 @@ def test_scan_json_schema(tmp_path):
     assert first["id"] == "s1" and first["shape"] == ["N", 8, 5, 5] and isinstance(first["nodes"], list)
     assert set(first) == {"id", "function", "params", "input", "output", "nodes", "form", "shape", "channel_axis",
                           "channels", "producer", "consumers", "role", "elements", "cost", "cost_share",
-                          "supported", "reason", "domain"}
+                          "supported", "reason", "domain", "body"}
+    assert first["body"] == []  # a main-graph site
 
 
 def test_deterministic():

@@ -1,4 +1,4 @@
-"""Sites inside If/Loop/Scan bodies: listed with function and role, not swappable, main-graph ids untouched."""
+"""Sites inside If/Loop/Scan bodies: listed with function, role and body, swappable, main-graph ids untouched."""
 from __future__ import annotations
 
 import numpy as np
@@ -38,11 +38,11 @@ def scan_model():
                  [vi("X", [3, 4])], [vi("Y", [3, 4])])
 
 
-def test_scan_body_silu_is_listed_as_an_output_site_not_swappable():
+def test_scan_body_silu_is_listed_as_an_output_site_in_its_body():
     (site,) = find_sites(scan_model())
     assert (site.id, site.function, site.form) == ("s1", "silu", "silu/mul-sigmoid")
-    assert (site.role, site.supported) == ("output", False)
-    assert site.reason == "inside the body of Scan 'Scan_0'; subgraphs are not rewritten yet"
+    assert (site.role, site.supported, site.reason) == ("output", True, None)
+    assert site.body == (("Scan_0", "body"),)
     # source: ONNX operator spec, Scan: scan output k stacks body output k over the iterations
     x = np.linspace(-3, 3, 12, dtype=np.float32).reshape(3, 4)
     sess = ort.InferenceSession(scan_model().SerializeToString(), providers=["CPUExecutionProvider"])
@@ -71,10 +71,10 @@ def test_main_graph_ids_do_not_depend_on_what_bodies_hold():
     plain, busy = find_sites(if_between(False)), find_sites(if_between(True))
     main = [(s.id, s.function) for s in plain]
     assert main == [("s1", "tanh"), ("s2", "relu")]
-    assert [(s.id, s.function) for s in busy if s.supported] == main
-    inside = [(s.id, s.function, s.role, s.supported) for s in busy if not s.supported]
+    assert [(s.id, s.function) for s in busy if not s.body] == main
+    inside = [(s.id, s.function, s.role, s.supported) for s in busy if s.body]
     # the branch sites feed the If's output, which a MatMul reads: hidden, not outputs
-    assert inside == [("s3", "softplus", "pointwise", False), ("s4", "tanh", "pointwise", False)]
+    assert inside == [("s3", "softplus", "pointwise", True), ("s4", "tanh", "pointwise", True)]
 
 
 def test_body_site_reading_an_outer_tensor_takes_its_shape_from_the_enclosing_graph():
@@ -82,10 +82,10 @@ def test_body_site_reading_an_outer_tensor_takes_its_shape_from_the_enclosing_gr
     assert body_site.input == "T" and body_site.shape == (2, 4) and body_site.producer == "Tanh"
 
 
-def test_default_swap_plans_only_main_graph_sites(tmp_path):
+def test_default_swap_plans_pointwise_body_sites_like_main_graph_ones(tmp_path):
     path = tmp_path / "m.onnx"
     onnx.save(if_between(True), path)
     result = api.swap(path)
-    assert [s.site_id for s in result.plan.swaps] == ["s1"]  # the Tanh; Relu is cheap
-    skipped = {k.site_id: k.reason for k in result.plan.skipped}
-    assert skipped["s3"].startswith("inside the then_branch of If ")
+    # the Tanh; the branch's Softplus and Tanh; Relu is cheap
+    assert [s.site_id for s in result.plan.swaps] == ["s1", "s3", "s4"]
+    assert {k.site_id: k.reason for k in result.plan.skipped} == {"s2": "relu is already cheap"}

@@ -324,6 +324,11 @@ def test_cost_of_longest_match_and_tie_rules(tmp_path):
     assert p.cost_of(["Relu", "Erf"]) is None
     with pytest.raises(TypeError):
         p.cost_of("Relu")
+    # cost_parts says which pattern priced which ops, and sums to cost_of (the same hand arithmetic)
+    parts = p.cost_parts(["Relu", "Sigmoid", "Mul"])
+    assert [(q.ops, q.cost) for q in parts] == [(("Relu",), 1.0), (("Sigmoid", "Mul"), 4.0)]
+    assert parts[0].fusion is None and parts[1].fusion.anywhere
+    assert p.cost_parts(["Relu", "Erf"]) is None and p.cost_parts([]) == []
 
 
 @pytest.mark.parametrize("name", sorted(EXPECTED))
