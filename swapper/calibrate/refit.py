@@ -96,7 +96,7 @@ from swapper.calibrate.tokens import is_token_site, observe, token_selection
 from swapper.core.conv import conv_geometry, im2col
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads
-from swapper.core.surgery import all_names, copy_model
+from swapper.core.surgery import all_names, copy_model, drop_unused, used_names
 from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
 from swapper.data.dataset import Dataset, input_batches
 from swapper.data.token_mask import AUTO, TOKEN_CAP, TokenSelection, token_rows
@@ -315,6 +315,7 @@ def refit_consumers(
     decisions: dict[str, RefitDecision] = {}
     orig_index = GraphIndex.of(original)
     taken = all_names(work)  # names fresh weight copies must avoid; write_theta adds the ones it takes
+    read_before = used_names(work)
     changed: set[str] = set()  # outputs of the consumers refitted so far
 
     with TensorCache(memory_budget=cache_bytes) as cache:
@@ -346,6 +347,8 @@ def refit_consumers(
                     changed.update(c.output for c in mine if c.node in decision.consumers)
             cand.discard(level.done)
             orig.discard(level.done)
+    # a weight held by a Constant node is rewritten as a fresh initializer: the Constant goes when nothing reads it
+    drop_unused(work, read_before)
     return RefitResult(model=work, plan=plan, notes=notes, timings={"refit_s": time.perf_counter() - t_start},
                        decisions=decisions)
 
