@@ -27,6 +27,7 @@ a stays.
 from __future__ import annotations
 
 import logging
+import math
 from dataclasses import dataclass
 
 import numpy as np
@@ -61,8 +62,16 @@ def centred_moments(X: np.ndarray, Y: np.ndarray, g: Func, b: np.ndarray, c: np.
 
 
 def objective(a: np.ndarray, metric: np.ndarray, szz: np.ndarray, szy: np.ndarray, syy: np.ndarray) -> float:
-    """J(a) of the module docstring from the centred moments."""
-    return float(a @ (metric * szz) @ a - 2 * a @ np.diag(szy @ metric) + np.trace(metric @ syy))
+    """J(a) of the module docstring from the centred moments.
+
+    diag(S_zy·M) and tr(M·S_yy) are taken entry by entry (O(C²)), not through the (C, C) products (O(C³)).
+    """
+    return float(a @ (metric * szz) @ a - 2 * a @ _cross(szy, metric) + np.sum(metric * syy.T))
+
+
+def _cross(szy: np.ndarray, metric: np.ndarray) -> np.ndarray:
+    """diag(S_zy·M): Σ_j S_zy[i, j]·M[j, i] per channel i."""
+    return np.einsum("ij,ji->i", szy, metric)
 
 
 def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.ndarray, c: np.ndarray,
@@ -74,6 +83,12 @@ def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.nda
     is not finite, or does not lower J.
     """
     a = np.asarray(a, dtype=np.float64)
+    if X.shape[1] < ROWS_PER_CHANNEL * len(a):  # asked first: the moments of many channels cost C²·n
+        my = np.asarray(Y, dtype=np.float64).mean(axis=1)
+        mz = apply_g(g, np.asarray(b, dtype=np.float64)[:, None] * np.asarray(X, dtype=np.float64)
+                     + np.asarray(c, dtype=np.float64)[:, None]).mean(axis=1)
+        return JointSlopes(a, my - a * mz, math.nan, math.nan, False,
+                           f"{X.shape[1]} samples are too few for {len(a)} channels' cross-covariances")
     mz, my, szz, szy, syy = centred_moments(np.asarray(X, dtype=np.float64), np.asarray(Y, dtype=np.float64),
                                             g, np.asarray(b, dtype=np.float64), np.asarray(c, dtype=np.float64))
     metric = (np.asarray(metric, dtype=np.float64) + np.asarray(metric, dtype=np.float64).T) / 2
@@ -82,14 +97,12 @@ def joint_slopes(X: np.ndarray, Y: np.ndarray, g: Func, a: np.ndarray, b: np.nda
     def keep(why: str) -> JointSlopes:
         return JointSlopes(a, my - a * mz, before, before, False, why)
 
-    if X.shape[1] < ROWS_PER_CHANNEL * len(a):
-        return keep(f"{X.shape[1]} samples are too few for {len(a)} channels' cross-covariances")
     system = metric * szz
     scale = float(np.trace(system)) / max(len(system), 1)
     if not np.isfinite(scale) or scale <= 0:
         return keep("no spread to solve on")
     try:
-        joint = np.linalg.solve(system + RIDGE * scale * np.eye(len(system)), np.diag(szy @ metric))
+        joint = np.linalg.solve(system + RIDGE * scale * np.eye(len(system)), _cross(szy, metric))
     except np.linalg.LinAlgError:
         return keep("singular system")
     if not np.all(np.isfinite(joint)):
@@ -122,7 +135,7 @@ def _held_out_gain(X, Y, g, b, c, metric, folds: int) -> float | None:
         system = metric * szz
         scale = float(np.trace(system)) / max(len(system), 1)
         try:
-            joint = np.linalg.solve(system + RIDGE * max(scale, 1e-300) * np.eye(len(system)), np.diag(szy @ metric))
+            joint = np.linalg.solve(system + RIDGE * max(scale, 1e-300) * np.eye(len(system)), _cross(szy, metric))
         except np.linalg.LinAlgError:
             return None
         moments = centred_moments(X[:, test], Y[:, test], g, b, c)[2:]

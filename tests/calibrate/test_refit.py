@@ -234,6 +234,35 @@ def test_gram_memory_does_not_grow_with_the_dataset():
     assert peak_four < 1.5 * peak_one + 1e6, (peak_one, peak_four)
 
 
+def test_capped_conv_rows_are_true_patch_and_output_pairs():
+    """Over the row cap, each sample gives cap // samples of its positions; the rows stay exact pairs."""
+    import copy
+
+    model = conv_chain()
+    sites, plan = _poor_plan(model, "relu")
+    consumers, _ = find_consumers(GraphIndex.of(model), sites[0], set())
+    unswapped = copy.deepcopy(plan)
+    unswapped.swaps = []  # the candidate is the original: X is the SiLU output conv2 reads, Y what conv2 gives
+    x = np.random.default_rng(3).normal(size=(30, 2, 7, 7))
+    folds = np.arange(30) % 4
+    grams = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=5)
+    total = grams["conv2"].total()
+    assert total.n == 30 * 10  # 10 of the 49 positions of each sample
+    # least squares on the sampled rows gives conv2 back: its weights and bias, as onnxruntime computed Y with them
+    theta = np.linalg.lstsq(total.xtx, total.xty, rcond=None)[0]
+    w2 = numpy_helper.to_array(next(t for t in model.graph.initializer if t.name == "W2")).astype(np.float64)
+    b2 = numpy_helper.to_array(next(t for t in model.graph.initializer if t.name == "B2")).astype(np.float64)
+    np.testing.assert_allclose(theta[:-1], w2.reshape(4, -1).T, atol=1e-4)
+    np.testing.assert_allclose(theta[-1], b2, atol=1e-4)
+    # the same seed draws the same rows; another seed others
+    again = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=5)["conv2"].total()
+    other = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=6)["conv2"].total()
+    assert np.array_equal(again.xtx, total.xtx) and not np.array_equal(other.xtx, total.xtx)
+
+
 # ------------------------------------------------------------- end to end
 @pytest.mark.skipif(not (DEMO / "meter_cnn_silu.onnx").exists() or not CALIB.exists(),
                     reason="demo models not built")
