@@ -36,6 +36,7 @@ from swapper.core.model_io import load_model
 from swapper.data.demo import DEMO_DIR, demo_inputs
 from swapper.data.source import DataSource
 from swapper.options import SwapOptions
+from swapper.report.numbers import signed
 from swapper.rewrite.apply import rewrite_identity_floor
 from swapper.sweep.run import SweepSettings
 
@@ -61,7 +62,7 @@ def auto_row(model: Path, calib: Path, val: Path, target: str, settings: SweepSe
     ratios = _ratio(loaded.model, res.swap.candidate, target, calib_ds)
     c = res.check.comparison
     row.update(ratios=ratios, ratio=statistics.median(ratios), metric=res.check.verdict.metric,
-               delta_pp=c.delta_pp, agreement=c.agreement, approved=res.check.verdict.approved,
+               drop_pp=None if c.drop() is None else c.drop()[0], agreement=c.agreement, approved=res.check.verdict.approved,
                cosine={k: v.get("cosine_mean") for k, v in c.output_errors.items()},
                swapped=[s.site_id for s in res.swap.plan.swaps])
     if floor:
@@ -124,14 +125,14 @@ def sweep_walls(model: Path, calib: Path, val: Path, settings: SweepSettings) ->
 def markdown(results: dict) -> str:
     lines = [f"# Automatic plan benchmark, {results['created_utc']}", "", f"machine: {results['machine']}", "",
              f"command: `{results['command']}`", "",
-             "| model | target | candidates | swapped | metric | Δ pp / cosine | ratio (median of 3) | floor share | s |",
+             "| model | target | candidates | swapped | metric | drop pp / cosine | ratio (median of 3) | floor share | s |",
              "|---|---|---|---|---|---|---|---|---|"]
     for r in results["auto"]:
         if not r["written"]:
             lines.append(f"| {r['model']} | {r['target']} | {r['candidates']} | nothing: {r['reason']} | | | | | "
                          f"{r['seconds']:.0f} |")
             continue
-        acc = f"{r['delta_pp']:+.2f}" if r["delta_pp"] is not None else \
+        acc = signed(r["drop_pp"]) if r.get("drop_pp") is not None else \
             ", ".join(f"{v:.5f}" for v in r["cosine"].values() if v is not None)
         share = f"{r['floor_share']:.2f} (floor {r['floor_ratio']:.3f})" if "floor_share" in r else ""
         lines.append(f"| {r['model']} | {r['target']} | {r['candidates']} | {len(r['swapped'])} | {r['metric']} | "

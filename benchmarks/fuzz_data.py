@@ -2,7 +2,7 @@
 
 Transformation: (demo calib.npz or val.npz arrays, seeded rng) -> a hostile .npz, .npy or .npy folder in a
 case folder. Container damage (zip bytes, deflate streams, encryption flags, compression methods, zip bombs,
-.npy headers) and content damage (dtypes, shapes, NaN/Inf, labels, targets, extra or missing arrays), plus
+.npy headers) and content damage (dtypes, shapes, NaN/Inf, labels, expected values, extra or missing arrays), plus
 special files (FIFOs, /dev/zero, symlinks, sub-folders, names with rich markup; fuzz_data_content.py). Every
 mutation is a small function ``(arrays, rng, ctx) -> Path`` registered in MUTATIONS.
 """
@@ -160,7 +160,7 @@ MUTATIONS = {
     "zip_method": zip_method,
     "zip_bomb": zip_bomb, "zip_size_lie": zip_size_lie, "zip_structure": zip_structure, "npy_header": npy_header,
     "arr_dtype": content.arr_dtype, "arr_shape": content.arr_shape, "arr_values": content.arr_values,
-    "labels_bad": content.labels_bad, "targets_bad": content.targets_bad, "arrays_names": content.arrays_names,
+    "labels_bad": content.labels_bad, "expected_bad": content.expected_bad, "arrays_names": content.arrays_names,
     "folder_special": content.folder_special, "path_special": content.path_special,
 }
 WEIGHTS = {"zip_bomb": 0.1, "path_special": 0.6}

@@ -1,4 +1,4 @@
-"""Data mutations on content and on the files themselves: dtypes, shapes, values, labels, targets, array
+"""Data mutations on content and on the files themselves: dtypes, shapes, values, labels, expected values, array
 names, and special files (FIFOs, /dev/zero, symlinks, sub-folders, names with rich markup). Each is
 ``(arrays, rng, ctx) -> Path`` (see fuzz_data.py)."""
 from __future__ import annotations
@@ -80,7 +80,7 @@ def arr_values(arrays, rng, ctx):
     elif kind in ("one", "two", "empty"):
         k = {"one": 1, "two": 2, "empty": 0}[kind]
         x = x[:k]
-        for name in ("labels", "targets"):
+        for name in ("labels", "expected", "targets"):
             if name in arrays:
                 arrays[name] = arrays[name][:k]
     arrays["pixels"] = x
@@ -100,9 +100,10 @@ def labels_bad(arrays, rng, ctx):
     return _save(arrays, rng, ctx)
 
 
-def targets_bad(arrays, rng, ctx):
+def expected_bad(arrays, rng, ctx):
     n = len(arrays["pixels"])
-    arrays["targets"] = rng.choice((
+    # "targets" is the older name of "expected", still read: both names are mutated
+    arrays[rng.choice(("expected", "targets"))] = rng.choice((
         np.zeros(n, np.float32), np.ones((n, 10), np.float32), np.ones((n, 3), np.float32),
         np.full(n, np.nan), np.zeros(n + 1), np.arange(n).astype(str), np.full((n, 10), 3.2e38, np.float32),
         np.arange(n) % 10,
@@ -125,7 +126,7 @@ def arrays_names(arrays, rng, ctx):
         arrays["pixels_b"] = x
         arrays["labels"] = np.arange(len(x)) % 10
     elif style == "reserved_only":
-        arrays = {"targets": x.reshape(len(x), -1)}
+        arrays = {rng.choice(("expected", "targets")): x.reshape(len(x), -1)}
     else:
         arrays["[/b]"] = arrays.pop("pixels")
     return _save(arrays, rng, ctx)

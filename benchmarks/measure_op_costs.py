@@ -23,7 +23,7 @@ The canonical form is the single op when the default domain has one at the
 opset we build with, else the decomposed subgraph exporters write. Functions
 only swapper writes (surrogates such as relu6, pwl) are built with the
 registry's own emitter, with the parameters they get when they replace a SiLU
-(``functions.target_params("silu", {}, name)``: e.g. the 6-segment
+(``functions.surrogate_params("silu", {}, name)``: e.g. the 6-segment
 piecewise-linear fit), form "emitted".
 
 Run:  python benchmarks/measure_op_costs.py [--repeats 20] [--sweeps 5] [--out PATH]
@@ -201,12 +201,12 @@ def registry_emitted(name: str):
 
     def build():
         from swapper.core.emit import Emitter
-        from swapper.functions.registry import get, target_params
+        from swapper.functions.registry import get, surrogate_params
 
         fn = get(name)
         em = Emitter(f"bench/{name}", OPSET)
         # a surrogate's own parameters as a real swap sets them (pwl: several knots, not the default single one)
-        params = target_params("silu", {}, name) if fn.is_cheap and fn.params else dict(fn.params)
+        params = surrogate_params("silu", {}, name) if fn.is_cheap and fn.params else dict(fn.params)
         fn.emit(em, "X", "Y", params)
         g = _G()
         g.nodes, g.inits = list(em.nodes), list(em.initializers)

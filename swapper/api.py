@@ -309,12 +309,18 @@ def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: i
 
 def _timed(sessions: dict, feeds: dict, threads: int, repeats: int, progress, what: str = "timing latency") -> dict:
     """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
+    import time
+
     from swapper.check.latency import measure_latency
 
+    # One intra-op thread computes on the calling thread: its CPU time does not grow while other processes
+    # hold a shared CPU, wall time does (check/on_target.py measured wall ratios 0.35-0.94 for one pair).
+    clock, clock_name = (time.thread_time_ns, "thread CPU time") if threads == 1 else \
+        (time.perf_counter_ns, "wall time")
     with progress.task(what, repeats) as advance:
-        timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats, advance=advance)
+        timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats, advance=advance, clock=clock)
     ratio = timed["candidate"].median_ms / timed["original"].median_ms
-    return {k: v.__dict__ for k, v in timed.items()} | {"ratio": ratio}
+    return {k: v.__dict__ for k, v in timed.items()} | {"ratio": ratio, "clock": clock_name}
 
 
 def _int8_view(original: onnx.ModelProto, candidate: onnx.ModelProto, val: Dataset, source: Dataset, feeds: dict, *,

@@ -16,8 +16,10 @@ from swapper.errors import UsageError
 
 logger = logging.getLogger(__name__)
 
-# Where a surrogate's parameters may go (see swapper/plan/placement.py).
-FOLD_POLICIES = ("exact", "nodes", "approximate", "off")
+# Where a surrogate's parameters may go (see swapper/plan/placement.py): "exact" folds what folds exactly and fixes
+# the rest at neutral values (no node added); "exact+nodes" folds the same and writes the rest as Mul/Add nodes.
+FOLD_POLICIES = ("exact", "exact+nodes", "approximate", "off")
+OLD_FOLD_WORDS = {"nodes": "exact+nodes"}  # still accepted, with a one-line note (removed in a later release)
 # Which inputs calibration fits on (see swapper/calibrate/loop.py).
 MODES = ("sequential", "local")
 # The target planned for unless told otherwise (swapper/targets/builtin/ort-cpu.json): never slower there.
@@ -60,9 +62,23 @@ def check_cache_mb(cache_mb: float | None) -> None:
         raise UsageError(f"cache_mb must be a finite number of MiB in 0..{MAX_CACHE_MB}, got {cache_mb!r}")
 
 
+def fold_word(fold: str) -> str:
+    """The fold policy ``fold`` names, older spellings (``nodes``) read as today's; UsageError if none."""
+    fold = OLD_FOLD_WORDS.get(fold, fold)
+    check_fold(fold)
+    return fold
+
+
+def fold_note(fold: str) -> str | None:
+    """The one-line deprecation note for an older fold spelling, or None."""
+    new = OLD_FOLD_WORDS.get(fold)
+    return None if new is None else (f"--fold {fold} is now spelled --fold {new} (exact folds, explicit nodes for "
+                                     "the rest); the old word goes in a later release")
+
+
 def check_fold(fold: str) -> None:
-    """Raise UsageError unless ``fold`` is a fold policy."""
-    if fold not in FOLD_POLICIES:
+    """Raise UsageError unless ``fold`` is a fold policy (today's spelling, or an older one)."""
+    if fold not in FOLD_POLICIES and fold not in OLD_FOLD_WORDS:
         raise UsageError(f"unknown fold policy {fold!r}; valid: {', '.join(FOLD_POLICIES)}")
 
 
@@ -123,7 +139,9 @@ class SwapOptions:
         if self.opset is not None and (isinstance(self.opset, bool) or not isinstance(self.opset, int)
                                        or self.opset < 1):
             raise UsageError(f"opset must be a positive integer, got {self.opset!r}")
-        check_fold(self.fold)
+        if fold_note(self.fold):
+            logger.warning(fold_note(self.fold))
+        object.__setattr__(self, "fold", fold_word(self.fold))
         check_mode(self.mode)
         check_batch_size(self.batch_size)
         check_threads(self.threads)

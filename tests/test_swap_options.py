@@ -28,7 +28,7 @@ needs_demo = pytest.mark.skipif(not (DEMO / "calib.npz").exists(), reason="demo 
 
 
 @pytest.mark.parametrize("changes, message", [
-    ({"fold": "tight"}, "unknown fold policy 'tight'; valid: exact, nodes, approximate, off"),
+    ({"fold": "tight"}, "unknown fold policy 'tight'; valid: exact, exact+nodes, approximate, off"),
     ({"mode": "global"}, "unknown mode 'global'; valid: sequential, local"),
     ({"threads": 0}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), got 0"),
     ({"threads": MAX_THREADS + 1}, f"threads must be a whole number in 1..{MAX_THREADS} (4 per core), "
@@ -52,7 +52,7 @@ def test_bad_settings_are_usage_errors(changes, message):
 
 
 def test_words_and_defaults():
-    assert FOLD_POLICIES == ("exact", "nodes", "approximate", "off") and MODES == ("sequential", "local")
+    assert FOLD_POLICIES == ("exact", "exact+nodes", "approximate", "off") and MODES == ("sequential", "local")
     # the CLI's defaults (swapper swap --help) are the object's defaults
     o = SwapOptions()
     assert (o.fold, o.mode, o.bias_correction, o.refit_consumers, o.batch_size, o.threads, o.seed) == \
@@ -83,7 +83,7 @@ def test_make_plan_refuses_the_same_fold_word_the_same_way():
     loaded = load_model(DEMO / "meter_gelu_mlp.onnx")
     with pytest.raises(UsageError) as err:
         make_plan(loaded.model, find_sites(loaded.model), fold="tight")
-    assert str(err.value) == "unknown fold policy 'tight'; valid: exact, nodes, approximate, off"
+    assert str(err.value) == "unknown fold policy 'tight'; valid: exact, exact+nodes, approximate, off"
 
 
 @needs_demo
@@ -126,3 +126,21 @@ def test_bench_rungs_are_swap_options():
         assert isinstance(o, SwapOptions)
         assert (o.mode, o.bias_correction, o.refit_consumers) == (mode, bias, refit)
         assert (o.to, o.batch_size, o.seed, o.threads) == ("relu", 32, 3, 1)
+
+
+@needs_demo
+def test_the_older_fold_spelling_still_works_with_a_one_line_note(tmp_path):
+    # README "Folding": `--fold nodes` is now `--fold exact+nodes`; the older word keeps working for a release
+    # and says so in one line on stderr. Same settings, same seed: the same model bytes (README "Calibration").
+    runner = CliRunner()
+    model = str(DEMO / "meter_gelu_mlp.onnx")
+    common = ["--calib", str(DEMO / "calib.npz"), "--target", "none", "--plan", "all"]
+    old = runner.invoke(app, ["swap", model, "-o", str(tmp_path / "old.onnx"), "--fold", "nodes", *common])
+    new = runner.invoke(app, ["swap", model, "-o", str(tmp_path / "new.onnx"), "--fold", "exact+nodes", *common])
+    assert old.exit_code == new.exit_code == 0, old.output + new.output
+    notes = [line for line in old.stderr.splitlines() if line.strip()]
+    assert len(notes) == 1 and "--fold nodes is now spelled --fold exact+nodes" in notes[0]
+    assert "nodes" not in new.stderr
+    assert (tmp_path / "old.onnx").read_bytes() == (tmp_path / "new.onnx").read_bytes()
+    # the API reads the older word too, recording today's
+    assert SwapOptions(fold="nodes").fold == "exact+nodes"

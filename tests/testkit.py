@@ -199,10 +199,10 @@ def reference_op(op: str, dtype=np.float64, **attrs) -> Callable[[np.ndarray], n
     return lambda z: evaluator.run(None, {"z": np.asarray(z, dtype=dtype)})[0].astype(np.float64)
 
 
-def in_memory(arrays: dict[str, np.ndarray], labels=None, targets=None) -> Dataset:
+def in_memory(arrays: dict[str, np.ndarray], labels=None, expected=None) -> Dataset:
     """A data set of the given input arrays (one row per sample), as swapper.data would load it."""
     arrays = {k: np.asarray(v) for k, v in arrays.items()}
-    return Dataset(path=Path("<memory>"), arrays=arrays, labels=labels, targets=targets,
+    return Dataset(path=Path("<memory>"), arrays=arrays, labels=labels, expected=expected,
                    n=len(next(iter(arrays.values()))), dtypes={k: v.dtype for k, v in arrays.items()})
 
 

@@ -11,7 +11,7 @@ from pathlib import Path
 
 from swapper.bench.measure import RUNGS
 from swapper.core.model_io import atomic_write_bytes
-from swapper.report.numbers import num
+from swapper.report.numbers import num, signed
 
 logger = logging.getLogger(__name__)
 
@@ -24,7 +24,7 @@ def _pct(x) -> str:
 
 
 def _pp(x) -> str:
-    return "–" if x is None else f"{x:+.2f}"
+    return signed(x)  # a drop that rounds to zero reads 0.00, never -0.00
 
 
 def _score(x, metric: str | None) -> str:
@@ -52,13 +52,13 @@ def _ladder(results: dict) -> list[str]:
             metric = lad["metric"]
             cells = [_model_label(m), f["family"], metric or "–", _score(lad["original"], metric)]
             for r in RUNGS:
-                cells.append("–" if lad[r] is None else f"{_score(lad[r], metric)} ({_pp(lad['delta_pp'][r])})")
+                cells.append("–" if lad[r] is None else f"{_score(lad[r], metric)} ({_pp(lad['drop_pp'][r])})")
             rows.append(cells)
-    head = ["model", "family", "metric", "original"] + [f"{RUNG_TITLES[r]} (Δ pp)" for r in RUNGS]
+    head = ["model", "family", "metric", "original"] + [f"{RUNG_TITLES[r]} (drop pp)" for r in RUNGS]
     lines = ["## Quality ladder", "", "The gate's default figure: validation top-1 accuracy % with labels, top-1 "
              "agreement % with the original for class scores without labels, mean per-sample cosine to the "
-             "original's output for embeddings and dense maps (SQNR in dB or RMSE for other outputs); Δ in points "
-             "vs the original for the percentages.", ""] + _table(head, rows)
+             "original's output for embeddings and dense maps (SQNR in dB or RMSE for other outputs); drop = original − rung "
+             "in points for the percentages (negative: the rung scores higher).", ""] + _table(head, rows)
     if any(m["synthetic"] for m in results["models"]):
         lines += ["Synthetic models have random, untrained weights and a head scaled to unit-variance scores, so "
                   "their top-1 is fragile (compare the int8 original's agreement below): use them for cost and "
@@ -136,7 +136,7 @@ def _speed(results: dict) -> list[str]:
             if q:
                 for bs, s in q["speed"].items():
                     qrows.append([_model_label(m), f["family"], bs, q["metric"] or "–", _score(q["original"], q["metric"]),
-                                  _score(q["swapped"], q["metric"]), _pp(q["delta_pp"]), num(s["original_ms"], ".4f"),
+                                  _score(q["swapped"], q["metric"]), _pp(q["drop_pp"]), num(s["original_ms"], ".4f"),
                                   num(s["swapped_ms"], ".4f"), num(s["ratio"], ".3f")])
     head = ["model", "family", "batch", "original ms", "swapped ms", "floor ms", "swapped/original",
             "saving achieved"]
@@ -144,17 +144,17 @@ def _speed(results: dict) -> list[str]:
              "interleaved runs. Floor = every swapped site replaced by Identity; saving achieved = "
              "(orig − swapped)/(orig − floor).", ""] + _table(head, rows)
     if qrows:
-        head = ["model", "family", "batch", "metric", "int8 original", "int8 swapped", "Δ pp",
+        head = ["model", "family", "batch", "metric", "int8 original", "int8 swapped", "drop pp",
                 "int8 original ms", "int8 swapped ms", "ratio"]
         lines += ["### int8 (QDQ, U8S8, MinMax on the calibration set)", "",
                   "The ladder's figure, measured against the fp32 original.", ""] + _table(head, qrows)
     return lines
 
 
-def _targets(results: dict) -> list[str]:
-    rows = [[t["target"], t["where"], t["measured"], {True: "met", False: "missed", None: "n/a"}[t["met"]]]
-            for t in results.get("targets", [])]
-    return ["## Targets", ""] + _table(["target", "where", "measured", "status"], rows) if rows else []
+def _goals(results: dict) -> list[str]:
+    rows = [[t["goal"], t["where"], t["measured"], {True: "met", False: "missed", None: "n/a"}[t["met"]]]
+            for t in results.get("goals", [])]
+    return ["## Goals", ""] + _table(["goal", "where", "measured", "status"], rows) if rows else []
 
 
 def write_markdown(results: dict, path: Path) -> Path:
@@ -168,7 +168,7 @@ def write_markdown(results: dict, path: Path) -> Path:
     ]
     if results["settings"]["quick"]:
         lines += ["**Quick run: tiny settings, a smoke test, not a measurement.**", ""]
-    lines += _ladder(results) + _cost(results) + _speed(results) + _targets(results)
+    lines += _ladder(results) + _cost(results) + _speed(results) + _goals(results)
     return atomic_write_bytes("\n".join(lines).encode("utf-8"), path)
 
 

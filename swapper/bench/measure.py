@@ -87,12 +87,12 @@ def metric_for(original: Reference, val: Dataset) -> str | None:
     """The gate's default metric for the original's outputs on ``val``, named as the bench names it.
 
     ``accuracy`` (labels + class scores), ``agreement`` (class scores), ``cosine`` (embeddings, dense
-    maps), ``sqnr`` (one value per sample), ``rmse`` (targets); None when the data cannot judge.
+    maps), ``sqnr`` (one value per sample), ``rmse`` (expected); None when the data cannot judge.
     """
     kinds = probe(original, val, batch_size=original.batch_size)  # from the stored outputs: no extra run
     try:
         choice = choose_metric(kinds, GateRule(), has_labels=val.labels is not None,
-                               has_targets=val.targets is not None)
+                               has_expected=val.expected is not None)
     except CannotJudge as exc:
         logger.info("no quality figure: %s", exc)
         return None
@@ -134,9 +134,9 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
             run.refit_result = result
         if log:
             log(f"{rung}: {metric} {_fmt(score, metric)} ({time.perf_counter() - t0:.1f}s)")
-    ladder["delta_pp"] = {
+    ladder["drop_pp"] = {  # original − rung, in points: the one sign convention (a gain is negative)
         r: (None if ladder[r] is None or ladder["original"] is None or metric not in FRACTION_METRICS
-            else 100.0 * (ladder[r] - ladder["original"]))
+            else 100.0 * (ladder["original"] - ladder[r]))
         for r in RUNGS
     }
     ladder["n"] = val.n
@@ -250,8 +250,8 @@ def int8_view(original: Reference, q_original: Int8Original, q_swapped: onnx.Mod
     scores = {"original": q_original.score, "swapped": _int8_score(original, swapped, val, batch_size)}
     metric = metric_for(original, val)
     view = {"metric": metric, "original": scores["original"], "swapped": scores["swapped"],
-            "delta_pp": None if None in scores.values() or metric not in FRACTION_METRICS
-            else 100.0 * (scores["swapped"] - scores["original"]),
+            "drop_pp": None if None in scores.values() or metric not in FRACTION_METRICS
+            else 100.0 * (scores["original"] - scores["swapped"]),
             "speed": {}}
     sessions = {"original": q_original.session, "swapped": swapped}
     for bs in batch_sizes:

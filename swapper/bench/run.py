@@ -22,16 +22,17 @@ results.json, schema ``swapper.bench.run/1``:
   - ``name``, ``path``, ``synthetic`` (bool: the generated scale model),
     ``calib_samples``, ``val_samples``, ``sites`` (ids swapped by the default plan);
   - ``families``: list of objects:
-    - ``family`` ("hard_swish", "relu", "default"...), ``targets`` (site id -> surrogate);
+    - ``family`` ("hard_swish", "relu", "default"...), ``surrogates`` (site id -> surrogate);
     - ``ladder``: ``metric``, the gate's default figure (``swapper.bench.measure.metric_for``):
       "accuracy" (labels + class scores), "agreement" (top-1 agreement with the
       original), "cosine" (mean per-sample cosine to the original's output; the
-      worst judged output), "sqnr" (dB; the original's is null), "rmse" (targets),
+      worst judged output), "sqnr" (dB; the original's is null), "rmse" (``expected`` values),
       or null when the data cannot judge the model; the figure for ``original``,
       ``naive`` (starting parameters, no calibration), ``local`` (local mode, no
       bias correction), ``sequential`` (no bias correction), ``sequential_bias``,
-      ``refit`` (+ consumer refit); null when the rung was not run; ``delta_pp``
-      (rung -> points vs original, accuracy and agreement only), ``n`` (validation samples);
+      ``refit`` (+ consumer refit); null when the rung was not run; ``drop_pp``
+      (rung -> original − rung in points, accuracy and agreement only; negative when
+      the rung scores higher), ``n`` (validation samples);
     - ``cost`` (sequential + bias rung): ``plain_pass_s`` (one onnxruntime pass of
       the original over the calibration set, median of 3), ``record_s``,
       ``segments_s``, ``fit_s``, ``bias_correction_s``, ``total_s`` (calibration
@@ -44,7 +45,7 @@ results.json, schema ``swapper.bench.run/1``:
       (swapped/original), ``saving_fraction`` ((orig − swapped)/(orig − floor),
       null when orig − floor < 2% of orig), ``note``;
     - ``int8``: ``metric`` (as the ladder's), ``original``, ``swapped`` (the int8 models'
-      figure against the fp32 original), ``delta_pp``, ``speed``: batch ->
+      figure against the fp32 original), ``drop_pp`` (original − swapped), ``speed``: batch ->
       ``original_ms``, ``swapped_ms``, ``ratio``; null if quantization failed;
     - ``notes``: list of strings.
   - ``memory`` (sequential + bias calibration of the first family, fresh process
@@ -55,7 +56,13 @@ results.json, schema ``swapper.bench.run/1``:
     ``peak_ratio_last_1``, ``time_ratio_last_1``; ``base_samples``.
   - ``memory_refit``: the same for the + consumer refit rung (the default
     ``swapper swap --calib``), or null when that rung is not run (``--quick``).
-- ``targets``: list of {``target``, ``where``, ``measured``, ``met`` (bool|null)}.
+- ``goals``: list of {``goal``, ``where``, ``measured``, ``met`` (bool|null)}: the
+  project's own performance goals (:mod:`swapper.bench.goals`).
+
+Renamed in schema /1 (same values): ``targets`` -> ``goals`` (and its rows'
+``target`` -> ``goal``), a family's ``targets`` -> ``surrogates``; ``delta_pp``
+(rung − original) -> ``drop_pp`` (original − rung), so "target" means a target
+profile only and every figure uses one sign.
 """
 from __future__ import annotations
 
@@ -69,7 +76,7 @@ import numpy as np
 import onnxruntime as ort
 
 from swapper import api
-from swapper.bench.goals import check_targets
+from swapper.bench.goals import check_goals
 from swapper.bench.markdown import write_markdown, write_plots
 from swapper.bench.measure import (
     RUNGS,
@@ -128,10 +135,10 @@ def machine_info() -> dict:
 
 def families_for(plan: Plan, *, quick: bool) -> list[tuple[str, str | None]]:
     """(family name, ``to`` for api.swap): the default plan's per-site surrogates, then relu."""
-    targets = sorted({s.target for s in plan.swaps})
-    if not targets:
+    surrogates = sorted({s.surrogate for s in plan.swaps})
+    if not surrogates:
         return []
-    first = (targets[0], targets[0]) if len(targets) == 1 else ("default", None)
+    first = (surrogates[0], surrogates[0]) if len(surrogates) == 1 else ("default", None)
     fams = [first] + ([("relu", "relu")] if first[0] != "relu" else [])
     return fams[:1] if quick else fams
 
@@ -183,8 +190,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
                              family=family_options(to, batch_size=batch, seed=SEED, target=settings["target"]),
                              log=flog)
-        fam = {"family": family, "targets": {}, "ladder": run.ladder, "cost": None, "cost_refit": None, "speed": {},
-               "int8": None, "notes": run.notes}
+        fam = {"family": family, "surrogates": {}, "ladder": run.ladder, "cost": None, "cost_refit": None,
+               "speed": {}, "int8": None, "notes": run.notes}
         if run.refit_result is not None:
             fam["cost_refit"] = tool_cost(run.refit_result, plain)
             flog(f"cost with refit: calibration {fam['cost_refit']['total_s']:.3f}s = "
@@ -193,7 +200,7 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         if run.swap_result is None:
             fam["notes"].append("no sequential + bias candidate: cost and speed not measured")
             continue
-        fam["targets"] = {s.site_id: s.target for s in run.swap_result.plan.swaps}
+        fam["surrogates"] = {s.site_id: s.surrogate for s in run.swap_result.plan.swaps}
         fam["cost"] = tool_cost(run.swap_result, plain)
         flog(f"cost: calibration {fam['cost']['total_s']:.3f}s = {fam['cost']['ratio_total']:.1f}x plain pass")
         if settings["repeats"]:
@@ -285,7 +292,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
 
     folder, stamp = _folder(out_root)
     results = {"schema": SCHEMA, "created_utc": stamp, "machine": machine_info(), "settings": settings,
-               "models": [], "targets": []}
+               "models": [], "goals": []}
     log(f"bench: {len(todo)} model(s){' + scale model' if scale else ''} -> {folder}")
     for model_path, calib_path, val_path in todo:
         loaded = load_model(model_path)
@@ -302,7 +309,7 @@ def run_bench(models: list[Path], *, demo: bool, calib: Path | None, val: Path |
         results["models"].append(entry)
     if scale:
         results["models"].append(_bench_scale(folder, settings, quick, log, progress))
-    results["targets"] = check_targets(results)
+    results["goals"] = check_goals(results)
     _write_json(results, folder / "results.json", log)
     write_markdown(results, folder / "results.md")
     for png in write_plots(results, folder):

@@ -128,5 +128,5 @@ def scale_inputs(n: int, *, size: int = 32, seed: int = 1) -> np.ndarray:
 def scale_data(n: int, *, size: int = 32, seed: int = 1) -> Dataset:
     """An unlabelled in-memory Dataset of :func:`scale_inputs` for the scale model."""
     arr = scale_inputs(n, size=size, seed=seed)
-    return Dataset(path=SYNTHETIC_PATH, arrays={INPUT_NAME: arr}, labels=None, targets=None, n=n,
+    return Dataset(path=SYNTHETIC_PATH, arrays={INPUT_NAME: arr}, labels=None, expected=None, n=n,
                    dtypes={INPUT_NAME: np.dtype(np.float32)})

@@ -346,7 +346,7 @@ def covers_mean(index: GraphIndex, site: Site) -> tuple[bool, str]:
 
     True when each reader is a linear layer with a correctable bias (directly or behind pools and
     reshapes) or a residual Add whose other operand's producer has a constant bias; else False and why.
-    Calibration then fits a held d as if it were free: its mean is cancelled downstream either way.
+    Calibration then fits a fixed d as if it were free: its mean is cancelled downstream either way.
     """
     if index.is_graph_output(site.output):
         return False, f"{site.output!r} is a graph output"

@@ -112,7 +112,7 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
     result rounded once on the final store, so the values are bit-equal to
     ``(a * g(b * x.astype(float64) + c) + d).astype(x.dtype)``.
     """
-    fn = functions.get(swap.target)
+    fn = functions.get(swap.surrogate)
     x = np.asarray(x)
     if x.ndim == 0:
         return surrogate_output(swap, x.reshape(1)).reshape(())
@@ -132,7 +132,7 @@ def surrogate_output(swap: SiteSwap, x: np.ndarray) -> np.ndarray:
         np.copyto(z, x[s])  # one widening copy, then same-dtype ufuncs (mixed dtypes go through slow buffers)
         np.multiply(z, pb, out=z)
         np.add(z, pc, out=z)
-        g = np.asarray(fn.ref(z, **swap.target_params), dtype=np.float64)
+        g = np.asarray(fn.ref(z, **swap.surrogate_params), dtype=np.float64)
         np.multiply(g, pa, out=z)
         np.add(z, pd, out=z)
         np.copyto(out[s], z, casting="same_kind")

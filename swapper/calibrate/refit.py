@@ -235,7 +235,7 @@ def _nodes_plan(plan: Plan) -> Plan:
     """A copy of ``plan`` that emits every moved parameter as a node: site output = a·g(b·x + c) + d."""
     out = copy.deepcopy(plan)
     for swap in out.swaps:
-        swap.placement = {p: ("held" if w == "held" else "nodes") for p, w in swap.placement.items()}
+        swap.placement = {p: ("fixed" if w == "fixed" else "nodes") for p, w in swap.placement.items()}
     return out
 
 

@@ -4,7 +4,7 @@ Transformation: ``swap``'s free parameters are fitted to an observer's (x, y)
 pairs (:func:`swapper.fit.site.fit_channels`, channel by channel), under two
 rules decided per site from the graph (:func:`fit_rules`):
 
-- *mean left to bias correction*: where d is held (it cannot fold, e.g. a
+- *mean left to bias correction*: where d is fixed (it cannot fold, e.g. a
   zero-padded Conv reads y) but bias correction cancels the mean change at
   every reader of y (:func:`swapper.calibrate.bias_correction.covers_mean`),
   d is fitted as if free and then dropped. The fit then spends a, b, c on
@@ -70,7 +70,7 @@ class Border:
 class FitRules:
     """How one site is fitted beyond its placement (module docstring)."""
 
-    mean_free: bool = False  # a held d may be fitted as free, then dropped (bias correction takes the mean)
+    mean_free: bool = False  # a fixed d may be fitted as free, then dropped (bias correction takes the mean)
     metric: np.ndarray | None = None  # (C, C) Gram of the readers' weights: slopes solved together
     borders: list[Border] = field(default_factory=list)  # zero-padded Convs among the readers
     notes: list[str] = field(default_factory=list)
@@ -79,7 +79,7 @@ class FitRules:
 def fit_rules(index: GraphIndex, site: Site, swap: SiteSwap, bias_correction: bool) -> FitRules:
     """The rules for ``site`` on the graph of ``index`` (the working model); ``bias_correction``: it will run."""
     rules = FitRules()
-    if swap.placement.get("d") == "held" and bias_correction:
+    if swap.placement.get("d") == "fixed" and bias_correction:
         rules.mean_free, _ = covers_mean(index, site)
     if swap.channels > 1 and ("a" in swap.free() or rules.mean_free):
         rules.metric, _ = consumer_metric(index, site)
@@ -112,7 +112,7 @@ def fit_swap(swap: SiteSwap, observer: ChannelObserver, rules: FitRules | None =
     Returns the mean mse before and after over channels, and notes.
     """
     rules = rules or FitRules()
-    g, dg = swap.surrogate()
+    g, dg = swap.bound_surrogate()
     swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
     free = "".join(swap.free())
     fitted = fit_channels(observer, g, init=swap.params(), free=free, dg=dg, **swap.fit_bounds())
@@ -125,7 +125,7 @@ def fit_swap(swap: SiteSwap, observer: ChannelObserver, rules: FitRules | None =
         held = _kept_error(X, Y, g, fitted.a, fitted.b, fitted.c, zero, rules.metric, rules.borders)
         dropped = _kept_error(X, Y, g, loose.a, loose.b, loose.c, zero, rules.metric, rules.borders)
         virtual_d = dropped < held
-        notes.append(f"d held: {'fitted as a free offset and dropped' if virtual_d else 'fitted held'}, as the "
+        notes.append(f"d fixed: {'fitted as a free offset and dropped' if virtual_d else 'fitted fixed at 0'}, as the "
                      f"error the readers keep after bias correction is {min(held, dropped):.4g} that way "
                      f"({max(held, dropped):.4g} the other)" + (" (with the zero-padding borders)" if rules.borders
                                                                  else ""))

@@ -9,7 +9,7 @@ Both models run batch by batch in onnxruntime on the CPU with fixed threading.
 The kind of every output (:mod:`swapper.check.kinds`) is read from the
 original's first batch. Top-1 figures come from the first class-score output
 (an embedding stands in when there is none, so ``--metric agreement`` can still
-be asked for); regression figures from the output matching ``targets``; error
+be asked for); regression figures from the output matching ``expected``; error
 figures and per-sample cosines from every numeric output. Only per-sample
 vectors (predictions, correctness, cosines) are kept; output tensors are folded
 into streaming accumulators and dropped. To judge several candidates
@@ -29,7 +29,7 @@ import onnxruntime as ort
 from swapper.check import stats
 from swapper.check.kinds import (
     OutputKind,
-    check_targets_fit,
+    check_expected_fit,
     class_output,
     default_metric,
     detect_kinds,
@@ -52,11 +52,12 @@ class Comparison:
     """Everything measured when running both models on the same samples.
 
     Accuracies and agreement are fractions in [0, 1]; ``delta_pp`` and the
-    interval are in percentage points (candidate − original).
+    interval are in percentage points (candidate − original); people read the
+    drop (original − candidate, :meth:`drop`), the one sign every page shows.
     """
 
     n: int
-    # "classification" (labels), "agreement" (class scores, no labels), "regression" (targets),
+    # "classification" (labels), "agreement" (class scores, no labels), "regression" (expected),
     # "similarity" (embeddings, dense maps, one value per sample), "outputs" (no float output)
     task: str
     top1_original: float | None = None
@@ -69,6 +70,7 @@ class Comparison:
     mcnemar_p: float | None = None
     interval: stats.Interval | None = None
     agreement: float | None = None  # fraction of samples with the same top-1 class
+    changed: dict | None = None  # the samples whose top-1 class changed (stats.changed_samples)
     regression: dict | None = None  # {"original": {mae, rmse}, "candidate": {mae, rmse}}
     # output name -> {max_abs, rmse, cosine, sqnr_db} and, for float outputs with >= 2 values per sample,
     # the per-sample cosine summary {cosine_mean, cosine_p5, cosine_min} (swapper.check.similarity)
@@ -76,15 +78,24 @@ class Comparison:
     output_kinds: list[OutputKind] = field(default_factory=list)  # every output, in the model's order
     class_output: str | None = None  # the output top-1 figures were read from
     has_labels: bool = False
-    has_targets: bool = False
+    has_expected: bool = False
     has_nonfinite: bool = False
     signature_changed: bool = False
     signature_reason: str = ""
     notes: list[str] = field(default_factory=list)
 
+    def drop(self) -> tuple[float, float | None, float | None] | None:
+        """The top-1 drop (original − candidate, points) and its interval (lo, hi); None without labels."""
+        if self.delta_pp is None:
+            return None
+        if self.interval is None:
+            return 0.0 - self.delta_pp, None, None
+        return 0.0 - self.delta_pp, 0.0 - self.interval.hi, 0.0 - self.interval.lo  # 0.0 - x: never -0.0
+
     def to_dict(self) -> dict:
         """Plain-JSON view: no numpy types; non-finite floats become null with a note."""
         notes = list(self.notes)
+        drop = self.drop()
         raw = {
             "n": self.n,
             "task": self.task,
@@ -93,11 +104,14 @@ class Comparison:
             "top5_original": self.top5_original,
             "top5_candidate": self.top5_candidate,
             "delta_pp": self.delta_pp,
+            "drop_pp": None if drop is None else drop[0],
+            "drop_interval_pp": None if drop is None or drop[1] is None else [drop[1], drop[2]],
             "n01": self.n01,
             "n10": self.n10,
             "mcnemar_p": self.mcnemar_p,
             "interval": self.interval.to_dict() if self.interval else None,
             "agreement": self.agreement,
+            "changed": self.changed,
             "regression": self.regression,
             "output_errors": self.output_errors,
             "output_kinds": {k.name: k.to_dict() for k in self.output_kinds},
@@ -219,7 +233,7 @@ def probe(original: Model | Reference, dataset: Dataset, *, batch_size: int = 64
     batch = next(batches(dataset, batch_size), None)
     if batch is None:
         raise BadDataError("the validation set has no samples")
-    return detect_kinds([o.name for o in sess.get_outputs()], run(batch), targets=dataset.targets)
+    return detect_kinds([o.name for o in sess.get_outputs()], run(batch), expected=dataset.expected)
 
 
 class _Tally:
@@ -229,7 +243,7 @@ class _Tally:
         self.names = names
         self.path = dataset.path
         self.labels_given = dataset.labels is not None
-        self.targets_given = dataset.targets is not None
+        self.expected_given = dataset.expected is not None
         self.kinds: list[OutputKind] = []
         self.errors: dict[str, stats.OutputErrorAccumulator] = {}
         self.cosines: dict[str, CosineAccumulator] = {}
@@ -242,15 +256,15 @@ class _Tally:
         self.use_labels = False
         self.notes: list[str] = []
 
-    def start(self, outs_o: list[np.ndarray], targets, path=None) -> None:
-        self.kinds = detect_kinds(self.names, outs_o, targets=targets)
-        check_targets_fit(self.kinds, targets, path)
+    def start(self, outs_o: list[np.ndarray], expected, path=None) -> None:
+        self.kinds = detect_kinds(self.names, outs_o, expected=expected)
+        check_expected_fit(self.kinds, expected, path)
         self.errors = {k.name: stats.OutputErrorAccumulator() for k, o in zip(self.kinds, outs_o) if _is_numeric(o)}
         self.cosines = {k.name: CosineAccumulator() for k in self.kinds if k.is_float and k.values_per_sample >= 2}
         self.cls = class_output(self.kinds, any_view=True)
         self.cls_index = self.names.index(self.cls.name) if self.cls is not None else None
         reg = regression_output(self.kinds)
-        self.reg_index = self.names.index(reg.name) if reg is not None and self.targets_given else None
+        self.reg_index = self.names.index(reg.name) if reg is not None and self.expected_given else None
         self.use_labels = self.labels_given and self.cls is not None
         if self.labels_given and self.cls is None:
             self.notes.append("labels not used: no output holds class scores [batch, classes]")
@@ -272,8 +286,8 @@ class _Tally:
         if self.cls_index is not None and not reason:
             self._classes(batch, _class_view(outs_o[self.cls_index]), _class_view(outs_c[self.cls_index]))
         if self.reg_index is not None:
-            self.reg["original"].update(outs_o[self.reg_index], batch.targets)
-            self.reg["candidate"].update(outs_c[self.reg_index], batch.targets)
+            self.reg["original"].update(outs_o[self.reg_index], batch.expected)
+            self.reg["candidate"].update(outs_c[self.reg_index], batch.expected)
         return reason
 
     def _classes(self, batch: Batch, so: np.ndarray, sc: np.ndarray) -> None:
@@ -344,7 +358,7 @@ def compare(
             has_nonfinite |= _nonfinite(outs_c)
             orig_nonfinite |= _nonfinite(outs_o)
             if n == 0:
-                tally.start(outs_o, dataset.targets, dataset.path)
+                tally.start(outs_o, dataset.expected, dataset.path)
             shape_change = tally.update(batch, outs_o, outs_c)  # always folds the batch in
             reason = reason or shape_change
             n += batch.stop - batch.start
@@ -352,12 +366,12 @@ def compare(
 
     if n == 0:
         raise BadDataError("the validation set has no samples")
-    metric, notes = default_metric(tally.kinds, has_labels=tally.use_labels, has_targets=tally.targets_given)
+    metric, notes = default_metric(tally.kinds, has_labels=tally.use_labels, has_expected=tally.expected_given)
     task = {"top1": "classification", "rmse": "regression", "agreement": "agreement", "cosine": "similarity",
             "sqnr": "similarity"}.get(metric, "outputs")
     comp = Comparison(n=n, task=task, has_nonfinite=bool(has_nonfinite), signature_changed=bool(reason),
                       signature_reason=reason, output_kinds=tally.kinds, has_labels=tally.use_labels,
-                      has_targets=tally.targets_given, class_output=tally.cls.name if tally.cls else None)
+                      has_expected=tally.expected_given, class_output=tally.cls.name if tally.cls else None)
     comp.notes += tally.notes + [x for x in notes if x not in tally.notes]
     comp.output_errors = {name: a.compute() for name, a in sorted(tally.errors.items())}
     for name, acc in tally.cosines.items():
@@ -373,7 +387,7 @@ def compare(
     elif tally.cls is not None:
         comp.notes.append("class scores changed shape in the candidate; no accuracy computed")
     logger.info("compared %d samples (%s): %s", n, comp.task,
-                f"delta {comp.delta_pp:+.2f} pp" if comp.delta_pp is not None else "no labels")
+                f"drop {0.0 - comp.delta_pp:.2f} pp" if comp.delta_pp is not None else "no labels")
     return comp
 
 
@@ -381,9 +395,10 @@ def _fill_classification(comp: Comparison, preds, labels_seen, top5, level, meth
     po = np.concatenate(preds["original"])
     pc = np.concatenate(preds["candidate"])
     comp.agreement = stats.accuracy(po == pc)
-    if not labels_seen:
+    labels = np.concatenate(labels_seen) if labels_seen else None
+    comp.changed = stats.changed_samples(po, pc, labels)
+    if labels is None:
         return
-    labels = np.concatenate(labels_seen)
     co, cc = po == labels, pc == labels
     comp.top1_original, comp.top1_candidate = stats.accuracy(co), stats.accuracy(cc)
     if top5["original"]:

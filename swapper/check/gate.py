@@ -20,7 +20,7 @@ Metrics (``--metric``; without it see ``kinds.default_metric``):
   ``--min-cosine-p5`` (default ``1 − 2·(1 − min_cosine)``, 0.99 for 0.995).
 - ``sqnr``: approve when ``10·log10(Σx²/Σ(x − x̂)²)`` over the set is at least
   ``--min-sqnr`` dB (default 20 dB).
-- ``rmse``: with ``targets``: approve when the candidate's RMSE is at most the
+- ``rmse``: with ``expected`` values (regression): approve when the candidate's RMSE is at most the
   original's plus ``budget`` percent.
 
 Where the defaults come from: 0.995 is a rule of thumb for "the same embedding"
@@ -32,7 +32,7 @@ with the same 10% relative error: with an error orthogonal to the output,
 
 Which outputs are judged: ``top1``/``agreement`` the first class-score output
 (with ``--metric`` an embedding may stand in); ``rmse`` the output matching
-``targets``; ``cosine`` every float output with at least two values per sample;
+``expected``; ``cosine`` every float output with at least two values per sample;
 ``sqnr`` every float output. Every judged output must pass; all outputs are
 reported.
 """
@@ -44,7 +44,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from swapper.check.compare import Comparison, probe
-from swapper.check.kinds import OutputKind, check_targets_fit, class_output, default_metric, regression_output
+from swapper.check.kinds import OutputKind, check_expected_fit, class_output, default_metric, regression_output
 from swapper.data.dataset import Dataset
 from swapper.errors import BadDataError, CannotJudge, UsageError
 
@@ -54,6 +54,12 @@ METRICS = ("top1", "agreement", "cosine", "sqnr", "rmse")
 DEFAULT_MIN_COSINE = 0.995  # rule of thumb, common practice, no source (see the module docstring)
 P5_SLACK = 2.0  # the worst 5% may lose this many times the mean's allowance of 1 - cos (our choice, no source)
 DEFAULT_MIN_SQNR_DB = 20.0  # same 10% relative error as cosine 0.995 (derived in the module docstring)
+# Travels with every verdict: the terminal line after it, the model's swapper.verdict entry, report.json/html.
+CAUTION = (
+    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
+    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
+    "and licensed practice."
+)
 
 
 @dataclass
@@ -151,8 +157,9 @@ class Verdict:
     thresholds: dict = field(default_factory=dict)  # the floors / budget applied, by name
 
     def to_dict(self) -> dict:
+        """The verdict as report.json and the model's ``swapper.verdict`` metadata hold it, with the caution."""
         return {"approved": bool(self.approved), "reason": self.reason, "rule": self.rule, "metric": self.metric,
-                "outputs": list(self.outputs), "thresholds": dict(self.thresholds)}
+                "outputs": list(self.outputs), "thresholds": dict(self.thresholds), "caution": CAUTION}
 
 
 @dataclass
@@ -168,20 +175,20 @@ def _listing(kinds: list[OutputKind]) -> str:
     return "; ".join(k.describe() for k in kinds) or "no outputs"
 
 
-def choose_metric(kinds: list[OutputKind], rule: GateRule, *, has_labels: bool, has_targets: bool,
+def choose_metric(kinds: list[OutputKind], rule: GateRule, *, has_labels: bool, has_expected: bool,
                   source: str = "the validation set") -> MetricChoice:
     """Pick the metric and the outputs it judges; raise CannotJudge (one line) when the data cannot supply it."""
     floats = [k for k in kinds if k.is_float]
     if not floats:
         raise CannotJudge(f"no float output to compare ({_listing(kinds)}); the gate measures float outputs")
-    metric, notes = default_metric(kinds, has_labels=has_labels, has_targets=has_targets)
+    metric, notes = default_metric(kinds, has_labels=has_labels, has_expected=has_expected)
     asked = rule.requested
     if asked == "class":
         metric = "top1" if has_labels and class_output(kinds, any_view=True) is not None else "agreement"
     elif asked is not None:
         metric = asked
         notes = [n for n in notes if not (metric == "top1" and n.startswith("labels"))
-                 and not (metric == "rmse" and n.startswith("targets"))]
+                 and not (metric == "rmse" and n.startswith("'expected'"))]
     if metric in ("top1", "agreement"):
         if metric == "top1" and not has_labels:
             raise CannotJudge(f"--metric top1 needs class ids: {source} has no 'labels' array (integer class ids, "
@@ -196,18 +203,18 @@ def choose_metric(kinds: list[OutputKind], rule: GateRule, *, has_labels: bool, 
                          f"{cls.describe().split(' is ', 1)[1]}")
         return MetricChoice(metric, [cls.name], notes)
     if metric == "rmse":
-        if not has_targets:
-            raise CannotJudge(f"--metric rmse needs a 'targets' array (true values, one row per sample) in {source}")
+        if not has_expected:
+            raise CannotJudge(f"--metric rmse needs an 'expected' array (the true values, one row per sample) in {source}")
         reg = regression_output(kinds)
         if reg is None:
-            raise CannotJudge(f"--metric rmse needs an output with as many values per sample as 'targets', but "
+            raise CannotJudge(f"--metric rmse needs an output with as many values per sample as 'expected', but "
                               f"{_listing(kinds)}")
         return MetricChoice("rmse", [reg.name], notes)
     if metric == "cosine":
         judged = [k for k in floats if k.values_per_sample >= 2]
         if not judged:
             raise CannotJudge(f"cosine similarity needs an output with at least 2 values per sample, but "
-                              f"{_listing(kinds)}; use --metric sqnr (or give 'targets' for rmse)")
+                              f"{_listing(kinds)}; use --metric sqnr (or give an 'expected' array for rmse)")
         skipped = [k.name for k in floats if k.values_per_sample < 2]
         if skipped:
             notes.append(f"not judged by cosine (one value per sample): {', '.join(skipped)}")
@@ -225,9 +232,9 @@ def preflight(original, dataset: Dataset, rule: GateRule | Budget | None = None,
     """
     rule = as_rule(rule)
     kinds = probe(original, dataset, batch_size=batch_size, threads=threads)
-    check_targets_fit(kinds, dataset.targets, dataset.path)
+    check_expected_fit(kinds, dataset.expected, dataset.path)
     choice = choose_metric(kinds, rule, has_labels=dataset.labels is not None,
-                           has_targets=dataset.targets is not None, source=str(dataset.path))
+                           has_expected=dataset.expected is not None, source=str(dataset.path))
     cls = next((k for k in kinds if k.name == choice.outputs[0]), None)
     if choice.metric == "top1" and cls is not None and cls.kind == "scores":
         classes = cls.values_per_sample
@@ -246,24 +253,28 @@ def _pct(x: float) -> str:
     return f"{100.0 * x:.2f}%"
 
 
+def _pp(x: float) -> str:
+    """Points with two decimals; what rounds to zero is "0.00", never "-0.00"."""
+    return f"{round(float(x), 2) + 0.0:.2f}"
+
+
 def _top1(c: Comparison, b: Budget, outputs: list[str]) -> Verdict:
     if c.top1_original is None:
         raise CannotJudge("no top-1 accuracy was measured: the labels did not fit the class-score output "
                           f"({'; '.join(c.notes) or 'no labels'})")
-    drop = -float(c.delta_pp)
+    drop, _, upper = c.drop()  # original − candidate: a gain is a negative drop
     limits = {"max_drop_pp": b.max_drop_pp}
     if b.strict:
-        upper = -float(c.interval.lo)
         level = f"{100 * c.interval.level:g}%"
         rule = (f"approve when the upper end of the {level} {c.interval.method} interval for the "
                 f"top-1 drop is at most {b.max_drop_pp:.2f} pp (non-inferiority)")
         ok = upper <= b.max_drop_pp
-        reason = (f"drop upper bound {upper:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp "
-                  f"(measured drop {drop:.2f} pp)")
+        reason = (f"drop upper bound {_pp(upper)} pp {'<=' if ok else '>'} {_pp(b.max_drop_pp)} pp "
+                  f"(measured drop {_pp(drop)} pp)")
     else:
         rule = f"approve when the measured top-1 drop (original - candidate) is at most {b.max_drop_pp:.2f} pp"
         ok = drop <= b.max_drop_pp
-        reason = f"top-1 drop {drop:.2f} pp {'<=' if ok else '>'} {b.max_drop_pp:.2f} pp budget"
+        reason = f"top-1 drop {_pp(drop)} pp {'<=' if ok else '>'} {_pp(b.max_drop_pp)} pp budget"
     if b.min_agreement is not None and c.agreement is not None:
         limits["min_agreement"] = b.min_agreement
         rule += f", and top-1 agreement with the original is at least {_pct(b.min_agreement)}"
@@ -294,7 +305,7 @@ def _rmse(c: Comparison, b: Budget, outputs: list[str]) -> Verdict:
     # budget read as an allowed relative RMSE increase in percent (common practice, no source)
     r_o, r_c = c.regression["original"]["rmse"], c.regression["candidate"]["rmse"]
     limit = r_o * (1.0 + b.max_drop_pp / 100.0)
-    rule = (f"targets: approve when the candidate's RMSE is at most the original's "
+    rule = (f"expected values: approve when the candidate's RMSE is at most the original's "
             f"plus {b.max_drop_pp:.2f}%")
     ok = r_c <= limit
     return Verdict(ok, f"candidate RMSE {r_c:.6g} {'<=' if ok else '>'} {limit:.6g} (original {r_o:.6g})", rule,
@@ -348,7 +359,7 @@ def _legacy_choice(c: Comparison, rule: GateRule) -> MetricChoice:
         return MetricChoice("agreement", [])
     if asked in (None, "rmse") and c.regression is not None:
         return MetricChoice("rmse", [])
-    raise CannotJudge("nothing to judge: no labels or targets, and no output's kind is known")
+    raise CannotJudge("nothing to judge: no labels or expected values, and no output's kind is known")
 
 
 def decide(comparison: Comparison, rule: GateRule | Budget | None = None) -> Verdict:
@@ -361,7 +372,7 @@ def decide(comparison: Comparison, rule: GateRule | Budget | None = None) -> Ver
         return Verdict(False, f"output signature changed: {c.signature_reason}",
                        "always reject a candidate whose output names, dtypes or static shapes differ")
     if c.output_kinds:
-        choice = choose_metric(c.output_kinds, r, has_labels=c.has_labels, has_targets=c.has_targets)
+        choice = choose_metric(c.output_kinds, r, has_labels=c.has_labels, has_expected=c.has_expected)
     else:
         choice = _legacy_choice(c, r)
     for note in choice.notes:

@@ -1,7 +1,7 @@
 """What each model output is, so the gate measures it with a figure that means something.
 
 Transformation: (output name, the original model's output on one batch, the
-per-sample size of ``targets`` if the data has them) -> :class:`OutputKind`, one
+per-sample size of the ``expected`` values if the data has them) -> :class:`OutputKind`, one
 of ``scores``, ``embedding``, ``dense``, ``scalar``, ``regression`` or ``non-float``,
 with the cue that decided it in words. Axis 0 is the sample axis.
 
@@ -9,8 +9,8 @@ Cues, tried in this order (the first that applies wins):
 
 1. dtype: an output that is not a floating-point tensor is ``non-float`` (class
    ids from an ArgMax, counts, booleans, strings): no distance to measure on it.
-2. targets: when the data has ``targets`` and the output holds as many values per
-   sample, it is ``regression`` (what ``targets`` are for, README "Data files").
+2. expected values: when the data has an ``expected`` array and the output holds as many
+   values per sample, it is ``regression`` (what ``expected`` is for, README "Data files").
 3. shape: more than one axis of size > 1 besides the sample axis is a ``dense``
    map: detection heads [N, anchors, 4 + classes], sequence logits [N, T, C],
    segmentation maps [N, C, H, W]. One value per sample ([N] or [N, 1]) is ``scalar``.
@@ -111,7 +111,7 @@ def detect_kind(name: str, out: np.ndarray, *, targets_per_sample: int | None = 
         return kind("non-float", f"dtype {dtype}" if out.ndim else "a scalar with no sample axis")
     per_sample = math.prod(sample_shape)
     if targets_per_sample is not None and per_sample == targets_per_sample:
-        return kind("regression", f"{per_sample} value(s) per sample, as many as 'targets' has")
+        return kind("regression", f"{per_sample} value(s) per sample, as many as 'expected' has")
     wide = sum(d > 1 for d in sample_shape)
     if wide > 1:
         return kind("dense", f"{wide} axes of size > 1 besides the sample axis")
@@ -131,28 +131,28 @@ def detect_kind(name: str, out: np.ndarray, *, targets_per_sample: int | None = 
     return kind("scores", f"{per_sample} values per sample, read as one score per class")
 
 
-def detect_kinds(names: list[str], outputs: list[np.ndarray], *, targets: np.ndarray | None = None) \
+def detect_kinds(names: list[str], outputs: list[np.ndarray], *, expected: np.ndarray | None = None) \
         -> list[OutputKind]:
     """:func:`detect_kind` for every output, in the model's output order."""
-    per_sample = None if targets is None or np.ndim(targets) == 0 else math.prod(np.shape(targets)[1:])
+    per_sample = None if expected is None or np.ndim(expected) == 0 else math.prod(np.shape(expected)[1:])
     kinds = [detect_kind(n, o, targets_per_sample=per_sample) for n, o in zip(names, outputs)]
     for k in kinds:
         logger.info("output %s", k.describe())
     return kinds
 
 
-def check_targets_fit(kinds: list[OutputKind], targets: np.ndarray | None, path) -> None:
-    """BadDataError (naming ``path``) when ``targets`` are given but no float output has their size per sample.
+def check_expected_fit(kinds: list[OutputKind], expected: np.ndarray | None, path) -> None:
+    """BadDataError (naming ``path``) when ``expected`` values are given but no float output has their size per sample.
 
-    ``targets`` are what one output should produce (README "Data files"): when none
+    ``expected`` holds what one output should produce (README "Data files"): when none
     can, the file does not fit the model, as labels beyond the class count do not.
     """
-    if targets is None or regression_output(kinds) is not None:
+    if expected is None or regression_output(kinds) is not None:
         return
-    per_sample = 1 if np.ndim(targets) <= 1 else math.prod(np.shape(targets)[1:])
+    per_sample = 1 if np.ndim(expected) <= 1 else math.prod(np.shape(expected)[1:])
     outputs = ", ".join(f"{k.name} {k.values_per_sample}" for k in kinds if k.is_float) or "none"
-    raise BadDataError(f"'targets' has {per_sample} value(s) per sample, but no float output of the model has "
-                       f"as many (values per sample: {outputs}); targets are what one output should produce", path)
+    raise BadDataError(f"'expected' has {per_sample} value(s) per sample, but no float output of the model has "
+                       f"as many (values per sample: {outputs}); 'expected' holds what one output should produce", path)
 
 
 def class_output(kinds: list[OutputKind], *, any_view: bool = False) -> OutputKind | None:
@@ -168,7 +168,7 @@ def class_output(kinds: list[OutputKind], *, any_view: bool = False) -> OutputKi
 
 
 def regression_output(kinds: list[OutputKind]) -> OutputKind | None:
-    """The output compared with ``targets``: the first of kind ``regression``."""
+    """The output compared with ``expected``: the first of kind ``regression``."""
     return next((k for k in kinds if k.kind == "regression"), None)
 
 
@@ -177,10 +177,10 @@ METRIC_FOR_KIND = {"scores": "agreement", "embedding": "cosine", "dense": "cosin
                    "regression": "rmse"}
 
 
-def default_metric(kinds: list[OutputKind], *, has_labels: bool, has_targets: bool) -> tuple[str | None, list[str]]:
+def default_metric(kinds: list[OutputKind], *, has_labels: bool, has_expected: bool) -> tuple[str | None, list[str]]:
     """The metric the gate uses without ``--metric``, and notes on data it leaves unused.
 
-    With labels and a class-score output: ``top1``. With targets and an output that
+    With labels and a class-score output: ``top1``. With expected values and an output that
     matches them: ``rmse``. Otherwise the kind of the first float output decides (an
     exporter lists the main output first; common practice, no source): scores ->
     ``agreement``, embedding or dense map -> ``cosine``, one value per sample ->
@@ -194,9 +194,9 @@ def default_metric(kinds: list[OutputKind], *, has_labels: bool, has_targets: bo
         if class_output(kinds) is not None:
             return "top1", notes
         notes.append("labels not used: no output holds class scores [batch, classes]")
-    if has_targets:
+    if has_expected:
         if regression_output(kinds) is not None:
             return "rmse", notes
-        notes.append("targets not used: no float output has as many values per sample as 'targets'")
-    primary = next(k for k in floats if k.kind != "regression")  # a regression kind implies targets, handled above
+        notes.append("'expected' not used: no float output has as many values per sample as 'expected'")
+    primary = next(k for k in floats if k.kind != "regression")  # a regression kind implies expected values, handled above
     return METRIC_FOR_KIND[primary.kind], notes

@@ -87,6 +87,29 @@ def discordant_counts(correct_orig: np.ndarray, correct_cand: np.ndarray) -> tup
     return int(np.count_nonzero(~a & b)), int(np.count_nonzero(a & ~b))
 
 
+CHANGED_SHOWN = 100  # changed samples listed in a report: enough to look at, a page a person reads (our choice)
+
+
+def changed_samples(pred_orig: np.ndarray, pred_cand: np.ndarray, labels: np.ndarray | None = None,
+                    cap: int = CHANGED_SHOWN) -> dict:
+    """The samples whose top-1 class changed, by index: the discordant pairs behind McNemar's test and more.
+
+    Returns ``{"count", "discordant", "shown", "samples"}``: ``count`` samples changed class,
+    ``discordant`` of them (``n01 + n10``, None without labels) changed from right to wrong or back,
+    and ``samples`` lists the first ``cap`` by sample index as ``{"index", "original", "candidate",
+    "label"}`` (``label`` None without labels). A changed sample both models got wrong is not
+    discordant: McNemar's test does not count it.
+    """
+    po = np.asarray(pred_orig).reshape(-1)
+    pc = np.asarray(pred_cand).reshape(-1)
+    lab = None if labels is None else np.asarray(labels).reshape(-1)
+    where = np.flatnonzero(po != pc)
+    discordant = None if lab is None else int(np.count_nonzero((po == lab) != (pc == lab)))
+    rows = [{"index": int(i), "original": int(po[i]), "candidate": int(pc[i]),
+             "label": None if lab is None else int(lab[i])} for i in where[:cap]]
+    return {"count": int(where.size), "discordant": discordant, "shown": len(rows), "samples": rows}
+
+
 def mcnemar_exact(n01: int, n10: int) -> float:
     """Two-sided exact McNemar p-value from the discordant counts.
 
@@ -321,19 +344,19 @@ def output_errors(ref: np.ndarray, cand: np.ndarray) -> dict[str, float]:
 
 
 class RegressionAccumulator:
-    """Streaming MAE / RMSE of predictions against targets."""
+    """Streaming MAE / RMSE of predictions against expected."""
 
     def __init__(self) -> None:
         self.count = 0
         self.sum_abs = 0.0
         self.sum_sq = 0.0
 
-    def update(self, pred: np.ndarray, targets: np.ndarray) -> None:
-        """Add one batch; ``pred`` and ``targets`` must hold the same number of values."""
+    def update(self, pred: np.ndarray, expected: np.ndarray) -> None:
+        """Add one batch; ``pred`` and ``expected`` must hold the same number of values."""
         p = np.asarray(pred, dtype=np.float64)
-        t = np.asarray(targets, dtype=np.float64)
+        t = np.asarray(expected, dtype=np.float64)
         if p.size != t.size:
-            raise ValueError(f"{p.size} predictions but {t.size} target values")
+            raise ValueError(f"{p.size} predictions but {t.size} expected values")
         err = p.ravel() - t.ravel()
         self.count += err.size
         self.sum_abs += float(np.sum(np.abs(err)))
@@ -346,8 +369,8 @@ class RegressionAccumulator:
         return {"mae": self.sum_abs / self.count, "rmse": math.sqrt(self.sum_sq / self.count)}
 
 
-def regression_errors(pred: np.ndarray, targets: np.ndarray) -> dict[str, float]:
-    """``mae = mean|pred−target|`` and ``rmse = sqrt(mean((pred−target)²))`` over all values."""
+def regression_errors(pred: np.ndarray, expected: np.ndarray) -> dict[str, float]:
+    """``mae = mean|pred−expected|`` and ``rmse = sqrt(mean((pred−expected)²))`` over all values."""
     acc = RegressionAccumulator()
-    acc.update(pred, targets)
+    acc.update(pred, expected)
     return acc.compute()

@@ -18,10 +18,13 @@ import typer
 from rich.console import Console
 from rich.text import Text
 
-from swapper import api, functions
+from swapper import api
 from swapper.cli.guard import OneLineGroup, configure_logging
 from swapper.cli.opts import (
+    BUDGET_HELP,
+    FOLD_HELP,
     MAX_LATENCY_RUNS,
+    STRICT_HELP,
     TARGET_HELP,
     BatchAxis,
     BatchOpt,
@@ -43,9 +46,11 @@ from swapper.cli.opts import (
     ThreadsOpt,
     data_source_of,
     finite,
+    fold_option,
     gate_rule,
     plan_word,
     split_ids,
+    swap_epilog,
     sweep_settings,
     target_name,
 )
@@ -59,6 +64,7 @@ app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
     pretty_exceptions_enable=False,
+    rich_markup_mode=None,  # plain help: whole option names at any width (a boxed table cuts them at 80 columns)
     help="Find costly activations in an ONNX model, swap them for cheap calibrated ones, and check the cost.",
 )
 out = Console(soft_wrap=True, markup=False)
@@ -72,13 +78,26 @@ def _fail(exc: SwapperError) -> None:
     raise typer.Exit(exc.exit_code)
 
 
-@app.callback()
-def main(verbose: Annotated[bool, typer.Option(
-        "--verbose", "-v", help="Log debug details; on an internal error, show the traceback.")] = False) -> None:
+def _print_version(value: bool) -> None:
+    if value:
+        from swapper import __version__
+
+        out.print(f"swapper {__version__}", highlight=False)
+        raise typer.Exit(0)
+
+
+@app.callback(epilog="Exit codes: 0 done or approved, 1 rejected by the gate, 2 bad input or usage, 3 the data "
+                     "cannot judge the model, 4 internal error.")
+def main(
+    verbose: Annotated[bool, typer.Option(
+        "--verbose", "-v", help="Log debug details; on an internal error, show the traceback.")] = False,
+    version: Annotated[bool, typer.Option(
+        "--version", callback=_print_version, is_eager=True, help="Print swapper's version and exit.")] = False,
+) -> None:
     configure_logging(verbose)
 
 
-@app.command()
+@app.command(short_help="List the activation sites of a model and what they cost.")
 def scan(
     model: Annotated[Path, typer.Argument(help="The .onnx model to inspect.")],
     as_json: Annotated[bool, typer.Option("--json", help="Print the inventory as JSON (schema swapper.scan/1).")] = False,
@@ -113,22 +132,20 @@ def scan(
                   "(an If branch it did not take)", highlight=False)
 
 
-@app.command("functions")
+@app.command("functions", short_help="List swappable functions and surrogates, with costs.")
 def list_functions() -> None:
-    """List the functions swapper knows: costly sources (with their default) and cheap surrogates (with their forms)."""
-    from swapper.functions.forms import forms_of
+    """List the functions swapper knows: swappable (costly) ones with their default surrogate, and the surrogates
+    with their emission forms; costs relative to Relu = 1.0, measured on onnxruntime's CPU provider."""
+    from swapper.report.tables import functions_listing
 
-    for name in sorted(functions.REGISTRY):
-        fn = functions.REGISTRY[name]
-        kind = "surrogate" if fn.is_cheap else "source"
-        default = functions.DEFAULT_TARGET.get(name, "")
-        forms = ", ".join(f.name + (f" (opset ≥ {f.min_opset})" if f.min_opset > 11 else "")
-                          for f in forms_of(name)) if fn.is_cheap else ""
-        out.print(f"{name:12s} {kind:9s} cost {fn.cost:5.2f}" + (f"  default → {default}" if default else "")
-                  + (f"  forms: {forms}" if forms else ""), highlight=False)
+    header, table, words = functions_listing()
+    out.print(header, highlight=False)
+    out.print(table)
+    for line in words:
+        out.print(line, highlight=False)
 
 
-@app.command("targets")
+@app.command("targets", short_help="List the built-in target profiles.")
 def list_targets(
     as_json: Annotated[bool, typer.Option("--json", help="Print the profiles as JSON.")] = False,
 ) -> None:
@@ -149,7 +166,7 @@ def list_targets(
                   f"{p.description}", highlight=False)
 
 
-@app.command()
+@app.command(short_help="Swap costly activations, calibrate, and gate the result.", epilog=swap_epilog())
 def swap(
     model: Annotated[Path, typer.Argument(help="The .onnx model to rewrite (never modified).")],
     output: Annotated[Path, typer.Option("--output", "-o", help="Where to write the swapped model.")],
@@ -160,7 +177,7 @@ def swap(
     only: Annotated[Optional[str], typer.Option(help="Swap only sites computing this function.")] = None,
     include_gates: Annotated[bool, typer.Option("--include-gates", help="Also swap gate sites.")] = False,
     include_outputs: Annotated[bool, typer.Option("--include-outputs", help="Also swap sites that are graph outputs.")] = False,
-    fold: Annotated[str, typer.Option(help="exact | nodes | approximate | off (see README).")] = "exact",
+    fold: Annotated[str, typer.Option(callback=fold_option, help=FOLD_HELP)] = "exact",
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
     refit_consumers: Annotated[Optional[bool], typer.Option(
@@ -169,7 +186,7 @@ def swap(
     mask_input: Annotated[str, typer.Option("--mask-input", help="Attention-mask input whose zero positions token sites' statistics skip: auto (found by name, dtype, shape), none, or the input's name.")] = "auto",
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
     budget: BudgetOpt = 1.0,
-    strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end, not the point estimate.")] = False,
+    strict: Annotated[bool, typer.Option("--strict", help=STRICT_HELP)] = False,
     min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
@@ -240,7 +257,7 @@ def swap(
     raise typer.Exit(code)
 
 
-@app.command()
+@app.command(short_help="Measure every single-site swap: accuracy cost, saving.")
 def sweep(
     model: Annotated[Path, typer.Argument(help="The .onnx model to sweep (never modified).")],
     calib: Annotated[Path, typer.Option(help="Calibration set: .npz, a folder of .npy files, or a folder of images.")],
@@ -258,7 +275,7 @@ def sweep(
     only: Annotated[Optional[str], typer.Option(help="Sweep only sites computing this function.")] = None,
     include_gates: Annotated[bool, typer.Option("--include-gates", help="Also sweep gate sites.")] = False,
     include_outputs: Annotated[bool, typer.Option("--include-outputs", help="Also sweep sites that are graph outputs.")] = False,
-    budget: Annotated[float, typer.Option(help="Accuracy budget (points) recorded as the allowance.")] = 1.0,
+    budget: Annotated[float, typer.Option(callback=finite, help=BUDGET_HELP + " Recorded as the allowance.")] = 1.0,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
     min_sqnr: MinSqnrOpt = None,
@@ -287,13 +304,13 @@ def sweep(
     raise typer.Exit(code)
 
 
-@app.command()
+@app.command(short_help="Judge a swapped model against its original.")
 def check(
     original: Annotated[Path, typer.Argument(help="The original .onnx model.")],
     candidate: Annotated[Path, typer.Argument(help="The swapped .onnx model.")],
     val: Annotated[Path, typer.Option(help="Validation set (.npz or .npy folder), with `labels` for accuracy.")],
     budget: BudgetOpt = 1.0,
-    strict: Annotated[bool, typer.Option("--strict", help="Gate on the interval's upper end.")] = False,
+    strict: Annotated[bool, typer.Option("--strict", help=STRICT_HELP)] = False,
     min_agreement: MinAgreementOpt = None,
     metric: MetricOpt = None,
     min_cosine: MinCosineOpt = None,
@@ -324,7 +341,7 @@ def check(
     raise typer.Exit(code)
 
 
-@app.command()
+@app.command(short_help="Run the whole job on the bundled demo models.")
 def demo(
     out_dir: Annotated[Path, typer.Option("--out", help="Where swapped demo models go.")] = Path("reports/demo"),
 ) -> None:
@@ -338,7 +355,7 @@ def demo(
     raise typer.Exit(code)
 
 
-@app.command()
+@app.command(short_help="Benchmark recovered accuracy, tool cost and speed.")
 def bench(
     models: Annotated[Optional[list[Path]], typer.Argument(help="Models to benchmark (default with --demo: the demo models).")] = None,
     demo_models: Annotated[bool, typer.Option("--demo", help="Benchmark the bundled demo models.")] = False,

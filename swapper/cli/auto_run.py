@@ -142,7 +142,10 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
         console.print(f"not written: {output} (rejected)", highlight=False, markup=False)
     paths = write_report(folder, original=loaded, candidate_path=output if (approved or force) else None,
                          candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib,
-                         search=search_entry(auto, auto.sweep))
+                         search=search_entry(auto, auto.sweep),
+                         settings={"command": "swap", "plan": "auto", "force": force, "latency_runs": latency_runs,
+                                   "strict_data": strict_data, "sweep": None if sweep_file is None else str(sweep_file),
+                                   "jobs": settings.jobs, "scheduler": settings.scheduler})
     folder.mkdir(parents=True, exist_ok=True)
     write_sweep(auto.sweep, folder / "sweep.json")
     _plot_next_to(auto.sweep, folder / "sweep.json", None, chosen)

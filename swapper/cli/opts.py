@@ -27,6 +27,39 @@ def finite(value: float | None) -> float | None:
     return value
 
 
+def fold_option(value: str) -> str:
+    """Option callback for --fold: today's spelling of the policy; an older one works with a one-line note."""
+    from swapper.options import fold_note, fold_word
+
+    note = fold_note(value)
+    try:
+        word = fold_word(value)
+    except UsageError as exc:  # a usage error of the parser: one line, exit 2
+        raise typer.BadParameter(str(exc)) from None
+    if note:
+        typer.echo(f"note: {note}", err=True)
+    return word
+
+
+FOLD_HELP = ("Where a, b, c, d of y = a·g(b·x + c) + d go. exact: folded into neighbouring layers where that is "
+             "exact, the rest fixed at neutral values (adds no node); exact+nodes: the same folds, the rest as "
+             "Mul/Add nodes (older spelling: nodes); approximate: like exact, d also into zero-padded Conv biases "
+             "(inexact at borders); off: every parameter as a node.")
+
+
+def swap_epilog() -> str:
+    """The words of the swapped-sites table, for `swap --help` (lines kept under 80 columns)."""
+    import textwrap
+
+    from swapper.plan.placement import LEGEND
+
+    lines = ["The swapped-sites table says where a, b, c, d of y = a·g(b·x + c) + d live:"]
+    for word, text in LEGEND.items():
+        lines += textwrap.wrap(f"{word}: {text}", 76, initial_indent="  ", subsequent_indent="      ")
+    lines.append("nodes column: the site's nodes in the original -> in the swapped model.")
+    return "\b\n" + "\n".join(lines)  # \b: click keeps these lines as they are
+
+
 # Running settings, shared by `swap`, `check` (and `bench` for latency).
 SeedOpt = Annotated[int, typer.Option(min=0, max=MAX_SEED, help="Seed for sampling; same inputs + seed = same bytes.")]
 BatchOpt = Annotated[int, typer.Option(min=1, max=MAX_BATCH_SIZE, help="Samples per onnxruntime call.")]
@@ -35,7 +68,13 @@ LatencyRunsOpt = Annotated[int, typer.Option(
     "--latency-runs", min=1, max=MAX_LATENCY_RUNS, help="Timed runs per model for the latency figures.")]
 NoLatencyOpt = Annotated[bool, typer.Option(
     "--no-latency", help="Skip the latency measurement (the report says it was not measured).")]
-BudgetOpt = Annotated[float, typer.Option(callback=finite, help="Largest accepted accuracy drop, in percentage points.")]
+BUDGET_HELP = ("The allowance, read by the metric that decides: top1: the largest top-1 drop (original - candidate) "
+               "in percentage points; agreement: top-1 agreement with the original must be at least 100 - BUDGET "
+               "percent; rmse: the candidate's RMSE may exceed the original's by BUDGET percent of it. cosine and "
+               "sqnr do not read it (--min-cosine, --min-sqnr).")
+BudgetOpt = Annotated[float, typer.Option(callback=finite, help=BUDGET_HELP)]
+STRICT_HELP = ("top1: judge the upper end of the 95% interval for the drop instead of the measured drop "
+               "(non-inferiority).")
 MinAgreementOpt = Annotated[Optional[float], typer.Option(callback=finite, help="Also require this top-1 agreement (0..1).")]
 
 

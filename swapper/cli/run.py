@@ -18,14 +18,14 @@ import onnx
 from rich.text import Text
 
 from swapper import api
-from swapper.check.gate import Budget, GateRule, preflight
+from swapper.check.gate import CAUTION, Budget, GateRule, preflight
 from swapper.core.files import check_report_dir
 from swapper.core.model_io import LoadedModel, check_output_path, load_model, save_model, saved_size
 from swapper.errors import EXIT_OK, EXIT_REJECTED, BadDataError, CannotJudge, SwapperError
 from swapper.options import SwapOptions
 from swapper.progress import RichBars, Silent
 from swapper.report.build import site_rows, write_report
-from swapper.report.numbers import pct
+from swapper.report.numbers import pct, signed
 from swapper.report.paths import default_report_dir
 from swapper.report.tables import skipped_lines, swap_table, target_lines, unrun_lines
 
@@ -66,6 +66,7 @@ def _print_check(console, result: api.CheckResult) -> None:
     word = ("APPROVED", "bold green") if v.approved else ("REJECTED", "bold red")
     console.print(Text.assemble(word, f": {v.reason}"), highlight=False)
     say = lambda line: console.print(line, highlight=False, markup=False)  # noqa: E731 - names come from the model
+    say(f"  {CAUTION}")  # beside the verdict, not after pages of figures
     if v.metric is not None:
         say(f"  decided by: {v.metric} on {', '.join(v.outputs) or 'the class scores'}")
     say(f"  rule: {v.rule}")
@@ -75,22 +76,25 @@ def _print_check(console, result: api.CheckResult) -> None:
     cls = kinds.get(c.class_output)
     show_classes = v.metric in ("top1", "agreement") or cls is None or cls.kind == "scores"
     if show_classes and c.top1_original is not None and c.top1_candidate is not None:
-        line = (f"  top-1 original {pct(c.top1_original)}  candidate {pct(c.top1_candidate)}"
-                f"  delta {c.delta_pp:+.2f} pp")
-        if c.interval is not None:
-            line += f" [{c.interval.lo:+.2f}, {c.interval.hi:+.2f}] (95%, {c.interval.method})"
+        drop, lo, hi = c.drop()
+        line = f"  top-1 original {pct(c.top1_original)}  candidate {pct(c.top1_candidate)}  drop {signed(drop)} pp"
+        if lo is not None:
+            line += (f", {100 * c.interval.level:g}% interval [{signed(lo)}, {signed(hi)}] pp "
+                     f"({c.interval.method})")
         if c.mcnemar_p is not None:
-            line += f"  McNemar p={c.mcnemar_p:.3g} (n01={c.n01}, n10={c.n10})"
+            line += f"  McNemar p={c.mcnemar_p:.3g}: {c.n10} sample(s) now wrong, {c.n01} now right"
         say(line)
     if show_classes and c.agreement is not None:
-        say(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples")
+        moved = (c.changed or {}).get("count", 0)
+        say(f"  top-1 agreement {pct(c.agreement)} on {c.n} samples"
+            + (f"; {moved} changed class (listed by index in report.html)" if moved else ""))
     for note in c.notes:
         say(f"  note: {note}")
     lat = result.latency
     if lat is None:
         say("  latency: not measured (--no-latency)")
     else:
-        say(f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread): original "
+        say(f"  latency (median, batch {lat['batch_size']}, {lat['threads']} thread, {lat.get('clock', 'wall time')}): original "
             f"{lat['original']['median_ms']:.3f} ms, candidate {lat['candidate']['median_ms']:.3f} ms, "
             f"ratio {lat['ratio']:.2f}")
     s = result.size
@@ -149,7 +153,9 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     result.size["original"]["bytes"] = orig.file_bytes  # the files as they are on disk (external data included)
     result.size["candidate"]["bytes"] = cand.file_bytes
     paths = write_report(folder, original=orig, candidate_path=Path(candidate), candidate=cand.model,
-                         check=result, val_path=val, calib_path=calib)
+                         check=result, val_path=val, calib_path=calib,
+                         settings={"command": "check", "batch_size": batch_size, "threads": threads, "int8": int8,
+                                   "latency_runs": latency_runs, "target": target, "strict_data": strict_data})
     _print_check(console, result)
     if console is not None:
         console.print(f"report: {paths[1]}", highlight=False, markup=False)
@@ -205,7 +211,7 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
         console.print(f"  nodes {result.rewrite.nodes_before} → {result.rewrite.nodes_after}", highlight=False)
         if result.calibration is not None:
             t = result.calibration.timings
-            if result.calibration.tokens:
+            if result.calibration.tokens and _has_token_sites(result):  # a CNN has nothing a mask could mark
                 console.print(f"  token positions: {result.calibration.tokens}", highlight=False)
             console.print("  calibration time: " + ", ".join(f"{k[:-2]} {v:.2f}s" for k, v in t.items()),
                           highlight=False)
@@ -259,10 +265,20 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
         console.print(f"not written: {output} (rejected)", highlight=False, markup=False)
     if folder is not None:
         paths = write_report(folder, original=loaded, candidate_path=output if (approved or force) else None,
-                             candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib)
+                             candidate=candidate, check=check, swap=result, val_path=val, calib_path=calib,
+                             settings={"command": "swap", "plan": "all", "force": force, "int8": int8,
+                                       "latency_runs": latency_runs, "strict_data": strict_data})
         if console is not None:
             console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if approved else EXIT_REJECTED
+
+
+def _has_token_sites(result: api.SwapResult) -> bool:
+    """Whether any swapped site is shaped [batch, tokens, channels], the positions an attention mask marks."""
+    from swapper.calibrate.tokens import is_token_site
+
+    swapped = {s.site_id for s in result.plan.swaps}
+    return any(is_token_site(s) for s in result.sites if s.id in swapped)
 
 
 def _record_verdict(candidate: onnx.ModelProto, check: api.CheckResult) -> None:

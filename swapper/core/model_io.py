@@ -44,6 +44,10 @@ MAX_OPSET = 22
 # protobuf cannot serialise a single message above 2 GiB; bigger models keep
 # their weights as external data and are checked by path.
 PROTOBUF_LIMIT = 2**31 - 1
+# A declared dimension above this is damage, not a model: onnx's shape inference allocates by declared
+# shapes and dies of std::bad_alloc on one of 2**40 (found by the fuzzer). 2**31 - 1 is the largest
+# dimension onnxruntime's 32-bit index paths take (common practice, no source).
+MAX_DECLARED_DIM = 2**31 - 1
 
 
 @dataclass
@@ -159,6 +163,7 @@ def load_model(path: str | Path) -> LoadedModel:
     opset = _supported_opset(model, path)
     external_files, external_bytes = _check_external_paths(model, path)
     check_tensor_sizes(model, path)  # in-place tensors; external ones once their bytes are known
+    _check_declared_dims(model, path)
     is_large = len(data) + external_bytes > PROTOBUF_LIMIT
     try:
         model = _checked_and_inferred(model, data, path, has_external=bool(external_files), is_large=is_large)
@@ -168,6 +173,8 @@ def load_model(path: str | Path) -> LoadedModel:
         raise BadModelError(f"shape inference failed: {first_line(exc)}", path) from None
     except (OSError, ValueError, RuntimeError) as exc:  # onnx's C++ side raises RuntimeError for odd graphs
         raise BadModelError(f"cannot load: {first_line(exc)}", path) from None
+    except MemoryError:  # the C++ side's std::bad_alloc
+        raise BadModelError("shape inference ran out of memory (declared shapes too large?)", path) from None
     name_unnamed_nodes(model)
     logger.debug("loaded %s: opset %d, %d nodes", path, opset, len(model.graph.node))
     return LoadedModel(model=model, path=path, opset=opset, file_bytes=len(data) + external_bytes,
@@ -216,6 +223,17 @@ def _supported_opset(model: onnx.ModelProto, path: Path) -> int:
             f"opset {opset} is outside the supported range {MIN_OPSET}..{MAX_OPSET}", path
         )
     return opset
+
+
+def _check_declared_dims(model: onnx.ModelProto, path: Path) -> None:
+    """Refuse a graph input, output or value_info (main graph) whose declared dimension is absurdly large."""
+    g = model.graph
+    for v in list(g.input) + list(g.output) + list(g.value_info):
+        for dim in v.type.tensor_type.shape.dim:
+            # negative values are how some exporters write "unknown" (-1); onnxruntime reads them so
+            if dim.HasField("dim_value") and dim.dim_value > MAX_DECLARED_DIM:
+                raise BadModelError(f"{v.name!r} declares a dimension of {dim.dim_value} "
+                                    f"(at most {MAX_DECLARED_DIM})", path)
 
 
 def _checked_and_inferred(model: onnx.ModelProto, data: bytes, path: Path, *, has_external: bool,

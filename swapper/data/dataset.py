@@ -39,12 +39,13 @@ from swapper.data.images import ImagePrep, holds_images, read_image_folder
 from swapper.data.layout import ConstantFeed, DataLayout
 from swapper.data.lazy_array import CycledArray, cycle, head  # noqa: F401  (CycledArray: re-exported, it lived here)
 from swapper.data.npy_files import read_folder, read_npz
-from swapper.data.values import check_labels, check_targets, scan_values
+from swapper.data.values import check_expected, check_labels, scan_values
 from swapper.errors import BadDataError, BadModelError, first_line
 
 logger = logging.getLogger(__name__)
 
-RESERVED = ("labels", "targets")
+SCORED = ("labels", "expected")  # class ids; the values one output should produce (regression)
+RESERVED = SCORED + ("targets",)  # "targets": the older name of "expected", still read
 
 
 @dataclass
@@ -100,7 +101,7 @@ class Dataset:
     path: Path
     arrays: dict[str, np.ndarray]
     labels: np.ndarray | None
-    targets: np.ndarray | None
+    expected: np.ndarray | None
     n: int
     dtypes: dict[str, np.dtype] = field(default_factory=dict)  # model dtype per input, applied per batch
     max_batch: int | None = None  # the model's static batch dimension (e.g. 1): batches never exceed it
@@ -112,13 +113,13 @@ class Dataset:
 
 @dataclass
 class Batch:
-    """Samples ``start:stop``: contiguous feeds in the model's dtypes, plus their labels/targets."""
+    """Samples ``start:stop``: contiguous feeds in the model's dtypes, plus their labels / expected values."""
 
     start: int
     stop: int
     feeds: dict[str, np.ndarray]
     labels: np.ndarray | None
-    targets: np.ndarray | None
+    expected: np.ndarray | None
 
 
 # ---------------------------------------------------------------- validation
@@ -152,13 +153,13 @@ def _match_names(raw: dict[str, np.ndarray], specs: list[InputSpec], path: Path,
             raise BadDataError(f"unexpected arrays {unread} (model inputs: {', '.join(wanted)}; "
                                f"reserved: {', '.join(RESERVED)}; refused because of --strict-data)", path)
         notes.append(f"{path}: ignored {len(unread)} array(s) the model does not read: "
-                     f"{', '.join(repr(n) for n in unread)} (only {' and '.join(repr(r) for r in RESERVED)} "
+                     f"{', '.join(repr(n) for n in unread)} (only {' and '.join(repr(r) for r in SCORED)} "
                      "are scored)")
         logger.info("%s", notes[-1])
     return {name: data[name] for name in wanted}, {name: name for name in wanted}, notes
 
 
-def _target_dtype(name: str, arr: np.ndarray, spec: InputSpec, path: Path) -> np.dtype:
+def _feed_dtype(name: str, arr: np.ndarray, spec: InputSpec, path: Path) -> np.dtype:
     """Decide the per-batch cast: float<-float, int<-int, bool<-bool; anything else is refused.
 
     Integer data for a float input is refused: casting raw pixel values or counts silently skips the
@@ -260,11 +261,20 @@ def load_dataset(
         raw, classes = read_image_folder(path, fed, images)
     else:
         raw = read_folder(path) if is_dir else read_npz(path)
-    labels, targets = raw.get("labels"), raw.get("targets")
+    labels, expected = raw.get("labels"), raw.get("expected")
+    older = raw.pop("targets", None)
+    if older is not None:  # the name regression values had before "target" came to mean a target profile
+        if expected is not None:
+            raise BadDataError("both 'expected' and 'targets' arrays: 'targets' is the older name of 'expected'; "
+                               "keep one", path)
+        expected = raw["expected"] = older
+    older_name = [f"{path}: array 'targets' read as 'expected', its new name (the old one goes in a later release)"] \
+        if older is not None else []
     if require_labels and labels is None:
         raise BadDataError("no 'labels' array (integer class ids are needed to measure accuracy)", path)
     arrays, names, notes = _match_names(raw, fed, path, strict)
-    dtypes = {s.name: _target_dtype(names[s.name], arrays[s.name], s, path) for s in fed}
+    notes = older_name + notes
+    dtypes = {s.name: _feed_dtype(names[s.name], arrays[s.name], s, path) for s in fed}
     for name, arr in arrays.items():
         if arr.ndim == 0:
             raise BadDataError(f"array {names[name]!r} is a scalar; expected an axis of samples "
@@ -272,7 +282,7 @@ def load_dataset(
         if axes.get(name, 0) >= arr.ndim:
             raise BadDataError(f"array {names[name]!r} has no axis {axes[name]} to take samples from", path)
     counts = {names[name]: arr.shape[axes.get(name, 0)] for name, arr in arrays.items()}
-    for extra_name, extra in (("labels", labels), ("targets", targets)):
+    for extra_name, extra in (("labels", labels), ("expected", expected)):
         if extra is not None and extra.ndim:
             counts[extra_name] = extra.shape[0]
     if len(set(counts.values())) > 1:
@@ -284,8 +294,8 @@ def load_dataset(
         raise BadDataError("no samples", path)
     if labels is not None:
         check_labels(labels, n, path)
-    if targets is not None:
-        check_targets(targets, n, path)
+    if expected is not None:
+        check_expected(expected, n, path)
     for s in fed:
         if not getattr(arrays[s.name], "finite", False):
             scan_values(names[s.name], arrays[s.name], dtypes[s.name], path)
@@ -298,7 +308,7 @@ def load_dataset(
         raise BadDataError(f"{n} samples do not divide into batches of {max_batch}, the batch size the model "
                            f"fixes (give a multiple of {max_batch} samples, or export the model with a dynamic "
                            "batch dimension)", path)
-    ds = Dataset(path=path, arrays=arrays, labels=labels, targets=targets, n=n, dtypes=dtypes,
+    ds = Dataset(path=path, arrays=arrays, labels=labels, expected=expected, n=n, dtypes=dtypes,
                  max_batch=max_batch, batch_axes=moved, constants=constants, classes=classes, notes=notes)
     conflict = _symbol_conflict(uses)
     if conflict and model is None:
@@ -345,16 +355,16 @@ def batches(ds: Dataset, batch_size: int, *, limit: int | None = None) -> Iterat
             feeds[name] = np.array(part, dtype=ds.dtypes.get(name, arr.dtype), order="C", copy=True)
         feeds.update({name: const.batch(stop - start) for name, const in ds.constants.items()})
         labels = None if ds.labels is None else np.array(ds.labels[start:stop], dtype=np.int64)
-        targets = None if ds.targets is None else np.array(ds.targets[start:stop], order="C", copy=True)
-        yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, targets=targets)
+        expected = None if ds.expected is None else np.array(ds.expected[start:stop], order="C", copy=True)
+        yield Batch(start=start, stop=stop, feeds=feeds, labels=labels, expected=expected)
 
 
 def input_batches(ds: Dataset, batch_size: int) -> Callable[[Collection[str]], Iterator[Batch]]:
     """A batch source for :class:`~swapper.core.slices.SliceRunner`: ``source(names)`` batches only the
-    arrays of ``ds`` named in ``names`` (no labels, no targets), so a slice that reads none copies none."""
+    arrays of ``ds`` named in ``names`` (no labels, no expected values), so a slice that reads none copies none."""
 
     def source(names: Collection[str]) -> Iterator[Batch]:
-        only = replace(ds, arrays={k: v for k, v in ds.arrays.items() if k in names}, labels=None, targets=None)
+        only = replace(ds, arrays={k: v for k, v in ds.arrays.items() if k in names}, labels=None, expected=None)
         return batches(only, batch_size)
 
     return source
@@ -366,7 +376,7 @@ def replicate(ds: Dataset, times: int) -> Dataset:
         raise ValueError("times must be >= 1")
     n = ds.n * int(times)
     return replace(ds, arrays={k: cycle(v, n) for k, v in ds.arrays.items()}, labels=cycle(ds.labels, n),
-                   targets=cycle(ds.targets, n), n=n, dtypes=dict(ds.dtypes))
+                   expected=cycle(ds.expected, n), n=n, dtypes=dict(ds.dtypes))
 
 
 def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
@@ -380,4 +390,4 @@ def subset(ds: Dataset, n: int, *, seed: int | None = None) -> Dataset:
         idx = np.sort(np.random.default_rng(seed).choice(ds.n, size=n, replace=False))
         take = lambda a: None if a is None else np.asarray(a[idx])  # noqa: E731
     return replace(ds, arrays={k: take(v) for k, v in ds.arrays.items()}, labels=take(ds.labels),
-                   targets=take(ds.targets), n=n, dtypes=dict(ds.dtypes))
+                   expected=take(ds.expected), n=n, dtypes=dict(ds.dtypes))

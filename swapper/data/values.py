@@ -1,4 +1,4 @@
-"""Checks of the values in a data set, streamed in chunks: NaN/Inf and overflow, labels, regression targets.
+"""Checks of the values in a data set, streamed in chunks: NaN/Inf and overflow, labels, expected values (regression).
 
 Every check names the file, the array and the first bad sample in one line (BadDataError).
 """
@@ -69,9 +69,9 @@ def check_labels(labels: np.ndarray, n: int, path: Path) -> None:
                 raise BadDataError(f"'labels' has a negative class id at sample {start + int(np.argmax(neg))}", path)
 
 
-def check_targets(targets: np.ndarray, n: int, path: Path) -> None:
-    if targets.dtype.kind not in "fiu":
-        raise BadDataError(f"'targets' must be numeric, got dtype {targets.dtype}", path)
-    if targets.ndim == 0 or len(targets) != n:
-        raise BadDataError(f"'targets' must have {n} rows, got shape {tuple(targets.shape)}", path)
-    scan_values("targets", targets, targets.dtype, path)
+def check_expected(expected: np.ndarray, n: int, path: Path) -> None:
+    if expected.dtype.kind not in "fiu":
+        raise BadDataError(f"'expected' must be numeric, got dtype {expected.dtype}", path)
+    if expected.ndim == 0 or len(expected) != n:
+        raise BadDataError(f"'expected' must have {n} rows, got shape {tuple(expected.shape)}", path)
+    scan_values("expected", expected, expected.dtype, path)

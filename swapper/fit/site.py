@@ -47,7 +47,7 @@ def fit_channels(
     ``BadDataError`` when the observer has seen no data. ``positive_a`` keeps
     a > 0, ``nonzero_a`` keeps a away from 0, ``positive_b`` keeps b > 0 (what
     the placement of the site asks for). b > 0 is kept by fitting again, with b
-    held at its start, the channels whose best fit has b <= 0 (b through a
+    fixed at its start, the channels whose best fit has b <= 0 (b through a
     residual Add scales an upstream activation, which only b > 0 can pass); the
     start must have b > 0.
     """
@@ -67,15 +67,16 @@ def fit_channels(
     if positive_b and "b" in free and (start["b"] <= 0).any():
         raise ValueError("positive_b needs a positive initial b on every channel")
     binned = method == "binned" and observer.held > 4 * bins
+    X, Y = observer.all_samples(dtype=None if binned else np.float64)
+    if not (np.isfinite(X).all() and np.isfinite(Y).all()):
+        # e.g. float64 site values beyond float32's range, kept in a float32 reservoir (found by the fuzzer)
+        raise BadDataError("site data holds values that are not finite in the precision they are kept in")
     if binned:  # stored precision: bins are sorted as stored and summed in float64
-        X, Y = observer.all_samples(dtype=None)
 
         def fit(X, Y, init, free):
             return fit_rows_binned(X, Y, g, init=init, free=free, positive_a=positive_a, dg=dg, bins=bins,
                                    nonzero_a=nonzero_a)
     else:
-        X, Y = observer.all_samples()
-
         def fit(X, Y, init, free):
             return fit_rows(X, Y, g, init=init, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
     out = fit(X, Y, start, free)
@@ -85,7 +86,7 @@ def fit_channels(
         for p in ("a", "b", "c", "d", "mse"):
             getattr(out, p)[bad] = getattr(again, p)
         for i, k in enumerate(bad):
-            out.notes[k] = f"b held at its start (the best b was <= 0), {again.notes[i]}"
+            out.notes[k] = f"b fixed at its start (the best b was <= 0), {again.notes[i]}"
     logger.debug(
         "fitted %d channels on %d samples each (%s): mse %.3g -> %.3g",
         C, observer.held, "binned" if binned else "full", float(out.mse_init.mean()), float(out.mse.mean()),

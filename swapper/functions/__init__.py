@@ -1,6 +1,6 @@
 """The function registry: every activation swapper knows, and the surrogate parametrisation.
 
-    registry.py   Function, REGISTRY, DEFAULT_TARGET, ALTERNATIVES, get(), candidates(), target_params()
+    registry.py   Function, REGISTRY, DEFAULT_SURROGATE, ALTERNATIVES, get(), candidates(), surrogate_params()
     formulas.py   float64 numpy references and derivatives
     emitters.py   ONNX emitters (standard ops at the model's opset)
     pwl.py        the piecewise-linear surrogate
@@ -13,15 +13,15 @@
 from swapper.functions import costs
 from swapper.functions.registry import (
     ALTERNATIVES,
-    DEFAULT_TARGET,
+    DEFAULT_SURROGATE,
     REGISTRY,
     Function,
     candidates,
     get,
     sources,
+    surrogate_params,
     surrogates,
-    target_params,
 )
 
-__all__ = ["ALTERNATIVES", "DEFAULT_TARGET", "REGISTRY", "Function", "candidates", "costs", "get", "sources",
-           "surrogates", "target_params"]
+__all__ = ["ALTERNATIVES", "DEFAULT_SURROGATE", "REGISTRY", "Function", "candidates", "costs", "get", "sources",
+           "surrogates", "surrogate_params"]

@@ -25,7 +25,7 @@ Clip-11: min/max as inputs; HardSwish-14: x·max(0, min(1, x/6 + ½)); Max-8:
 multidirectional broadcasting), Howard et al. 2019 (h-swish = x·ReLU6(x+3)/6).
 
 A form that moves a parameter (``moves``) is valid only where that parameter
-can move without breaking the site's placement: a parameter placed "held"
+can move without breaking the site's placement: a parameter placed "fixed"
 must stay neutral, so the planner rules the form out there
 (:func:`swapper.plan.choose`). The first form of each list whose opset the
 model has is the one the registry's own emitter writes (:func:`default_form`).

@@ -174,7 +174,7 @@ def prelu_grad(x, slope=0.25):
 
 def prelu_slope(slope) -> float:
     if np.ndim(slope) != 0:
-        raise UsageError("prelu is only detected, not a swap target (per-channel slope tensor)")
+        raise UsageError("prelu is only detected, never written as a surrogate (per-channel slope tensor)")
     return float(slope)
 
 

@@ -15,12 +15,17 @@ CONTRACT (the rest of the package relies on it):
   writes ``y``.
 - ``Function.homogeneous``: g(s·z) = s·g(z) for every s > 0 (relu, leaky_relu),
   so an outer scale a > 0 can be moved inside.
-- ``DEFAULT_TARGET[source] -> surrogate name``; ``ALTERNATIVES[source]`` the
+- ``DEFAULT_SURROGATE[source] -> surrogate name``; ``ALTERNATIVES[source]`` the
   surrogates tried next on a target where the default does not pay;
   ``candidates(source)`` both, in order.
-- ``target_params(source, source_params, target) -> dict``: the surrogate's own
-  fixed parameters for a given source (e.g. the knots of a piecewise-linear fit);
+- ``surrogate_params(function, function_params, surrogate) -> dict``: the surrogate's own
+  fixed parameters when it replaces ``function`` (e.g. the knots of a piecewise-linear fit);
   {} for surrogates without any.
+
+Words: a *swappable* function is a costly one swapper looks for (``sources()``,
+``is_cheap`` false); a *surrogate* is one it writes in its place (``is_cheap``
+true: cheap where targets fuse or table it, not always by the CPU cost here).
+"Target" means a target profile (swapper/targets/), never a surrogate.
 
 Additions: ``sources()`` lists the costly names; ``Function.cost`` is the
 measured ``swapper.functions.costs.relative_cost(name)``, or ``Function.static_cost``
@@ -140,7 +145,7 @@ class Function:
 REGISTRY: dict[str, Function] = {}
 
 
-DEFAULT_TARGET: dict[str, str] = {
+DEFAULT_SURROGATE: dict[str, str] = {
     "silu": "hard_swish", "swish": "hard_swish", "gelu": "hard_swish",
     "gelu_tanh": "hard_swish", "quick_gelu": "hard_swish", "mish": "hard_swish",
     "sigmoid": "hard_sigmoid", "tanh": "hard_tanh", "softsign": "hard_tanh",
@@ -167,7 +172,7 @@ def candidates(source: str) -> list[str]:
     fn = get(source)
     if fn.is_cheap:
         return [source]
-    default = DEFAULT_TARGET.get(source)
+    default = DEFAULT_SURROGATE.get(source)
     return [] if default is None else list(dict.fromkeys([default, *ALTERNATIVES.get(source, ())]))
 
 
@@ -282,19 +287,20 @@ _add("poly_gelu", poly_gelu, poly_gelu_grad, emit_poly_gelu, True, 3.0,
      source="Kim et al. 2021 (I-BERT), i-GELU: a=-0.2888, b=-1.769")
 
 
-# ---------------------------------------------------------- target parameters
-def target_params(source: str, source_params: dict, target: str, *, segments: int = PWL_DEFAULT_SEGMENTS) -> dict:
-    """The surrogate's own fixed parameters when it replaces ``source``.
+# ------------------------------------------------------- surrogate parameters
+def surrogate_params(function: str, function_params: dict, surrogate: str, *,
+                     segments: int = PWL_DEFAULT_SEGMENTS) -> dict:
+    """The surrogate's own fixed parameters when it replaces ``function``.
 
     hard_sigmoid: alpha/beta (0.2/0.5, see HSIG_ALPHA); leaky_relu: alpha 0.01;
     prelu: its default scalar slope; pwl: a weighted least-squares fit of
-    ``source`` with ``segments`` pieces; {} for the others. A costly target
+    ``function`` with ``segments`` pieces; {} for the others. A costly surrogate
     (e.g. gelu -> gelu_tanh) gets its default parameters.
     """
-    src, tgt = get(source), get(target)
-    if target == "pwl":
-        # Only the source's own numeric parameters shape the fit (a site may carry other keys).
-        merged = {**src.params, **{k: v for k, v in (source_params or {}).items() if k in src.params}}
+    src, sur = get(function), get(surrogate)
+    if surrogate == "pwl":
+        # Only the function's own numeric parameters shape the fit (a site may carry other keys).
+        merged = {**src.params, **{k: v for k, v in (function_params or {}).items() if k in src.params}}
         items = tuple(sorted((k, float(v)) for k, v in merged.items()))
-        return fit_pwl(src.ref, items, segments, source)
-    return dict(tgt.params)
+        return fit_pwl(src.ref, items, segments, function)
+    return dict(sur.params)

@@ -22,7 +22,7 @@ Scale, the ``b`` of that site (:func:`add_input`): every operand carries b::
     #     b·v = a'·g'(b·z') + b·d'                                  needs b > 0
     # so v's pre-activation scales by b (where that site's own b, c live: its
     # producer, or recursively through its own Add), its d' scales with it (d' is
-    # held at 0, or lives in this Add's other producer, which scales anyway), and
+    # fixed at 0, or lives in this Add's other producer, which scales anyway), and
     # v's other readers, linear layers L (also behind pools / reshapes / gates),
     # read b·v instead of v:  L(v) = (L·diag(1/b))(b·v)            (input weights × 1/b)
     # Any other operand (a graph input, another op's output) stops b.
@@ -59,7 +59,7 @@ from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-THROUGH_ADD = "through add"  # the placement word for b, c (an Add produces x) and d (y feeds an Add)
+THROUGH_ADD = "through-add"  # the placement word for b, c (an Add produces x) and d (y feeds an Add)
 
 
 @dataclass(frozen=True)
@@ -157,9 +157,9 @@ def _operand(index: GraphIndex, site: Site, add: onnx.NodeProto, tensor: str,
     place, sid = up.placement, up.site.id
     if not up.homogeneous:
         return Operand(tensor, site_id=sid, why=f"site {sid}'s surrogate is not positively homogeneous")
-    if place["b"] not in ("producer", THROUGH_ADD) or place["c"] not in ("producer", THROUGH_ADD, "held"):
+    if place["b"] not in ("producer", THROUGH_ADD) or place["c"] not in ("producer", THROUGH_ADD, "fixed"):
         return Operand(tensor, site_id=sid, why=f"site {sid}'s b, c are not folded into layers")
-    if place["a"] not in ("inner", "held", "nodes") or place["d"] not in ("held", THROUGH_ADD, "approx"):
+    if place["a"] not in ("in-surrogate", "fixed", "nodes") or place["d"] not in ("fixed", THROUGH_ADD, "approx"):
         return Operand(tensor, site_id=sid, why=f"site {sid}'s a or d would not scale with its output")
     if list(add.input).count(tensor) != 1 or sum(1 for u in index.users(tensor) if is_op(u, "Add")) != 1:
         return Operand(tensor, site_id=sid, why=f"site {sid}'s output feeds more than this Add")

@@ -10,7 +10,7 @@ its priced chain, the opset it needs and, when it cannot be used here, why.
 The rules (``profile`` given):
 
 - *eligible*: a form is usable when the model's opset has its ops, every
-  parameter its re-parametrisation moves has a placement other than "held"
+  parameter its re-parametrisation moves has a placement other than "fixed"
   (:mod:`swapper.plan.placement`), and the target supports every op of its
   chain (``profile.allows``); a surrogate is eligible when one form is usable;
 - *form*: the usable form with the lowest ``profile.cost_of`` after the site's
@@ -200,14 +200,14 @@ def site_options(index: GraphIndex, site: Site, profile: TargetProfile | None, s
     for name in surrogates:
         fn = functions.get(name)
         placement, notes = decide_placement(index, site, fn, fold, upstream)
-        params = functions.target_params(site.function, site.params, name)
+        params = functions.surrogate_params(site.function, site.params, name)
         for form in forms_of(name):
-            held = [p for p in "abcd" if p in form.moves and placement.get(p) == "held"]
+            held = [p for p in "abcd" if p in form.moves and placement.get(p) == "fixed"]
             ops = prefix + _param_nodes(placement, True) + form.op_types(params, max(opset, form.min_opset)) \
                 + _param_nodes(placement, False)
             blocked = None
             if held:
-                blocked = (f"form {form.name} moves {', '.join(held)}, held at this site "
+                blocked = (f"form {form.name} moves {', '.join(held)}, which this site keeps fixed "
                            f"({'; '.join(n for n in notes if any(n.startswith(p) for p in held)) or 'no fold'})")
             cost = None
             if profile is not None:

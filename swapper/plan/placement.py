@@ -1,44 +1,48 @@
 """Where each surrogate parameter lives, decided once per site, before calibration.
 
 Transformation: a site swapped for ``y = a·g(b·x + c) + d`` gets a placement
-``{param: where}`` (:func:`decide_placement`, from the fold targets of
-:mod:`swapper.plan.fold_targets` and the fold policy):
+``{param: where}`` (:func:`decide_placement`, from the layers
+:mod:`swapper.plan.fold_targets` finds and the fold policy):
 
-- ``"producer"``   (b, c) folded into the layer that produces x;
-- ``"consumers"``  (a, d) folded into the linear layers that read y;
-- ``"consumers+"`` (a) as "consumers", but a max pool is on the way:
-                   max(a·y) = a·max(y) only for a >= 0;
-- ``"inner"``      (a) moved inside g: a·g(z) = g(a·z) for a > 0 and positively homogeneous g;
-- ``"nodes"``      an explicit per-channel Mul/Add node (always exact);
-- ``"held"``       kept at its neutral value; the fitter may not move it;
-- ``"approx"``     (d) pushed into a zero-padded Conv's bias (inexact at the borders);
-- ``"through add"`` (b, c) x is a residual Add's output: c into the bias of the
-                   Add's exclusive linear producer of one operand, b into every
-                   operand (producers' rows and biases; an upstream swapped site's
-                   pre-activation, its other readers reading through 1/b);
-                   (d) y also feeds residual Adds: d into the linear readers' biases
-                   and, through each Add, into its other operand's exclusive linear
-                   producer or the layers reading its output. The rules and their
-                   maths are in :mod:`swapper.plan.add_folds`.
+- ``"producer"``          (b, c) folded into the layer that produces x;
+- ``"consumers"``         (a, d) folded into the linear layers that read y;
+- ``"consumers-via-max"`` (a) as "consumers", but a max pool (or max reduction) is on
+                          the way: max(a·y) = a·max(y) only for a > 0;
+- ``"in-surrogate"``      (a) moved inside g: a·g(z) = g(a·z) for a > 0 and positively homogeneous g;
+- ``"nodes"``             an explicit per-channel Mul/Add node (always exact);
+- ``"fixed"``             kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
+- ``"approx"``            (d) pushed into a zero-padded Conv's bias (inexact at the borders);
+- ``"through-add"``       (b, c) x is a residual Add's output: c into the bias of the
+                          Add's exclusive linear producer of one operand, b into every
+                          operand (producers' rows and biases; an upstream swapped site's
+                          pre-activation, its other readers reading through 1/b);
+                          (d) y also feeds residual Adds: d into the linear readers' biases
+                          and, through each Add, into its other operand's exclusive linear
+                          producer or the layers reading its output. The rules and their
+                          maths are in :mod:`swapper.plan.add_folds`.
+
+Plans written before these words (``"held"``, ``"inner"``, ``"consumers+"``) read
+through :func:`canonical_placement`. :data:`LEGEND` is the one-line explanation
+of each word that tables print beneath them.
 
 The placement is the whole record: nothing later moves a parameter. What
 the values of a must satisfy for it to stay exact is read from the
 placement alone (:func:`a_rule`), never from the current values, so the
 fitter keeps to it and the rewriter only checks it:
 
-- a > 0 ("positive") for "inner" and for "consumers+";
+- a > 0 ("positive") for "in-surrogate" and for "consumers-via-max";
 - a ≠ 0 ("nonzero") for "consumers" while d is a node: the consumers scale
   their input by a, so the d node before them must add d/a. Two rules would
   make that exact for any values: keep a away from 0 in the fit, or emit a
   as a node too. The first is taken: it adds no node under any policy (the
-  second would add a Mul to every such site under ``--fold nodes``; under
-  the default ``--fold exact`` d is never a node, as it is "held" where it
+  second would add a Mul to every such site under ``--fold exact+nodes``; under
+  the default ``--fold exact`` d is never a node, as it is "fixed" where it
   cannot fold, so neither rule ever applies there). The fit loses nothing
   that matters: it clamps |a| to 1e-6 of the channel's natural slope scale
   only where the best a is closer to 0 than that (:mod:`swapper.fit.channel`),
   and float32 rounding of (g + d/a)·a is that of a·g + d.
 
-b > 0 ("positive", :func:`b_rule`) for "through add": the scale may pass
+b > 0 ("positive", :func:`b_rule`) for "through-add": the scale may pass
 through an upstream site's activation (g(b·z) = b·g(z) holds for b > 0
 only); it is asked in every case so that it reads from the placement alone.
 
@@ -55,7 +59,7 @@ from swapper.core.graph import GraphIndex
 from swapper.errors import UsageError
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.functions.registry import Function
-from swapper.options import check_fold
+from swapper.options import fold_word
 from swapper.plan.add_folds import (
     THROUGH_ADD,
     Upstream,
@@ -69,12 +73,31 @@ from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-PLACEMENTS = ("producer", "consumers", "consumers+", "inner", "nodes", "held", "approx", THROUGH_ADD)
+PLACEMENTS = ("producer", "consumers", "consumers-via-max", "in-surrogate", "nodes", "fixed", "approx", THROUGH_ADD)
 # the parameters each placement can hold (every one for the others)
-ONLY_FOR = {"consumers+": "a", "inner": "a", "approx": "d", THROUGH_ADD: "bcd", "producer": "bc", "consumers": "ad"}
-IN_CONSUMERS = ("consumers", "consumers+")  # a folded into the consumers' weights
-FOLDING = ("producer", "consumers", "consumers+", "approx", "inner", THROUGH_ADD)  # placements that rewrite layers
+ONLY_FOR = {"consumers-via-max": "a", "in-surrogate": "a", "approx": "d", THROUGH_ADD: "bcd", "producer": "bc",
+            "consumers": "ad"}
+IN_CONSUMERS = ("consumers", "consumers-via-max")  # a folded into the consumers' weights
+# placements that rewrite layers
+FOLDING = ("producer", "consumers", "consumers-via-max", "approx", "in-surrogate", THROUGH_ADD)
 PRE_SCALED = ("producer", "nodes", THROUGH_ADD)  # where b may live for a to move inside g
+OLD_WORDS = {"held": "fixed", "inner": "in-surrogate", "consumers+": "consumers-via-max"}  # older plans' words
+# What each word means, for a reader of a table of placements (the terminal's swap table, report.html).
+LEGEND = {
+    "producer": "folded into the layer that computes the site's input",
+    "consumers": "folded into the layers that read the site's output",
+    "consumers-via-max": "folded into those layers through a max pool; exact only for a > 0, so a is kept > 0",
+    "in-surrogate": "moved inside the surrogate: a·g(z) = g(a·z) for a > 0 (ReLU family)",
+    "nodes": "a per-channel Mul or Add node added to the graph",
+    "fixed": "kept at 1 (a, b) or 0 (c, d) and not fitted: it has nowhere exact to go",
+    "approx": "pushed into a zero-padded Conv's bias: inexact at the image borders",
+    THROUGH_ADD: "folded through a residual Add into the layers on its other side (b kept > 0)",
+}
+
+
+def canonical_placement(placement: dict) -> dict:
+    """``placement`` with the words of older plans replaced by today's (``"held"`` -> ``"fixed"``...)."""
+    return {p: OLD_WORDS.get(w, w) for p, w in placement.items()}
 A_RULES = {"positive": "a > 0", "nonzero": "a != 0"}  # what a placement can ask of the values of a
 
 
@@ -84,7 +107,7 @@ def a_rule(placement: dict) -> str | None:
     From the placement alone (module docstring): the fitter keeps to it and the rewriter checks it.
     """
     where = placement.get("a")
-    if where in ("inner", "consumers+"):
+    if where in ("in-surrogate", "consumers-via-max"):
         return "positive"
     if where in IN_CONSUMERS and placement.get("d") == "nodes":
         return "nonzero"
@@ -96,23 +119,25 @@ def b_rule(placement: dict) -> str | None:
     return "positive" if placement.get("b") == THROUGH_ADD else None
 
 
-def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray], target: Function) -> dict[str, str]:
-    """``placement`` with every parameter named (a missing one is "held"); UsageError if it or the values break it.
+def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray],
+                    surrogate: Function) -> dict[str, str]:
+    """``placement`` with every parameter named (a missing one is "fixed"); UsageError if it or the values break it.
 
     ``values`` maps "a".."d" to the parameter vectors. Checked: each placement
-    is known and allowed for its parameter, held parameters are neutral, a
+    is known and allowed for its parameter, fixed parameters are neutral, a
     inside g needs a homogeneous g and b in the producer or a node, c in the
     producer cannot follow b as a node, and a keeps to :func:`a_rule`.
     """
-    place = {p: placement.get(p, "held") for p in PARAMS}
+    placement = canonical_placement(placement)
+    place = {p: placement.get(p, "fixed") for p in PARAMS}
     for p, where in place.items():
         if where not in PLACEMENTS or p not in ONLY_FOR.get(where, p):
             raise UsageError(f"site {site_id}: invalid placement {where!r} for {p}")
-        if where == "held" and not np.all(values[p] == NEUTRAL[p]):
-            raise UsageError(f"site {site_id}: {p} is held but not neutral ({NEUTRAL[p]})")
-    if place["a"] == "inner":
-        if not target.homogeneous:
-            raise UsageError(f"site {site_id}: a is placed inside {target.name}, which is not homogeneous")
+        if where == "fixed" and not np.all(values[p] == NEUTRAL[p]):
+            raise UsageError(f"site {site_id}: {p} is fixed but not neutral ({NEUTRAL[p]})")
+    if place["a"] == "in-surrogate":
+        if not surrogate.homogeneous:
+            raise UsageError(f"site {site_id}: a is placed inside {surrogate.name}, which is not homogeneous")
         if place["b"] not in PRE_SCALED:
             raise UsageError(f"site {site_id}: a inside g needs b in the producer, through an add or as a node")
     if place["c"] in ("producer", THROUGH_ADD) and place["b"] == "nodes":
@@ -127,7 +152,7 @@ def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray]
     rule, a = a_rule(place), values["a"]
     bad = np.flatnonzero(a <= 0) if rule == "positive" else np.flatnonzero(a == 0) if rule == "nonzero" else []
     if len(bad):
-        what = {"inner": f"a inside {target.name}", "consumers+": "a folded through a max pool",
+        what = {"in-surrogate": f"a inside {surrogate.name}", "consumers-via-max": "a folded through a max pool",
                 "consumers": "a in the consumers with d as a node (d/a)"}[place["a"]]
         channels = ", ".join(str(i) for i in bad[:5]) + (" ..." if len(bad) > 5 else "")
         raise UsageError(f"site {site_id}: {what} needs {A_RULES[rule]}; channel {channels} breaks it "
@@ -135,17 +160,17 @@ def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray]
     return place
 
 
-def decide_placement(index: GraphIndex, site: Site, target: Function, policy: str,
+def decide_placement(index: GraphIndex, site: Site, surrogate: Function, policy: str,
                      upstream: dict[str, Upstream] | None = None) -> tuple[dict[str, str], list[str]]:
     """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes).
 
     ``upstream``: the swapped sites decided before, by output tensor (:class:`~swapper.plan.add_folds.Upstream`);
     b may pass through a residual Add into one of them.
     """
-    check_fold(policy)
+    policy = fold_word(policy)
     if policy == "off":
         return {p: "nodes" for p in PARAMS}, ["fold off: every parameter is an explicit Mul/Add node"]
-    rest = "nodes" if policy == "nodes" else "held"
+    rest = "nodes" if policy == "exact+nodes" else "fixed"
     placement: dict[str, str] = {}
     notes: list[str] = []
 
@@ -160,14 +185,14 @@ def decide_placement(index: GraphIndex, site: Site, target: Function, policy: st
 
     adds = residual_readers(index, site)
     cons, cons_why = consumer_folds(index, site, skip=adds)
-    if target.homogeneous and placement["b"] in PRE_SCALED:
-        placement["a"] = "inner"
-        notes.append(f"a moved inside {target.name} (needs a > 0)")
+    if surrogate.homogeneous and placement["b"] in PRE_SCALED:
+        placement["a"] = "in-surrogate"
+        notes.append(f"a moved inside {surrogate.name} (needs a > 0)")
     elif cons is not None and adds:
         placement["a"] = rest
         notes.append(f"a {rest}: {site.output!r} also feeds the residual Add {', '.join(sorted(adds))}")
     elif cons is not None and any(f.reach.a_positive for f in cons):
-        placement["a"] = "consumers+"
+        placement["a"] = "consumers-via-max"
         pools = sorted({p for f in cons if f.reach.a_positive for p in f.path})
         notes.append(f"a folded through a max pool on the way to its consumers (needs a >= 0; via {', '.join(pools)})")
     elif cons is not None:

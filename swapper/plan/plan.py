@@ -9,19 +9,24 @@ Per swapped site, the surrogate computes, per channel c,
 
 and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
 
-- ``"producer"``  folded into the Conv/Gemm/MatMul(+Add)/BatchNormalization that feeds x;
-- ``"consumers"`` folded into the linear layers that read y, directly or behind
-                  ops that commute with it (average pools, channel-keeping reshapes;
-                  a also through a gate Mul, d only where no zero padding is averaged);
-- ``"consumers+"`` (a only) as "consumers", but a max pool is on the way: exact
-                  only for a >= 0, so the fitter keeps a > 0;
-- ``"inner"``     (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
-- ``"nodes"``     emitted as per-channel Mul/Add nodes (adds nodes, always exact);
-- ``"held"``      kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
-- ``"approx"``    (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders);
-- ``"through add"`` (b, c) carried through the residual Add that produces x into its
-                  operands' layers (b > 0); (d) into y's linear readers and through the
-                  residual Adds reading y (:mod:`swapper.plan.add_folds`).
+- ``"producer"``          folded into the Conv/Gemm/MatMul(+Add)/BatchNormalization that feeds x;
+- ``"consumers"``         folded into the linear layers that read y, directly or behind
+                          ops that commute with it (average pools, channel-keeping reshapes;
+                          a also through a gate Mul, d only where no zero padding is averaged);
+- ``"consumers-via-max"`` (a only) as "consumers", but a max pool is on the way: exact
+                          only for a >= 0, so the fitter keeps a > 0;
+- ``"in-surrogate"``      (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
+- ``"nodes"``             emitted as per-channel Mul/Add nodes (adds nodes, always exact);
+- ``"fixed"``             kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
+- ``"approx"``            (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders);
+- ``"through-add"``       (b, c) carried through the residual Add that produces x into its
+                          operands' layers (b > 0); (d) into y's linear readers and through the
+                          residual Adds reading y (:mod:`swapper.plan.add_folds`).
+
+Each swap names the function it replaces (``SiteSwap.function``) and the
+surrogate written instead (``SiteSwap.surrogate``). Plans written before these
+names (``source``/``target``, ``"held"``/``"inner"``/``"consumers+"``,
+fold ``"nodes"``) are read with the new ones (:meth:`Plan.from_dict`).
 
 The placement is decided once, in :mod:`swapper.plan.placement`, which also
 says what it asks of the values of a (:func:`swapper.plan.placement.a_rule`);
@@ -46,19 +51,24 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from swapper.functions.params import NEUTRAL, PARAMS
-from swapper.options import check_fold
-from swapper.plan.placement import a_rule, b_rule, check_placement
+from swapper.options import fold_word
+from swapper.plan.placement import a_rule, b_rule, canonical_placement, check_placement
 
 logger = logging.getLogger(__name__)
+
+
+# Field names of plans written before the rename: what a site computes was its "source", the surrogate its "target".
+_RENAMED = {"source": "function", "source_params": "function_params", "target": "surrogate",
+            "target_params": "surrogate_params"}
 
 
 @dataclass
 class SiteSwap:
     site_id: str
-    source: str
-    source_params: dict
-    target: str
-    target_params: dict
+    function: str  # the costly function at the site (a registry name)
+    function_params: dict
+    surrogate: str  # the function written in its place
+    surrogate_params: dict  # the surrogate's own fixed parameters (functions.surrogate_params)
     channel_axis: int | None
     channels: int  # 1 when the channel axis is unknown (one scalar set)
     a: np.ndarray
@@ -73,13 +83,13 @@ class SiteSwap:
 
     def free(self) -> tuple[str, ...]:
         """The parameters a fitter may move."""
-        return tuple(p for p in PARAMS if self.placement.get(p) != "held")
+        return tuple(p for p in PARAMS if self.placement.get(p) != "fixed")
 
     def a_bounds(self) -> dict[str, bool]:
         """What the fitter must keep true of a, as its options ``positive_a`` and ``nonzero_a``.
 
         From the placement alone (:func:`swapper.plan.placement.a_rule`), never
-        from the current values: a > 0 for "inner" and "consumers+", a != 0 for
+        from the current values: a > 0 for "in-surrogate" and "consumers-via-max", a != 0 for
         "consumers" while d is a node.
         """
         rule = a_rule(self.placement)
@@ -87,7 +97,7 @@ class SiteSwap:
 
     def fit_bounds(self) -> dict[str, bool]:
         """Every option the fitter takes from the placement: :meth:`a_bounds` and ``positive_b``
-        (b > 0 for "through add", :func:`swapper.plan.placement.b_rule`)."""
+        (b > 0 for "through-add", :func:`swapper.plan.placement.b_rule`)."""
         return {**self.a_bounds(), "positive_b": b_rule(self.placement) == "positive"}
 
     def check(self) -> dict[str, str]:
@@ -96,13 +106,13 @@ class SiteSwap:
         from swapper import functions
 
         values = {p: np.asarray(getattr(self, p), dtype=np.float64).ravel() for p in PARAMS}
-        return check_placement(self.site_id, self.placement, values, functions.get(self.target))
+        return check_placement(self.site_id, self.placement, values, functions.get(self.surrogate))
 
-    def surrogate(self):
+    def bound_surrogate(self):
         """(g, dg) of the surrogate with its own parameters fixed."""
         from swapper import functions
 
-        return functions.get(self.target).bind(self.target_params)
+        return functions.get(self.surrogate).bind(self.surrogate_params)
 
     def params(self) -> dict[str, np.ndarray]:
         return {p: getattr(self, p) for p in PARAMS}
@@ -120,6 +130,10 @@ class SiteSwap:
     @classmethod
     def from_dict(cls, d: dict) -> "SiteSwap":
         d = dict(d)
+        for old, new in _RENAMED.items():  # plans written before the rename (model metadata, hand-edited files)
+            if old in d and new not in d:
+                d[new] = d.pop(old)
+        d["placement"] = canonical_placement(d["placement"])
         for p in PARAMS:  # a summary (model metadata) carries no values: read them as neutral
             d[p] = np.asarray(d.get(p, [NEUTRAL[p]] * d["channels"]), dtype=np.float64)
         return cls(**d)
@@ -169,7 +183,7 @@ class Plan:
     @classmethod
     def from_dict(cls, d: dict) -> "Plan":
         return cls(
-            fold=d["fold"],
+            fold=fold_word(d["fold"]),
             swaps=[SiteSwap.from_dict(s) for s in d["swaps"]],
             skipped=[Skipped(**s) for s in d.get("skipped", [])],
             target=d.get("target"), opset=d.get("opset"), conversion=d.get("conversion"),
@@ -184,17 +198,17 @@ class Plan:
 _STARTS: dict[tuple, tuple[float, float, float, float]] = {}
 
 
-def _starting_params(source: str, source_params: dict, target: str, target_params: dict,
+def _starting_params(function: str, function_params: dict, surrogate: str, surrogate_params: dict,
                      free: str, positive_a: bool, nonzero_a: bool) -> tuple[float, float, float, float]:
-    """Least-squares best a, b, c, d of the surrogate to the source over a standard input range (memoised)."""
+    """Least-squares best a, b, c, d of the surrogate to the function over a standard input range (memoised)."""
     from swapper import functions
     from swapper.fit.channel import starting_params
 
-    key = (source, json.dumps(source_params, sort_keys=True), target, json.dumps(target_params, sort_keys=True),
-           free, positive_a, nonzero_a)
+    key = (function, json.dumps(function_params, sort_keys=True), surrogate,
+           json.dumps(surrogate_params, sort_keys=True), free, positive_a, nonzero_a)
     if key not in _STARTS:
-        f, _ = functions.get(source).bind(source_params)
-        g, dg = functions.get(target).bind(target_params)
+        f, _ = functions.get(function).bind(function_params)
+        g, dg = functions.get(surrogate).bind(surrogate_params)
         _STARTS[key] = starting_params(f, g, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
     return _STARTS[key]
 
@@ -211,9 +225,7 @@ def _parse_choices(choices: dict[str, str] | None, known: set[str]) -> dict[str,
         text, _, site_fold = str(text).partition("@")
         name, _, form = text.partition(":")
         functions.get(name)
-        if site_fold:
-            check_fold(site_fold)
-        out[site_id] = (name, form or None, site_fold or None)
+        out[site_id] = (name, form or None, fold_word(site_fold) if site_fold else None)
     return out
 
 
@@ -232,7 +244,7 @@ def make_plan(
 ) -> Plan:
     """Choose sites, surrogates and emission forms; set each swap's starting parameters and placement.
 
-    Default: every supported *pointwise* site whose function is costly; gates only
+    Default: every supported *hidden* site whose function is costly; gates only
     with ``include_gates``; graph outputs only with ``include_outputs``.
     ``site_ids`` and ``only`` (a source function name) narrow the choice.
     ``target`` (a :class:`~swapper.targets.profile.TargetProfile`) decides per
@@ -251,7 +263,7 @@ def make_plan(
     from swapper.plan.bodies import SiteGraphs
     from swapper.plan.choose import choose, chosen_line, opset_hints, site_options
 
-    check_fold(fold)
+    fold = fold_word(fold)
     if to is not None:
         functions.get(to)  # raises with the valid names
     if only is not None:
@@ -297,7 +309,7 @@ def make_plan(
             skip(f"{site.function} is already cheap")
             continue
         notes = [f"swapped although a {site.role}: {', '.join(lacking)} cannot run on {name}"] \
-            if lacking and site.role != "pointwise" else []
+            if lacking and site.role != "hidden" else []
         if site.role == "gate" and not (include_gates or explicit or lacking):
             skip("gate (its output multiplies another tensor); use --include-gates")
             continue
@@ -344,13 +356,13 @@ def _site_swap(site, option, notes: list[str], cost: dict | None) -> SiteSwap:
     from swapper import functions
 
     channels = site.channels or 1
-    tparams = functions.target_params(site.function, site.params, option.surrogate)
+    tparams = functions.surrogate_params(site.function, site.params, option.surrogate)
     swap = SiteSwap(
         site_id=site.id,
-        source=site.function,
-        source_params=dict(site.params),
-        target=option.surrogate,
-        target_params=tparams,
+        function=site.function,
+        function_params=dict(site.params),
+        surrogate=option.surrogate,
+        surrogate_params=tparams,
         channel_axis=site.channel_axis if site.channels else None,
         channels=channels,
         **{p: np.full(channels, NEUTRAL[p]) for p in PARAMS},

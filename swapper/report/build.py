@@ -11,25 +11,45 @@ when a part did not run):
   integer label).
 - ``plan``: the plan (see swapper/plan/plan.py) or null for `swapper check`:
   ``fold, swaps, skipped, target, opset, conversion`` (the opset conversion
-  record or null), ``remaining``, ``hints``.
-- ``sites``: one entry per swapped site: ``site_id, source, target, form``
-  (the emission form written), ``placement {a,b,c,d}, nodes_added,
-  folded_into, mse_start, mse_fit, level, bias_corrected, refit, notes`` (mse
-  values null without calibration; ``refit``: ``{refitted, held_out_samples,
-  mse_current, mse_refit, consumers}``, the consumer refit's decision for the
-  site, or null when none was weighed).
+  record or null), ``remaining``, ``hints``. Each swap names ``function`` (what
+  the site computes) and ``surrogate`` (what is written instead), with their
+  ``function_params`` / ``surrogate_params``.
+- ``sites``: one entry per swapped site: ``site_id, function, surrogate, form``
+  (the emission form written), ``placement {a,b,c,d}`` (words of
+  swapper/plan/placement.py: producer, consumers, consumers-via-max,
+  in-surrogate, nodes, fixed, approx, through-add), ``nodes_added`` (how many nodes the graph
+  gained at the site: the nodes written there minus the original's nodes they
+  replace, 0 when it gained none, also when it shrank), ``site_nodes``
+  ``{"original", "written"}`` (both counts), ``folded_into, mse_start, mse_fit,
+  level, bias_corrected, refit, notes`` (mse values null without calibration;
+  ``refit``: ``{refitted, held_out_samples, mse_current, mse_refit,
+  consumers}``, the consumer refit's decision for the site, or null when none
+  was weighed).
 - ``calibration``: ``{"samples", "tokens", "timings_s", "sites"}`` (``tokens``: which attention mask the
   statistics of token-shaped sites honoured and how many tokens they read, or why none; per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
 - ``comparison``: see ``swapper.check.compare.Comparison.to_dict`` (with
   ``output_kinds``: output -> ``{kind, cue, sample_shape, dtype}``, and per output in
-  ``output_errors`` the per-sample ``cosine_mean``, ``cosine_p5``, ``cosine_min``);
-  ``budget``: ``{"max_drop_pp", "strict", "min_agreement"}``; ``verdict``:
-  ``{"approved", "reason", "rule", "metric", "outputs", "thresholds"}`` (``metric``:
+  ``output_errors`` the per-sample ``cosine_mean``, ``cosine_p5``, ``cosine_min``).
+  One sign convention for people: the top-1 *drop* = original − candidate, in
+  points: ``drop_pp`` and ``drop_interval_pp`` ``[lo, hi]`` (the interval for the
+  drop, at ``interval.level``); ``delta_pp`` and ``interval.lo_pp/hi_pp`` keep the
+  older candidate − original difference for readers of earlier reports.
+  ``n01``: samples only the candidate gets right, ``n10``: only the original.
+  ``changed``: the samples whose top-1 class changed, ``{"count", "discordant",
+  "shown", "samples"}`` (``discordant`` = n01 + n10, null without labels;
+  ``samples``: the first 100 by index, each ``{"index", "original", "candidate",
+  "label"}`` with classes as integers, ``label`` null without labels), or null
+  when no class scores were compared;
+  ``budget``: ``{"max_drop_pp", "strict", "min_agreement"}`` (``max_drop_pp`` is
+  the ``--budget`` value whatever the metric reads it as); ``verdict``:
+  ``{"approved", "reason", "rule", "metric", "outputs", "thresholds", "caution"}`` (``metric``:
   top1 | agreement | cosine | sqnr | rmse, null when the candidate was refused for
   NaN/Inf or a changed signature; ``outputs``: the outputs the rule judged;
-  ``thresholds``: the floors applied, by name); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
-  runs}`` plus ``ratio``, ``batch_size``, ``threads`` and, with a target,
+  ``thresholds``: the floors applied, by name; ``caution``: the text of the
+  top-level ``caution``, so the model's ``swapper.verdict`` metadata, which holds
+  this same entry, carries it too); ``latency``: per model ``{median_ms, p10_ms, p90_ms,
+  runs}`` plus ``ratio``, ``clock`` ("thread CPU time" with one thread, else "wall time"), ``batch_size``, ``threads`` and, with a target,
   ``target`` (see ``swapper.api.check``), or null when latency was not measured
   (``--no-latency``); ``size``: per model ``{bytes, nodes, op_counts,
   initializer_bytes}`` (``bytes``: the model file as written or read, external data
@@ -50,12 +70,31 @@ when a part did not run):
   sweep's ``run`` entry, :mod:`swapper.sweep.schema`), ``"lacking_ops"``
   (declared target: ops of the written model it cannot run, or null)}``.
   Added in schema /1: no earlier field changed meaning.
+- ``options``: what the run was asked to do: ``{"swap", "gate", "run"}``:
+  ``swap`` the :class:`~swapper.options.SwapOptions` fields (null for `swapper
+  check`), ``gate`` ``{"metric", "max_drop_pp", "strict", "min_agreement",
+  "min_cosine", "min_cosine_p5", "min_sqnr_db"}`` as given (null: the default;
+  null entry without a validation set), ``run`` the command's own settings
+  (``command``, ``plan``, ``force``, ``int8``, ``latency_runs``...).
 - ``caution``: the safety caution, verbatim.
 
+Added later in schema /1: ``options``, ``verdict.caution``,
+``comparison.drop_pp``, ``comparison.drop_interval_pp``, ``comparison.changed``,
+``sites[].site_nodes``. Renamed, same values, so that "target" means a target
+profile only and "source" a citation only: ``sites[].source`` -> ``function``,
+``sites[].target`` -> ``surrogate``, and in ``plan.swaps`` also
+``source_params`` -> ``function_params``, ``target_params`` ->
+``surrogate_params``. Placement words renamed: ``held`` -> ``fixed``,
+``inner`` -> ``in-surrogate``, ``consumers+`` -> ``consumers-via-max``; fold
+``nodes`` -> ``exact+nodes``. Changed meaning: ``sites[].nodes_added`` counted
+every node written at the site (the surrogate op itself included, so a
+one-for-one swap read 1); it now counts what the graph gained there.
+
 report.html is self-contained (styles inline, plots as data: URIs): the verdict
-and its reason first, then accuracy and agreement, latency and size side by
-side, the per-site table, and plots when matplotlib (the ``plots`` extra) is
-installed.
+and its reason first with the caution directly under it, then what was judged
+(every input's path and sha256, the settings), accuracy and agreement, latency
+and size side by side, the samples that changed class, the per-site table, and
+plots when matplotlib (the ``plots`` extra) is installed.
 """
 from __future__ import annotations
 
@@ -67,6 +106,7 @@ from pathlib import Path
 
 import numpy as np
 
+from swapper.check.gate import CAUTION
 from swapper.core.files import ensure_folder
 from swapper.core.model_io import atomic_write_bytes, sha256_file
 from swapper.report.html import render_html
@@ -74,20 +114,15 @@ from swapper.report.html import render_html
 logger = logging.getLogger(__name__)
 
 SCHEMA = "swapper.report/1"
-CAUTION = (
-    "Caution: a verdict is evidence on the given validation data, not a certification. Where a swapped model "
-    "could hurt someone (medical, vehicles, safety), re-validate it on field data and defer to local regulations "
-    "and licensed practice."
-)
 
 
-VERDICT_KEYS = {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
+VERDICT_KEYS = {"approved", "reason", "rule", "metric", "outputs", "thresholds", "caution"}
 TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison", "budget",
-            "verdict", "latency", "size", "int8", "search", "caution")
+            "verdict", "latency", "size", "int8", "search", "options", "caution")
 
 
-SITE_KEYS = ("site_id", "source", "target", "form", "placement", "nodes_added", "folded_into", "mse_start",
-             "mse_fit", "level", "bias_corrected", "refit", "notes")
+SITE_KEYS = ("site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes", "folded_into",
+             "mse_start", "mse_fit", "level", "bias_corrected", "refit", "notes")
 
 
 def _versions() -> dict:
@@ -140,9 +175,11 @@ def site_rows(plan, records, calibration) -> list[dict]:
     for s in plan.swaps:
         rec, fit = by_record.get(s.site_id), fits.get(s.site_id)
         rows.append({
-            "site_id": s.site_id, "source": s.source, "target": s.target,
+            "site_id": s.site_id, "function": s.function, "surrogate": s.surrogate,
             "form": rec.form if rec else s.form, "placement": dict(s.placement),
-            "nodes_added": rec.nodes_added if rec else None,
+            # what the graph gained at the site: the written nodes against the original's nodes they replace
+            "nodes_added": max(0, rec.nodes_added - rec.nodes_replaced) if rec else None,
+            "site_nodes": {"original": rec.nodes_replaced, "written": rec.nodes_added} if rec else None,
             "folded_into": list(rec.folded_into) if rec else [],
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
             "level": fit.level if fit else None,
@@ -155,9 +192,25 @@ def site_rows(plan, records, calibration) -> list[dict]:
     return rows
 
 
+def options_entry(swap=None, check=None, settings: dict | None = None) -> dict:
+    """What the run was asked to do: the swap's settings, the gate's rule, the command's own settings."""
+    from dataclasses import asdict
+
+    rule = getattr(check, "budget", None)
+    gate = None
+    if rule is not None:
+        gate = {"metric": getattr(rule, "metric", None), **_budget(rule),
+                **{k: getattr(rule, k, None) for k in ("min_cosine", "min_cosine_p5", "min_sqnr_db")}}
+    return {"swap": asdict(swap.options) if swap is not None else None, "gate": gate, "run": dict(settings or {})}
+
+
 def build_report(*, original, candidate_path=None, candidate=None, check=None, swap=None, val_path=None,
-                 calib_path=None, search=None) -> dict:
-    """Assemble the report.json payload (see the module docstring for its schema)."""
+                 calib_path=None, search=None, settings: dict | None = None) -> dict:
+    """Assemble the report.json payload (see the module docstring for its schema).
+
+    ``settings``: the command's own settings beyond the swap options and the gate rule (recorded under
+    ``options.run``), e.g. ``{"command": "swap", "plan": "all", "int8": False, "latency_runs": 30}``.
+    """
     from swapper.core.jsonable import json_safe
 
     sites = site_rows(swap.plan, swap.rewrite.records, swap.calibration) if swap is not None else []
@@ -177,6 +230,7 @@ def build_report(*, original, candidate_path=None, candidate=None, check=None, s
         "size": check.size if check else None,
         "int8": check.int8 if check else None,
         "search": search,
+        "options": options_entry(swap, check, settings),
         "caution": CAUTION,
     }
     return json_safe(payload, [], "report")

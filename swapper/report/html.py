@@ -4,13 +4,15 @@ from __future__ import annotations
 import base64
 import html
 import io
+import json
 import logging
 
 import numpy as np
 
 from swapper import functions
-from swapper.report.numbers import num, pct
+from swapper.report.numbers import num, pct, signed
 from swapper.report.search import search_html
+from swapper.report.tables import placement_legend
 
 logger = logging.getLogger(__name__)
 
@@ -23,7 +25,8 @@ h1{font-size:1.5rem} h2{font-size:1.15rem;margin-top:2rem;border-bottom:1px soli
 table{border-collapse:collapse;margin:.5rem 0;font-size:.9rem} td,th{padding:.25rem .6rem;border-bottom:1px solid #e3e7ee;text-align:left}
 td.n{text-align:right;font-variant-numeric:tabular-nums} .side{display:flex;gap:2rem;flex-wrap:wrap}
 .side>div{flex:1 1 22rem;min-width:0}
-.caution{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
+.caution{margin:.5rem 0 0;padding:.6rem 1rem;border-left:4px solid #c9a227;background:#fdf8e6}
+.foot{margin-top:2rem;font-size:.85rem;color:#5b6475} img{max-width:100%}
 """
 
 
@@ -37,6 +40,56 @@ def _table(header: list[str], rows: list[list], numeric: set[int] = frozenset())
         "<tr>" + "".join(f"<td class='n'>{_e(v)}</td>" if i in numeric else f"<td>{_e(v)}</td>"
                          for i, v in enumerate(r)) + "</tr>" for r in rows)
     return f"<table><tr>{head}</tr>{body}</table>"
+
+
+_ROLES = (("original", "original model"), ("candidate", "candidate model"), ("calibration", "calibration set"),
+          ("validation", "validation set"))
+
+
+def _judged(payload: dict) -> str:
+    """What was judged: every input file with its sha256, then the settings the run was given."""
+    rows = []
+    for key, role in _ROLES:
+        entry = payload["inputs"].get(key)
+        if entry is None:
+            if key == "candidate" and payload["verdict"] is not None:
+                rows.append([role, "not written", "", ""])
+            continue
+        rows.append([role, entry["path"], entry["sha256"], entry["bytes"]])
+    files = _table(["", "path", "sha256", "bytes"], rows, numeric={3})
+    settings = []
+    options = payload.get("options") or {}
+    for group in ("swap", "gate", "run"):  # what to swap, how it is judged, how the command ran
+        for name, value in sorted((options.get(group) or {}).items()):
+            if value is not None and value != []:
+                settings.append([group, name, value if isinstance(value, str) else json.dumps(value)])
+    return ("<h2>What was judged</h2>" + files
+            + ("<p>Settings (unset ones left out):</p>" + _table(["", "setting", "value"], settings) if settings else ""))
+
+
+def _changed(c: dict) -> str:
+    """The validation samples whose top-1 class changed, by index: the pairs behind McNemar's test."""
+    ch = c.get("changed")
+    if not ch:
+        return ""
+    if not ch["count"]:
+        return "<h2>Samples that changed class</h2><p>No validation sample changed its top-1 class.</p>"
+    text = f"{ch['count']} of {c['n']} validation samples changed their top-1 class"
+    if ch["discordant"] is not None:
+        text += (f"; {ch['discordant']} of them went from right to wrong or back, the discordant pairs McNemar's "
+                 f"test counts ({c['n10']} now wrong, {c['n01']} now right); the rest were wrong both times")
+    text += "." + (f" The first {ch['shown']} by sample index:" if ch["shown"] < ch["count"] else "")
+
+    def effect(r: dict) -> str:
+        if r["label"] is None:
+            return ""
+        return {(True, False): "now wrong", (False, True): "now right"}.get(
+            (r["original"] == r["label"], r["candidate"] == r["label"]), "wrong both times")
+
+    rows = [[r["index"], "–" if r["label"] is None else r["label"], r["original"], r["candidate"], effect(r)]
+            for r in ch["samples"]]
+    return (f"<h2>Samples that changed class</h2><p>{_e(text)}</p>"
+            + _table(["sample index", "label", "original class", "candidate class", ""], rows, numeric={0, 1, 2, 3}))
 
 
 def _plots(payload: dict) -> list[tuple[str, str]]:
@@ -66,18 +119,18 @@ def _plots(payload: dict) -> list[tuple[str, str]]:
     for s in worst:
         swap = next(w for w in plan["swaps"] if w["site_id"] == s["site_id"])
         rng = ranges.get(s["site_id"], {})
-        f, g = functions.get(swap["source"]), functions.get(swap["target"])
+        f, g = functions.get(swap["function"]), functions.get(swap["surrogate"])
         fig, ax = plt.subplots(figsize=(7, 3))
         for ch in range(min(4, len(swap["a"]))):
             lo = (rng.get("x_min") or [-6.0] * len(swap["a"]))[ch]
             hi = (rng.get("x_max") or [6.0] * len(swap["a"]))[ch]
             x = np.linspace(lo, hi, 200) if hi > lo else np.linspace(lo - 1, lo + 1, 200)
-            line, = ax.plot(x, f.ref(x, **swap["source_params"]), lw=2, alpha=0.5)
-            ax.plot(x, swap["a"][ch] * g.ref(swap["b"][ch] * x + swap["c"][ch], **swap["target_params"])
+            line, = ax.plot(x, f.ref(x, **swap["function_params"]), lw=2, alpha=0.5)
+            ax.plot(x, swap["a"][ch] * g.ref(swap["b"][ch] * x + swap["c"][ch], **swap["surrogate_params"])
                     + swap["d"][ch], "--", color=line.get_color(), label=f"channel {ch}")
         ax.set_xlabel("site input (recorded range)")
         ax.legend(fontsize=7)
-        out.append((f"{s['site_id']}: {swap['source']} (solid) vs fitted {swap['target']} (dashed)", _png(fig, plt)))
+        out.append((f"{s['site_id']}: {swap['function']} (solid) vs fitted {swap['surrogate']} (dashed)", _png(fig, plt)))
     return out
 
 
@@ -102,7 +155,8 @@ def render_html(payload: dict) -> str:
         banner = (f"<div class='verdict {cls}'><b>{word}</b>: {_e(v['reason'])}{decided}"
                   f"<br><small>Rule: {_e(v['rule'])}</small></div>")
     parts = [f"<!doctype html><html><head><meta charset='utf-8'><title>swapper report: {_e(model)}</title>"
-             f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner]
+             f"<style>{_CSS}</style></head><body><h1>swapper report: {_e(model)}</h1>", banner,
+             f"<p class='caution'>{_e(payload['caution'])}</p>", _judged(payload)]
     c = payload["comparison"]
     if c is not None:
         rows = [["samples", c["n"], ""]]
@@ -112,12 +166,15 @@ def render_html(payload: dict) -> str:
             rows.append(["top-5 accuracy", pct(c["top5_original"]), pct(c["top5_candidate"])])
         acc = _table(["", "original", "candidate"], rows)
         extra = []
-        if c.get("delta_pp") is not None:
+        if c.get("drop_pp") is not None:
             iv = c.get("interval") or {}
-            extra.append(["accuracy delta", f"{c['delta_pp']:+.2f} pp"])
-            if iv:
-                extra.append([f"95% interval ({iv.get('method')})", f"[{iv['lo_pp']:+.2f}, {iv['hi_pp']:+.2f}] pp"])
-            extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} (n01={c['n01']}, n10={c['n10']})"])
+            extra.append(["top-1 drop (original − candidate)", f"{signed(c['drop_pp'])} pp"])
+            if c.get("drop_interval_pp"):
+                lo, hi = c["drop_interval_pp"]
+                extra.append([f"{100 * iv.get('level', 0.95):g}% interval for the drop ({iv.get('method')})",
+                              f"[{signed(lo)}, {signed(hi)}] pp"])
+            extra.append(["McNemar exact p", f"{num(c['mcnemar_p'])} ({c['n10']} sample(s) now wrong, "
+                                             f"{c['n01']} now right)"])
         if c.get("agreement") is not None:
             extra.append(["top-1 agreement", pct(c["agreement"])])
         kinds = c.get("output_kinds") or {}
@@ -147,6 +204,7 @@ def render_html(payload: dict) -> str:
         speed = _table(["", "original", "candidate"], rows, numeric={1, 2})
         parts.append("<h2>Accuracy and speed</h2><div class='side'><div>" + acc + _table(["", ""], extra)
                      + f"</div><div>{speed}<small>{timing}</small></div></div>")
+        parts.append(_changed(c))
         ops = sorted(set(size["original"]["op_counts"]) | set(size["candidate"]["op_counts"]))
         parts.append("<h2>Operators</h2>" + _table(
             ["op", "original", "candidate"],
@@ -167,14 +225,17 @@ def render_html(payload: dict) -> str:
                              f"{_e(w['dominant_input'])} sets the scale of {100 * w['dominant_share']:.0f}% of its "
                              f"output channels.</p>")
     if payload["sites"]:
-        rows = [[s["site_id"], f"{s['source']} → {s['target']}" + (f" ({s['form']})" if s.get("form") else ""),
-                 " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"), s["nodes_added"],
+        rows = [[s["site_id"], f"{s['function']} → {s['surrogate']}" + (f" ({s['form']})" if s.get("form") else ""),
+                 " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"),
+                 "–" if not s.get("site_nodes") else f"{s['site_nodes']['original']} → {s['site_nodes']['written']}",
                  num(s["mse_start"]), num(s["mse_fit"]), _refit(s.get("refit")), "; ".join(s["notes"])]
                 for s in payload["sites"]]
+        legend = "".join(f"<li>{_e(line)}</li>" for line in placement_legend(payload["sites"]))
         parts.append("<h2>Swapped sites</h2>" + _table(
-            ["site", "function → surrogate", "where a b c d live", "nodes added", "MSE start", "MSE fitted",
-             "consumer refit (held-out MSE current → refitted)", "notes"],
-            rows, numeric={3, 4, 5}))
+            ["site", "function → surrogate", "where a b c d live", "nodes (original → swapped)", "MSE start",
+             "MSE fitted", "consumer refit (held-out MSE current → refitted)", "notes"], rows, numeric={4, 5})
+            + "<p><small>Where a, b, c, d of y = a·g(b·x + c) + d live:</small></p><ul><small>" + legend
+            + "</small></ul><p><small>nodes: the site's nodes in the original → in the swapped model.</small></p>")
     plan = payload.get("plan") or {}
     skipped = plan.get("skipped", [])
     if skipped:
@@ -194,9 +255,8 @@ def render_html(payload: dict) -> str:
                                                  f"</figcaption></figure>" for t, uri in plots))
     parts.append(search_html(payload.get("search")))
     tool = payload["tool"]
-    parts.append(f"<p class='caution'>{_e(payload['caution'])}</p><p class='caution'>swapper {_e(tool['swapper'])}, "
-                 f"onnxruntime {_e(tool['onnxruntime'])}, onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}."
-                 f"</p></body></html>")
+    parts.append(f"<p class='foot'>swapper {_e(tool['swapper'])}, onnxruntime {_e(tool['onnxruntime'])}, "
+                 f"onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}.</p></body></html>")
     return "\n".join(parts)
 
 

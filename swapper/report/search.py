@@ -42,7 +42,13 @@ def sweep_table(payload: dict, chosen: set[str] = frozenset()) -> Table:
             table.add_row(c["id"] + (f" {mark}" if mark else ""), _num(m.get("cost")),
                           "-" if not iv else f"[{iv[0]:.3g}, {iv[1]:.3g}]", _num(s["ms"]),
                           "-" if s["fraction"] is None else f"{100 * s['fraction']:.2f}%", _num(s["value"]), status)
-    table.caption = "+ on the Pareto front" + (", * chosen" if chosen else "")
+    table.caption = "\n".join([
+        "candidate: site/surrogate:form/placement policy (exact: nothing added, what cannot fold is fixed; "
+        "exact+nodes: that becomes Mul/Add nodes), /refit: the consumers' weights re-fitted",
+        f"cost: what the candidate loses swapped alone, in {metric['unit']}, larger = worse (a gain is negative); "
+        "fraction: the saving as a share of the original's time (declared target: of the swept sites' cost)",
+        "+ on the Pareto front" + (", * chosen" if chosen else "")])
+    table.caption_justify = "left"
     return table
 
 
@@ -70,7 +76,7 @@ def pareto_png(points: list[tuple], front_ids: list[str], *, unit: str, saving: 
     except ImportError:
         return None
     fig, ax = plt.subplots(figsize=(7, 4))
-    for k, (fold, marker) in enumerate((("exact", "o"), ("nodes", "s"))):
+    for k, (fold, marker) in enumerate((("exact", "o"), ("exact+nodes", "s"))):
         for refit in (False, True):
             sel = [p for p in points if p[4] == fold and p[3] == refit]
             if sel:

@@ -6,9 +6,9 @@ Transformation: for every swapped site, the site's nodes are replaced by
 is applied first) and each of a, b, c, d is placed exactly as the plan says: folded into the producer
 of ``x`` (its output channels scaled/shifted), folded into the linear layers
 that read ``y``, directly or behind pools/reshapes/gates (their input-channel
-weights scaled, ``W·d`` added to their bias; "consumers+" = behind a max pool),
+weights scaled, ``W·d`` added to their bias; "consumers-via-max" = behind a max pool),
 moved inside ``g`` (homogeneous g), carried through residual Adds into the
-layers around them ("through add", :mod:`swapper.rewrite.transport`; sites are
+layers around them ("through-add", :mod:`swapper.rewrite.transport`; sites are
 carried out in graph order so those folds compose), or emitted as per-channel
 Mul/Add nodes. An "approx" d reports the border error of each zero-padded Conv
 it enters (:func:`swapper.rewrite.folding.border_note`).
@@ -50,7 +50,7 @@ from swapper.plan.fold_targets import (
     producer_fold,
     site_rank,
 )
-from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
+from swapper.plan.placement import FOLDING, IN_CONSUMERS, canonical_placement, check_placement
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.rewrite.bodies import floor_with_bodies, has_body_swaps, node_count, rewrite_bodies
 from swapper.rewrite.folding import border_note
@@ -66,13 +66,14 @@ PLAN_KEY = "swapper.plan"
 @dataclass
 class SiteRecord:
     site_id: str
-    source: str
-    target: str
+    function: str
+    surrogate: str
     placement: dict  # the plan's placement, as carried out (every parameter named)
     folded_into: list[str]  # names of the nodes whose weights or bias changed
-    nodes_added: int  # nodes inserted for this site (surrogate plus parameter Mul/Add)
+    nodes_added: int  # nodes written for this site (surrogate plus parameter Mul/Add), not a net change
     notes: list[str] = field(default_factory=list)
     form: str = ""  # the emission form written (swapper.functions.forms)
+    nodes_replaced: int = 0  # the original's nodes at the site, which the written ones replace
 
 
 @dataclass
@@ -113,18 +114,18 @@ def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, 
                analysis: tuple | None, transport: Transport) -> SiteRecord:
     """Emit one site's surrogate into ``em`` and fold its parameters as the plan places them; ``analysis`` is
     ``(producer_fold(...), consumer_folds(...), residual Adds reading y)`` taken before any weight was
-    rewired (None when the plan folds nothing of this site); ``transport`` carries "through add" folds.
+    rewired (None when the plan folds nothing of this site); ``transport`` carries "through-add" folds.
     Raises UsageError where the plan cannot be carried out as it stands."""
-    fn = functions.get(swap.target)
+    fn = functions.get(swap.surrogate)
     form = _form(swap, index.opset)
     vals = _vectors(swap)
     place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
-    vals = form.emitted_values(vals, swap.target_params)  # the values the form's own E(z) needs
-    moved = [p for p in PARAMS if place[p] == "held" and not is_neutral(p, vals[p])]
+    vals = form.emitted_values(vals, swap.surrogate_params)  # the values the form's own E(z) needs
+    moved = [p for p in PARAMS if place[p] == "fixed" and not is_neutral(p, vals[p])]
     if moved:
         raise UsageError(f"site {site.id}: form {form.name} of {fn.name} moves {', '.join(moved)}, which the "
                          "plan holds; re-plan for this form")
-    if place["a"] == "inner":  # a·g(z) = g(a·z) for a > 0
+    if place["a"] == "in-surrogate":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
     need = {p: not is_neutral(p, vals[p]) for p in PARAMS}
     n = max(v.size for v in vals.values())
@@ -170,7 +171,7 @@ def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, 
         if d_cons and not all(ok(f) and not f.reach.d_block for f in folds + transport.onward(site.id)):
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
         if a_cons and place["a"] == "consumers" and any(f.reach.a_positive for f in folds):
-            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers+")
+            raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers-via-max")
         for f in folds:
             folded += apply_consumer(weights, f, vals["a"] if a_cons else None,
                                       vals["d"] if d_cons else None, em)
@@ -180,23 +181,23 @@ def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, 
             notes += [border_note(index, f, vals["d"]) for f in folds + transport.onward(site.id) if not f.d_exact]
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
-    form.emit(em, x, g_out, dict(swap.target_params))
+    form.emit(em, x, g_out, dict(swap.surrogate_params))
     if a_node:
         em.node("Mul", [g_out, const("a", vals["a"])], None if d_node else site.output)
     if d_node:
         em.node("Add", [em.nodes[-1].output[0], const("d", d_emit)], site.output)
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
-    return SiteRecord(site.id, site.function, swap.target, place, sorted(set(folded)), len(em.nodes),
-                      notes, form.name)
+    return SiteRecord(site.id, site.function, swap.surrogate, place, sorted(set(folded)), len(em.nodes),
+                      notes, form.name, nodes_replaced=len(site.nodes))
 
 
 def _form(swap: SiteSwap, opset: int) -> Form:
     """The plan's form for ``swap`` (None: what the registry's emitter writes at ``opset``); UsageError if the
     model's opset does not have it."""
-    form = get_form(swap.target, swap.form) if swap.form else default_form(swap.target, opset)
+    form = get_form(swap.surrogate, swap.form) if swap.form else default_form(swap.surrogate, opset)
     if opset < form.min_opset:
-        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.target} needs opset {form.min_opset}; "
+        raise UsageError(f"site {swap.site_id}: form {form.name} of {swap.surrogate} needs opset {form.min_opset}; "
                          f"the model is opset {opset}")
     return form
 
@@ -238,14 +239,15 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
             analyses[s.site_id] = (producer_fold(index, site), consumer_folds(index, site, skip=adds), adds)
     # graph order: a scale passed upstream through an add lands after that site's own folds
     ordered = sorted(plan.swaps, key=lambda s: min(positions.get(s.site_id) or [0]))
-    transport = Transport(index, weights, [(by_id[s.site_id], {p: s.placement.get(p, "held") for p in PARAMS},
-                                            functions.get(s.target).homogeneous) for s in ordered],
+    transport = Transport(index, weights, [(by_id[s.site_id], canonical_placement(
+                              {p: s.placement.get(p, "fixed") for p in PARAMS}),
+                                            functions.get(s.surrogate).homogeneous) for s in ordered],
                           {sid: a[0] for sid, a in analyses.items()})
     inserts, emitted, records = {}, [], {}
     for swap in ordered:
         site = by_id[swap.site_id]
-        if swap.source != site.function:
-            raise UsageError(f"site {site.id}: plan says {swap.source}, model has {site.function}")
+        if swap.function != site.function:
+            raise UsageError(f"site {site.id}: plan says {swap.function}, model has {site.function}")
         em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken, dtype=_site_dtype(index, site))
         records[site.id] = _swap_site(index, weights, site, swap, em, analyses.get(site.id), transport)
         inserts[site.id] = list(em.nodes)

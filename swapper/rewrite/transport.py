@@ -1,4 +1,4 @@
-"""Carrying out the "through add" placements: parameters passed through residual Adds into layers.
+"""Carrying out the "through-add" placements: parameters passed through residual Adds into layers.
 
 Transformation (the rules and their maths: :mod:`swapper.plan.add_folds`):
 

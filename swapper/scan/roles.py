@@ -1,7 +1,7 @@
 """Where a site's values go: its role, decided by following the data.
 
 Transformation: (the graph a site sits in, the tensor y it writes) -> "output",
-"gate" or "pointwise".
+"gate" or "hidden".
 
 The walk starts at y and follows every op that hands values on without
 computing new ones (:data:`CARRIERS`): reshaping and reordering (Reshape,
@@ -25,7 +25,9 @@ condition; Scan: k -> k; ONNX operator spec, If/Loop/Scan).
   Div) by a different dynamic tensor, unless that other tensor is known to be
   broadcast onto it (then the site's value is the feature map being gated, e.g.
   a SiLU output a squeeze-excite Sigmoid multiplies);
-- "pointwise": neither.
+- "hidden": neither: an ordinary activation inside the network, the kind swapped by
+  default (every activation is pointwise; this word says where its values go).
+  Called "pointwise" before; ``swapper.scan/1`` files written then carry that word.
 
 "output" wins over "gate": a site that is also a graph output is never swapped
 by default, whatever else reads it.
@@ -197,7 +199,7 @@ def follow(scope: Scope, y: str) -> dict:
 
 
 def role_of(scope: Scope | GraphIndex, y: str) -> str:
-    """"output", "gate" or "pointwise" for a site writing ``y`` (see module docstring).
+    """"output", "gate" or "hidden" for a site writing ``y`` (see module docstring).
 
     ``scope`` is the site's graph; a bare GraphIndex is taken as a main graph.
     """
@@ -206,4 +208,4 @@ def role_of(scope: Scope | GraphIndex, y: str) -> str:
     found = follow(scope, y)
     if found["output"]:
         return "output"
-    return "gate" if found["gate"] else "pointwise"
+    return "gate" if found["gate"] else "hidden"

@@ -26,7 +26,8 @@ Role (:mod:`swapper.scan.roles`, following y through ops that pass values on
 unchanged, into and out of If/Loop/Scan bodies): "output" if y's values reach an
 output of the main graph; else "gate" if they are multiplied by a different
 dynamic tensor (squeeze-excite, GLU), unless that tensor is known to be
-broadcast onto them (then y is the feature map being gated); else "pointwise".
+broadcast onto them (then y is the feature map being gated); else "hidden" (an
+ordinary activation inside the network, the kind swapped by default).
 
 Cost: elements per sample x relative cost of the site's function in the form
 the graph writes it (:mod:`swapper.functions.costs`, Relu = 1). Elements come
@@ -55,7 +56,8 @@ JSON schema "swapper.scan/1" (``sites_to_json``), stable field by field:
   string or null per dim; null if unknown), ``channel_axis`` (int|null),
   ``channels`` (int|null), ``producer`` (op type of x's producer | null for a
   graph input), ``consumers`` (list of op types reading y, "<output>" for a
-  graph output), ``role`` ("pointwise"|"gate"|"output"), ``elements``
+  graph output), ``role`` ("hidden"|"gate"|"output"; "hidden" was written
+  "pointwise" before, same meaning), ``elements``
   (int|null), ``cost`` (float|null), ``cost_share`` (float in [0, 1]|null),
   ``supported`` (bool), ``reason`` (string|null, why not swappable),
   ``domain`` (op domain, "" for the default one), ``body`` (list of
@@ -81,7 +83,7 @@ from swapper.scan.roles import Scope, role_of
 
 logger = logging.getLogger(__name__)
 
-Role = Literal["pointwise", "gate", "output"]
+Role = Literal["hidden", "gate", "output"]
 
 
 @dataclass(frozen=True)

@@ -5,7 +5,7 @@ one :class:`SiteCandidates` per eligible site, listing its
 :class:`CandidateSpec` s and the surrogates that cannot be used there (why).
 
 - *eligible site*: one the plan would swap with no target (registry defaults:
-  supported, costly, pointwise unless gates / outputs are asked for, narrowed
+  supported, costly, hidden (not gates or outputs) unless gates / outputs are asked for, narrowed
   by ``site_ids`` / ``only``), or one the plan for the target swaps (a site
   whose ops the target cannot run). Sites inside If/Loop/Scan bodies are
   left out: the shared recording is made on the main graph, where their
@@ -14,11 +14,11 @@ one :class:`SiteCandidates` per eligible site, listing its
   alternatives, :func:`swapper.functions.candidates`), or the ones named; each
   in its cheapest usable form on the target (:meth:`SiteOptions.best`), per
   placement: ``exact`` (parameters folded into neighbours, no node added;
-  one that cannot fold is held) and ``nodes`` (held parameters become
-  per-channel Mul/Add nodes). A surrogate with no usable form is listed with
+  one that cannot fold is fixed at its neutral value) and ``exact+nodes``
+  (those become per-channel Mul/Add nodes). A surrogate with no usable form is listed with
   the reason. ``paying_only`` keeps a surrogate only where the profile's
   prior says it is cheaper than the site's own ops.
-- *same model*: where the ``exact`` placement holds nothing, ``nodes`` places
+- *same model*: where the ``exact`` placement fixes nothing, ``exact+nodes`` places
   every parameter the same way and writes the same graph: that candidate is
   not run again but points at the other (``same_as``).
 - *refit*: each of those without and with the consumer refit.
@@ -39,7 +39,7 @@ from swapper.targets.profile import TargetProfile
 
 logger = logging.getLogger(__name__)
 
-PLACEMENTS = ("exact", "nodes")
+PLACEMENTS = ("exact", "exact+nodes")
 
 
 @dataclass(frozen=True)
@@ -50,7 +50,7 @@ class CandidateSpec:
     site_id: str
     surrogate: str
     form: str
-    fold: str  # the placement policy: "exact" (no node added) or "nodes"
+    fold: str  # the placement policy: "exact" (no node added) or "exact+nodes"
     refit: bool
     placement: tuple[tuple[str, str], ...]  # (param, where) as the plan would place it
     ops: tuple[str, ...]  # the priced chain after the producer

@@ -32,15 +32,19 @@ Every key is always present; ``null`` where a figure does not apply.
 
   - ``id`` ("s3/relu:Relu/exact/refit"), ``site_id``, ``surrogate``,
     ``form`` (emission form), ``fold`` ("exact": no node added, parameters
-    that cannot fold are held; "nodes": those become Mul/Add nodes),
+    that cannot fold are fixed at their neutral values; "exact+nodes": those
+    become Mul/Add nodes; files written before read "nodes" for it),
     ``refit`` (consumer refit), ``placement`` ``{a, b, c, d}``, ``ops`` (the
     priced chain), ``prior_cost`` (the profile's cost of it per element),
     ``same_as`` (the id of a candidate that writes the same model, whose
     results these are, or null);
   - ``status`` "ok" | "failed", ``reason`` (one line, null when ok);
   - ``metric``: ``{"name", "original", "candidate", "delta", "cost",
-    "interval"}`` (``interval``: [lo, hi] of the cost where the metric has one,
-    else null), null when failed; ``nonfinite``: the candidate produced
+    "interval"}`` (``cost``: what the candidate loses, larger = worse, the
+    sign every table shows, e.g. the top-1 drop original − candidate;
+    ``interval``: [lo, hi] of the cost where the metric has one, else null;
+    ``delta``: the raw difference candidate − original, kept for readers of
+    earlier files), null when failed; ``nonfinite``: the candidate produced
     NaN/Inf;
   - ``saving``: ``{"ms", "fraction", "units", "pooled_ms", "pooled_over",
     "value", "required", "how"}`` (:mod:`swapper.sweep.savings`);
@@ -60,6 +64,8 @@ from pathlib import Path
 
 from swapper.core.model_io import atomic_write_bytes
 from swapper.errors import UsageError
+from swapper.options import OLD_FOLD_WORDS
+from swapper.plan.placement import canonical_placement
 
 logger = logging.getLogger(__name__)
 
@@ -124,6 +130,9 @@ def read_sweep(path: str | Path) -> dict:
         validate_sweep(payload)
     except (OSError, ValueError) as exc:
         raise UsageError(f"{path}: not a {SCHEMA} file ({str(exc).splitlines()[0]})") from None
+    for _, c in candidates(payload):  # older files spell a placement policy the old way ("nodes")
+        c["fold"] = OLD_FOLD_WORDS.get(c["fold"], c["fold"])
+        c["placement"] = canonical_placement(c["placement"])
     return payload
 
 

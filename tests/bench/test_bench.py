@@ -21,20 +21,20 @@ from swapper.scan.sites import find_sites
 SMALLEST = min(DEMO.glob("*.onnx"), key=lambda p: p.stat().st_size)
 
 # The fields the module docstring of swapper/bench/run.py documents for schema swapper.bench/1.
-TOP = {"schema", "created_utc", "machine", "settings", "models", "targets"}
+TOP = {"schema", "created_utc", "machine", "settings", "models", "goals"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
             "memory_factors", "rungs", "family_rule", "target", "scale"}
 MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory", "memory_refit"}
-FAMILY = {"family", "targets", "ladder", "cost", "cost_refit", "speed", "int8", "notes"}
-LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "delta_pp", "n"}
+FAMILY = {"family", "surrogates", "ladder", "cost", "cost_refit", "speed", "int8", "notes"}
+LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "drop_pp", "n"}
 COST = {"plain_pass_s", "record_s", "segments_s", "fit_s", "bias_correction_s", "refit_s", "total_s", "ratio_total",
         "ratio_record", "ratio_fit", "ratio_refit"}
 SPEED = {"original_ms", "swapped_ms", "floor_ms", "ratio", "saving_fraction", "note"}
-INT8 = {"metric", "original", "swapped", "delta_pp", "speed"}
+INT8 = {"metric", "original", "swapped", "drop_pp", "speed"}
 MEMORY = {"factors", "method", "ratio_16_1", "ratio_last_1", "peak_ratio_last_1", "time_ratio_last_1", "base_samples"}
 MEMORY_ROW = {"times", "samples", "baseline_kib", "peak_before_kib", "peak_kib", "delta_kib", "wall_s"}
-TARGET = {"target", "where", "measured", "met"}
+GOAL = {"goal", "where", "measured", "met"}
 
 
 def _tiny_sets(folder: Path) -> tuple[Path, Path]:
@@ -83,6 +83,9 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     assert fam["cost_refit"] is None and model["memory_refit"] is None and fam["cost"]["refit_s"] is None
     for rung in ("original", "naive", "local", "sequential", "sequential_bias"):
         assert 0.0 <= fam["ladder"][rung] <= 1.0
+        if rung != "original":  # the drop is original − rung, in points (bench/run.py docstring)
+            drop = fam["ladder"]["drop_pp"][rung]
+            assert drop == pytest.approx(100 * (fam["ladder"]["original"] - fam["ladder"][rung]))
     assert set(fam["speed"]) == {"1", "40"}  # batch 1 and the whole (40-sample) validation set
     for row in fam["speed"].values():
         assert SPEED <= set(row) and row["original_ms"] > 0 and row["swapped_ms"] > 0
@@ -92,7 +95,7 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     for k in mem["factors"]:
         assert MEMORY_ROW <= set(mem[str(k)]) and mem[str(k)]["samples"] == 24 * k
     assert mem["ratio_16_1"] is None  # 16x is not run with --quick
-    assert data["targets"] and all(TARGET <= set(t) for t in data["targets"])
+    assert data["goals"] and all(GOAL <= set(t) for t in data["goals"])
     md = (folder / "results.md").read_text()
     assert "## Quality ladder" in md and "## Tool cost" in md and "## Model speed" in md
     assert data["settings"]["command"] in md
@@ -113,7 +116,7 @@ def test_scale_model_is_valid_onnx_with_16_silu_sites():
     onnx.checker.check_model(model, full_check=True)  # source: ONNX checker (IR + operator spec)
     sites = find_sites(model)
     assert len(sites) == 16
-    assert all(s.function == "silu" and s.form == "silu/mul-sigmoid" and s.role == "pointwise" for s in sites)
+    assert all(s.function == "silu" and s.form == "silu/mul-sigmoid" and s.role == "hidden" for s in sites)
     assert [s.channels for s in sites] == [16] * 8 + [32] * 8
 
 
@@ -144,7 +147,7 @@ def _model_entry(name: str, families: list[dict], factors: list[int]) -> dict:
 
 def _family(name: str, cost: dict | None) -> dict:
     """A results.json family entry: no rung of its ladder measured, no speed rows, the given tool cost."""
-    ladder = {"metric": "top1", "original": None, **{r: None for r in RUNGS}, "delta_pp": {r: None for r in RUNGS}}
+    ladder = {"metric": "top1", "original": None, **{r: None for r in RUNGS}, "drop_pp": {r: None for r in RUNGS}}
     return {"family": name, "ladder": ladder, "speed": {}, "cost": cost}
 
 
@@ -181,7 +184,7 @@ def test_memory_table_skips_a_model_with_nothing_to_swap(tmp_path):
 def test_refit_rung_cost_and_memory_get_rows_and_a_target(tmp_path):
     from types import SimpleNamespace
 
-    from swapper.bench.goals import MAX_REFIT_COST_RATIO, check_targets
+    from swapper.bench.goals import MAX_REFIT_COST_RATIO, check_goals
     from swapper.bench.measure import tool_cost
 
     # the refit rung's swap: its timings as api.swap returns them (calibrate_s holds the refit's refit_s)
@@ -198,8 +201,8 @@ def test_refit_rung_cost_and_memory_get_rows_and_a_target(tmp_path):
     refit_row = next(line for line in lines if line.startswith("| m | relu | +refit |"))
     assert "3.500" in refit_row and "12.0" in refit_row
     assert any(line.startswith("| m | +refit | 10: +2.0 MiB") for line in lines)
-    rows = check_targets({"models": [model | {"synthetic": True}]})
-    refit = next(r for r in rows if "consumer refit" in r["target"] and "memory" not in r["target"])
+    rows = check_goals({"models": [model | {"synthetic": True}]})
+    refit = next(r for r in rows if "consumer refit" in r["goal"] and "memory" not in r["goal"])
     assert refit["met"] is (12.0 <= MAX_REFIT_COST_RATIO) and "12.0x" in refit["measured"]
-    mem = next(r for r in rows if r["target"].startswith("peak memory") and "refit" in r["target"])
+    mem = next(r for r in rows if r["goal"].startswith("peak memory") and "refit" in r["goal"])
     assert mem["met"] is False  # 1.5 is over the +10%

@@ -266,7 +266,7 @@ def test_conv_mean_matches_reference_conv(spatial, kernel, stride, dilation, pad
                               initializer=[init("W", w, np.float64), init("B", np.zeros(c_out), np.float64)])
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", OPSET)])
     site = Site(id="s1", function="tanh", params={}, input="u", output="t", nodes=("tanh",), form="op",
-                shape=x.shape, channel_axis=1, channels=c_in, producer=None, consumers=("Conv",), role="pointwise",
+                shape=x.shape, channel_axis=1, channels=c_in, producer=None, consumers=("Conv",), role="hidden",
                 elements=None, cost=0.0, cost_share=0.0)
     # one recorded sample, student x and teacher 0: the mean change at the site output is x itself, so the
     # corrected bias is 0 − (mean over output positions of the bias-free Conv of x), per output channel

@@ -64,7 +64,7 @@ def test_bias_correction_restores_convtranspose_mean(pool, tmp_path, monkeypatch
     assert [s.function for s in sites] == ["tanh"]
     (ct,) = [n.name for n in model.graph.node if n.op_type == "ConvTranspose"]
     x = np.random.default_rng(3).normal(scale=1.5, size=(200, 2, 6, 6)).astype(np.float32)
-    ds = Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, targets=None, n=len(x),
+    ds = Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, expected=None, n=len(x),
                  dtypes={"X": np.dtype(np.float32)})
     want = _mean_y(model, x)
     means, biases = {}, {}

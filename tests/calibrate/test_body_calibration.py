@@ -105,7 +105,7 @@ def test_a_loop_body_site_sees_every_iteration_with_the_carried_value():
 def test_calibration_fits_body_sites_and_leaves_its_inputs_alone():
     model = as_loaded(parser.parse_model(LOOP_MODEL))
     sites = find_sites(model)
-    plan = make_plan(model, sites, to="relu", fold="nodes")
+    plan = make_plan(model, sites, to="relu", fold="exact+nodes")
     start = {p: v.copy() for p, v in plan.swaps[0].params().items()}
     x = RNG.normal(size=(64, 4)).astype(np.float32)
     before = model.SerializeToString()
@@ -125,7 +125,7 @@ def test_calibration_fits_body_sites_and_leaves_its_inputs_alone():
 def test_a_branch_no_batch_takes_keeps_its_starting_parameters_with_a_note():
     model = as_loaded(parser.parse_model(IF_MODEL))
     sites = find_sites(model)
-    plan = make_plan(model, sites, site_ids=[s.id for s in sites], fold="nodes")
+    plan = make_plan(model, sites, site_ids=[s.id for s in sites], fold="exact+nodes")
     x = np.abs(RNG.normal(size=(32, 4))).astype(np.float32)  # every batch sums positive: only "then" runs
     result = calibrate(model, sites, plan, in_memory({"x": x}), batch_size=16)
     by_fn = {s.function: s.id for s in sites}
@@ -145,7 +145,7 @@ def test_main_graph_and_body_sites_calibrate_together(mode):
     model = as_loaded(parser.parse_model(text_model))
     sites = find_sites(model)
     assert [(s.id, bool(s.body)) for s in sites] == [("s1", False), ("s2", True)]
-    plan = make_plan(model, sites, fold="nodes")
+    plan = make_plan(model, sites, fold="exact+nodes")
     x = RNG.normal(size=(48, 4)).astype(np.float32)
     result = calibrate(model, sites, plan, in_memory({"x": x}), batch_size=16, mode=mode)
     assert [f.site_id for f in result.sites] == ["s1", "s2"]

@@ -179,7 +179,8 @@ TARGETS = {"relu": {}, "hard_sigmoid": {"alpha": 0.2, "beta": 0.5}, "hard_swish"
 
 def _swap_for(target: str, axis, channels: int, rng) -> SiteSwap:
     params = {p: rng.normal(size=channels) for p in "abcd"}
-    return SiteSwap(site_id="s1", source="tanh", source_params={}, target=target, target_params=dict(TARGETS[target]),
+    return SiteSwap(site_id="s1", function="tanh", function_params={}, surrogate=target,
+                    surrogate_params=dict(TARGETS[target]),
                     channel_axis=axis, channels=channels, placement={p: "nodes" for p in "abcd"}, **params)
 
 
@@ -247,7 +248,7 @@ def test_reported_mse_equals_independent_recomputation():
     for swap, sc in zip(result.plan.swaps, result.sites):
         x = ref[by_id[swap.site_id].input].astype(np.float64)
         y = ref[by_id[swap.site_id].output].astype(np.float64)
-        g, p = FORMULAS[swap.target], TARGETS[swap.target]
+        g, p = FORMULAS[swap.surrogate], TARGETS[swap.surrogate]
 
         def mse(par):
             return float(np.mean(np.mean((y - (par["a"] * g(par["b"] * x + par["c"], **p) + par["d"])) ** 2, axis=0)))
@@ -271,7 +272,7 @@ def test_cnn_silu_to_relu_calibrated_agrees_far_more_than_naive():
     reference = top1(loaded.model)
     naive = api.swap(loaded, to="relu", only="silu")
     tuned = api.swap(loaded, calib=calib, to="relu", only="silu", mode="sequential", bias_correction=True)
-    assert [s.target for s in tuned.plan.swaps] == ["relu"] * 3
+    assert [s.surrogate for s in tuned.plan.swaps] == ["relu"] * 3
     # source: sklearn.metrics.accuracy_score as the agreement rate of two label vectors
     naive_agree = accuracy_score(reference, top1(naive.candidate))
     tuned_agree = accuracy_score(reference, top1(tuned.candidate))

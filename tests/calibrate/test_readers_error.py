@@ -174,17 +174,17 @@ def test_bias_correction_gives_the_residual_sum_its_mean_back(tmp_path: Path):
 def test_a_held_d_is_fitted_for_the_readers(tmp_path: Path):
     """d cannot fold (zero padding): it is fitted by the error the readers keep after bias correction. Here the
     padded Conv's output is added straight back (z = Conv(y) + y), so z is what the readers hand on: its error
-    is smaller than with the plain fit (d held in the fit, slopes channel by channel)."""
+    is smaller than with the plain fit (d fixed in the fit, slopes channel by channel)."""
     import swapper.calibrate.loop as loop  # its fit rules are swapped for plain ones to compare
 
     model = _model(RESIDUAL)
     onnx.save(model, tmp_path / "res.onnx")
     calib = np.random.default_rng(10).normal(size=(128, 3, 6, 6)).astype(np.float32)
     result = api.swap(tmp_path / "res.onnx", calib=in_memory({"X": calib}), to="relu", refit_consumers=False)
-    (swap,) = [s for s in result.plan.swaps if s.source == "silu"]
-    assert swap.placement["d"] == "held" and np.all(swap.d == 0)
+    (swap,) = [s for s in result.plan.swaps if s.function == "silu"]
+    assert swap.placement["d"] == "fixed" and np.all(swap.d == 0)
     notes = " ".join(result.calibration.sites[0].notes)
-    assert "d held: fitted" in notes and "the readers keep after bias correction" in notes
+    assert "d fixed: fitted" in notes and "the readers keep after bias correction" in notes
     kept = loop.fit_rules
     try:
         loop.fit_rules = lambda *args: FitRules()

@@ -29,7 +29,7 @@ def cnn(tmp_path_factory):
     return loaded.model, sites, calib, record_sites(loaded.model, sites, calib, tmp_path_factory.mktemp("rec"))
 
 
-@pytest.mark.parametrize("fold", ["exact", "nodes"])
+@pytest.mark.parametrize("fold", ["exact", "exact+nodes"])
 def test_one_site_equals_calibrating_it_alone(cnn, fold):
     # the oracle is swapper's own calibrate(): a lone site sits at level 1 in sequential mode too
     model, sites, calib, rec = cnn

@@ -90,7 +90,7 @@ def test_check_of_the_encoder_reports_cosine_and_exits_0(encoder, tmp_path):
 
 @pytest.mark.parametrize("options,needles", [
     (("--metric", "top1"), ("'labels'", "--metric")),
-    (("--metric", "rmse"), ("'targets'",)),
+    (("--metric", "rmse"), ("'expected'",)),
 ])
 def test_check_that_cannot_judge_exits_3_with_one_line(encoder, tmp_path, options, needles):
     text = one_line(invoke("check", encoder["model"], encoder["out"], "--val", VAL, *options,

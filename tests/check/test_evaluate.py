@@ -144,7 +144,7 @@ def test_agreement_only_without_labels(setup):
 def test_regression_targets(setup):
     rng = np.random.default_rng(1)
     targets = rng.normal(size=(N, CLASSES)).astype(np.float32)
-    comp = compare(setup["original"], setup["perturbed"], in_memory({"x": setup["x"]}, targets=targets), batch_size=64)
+    comp = compare(setup["original"], setup["perturbed"], in_memory({"x": setup["x"]}, expected=targets), batch_size=64)
     assert comp.task == "regression" and comp.agreement is None
     ref_c = run(setup["perturbed"], {"x": setup["x"]})[0]
     # source: scikit-learn mean_absolute_error / mean_squared_error

@@ -61,7 +61,7 @@ def pair():
     x = rng.normal(size=(300, 8)).astype(np.float32)
     original = two_outputs(w, v)
     candidate = two_outputs(w + rng.normal(scale=0.08, size=w.shape), v + rng.normal(scale=1.0, size=v.shape))
-    ds = Dataset(path="mem.npz", arrays={"x": x}, labels=None, targets=None, n=len(x))
+    ds = Dataset(path="mem.npz", arrays={"x": x}, labels=None, expected=None, n=len(x))
     comp = compare(original, candidate, ds, batch_size=64)
     ref, cand = outputs(original, x), outputs(candidate, x)
     return {"ds": ds, "comp": comp, "original": original,
@@ -147,7 +147,7 @@ def test_options_that_contradict_are_usage_errors():
 
 
 def test_asking_for_what_the_data_cannot_give_raises_cannot_judge(pair):
-    for metric, needle in (("top1", "'labels'"), ("rmse", "'targets'")):
+    for metric, needle in (("top1", "'labels'"), ("rmse", "'expected'")):
         with pytest.raises(CannotJudge) as e:
             preflight(pair["original"], pair["ds"], GateRule(metric=metric), batch_size=32)
         assert e.value.exit_code == 3 and needle in str(e.value) and "\n" not in str(e.value)
@@ -165,7 +165,7 @@ g (float[N, 8] x) => (float[N, 5] logits) <float[5, 8] W> {
     m.graph.initializer.append(numpy_helper.from_array(rng.normal(size=(5, 8)).astype(np.float32), "W"))
     x = rng.normal(size=(80, 8)).astype(np.float32)
     labels = outputs(m, x)[0].argmax(axis=1)
-    ds = Dataset(path="mem.npz", arrays={"x": x}, labels=labels, targets=None, n=len(x))
+    ds = Dataset(path="mem.npz", arrays={"x": x}, labels=labels, expected=None, n=len(x))
     v = decide(compare(m, m, ds), Budget(max_drop_pp=0.0))
     # identical models: no drop (definition of the top-1 rule), decided by top1 on the logits
     assert v.approved and v.metric == "top1" and v.outputs == ["logits"]

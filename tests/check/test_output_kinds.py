@@ -115,8 +115,8 @@ def test_targets_make_the_matching_output_a_regression_and_size_one_axes_do_not_
     assert detect_kind("y", out.reshape(10, 3, 1)).has_class_view
 
 
-def _dataset(x: np.ndarray, labels=None, targets=None) -> Dataset:
-    return Dataset(path="mem.npz", arrays={"x": x}, labels=labels, targets=targets, n=len(x))
+def _dataset(x: np.ndarray, labels=None, expected=None) -> Dataset:
+    return Dataset(path="mem.npz", arrays={"x": x}, labels=labels, expected=expected, n=len(x))
 
 
 @pytest.mark.parametrize("m,x,labels,metric", [
@@ -132,17 +132,17 @@ def test_default_metric_per_kind_follows_the_readme_table(m, x, labels, metric):
     # dense maps -> cosine, one value per sample -> sqnr)
     ds = _dataset(x, labels=labels)
     kinds = probe(m, ds, batch_size=4)
-    assert choose_metric(kinds, GateRule(), has_labels=labels is not None, has_targets=False).metric == metric
+    assert choose_metric(kinds, GateRule(), has_labels=labels is not None, has_expected=False).metric == metric
 
 
 def test_labels_on_an_embedding_are_left_unused_with_a_note():
     kinds = probe(UNIT_EMBEDDING, _dataset(X8, labels=np.zeros(12, np.int64)), batch_size=4)
-    metric, notes = default_metric(kinds, has_labels=True, has_targets=False)
+    metric, notes = default_metric(kinds, has_labels=True, has_expected=False)
     assert metric == "cosine" and any("labels not used" in n for n in notes)
 
 
 def test_an_integer_only_model_cannot_be_judged():
     kinds = probe(IDS_ONLY, _dataset(X8), batch_size=4)
     with pytest.raises(CannotJudge) as e:
-        choose_metric(kinds, GateRule(), has_labels=False, has_targets=False)
+        choose_metric(kinds, GateRule(), has_labels=False, has_expected=False)
     assert e.value.exit_code == 3 and "no float output" in str(e.value) and "int64" in str(e.value)

@@ -157,6 +157,26 @@ def test_newcombe_without_correlation_term_is_the_independent_hybrid(both, n01, 
     assert iv.hi == pytest.approx(100 * hi, abs=1e-8)
 
 
+def test_newcombe_with_correlation_matches_a_published_worked_example():
+    # Source: the paired 2x2 table of Cavo et al. (2012), complete response before (columns) and after
+    # (rows) consolidation therapy, [[59, 6], [16, 80]], n = 161, worked in Fagerland, Lydersen & Laake,
+    # "Statistical Analysis of Contingency Tables" (2017), ch. 8, with Newcombe's (1998) square-and-add
+    # interval for paired data: estimate -0.0621, 95% CI -0.1186 to -0.0046 (four decimals, as printed
+    # there and asserted by the R package contingencytables, tests/testthat/test-ch8.R).
+    # Here eh - fg = 59*80 - 6*16 = 4624 > n/2, so the correlation term phi is non-zero: the path real
+    # validation data takes (two models right and wrong on mostly the same samples).
+    # Rows are our candidate, columns our original: 59 both right, 6 candidate-only, 16 original-only.
+    orig, cand = _paired(n_both=59, n01=6, n10=16, n_neither=80)
+    iv = stats.paired_accuracy_difference(orig, cand)
+    assert round(iv.delta / 100, 4) == -0.0621
+    assert round(iv.lo / 100, 4) == -0.1186
+    assert round(iv.hi / 100, 4) == -0.0046
+    # without the phi term (the independent-samples hybrid, statsmodels) the interval is wider:
+    # the published values are only reached through the correlation correction
+    lo, hi = confint_proportions_2indep(65, 161, 75, 161, method="newcomb", compare="diff")
+    assert round(lo, 4) != -0.1186 and hi - lo > (iv.hi - iv.lo) / 100
+
+
 def test_newcombe_positive_correlation_narrows_the_interval():
     # Two models right and wrong on mostly the same samples: the paired interval must be
     # narrower than the independent-samples one (that is the point of the phi term, Newcombe 1998).

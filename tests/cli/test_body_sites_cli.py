@@ -43,7 +43,7 @@ def test_scan_command_names_the_body_sites_that_did_not_run(tmp_path, cli):
 def test_swap_command_warns_about_body_sites_no_calibration_batch_ran(tmp_path, cli):
     path = saved(tmp_path, as_loaded(parser.parse_model(MODEL)))
     np.savez(tmp_path / "calib.npz", x=np.ones((8, 4), np.float32))
-    result = cli("swap", path, "-o", tmp_path / "out.onnx", "--sites", "s3", "--to", "relu", "--fold", "nodes",
+    result = cli("swap", path, "-o", tmp_path / "out.onnx", "--sites", "s3", "--to", "relu", "--fold", "exact+nodes",
                  "--calib", tmp_path / "calib.npz", "--constant", "c=0", "--target", "none")
     assert result.exit_code == 0, result.output
     assert "warning: s3 sit in a body no calibration batch ran" in result.stdout

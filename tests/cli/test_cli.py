@@ -26,27 +26,27 @@ MANIFEST = manifest()
 # source: demo_models/README.md "Models" table (architectures and the activations as written in the graph).
 EXPECTED_SITES = {
     # 3x Conv+SiLU (1->16, 16->32, 32->32), SE: 1x1 Conv 32->8 -> ReLU -> 1x1 Conv 8->32 -> Sigmoid gate
-    "meter_cnn_silu": [("silu", "pointwise", 16), ("silu", "pointwise", 32), ("silu", "pointwise", 32),
-                       ("relu", "pointwise", 8), ("sigmoid", "gate", 32)],
+    "meter_cnn_silu": [("silu", "hidden", 16), ("silu", "hidden", 32), ("silu", "hidden", 32),
+                       ("relu", "hidden", 8), ("sigmoid", "gate", 32)],
     # Gemm 64->64 -> GELU -> Gemm 64->32 -> GELU
-    "meter_gelu_mlp": [("gelu", "pointwise", 64), ("gelu", "pointwise", 32)],
+    "meter_gelu_mlp": [("gelu", "hidden", 64), ("gelu", "hidden", 32)],
     # Gemm 64->48 -> BatchNorm1d -> Mish -> Gemm 48->32 -> GELU(tanh)
-    "meter_mlp_mish_gelutanh": [("mish", "pointwise", 48), ("gelu_tanh", "pointwise", 32)],
+    "meter_mlp_mish_gelutanh": [("mish", "hidden", 48), ("gelu_tanh", "hidden", 32)],
     # Gemm 64->48 -> Tanh -> Gemm 48->32 -> Sigmoid
-    "meter_mlp_tanh_sigmoid": [("tanh", "pointwise", 48), ("sigmoid", "pointwise", 32)],
+    "meter_mlp_tanh_sigmoid": [("tanh", "hidden", 48), ("sigmoid", "hidden", 32)],
     # stem SiLU (16), 3 blocks at 16 ch and 3 at 32 ch, each with a SiLU after its first Conv and after its Add
-    "meter_resnet_silu": [("silu", "pointwise", 16)] * 7 + [("silu", "pointwise", 32)] * 6,
+    "meter_resnet_silu": [("silu", "hidden", 16)] * 7 + [("silu", "hidden", 32)] * 6,
 }
 # manifest.json "activations" pattern name -> (registry function, role, decomposed?)
 # source: demo_models/README.md "manifest.json" section (pattern names) and "Models" table (forms).
 PATTERN_TO_SITE = {
-    "silu_decomposed": ("silu", "pointwise", True), "sigmoid_gate": ("sigmoid", "gate", False),
-    "sigmoid": ("sigmoid", "pointwise", False), "relu": ("relu", "pointwise", False),
-    "gelu_erf": ("gelu", "pointwise", True), "gelu_tanh": ("gelu_tanh", "pointwise", True),
-    "mish_decomposed": ("mish", "pointwise", True), "tanh": ("tanh", "pointwise", False),
+    "silu_decomposed": ("silu", "hidden", True), "sigmoid_gate": ("sigmoid", "gate", False),
+    "sigmoid": ("sigmoid", "hidden", False), "relu": ("relu", "hidden", False),
+    "gelu_erf": ("gelu", "hidden", True), "gelu_tanh": ("gelu_tanh", "hidden", True),
+    "mish_decomposed": ("mish", "hidden", True), "tanh": ("tanh", "hidden", False),
 }
 SURROGATES = ("relu", "relu6", "leaky_relu", "hard_sigmoid", "hard_swish", "hard_tanh", "pwl", "poly_gelu")
-# Costly ops that must be gone once every pointwise site is swapped (the CNN keeps its Sigmoid gate).
+# Costly ops that must be gone once every hidden site is swapped (the CNN keeps its Sigmoid gate).
 # source: demo_models/manifest.json op_types and README "Models" table.
 COSTLY_LEFT = {
     "meter_cnn_silu": {"Sigmoid": 1, "Erf": 0, "Tanh": 0, "Softplus": 0},
@@ -142,7 +142,7 @@ def test_scan_json_lists_the_documented_sites(cli, workspace, name):
         assert set(s) == set(fields), sorted(set(s) ^ set(fields))
         for key, typ in fields.items():
             assert isinstance(s[key], typ), (key, s[key])
-        assert s["role"] in ("pointwise", "gate", "output")
+        assert s["role"] in ("hidden", "gate", "output")
         assert s["supported"] is True and s["reason"] is None and s["domain"] == ""
         assert s["params"] == {}  # none of these functions has parameters of its own
         # decomposed forms name their pattern; single ops say "op" (README "Models" table)

@@ -210,8 +210,8 @@ def odd_labels(arrays, rng, path):
 
 def odd_arrays(arrays, rng, path):
     n = len(arrays["pixels"])
-    extra = rng.choice((("targets", np.zeros(n, np.float32)), ("targets", np.ones((n, 10), np.float32)),
-                        ("extra", arrays["pixels"])))
+    extra = rng.choice((("expected", np.zeros(n, np.float32)), ("targets", np.ones((n, 10), np.float32)),
+                        ("extra", arrays["pixels"])))  # "targets": the older name of "expected", still read
     arrays[extra[0]] = extra[1]
     _npz(path, arrays)
 

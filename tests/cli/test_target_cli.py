@@ -111,7 +111,7 @@ def test_without_a_target_the_registry_defaults_come_back(cli, models, tmp_path)
     assert result.exit_code == 0, result.output
     plan = json.loads(_meta(out)["swapper.plan"])
     # README "What gets swapped": gelu -> hard_swish; opset 18 has the HardSwish op
-    assert plan["target"] is None and {(s["target"], s["form"]) for s in plan["swaps"]} == {("hard_swish", "HardSwish")}
+    assert plan["target"] is None and {(s["surrogate"], s["form"]) for s in plan["swaps"]} == {("hard_swish", "HardSwish")}
     assert "swapper.target" not in _meta(out)
 
 
@@ -120,7 +120,9 @@ def test_check_reports_the_target(cli, models, tmp_path):
     assert cli("swap", models / "meter_gelu_mlp.onnx", "-o", cand, "--no-calibrate", "--target", "none").exit_code == 0
     result = cli("check", models / "meter_gelu_mlp.onnx", cand, "--val", VAL, "--target", "npu-int8",
                  "--report", tmp_path / "r")
-    assert result.exit_code in (0, 1), result.output
+    # README "Measured results": the uncalibrated hard_swish swap of meter_gelu_mlp loses 0.22 points on
+    # val.npz, inside the default 1-point budget; a declared target's lacking ops are reported, not gated
+    assert result.exit_code == 0, result.output
     entry = json.loads((tmp_path / "r" / "report.json").read_text())["latency"]["target"]
     # npu-int8 cannot run Div or Erf (the erf-GELU of the original); the hard_swish candidate has neither
     assert entry["lacking_ops"] == {"original": {"Div": 2, "Erf": 2}, "candidate": {}}
@@ -132,7 +134,15 @@ def test_check_reports_the_target(cli, models, tmp_path):
 
 
 def test_functions_lists_each_surrogates_forms(cli):
-    lines = {ln.split()[0]: ln for ln in cli("functions").stdout.splitlines() if ln.strip()}
+    rows, last = {}, None  # function -> its table cells, a wrapped row's continuation lines joined on
+    for ln in cli("functions").stdout.splitlines():
+        if not ln.startswith("│"):
+            continue
+        cells = [c.strip() for c in ln.strip().strip("│").split("│")]
+        if cells[0]:
+            rows[last := cells[0]] = cells
+        else:
+            rows[last] = [f"{a} {b}".strip() for a, b in zip(rows[last], cells)]
     # source: ONNX operator spec, HardSwish since opset 14; Howard et al. 2019 for x·ReLU6(x + 3)/6
-    assert lines["hard_swish"].endswith("forms: HardSwish (opset ≥ 14), Mul-HardSigmoid, Mul-Clip")
-    assert lines["relu"].endswith("forms: Relu, Clip, Max") and "forms" not in lines["silu"]
+    assert rows["hard_swish"][4].startswith("HardSwish (opset ≥ 14), Mul-HardSigmoid, Mul-Clip")
+    assert rows["relu"][4] == "Relu, Clip, Max" and rows["silu"][4] == ""

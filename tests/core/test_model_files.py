@@ -267,3 +267,17 @@ def test_onnxruntime_errors_reach_stderr_as_our_one_line_only(tmp_path):
     assert_one_line(proc, "m.onnx", "onnxruntime failed running")
     assert "[E:onnxruntime" not in proc.stderr
     assert not (tmp_path / "out.onnx").exists()
+
+
+def test_a_declared_dimension_beyond_any_tensor_is_refused_before_inference(cli, tmp_path):
+    # Found by benchmarks/fuzz.py (seed 7, m01840): a value_info claiming 2**40 elements made onnx's
+    # shape inference die of std::bad_alloc; the ONNX IR spec allows any int64 dim_value, so the bound
+    # is ours (swapper.core.model_io.MAX_DECLARED_DIM).
+    model = _tiny(numpy_helper.from_array(np.ones((2, 2), np.float32), "w"))
+    model.graph.value_info.append(helper.make_tensor_value_info("y", TensorProto.FLOAT, [2**40]))
+    path = tmp_path / "huge_dim.onnx"
+    onnx.save(model, path)
+    with pytest.raises(BadModelError, match="declares a dimension of 1099511627776"):
+        load_model(path)
+    result = cli("scan", path)
+    assert result.exit_code == 2, result.output

@@ -47,7 +47,7 @@ def _chain(scale: float = 1.0) -> tuple[onnx.ModelProto, np.ndarray]:
 
 def _dataset(n: int = 10, seed: int = 1) -> Dataset:
     x = np.random.default_rng(seed).normal(size=(n, 3)).astype(np.float32)
-    return Dataset(path=Path("<inline>"), arrays={"x": x}, labels=np.arange(n), targets=None, n=n,
+    return Dataset(path=Path("<inline>"), arrays={"x": x}, labels=np.arange(n), expected=None, n=n,
                    dtypes={"x": np.dtype(np.float32)})
 
 

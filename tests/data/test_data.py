@@ -69,7 +69,7 @@ def test_npz_round_trip_with_labels(tmp_path):
     x, y = sample(), np.arange(10) % 3
     np.savez(tmp_path / "d.npz", x=x, labels=y)
     ds = load_dataset(tmp_path / "d.npz", spec(), require_labels=True)
-    assert ds.n == 10 and ds.targets is None
+    assert ds.n == 10 and ds.expected is None
     np.testing.assert_array_equal(np.asarray(ds.arrays["x"]), x)
     np.testing.assert_array_equal(np.asarray(ds.labels), y)
     # source: numpy docs, np.savez stores members uncompressed (ZIP_STORED), so they can be memory-mapped
@@ -78,10 +78,24 @@ def test_npz_round_trip_with_labels(tmp_path):
 
 def test_compressed_npz_round_trip(tmp_path):
     x, t = sample(7), np.linspace(0, 1, 7)
-    np.savez_compressed(tmp_path / "d.npz", x=x, targets=t)
+    np.savez_compressed(tmp_path / "d.npz", x=x, expected=t)
     ds = load_dataset(tmp_path / "d.npz", spec())
     np.testing.assert_array_equal(concat_batches(ds, 3), x)
-    np.testing.assert_array_equal(np.concatenate([b.targets for b in batches(ds, 3)]), t)
+    np.testing.assert_array_equal(np.concatenate([b.expected for b in batches(ds, 3)]), t)
+    assert ds.notes == []
+
+
+def test_the_older_name_of_expected_values_is_read_with_a_note(tmp_path):
+    # README "Data files": the regression array is 'expected'; files written with its older name 'targets'
+    # still load, with one note, and giving both is refused (which one is meant?)
+    x, t = sample(7), np.linspace(0, 1, 7)
+    np.savez(tmp_path / "old.npz", x=x, targets=t)
+    ds = load_dataset(tmp_path / "old.npz", spec())
+    np.testing.assert_array_equal(np.concatenate([b.expected for b in batches(ds, 3)]), t)
+    assert len(ds.notes) == 1 and "'targets' read as 'expected'" in ds.notes[0]
+    np.savez(tmp_path / "both.npz", x=x, targets=t, expected=t)
+    with pytest.raises(BadDataError, match="both 'expected' and 'targets'"):
+        load_dataset(tmp_path / "both.npz", spec())
 
 
 def test_fortran_order_member_matches_numpy(tmp_path):

@@ -201,7 +201,9 @@ def test_a_sub_folder_named_like_an_array_is_skipped(cli, tmp_path):
     # the report hashes exactly the files read, so the sub-folder does not break it either
     result = cli("swap", DEMO / "meter_mlp_tanh_sigmoid.onnx", "--calib", folder, "--val", DEMO / "val.npz",
                  "-o", tmp_path / "out.onnx", "--report", tmp_path / "rep", "--no-latency")
-    assert result.exit_code in (0, 1), result.output
+    # --calib with --val plans automatically, which keeps only a plan its own verification approved, or
+    # writes nothing; both end in 0 (README, "The sweep and the automatic plan")
+    assert result.exit_code == 0, result.output
     import json
 
     entry = json.loads((tmp_path / "rep" / "report.json").read_text())["inputs"]["calibration"]
@@ -221,9 +223,9 @@ def test_a_fixed_batch_size_must_divide_the_samples(cli, tmp_path):
                    "calib.npz", "64 samples do not divide into batches of 7")
 
 
-def test_targets_for_a_classifier_are_refused_naming_the_file(cli, tmp_path):
+def test_expected_values_for_a_classifier_are_refused_naming_the_file(cli, tmp_path):
     with np.load(DEMO / "val.npz") as z:
-        np.savez(tmp_path / "val.npz", pixels=z["pixels"][:64], targets=np.zeros(64, np.float32))
+        np.savez(tmp_path / "val.npz", pixels=z["pixels"][:64], expected=np.zeros(64, np.float32))
     model = DEMO / "meter_mlp_tanh_sigmoid.onnx"  # 10 class scores per sample
     one_line_error(cli("check", model, model, "--val", tmp_path / "val.npz", "--report", tmp_path / "rep"),
-                   "val.npz", "'targets' has 1 value(s) per sample")
+                   "val.npz", "'expected' has 1 value(s) per sample")

@@ -225,7 +225,7 @@ def test_holds_keep_neutral_values_exactly(free):
     rng = np.random.default_rng(8)
     x = rng.normal(size=800)
     y = 1.3 * hard_tanh(0.7 * x + 0.2) - 0.4 + 0.01 * rng.normal(size=800)
-    neutral = (1.0, 1.0, 0.0, 0.0)  # source: swapper/plan/plan.py NEUTRAL ("held" placement)
+    neutral = (1.0, 1.0, 0.0, 0.0)  # source: swapper/plan/plan.py NEUTRAL ("fixed" placement)
     r = fit_channel(x, y, hard_tanh, init=neutral, free=free, dg=dhard_tanh)
     for i, p in enumerate("abcd"):
         if p not in free:

@@ -30,7 +30,7 @@ def test_positive_b_holds_b_where_the_best_b_is_negative():
     assert free_fit.b[0] < 0  # without the rule the fit takes the reversed ramp
     ruled = fit_channels(_observer(x, y), relu, init=init, dg=drelu, positive_b=True)
     assert np.all(ruled.b > 0)
-    assert ruled.b[0] == 1.0 and "b held at its start" in ruled.notes[0]
+    assert ruled.b[0] == 1.0 and "b fixed at its start" in ruled.notes[0]
     start_mse = wmse(y[:, 0], relu(x[:, 0]))
     fitted_mse = wmse(y[:, 0], ruled.a[0] * relu(ruled.b[0] * x[:, 0] + ruled.c[0]) + ruled.d[0])
     assert fitted_mse <= start_mse

@@ -59,3 +59,17 @@ def test_observers_with_different_settings_do_not_merge():
     b = ChannelObserver(5, 1)
     with pytest.raises(ValueError):
         a.merge(b)
+
+
+def test_values_beyond_the_kept_precision_are_bad_data_not_a_crash():
+    # Found by benchmarks/fuzz.py (seed 7, m01821): float64 site values beyond float32's largest finite
+    # value (numpy.finfo(float32).max ≈ 3.4e38) become inf in a float32 reservoir; the fit must say so
+    # in one line (BadDataError), not fail inside the solver.
+    from swapper.fit.site import fit_channels
+
+    obs = ChannelObserver(2, 1, reservoir=64, seed=0, moments=False, dtype=np.float32)
+    x = np.ones((8, 2), dtype=np.float64)
+    x[3, 1] = 1e39  # finite in float64, inf once kept as float32
+    obs.update(x, np.tanh(x))
+    with pytest.raises(BadDataError, match="not finite"):
+        fit_channels(obs, np.tanh, free="abcd")

@@ -25,7 +25,7 @@ SHAPE = (X.size,)
 # (a, b, c, d) sets: both signs of every parameter; the re-parametrisation must hold for any values
 VALUES = [(1.7, 0.8, 0.3, -0.4), (-0.6, -1.3, -0.9, 0.25)]
 PARAMS = {"hard_sigmoid": [{}, {"alpha": 1 / 6, "beta": 0.5}], "leaky_relu": [{}, {"alpha": 0.2}],
-          "pwl": [F.target_params("silu", {}, "pwl")]}
+          "pwl": [F.surrogate_params("silu", {}, "pwl")]}
 
 
 def _cases():

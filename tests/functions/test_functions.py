@@ -128,8 +128,8 @@ EMIT_PARAMS = [(n, {}) for n in sorted(F.REGISTRY)] + [
     ("leaky_relu", {"alpha": 0.2}),
     ("hard_sigmoid", {"alpha": 1 / 6, "beta": 0.5}),
     ("prelu", {"slope": 0.1}),
-    ("pwl", F.target_params("silu", {}, "pwl")),
-    ("pwl", F.target_params("gelu", {}, "pwl", segments=8)),
+    ("pwl", F.surrogate_params("silu", {}, "pwl")),
+    ("pwl", F.surrogate_params("gelu", {}, "pwl", segments=8)),
     ("pwl", {"knots": (-1.0, 2.0), "slopes": (1.0, 0.0, 1.0), "intercept": 0.0}),
 ]
 
@@ -234,7 +234,7 @@ def test_homogeneous_set_is_as_documented():
 @pytest.mark.parametrize("name", sorted(n for n, f in F.REGISTRY.items() if not f.homogeneous))
 def test_non_homogeneous_have_a_counterexample(name):
     # pwl's default params are relu-shaped; a fitted pwl (intercept, off-zero knots) is not homogeneous
-    params = F.target_params("silu", {}, "pwl") if name == "pwl" else {}
+    params = F.surrogate_params("silu", {}, "pwl") if name == "pwl" else {}
     g = F.get(name).ref
     z = np.linspace(-5, 5, 101)
     worst = max(np.max(np.abs(g(s * z, **params) - s * g(z, **params))) for s in (0.5, 2.0, 3.0))
@@ -245,12 +245,12 @@ def test_non_homogeneous_have_a_counterexample(name):
 @pytest.mark.parametrize("segments", range(1, 9))
 def test_pwl_uses_only_hinge_ops(segments):
     for source in F.sources():
-        model = _emitted("pwl", 13, F.target_params(source, {}, "pwl", segments=segments))
+        model = _emitted("pwl", 13, F.surrogate_params(source, {}, "pwl", segments=segments))
         assert {n.op_type for n in model.graph.node} <= {"Relu", "Clip", "Max", "Min", "Mul", "Add"}
 
 
 def test_pwl_fit_is_the_weighted_least_squares_solution():
-    p = F.target_params("silu", {}, "pwl", segments=6)
+    p = F.surrogate_params("silu", {}, "pwl", segments=6)
     # source: scipy.stats.norm.ppf, knots at the N(0,1) quantiles i/k
     np.testing.assert_allclose(p["knots"], norm.ppf(np.arange(1, 6) / 6), rtol=1e-12, atol=1e-15)
     x = np.linspace(-6, 6, 4801)
@@ -260,7 +260,7 @@ def test_pwl_fit_is_the_weighted_least_squares_solution():
     slopes = lr.coef_[0] + np.concatenate([[0.0], np.cumsum(lr.coef_[1:])])
     np.testing.assert_allclose(p["slopes"], slopes, atol=1e-6)
     assert p["intercept"] == pytest.approx(lr.intercept_, abs=1e-6)
-    assert F.target_params("silu", {}, "pwl") == p  # deterministic, default 6 segments
+    assert F.surrogate_params("silu", {}, "pwl") == p  # deterministic, default 6 segments
 
 
 def test_pwl_beats_hard_swish_on_silu():
@@ -274,7 +274,7 @@ def test_pwl_beats_hard_swish_on_silu():
         a, b, c, d = r.x
         return np.max(np.abs(a * g(b * x + c) + d - silu))
 
-    p = F.target_params("silu", {}, "pwl")
+    p = F.surrogate_params("silu", {}, "pwl")
     pwl_err = fitted_max_error(lambda z: F.get("pwl").ref(z, **p))
     hs_err = fitted_max_error(F.get("hard_swish").ref)
     # measured: pwl (6 segments) 0.066, hard_swish 0.57 (0.14 unscaled)
@@ -295,21 +295,21 @@ def test_pwl_rejects_bad_params(params):
 
 def test_pwl_segment_limit():
     with pytest.raises(UsageError, match="segments"):
-        F.target_params("silu", {}, "pwl", segments=9)
+        F.surrogate_params("silu", {}, "pwl", segments=9)
 
 
-# ------------------------------------------------- targets, registry, costs
-def test_default_targets_cover_every_source_with_a_surrogate():
-    assert sorted(F.DEFAULT_TARGET) == F.sources()
-    assert all(F.get(t).is_cheap for t in F.DEFAULT_TARGET.values())
+# ---------------------------------------------- surrogates, registry, costs
+def test_default_surrogates_cover_every_swappable_function():
+    assert sorted(F.DEFAULT_SURROGATE) == F.sources()
+    assert all(F.get(t).is_cheap for t in F.DEFAULT_SURROGATE.values())
     assert set(F.sources()) | set(F.surrogates()) == set(F.REGISTRY)
 
 
-def test_target_params():
-    assert F.target_params("silu", {}, "hard_swish") == {}
-    assert F.target_params("elu", {"alpha": 1.0}, "relu") == {}
-    assert F.target_params("silu", {}, "leaky_relu") == {"alpha": 0.01}
-    hs = F.target_params("sigmoid", {}, "hard_sigmoid")
+def test_surrogate_params():
+    assert F.surrogate_params("silu", {}, "hard_swish") == {}
+    assert F.surrogate_params("elu", {"alpha": 1.0}, "relu") == {}
+    assert F.surrogate_params("silu", {}, "leaky_relu") == {"alpha": 0.01}
+    hs = F.surrogate_params("sigmoid", {}, "hard_sigmoid")
     assert hs == {"alpha": 0.2, "beta": 0.5}  # source: ONNX operator spec, HardSigmoid defaults
     # The choice over Howard et al.'s 1/6: lower N(0,1)-weighted squared error against sigmoid
     # (measured weighted RMSE 0.024 vs 0.048).
@@ -318,13 +318,13 @@ def test_target_params():
     err = {a: np.sum(w * (F.get("hard_sigmoid").ref(x, alpha=a, beta=0.5) - expit(x)) ** 2) for a in (0.2, 1 / 6)}
     assert err[0.2] < 0.5 * err[1 / 6]
     # swish's beta reaches the pwl fit
-    assert F.target_params("swish", {"beta": 2.0}, "pwl") != F.target_params("swish", {"beta": 1.0}, "pwl")
-    assert F.target_params("gelu", {}, "gelu_tanh") == {}  # a costly target keeps its defaults
-    assert F.target_params("silu", {}, "swish") == {"beta": 1.0}
+    assert F.surrogate_params("swish", {"beta": 2.0}, "pwl") != F.surrogate_params("swish", {"beta": 1.0}, "pwl")
+    assert F.surrogate_params("gelu", {}, "gelu_tanh") == {}  # a costly surrogate keeps its defaults
+    assert F.surrogate_params("silu", {}, "swish") == {"beta": 1.0}
     # keys a site carries that the source does not take are ignored by the fit
-    assert F.target_params("silu", {"form": "mul-sigmoid"}, "pwl") == F.target_params("silu", {}, "pwl")
+    assert F.surrogate_params("silu", {"form": "mul-sigmoid"}, "pwl") == F.surrogate_params("silu", {}, "pwl")
     with pytest.raises(UsageError, match="unknown function"):
-        F.target_params("silu", {}, "nope")
+        F.surrogate_params("silu", {}, "nope")
 
 
 def test_get_unknown_lists_valid_names():

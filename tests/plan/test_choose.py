@@ -136,7 +136,7 @@ def test_silu_after_conv_on_ort_cpu_goes_to_relu_because_hard_swish_is_slower(tm
     (swap,) = plan.swaps
     # the original: x·Sigmoid(x) fuses to QuickGelu anywhere; relu fuses into the Conv
     assert swap.cost["original"] == pytest.approx(fused(cpu, "*", ["Sigmoid", "Mul"]))
-    assert (swap.target, swap.form) == ("relu", "Relu")
+    assert (swap.surrogate, swap.form) == ("relu", "Relu")
     assert swap.cost["candidate"] == pytest.approx(fused(cpu, "Conv", ["Relu"]))
     # the default did not pay: its cheapest form at opset 13, HardSigmoid then Mul, costs more than QuickGelu
     assert op(cpu, "HardSigmoid") + op(cpu, "Mul") > fused(cpu, "*", ["Sigmoid", "Mul"])
@@ -178,14 +178,14 @@ def test_mcu_has_no_hardsigmoid_so_hard_swish_is_written_with_clip(tmp_path):
     plan = _plan(CONV_SILU.format(opset=13), tmp_path, "mcu-int8")
     (swap,) = plan.swaps
     # z·Clip(z + 3, 0, 6)/6 with the 1/6 folded into a, which folds into the second Conv
-    assert (swap.target, swap.form) == ("hard_swish", "Mul-Clip") and swap.placement["a"] == "consumers"
+    assert (swap.surrogate, swap.form) == ("hard_swish", "Mul-Clip") and swap.placement["a"] == "consumers"
     assert swap.cost["candidate"] == pytest.approx(op(mcu, "Add") + op(mcu, "Clip") + op(mcu, "Mul"))
     assert swap.cost["original"] == pytest.approx(op(mcu, "Sigmoid") + op(mcu, "Mul"))
     # from opset 14 the HardSwish op exists (ONNX operator spec, HardSwish-14); at the same cost the form
     # listed first wins
     assert op(mcu, "HardSwish") == pytest.approx(swap.cost["candidate"])
     (swap14,) = _plan(CONV_SILU.format(opset=14), tmp_path, "mcu-int8").swaps
-    assert (swap14.target, swap14.form) == ("hard_swish", "HardSwish")
+    assert (swap14.surrogate, swap14.form) == ("hard_swish", "HardSwish")
 
 
 def test_a_form_that_moves_a_held_parameter_is_not_used_and_the_opset_hint_says_why(tmp_path):
@@ -193,7 +193,7 @@ def test_a_form_that_moves_a_held_parameter_is_not_used_and_the_opset_hint_says_
     (swap,) = plan.swaps
     # a is held (the residual Add reads y), so Mul-Clip cannot fold its 1/6; HardSwish needs opset 14;
     # Mul-HardSigmoid uses HardSigmoid, which mcu-int8 lacks: hard_swish is not eligible, relu is
-    assert swap.placement["a"] == "inner" and (swap.target, swap.form) == ("relu", "Relu")
+    assert swap.placement["a"] == "in-surrogate" and (swap.surrogate, swap.form) == ("relu", "Relu")
     assert plan.hints == ["HardSwish needs opset 14; this model is opset 13; rerun with --opset 14 (sites s1)"]
 
 
@@ -202,10 +202,10 @@ def test_clip_form_of_hard_sigmoid_needs_b_and_c_to_move(tmp_path):
     cpu = raw("ort-cpu")
     assert op(cpu, "Clip") < op(cpu, "HardSigmoid") < op(cpu, "Sigmoid")
     (swap,) = _plan(INPUT_SIGMOID, tmp_path, "ort-cpu").swaps
-    assert swap.placement["b"] == swap.placement["c"] == "held"
-    assert (swap.target, swap.form) == ("hard_sigmoid", "HardSigmoid")
-    plan = _plan(INPUT_SIGMOID, tmp_path, "ort-cpu", fold="nodes")
-    # under --fold nodes b and c are a Mul and an Add before the surrogate: with them no form is cheaper
+    assert swap.placement["b"] == swap.placement["c"] == "fixed"
+    assert (swap.surrogate, swap.form) == ("hard_sigmoid", "HardSigmoid")
+    plan = _plan(INPUT_SIGMOID, tmp_path, "ort-cpu", fold="exact+nodes")
+    # under --fold exact+nodes b and c are a Mul and an Add before the surrogate: with them no form is cheaper
     # than the Sigmoid alone, so the site is kept
     assert op(cpu, "Mul") + op(cpu, "Add") + op(cpu, "Clip") > op(cpu, "Sigmoid")
     assert not plan.swaps and plan.skipped[0].reason.startswith("kept: Sigmoid costs 1.18 on ort-cpu")
@@ -213,7 +213,7 @@ def test_clip_form_of_hard_sigmoid_needs_b_and_c_to_move(tmp_path):
 
 def test_forced_surrogate_the_target_cannot_run_names_the_op(tmp_path):
     with pytest.raises(UsageError, match=r"site s1: hard_sigmoid cannot be used on mcu-int8: .*HardSigmoid.*"
-                                         r"mcu-int8 does not run.*form Clip moves b, c, held"):
+                                         r"mcu-int8 does not run.*form Clip moves b, c, which this site keeps fixed"):
         _plan(INPUT_SIGMOID, tmp_path, "mcu-int8", to="hard_sigmoid")
     with pytest.raises(UsageError, match="HardSwish needs opset 14"):
         _plan(CONV_SILU.format(opset=13), tmp_path, "ort-cpu", choices={"s1": "hard_swish:HardSwish"})
@@ -226,14 +226,14 @@ def test_forced_and_pinned_surrogates_take_their_cheapest_usable_form(tmp_path):
     assert op(cpu, "HardSwish") > op(cpu, "HardSigmoid") + op(cpu, "Mul")
     assert swap.form == "Mul-HardSigmoid"
     (swap,) = _plan(CONV_SILU.format(opset=17), tmp_path, "ort-cpu", choices={"s1": "hard_swish:Mul-Clip"}).swaps
-    assert (swap.target, swap.form) == ("hard_swish", "Mul-Clip")
+    assert (swap.surrogate, swap.form) == ("hard_swish", "Mul-Clip")
 
 
 def test_without_a_target_the_registry_default_and_its_own_form_are_taken(tmp_path):
     # README "What gets swapped": silu -> hard_swish; the registry emitter writes HardSwish from opset 14
     for opset, form in ((13, "Mul-HardSigmoid"), (17, "HardSwish")):
         plan = _plan(CONV_SILU.format(opset=opset), tmp_path, None)
-        assert [(s.target, s.form, s.cost) for s in plan.swaps] == [("hard_swish", form, None)]
+        assert [(s.surrogate, s.form, s.cost) for s in plan.swaps] == [("hard_swish", form, None)]
         assert plan.target is None and plan.opset == opset
 
 
@@ -244,7 +244,7 @@ def test_matmul_bias_add_is_priced_as_the_runtime_fuses_it(tmp_path):
     # the bias Add heads both chains: MatMul+Add+Relu is one FusedGemm, the original Add stays beside Gelu
     assert swap.cost["original"] == pytest.approx(op(cpu, "Add") + fused(cpu, "*", ["Div", "Erf", "Add", "Mul",
                                                                                     "Mul"]))
-    assert (swap.target, swap.cost["candidate"]) == ("relu", pytest.approx(fused(cpu, "MatMul", ["Add", "Relu"])))
+    assert (swap.surrogate, swap.cost["candidate"]) == ("relu", pytest.approx(fused(cpu, "MatMul", ["Add", "Relu"])))
 
 
 def test_an_op_the_declared_target_lacks_is_always_replaced(tmp_path):
@@ -252,7 +252,7 @@ def test_an_op_the_declared_target_lacks_is_always_replaced(tmp_path):
     assert npu["ops"]["Erf"]["support"] == npu["ops"]["Div"]["support"] == "none"
     plan = _plan(GEMM_GELU, tmp_path, "npu-int8", GEMM_WEIGHTS)
     (swap,) = plan.swaps
-    assert swap.cost["original"] is None and swap.target == "hard_swish"
+    assert swap.cost["original"] is None and swap.surrogate == "hard_swish"
     assert swap.form in ("Mul-HardSigmoid", "Mul-Clip")  # equal cost here (3.0): the first listed wins
     assert swap.form == "Mul-HardSigmoid"
     # HardSwish (1.0) would be cheaper than either, from opset 14
@@ -269,7 +269,7 @@ def test_an_unsupported_gate_is_swapped_with_a_note(tmp_path):
     profile = _custom(tmp_path, "mcu-int8", no_sigmoid)
     plan = _plan(GATE, tmp_path, profile)
     (swap,) = plan.swaps
-    assert swap.source == "sigmoid" and any("swapped although a gate" in n for n in swap.notes)
+    assert swap.function == "sigmoid" and any("swapped although a gate" in n for n in swap.notes)
     # on the unedited profile the gate is left, as without a target
     plan = _plan(GATE, tmp_path, "mcu-int8")
     assert not plan.swaps and "gate" in plan.skipped[0].reason and not plan.remaining

@@ -28,7 +28,7 @@ def _site(model, x, y, nodes, axis=1, channels=4):
     index = GraphIndex.of(model)
     return Site(id="s1", function="silu", params={}, input=x, output=y, nodes=tuple(nodes), form="op",
                 shape=index.shape(x), channel_axis=axis, channels=channels, producer=None, consumers=(),
-                role="pointwise", elements=None, cost=0.0, cost_share=0.0)
+                role="hidden", elements=None, cost=0.0, cost_share=0.0)
 
 
 def _silu(x, y):
@@ -90,8 +90,8 @@ def place(model, site, target="hard_swish", policy="exact"):
 # -------------------------------------------------------------- placement
 def test_conv_chain_exact_holds_d_behind_padding():
     placement, notes = place(*conv_model(pads=1))
-    assert placement == {"a": "consumers", "b": "producer", "c": "producer", "d": "held"}
-    assert any(n.startswith("d held") for n in notes)
+    assert placement == {"a": "consumers", "b": "producer", "c": "producer", "d": "fixed"}
+    assert any(n.startswith("d fixed") for n in notes)
 
 
 def test_conv_chain_unpadded_folds_everything_even_without_bias():
@@ -102,12 +102,12 @@ def test_conv_chain_unpadded_folds_everything_even_without_bias():
 def test_homogeneous_target_moves_a_inside():
     # relu is positively homogeneous (relu(s·z) = s·relu(z), s > 0): a joins b, c in the producer
     placement, notes = place(*conv_model(pads=1), target="relu")
-    assert placement["a"] == "inner" and any("a > 0" in n for n in notes)
+    assert placement["a"] == "in-surrogate" and any("a > 0" in n for n in notes)
     placement, _ = place(*conv_model(pads=1, residual=True), target="relu")
     assert placement["a"] == "consumers"  # b is held (not folded), so a cannot go inside
 
 
-@pytest.mark.parametrize("policy, d", [("approximate", "approx"), ("nodes", "nodes"), ("exact", "held")])
+@pytest.mark.parametrize("policy, d", [("approximate", "approx"), ("exact+nodes", "nodes"), ("exact", "fixed")])
 def test_padded_conv_consumer_d_per_policy(policy, d):
     placement, notes = place(*conv_model(pads=1), policy=policy)
     assert placement["d"] == d
@@ -126,23 +126,23 @@ def test_batchnorm_producer_folds_b_and_c():
 
 
 def test_producer_feeding_other_nodes_does_not_fold():
-    placement, notes = place(*conv_model(pads=0, residual=True), policy="nodes")
+    placement, notes = place(*conv_model(pads=0, residual=True), policy="exact+nodes")
     assert placement["b"] == placement["c"] == "nodes"
     assert any("outside the site" in n for n in notes)
 
 
 def test_graph_output_or_nonlinear_consumer_blocks_a_and_d():
     placement, _ = place(*conv_model(pads=0, y_is_output=True))
-    assert placement["a"] == placement["d"] == "held"
+    assert placement["a"] == placement["d"] == "fixed"
     placement, notes = place(*conv_model(after="Relu"))
-    assert placement["a"] == placement["d"] == "held" and any("not a linear layer" in n for n in notes)
+    assert placement["a"] == placement["d"] == "fixed" and any("not a linear layer" in n for n in notes)
 
 
 def test_matmul_without_bias_folds_b_but_not_c():
     placement, notes = place(*mm_model(with_add=False))
-    assert placement["b"] == "producer" and placement["c"] == "held"
-    assert placement["a"] == "consumers" and placement["d"] == "held"  # MatMul consumer without bias Add
-    placement, _ = place(*mm_model(with_add=False), policy="nodes")
+    assert placement["b"] == "producer" and placement["c"] == "fixed"
+    assert placement["a"] == "consumers" and placement["d"] == "fixed"  # MatMul consumer without bias Add
+    placement, _ = place(*mm_model(with_add=False), policy="exact+nodes")
     assert placement["c"] == "nodes"
 
 
@@ -150,14 +150,14 @@ def test_matmul_add_producer_and_its_limits():
     placement, _ = place(*mm_model())
     assert placement["b"] == placement["c"] == "producer"
     placement, notes = place(*mm_model(mm_shared=True))
-    assert placement["b"] == "held" and any("outside its bias Add" in n for n in notes)
+    assert placement["b"] == "fixed" and any("outside its bias Add" in n for n in notes)
     placement, notes = place(*mm_model(channel_axis=1))  # channels on the wrong axis for a MatMul
-    assert placement["b"] == "held" and placement["a"] == "held"
+    assert placement["b"] == "fixed" and placement["a"] == "fixed"
 
 
 def test_gemm_consumer_with_transposed_input_does_not_fold():
     placement, notes = place(*mm_model(consumer_transA=True))
-    assert placement["a"] == "held" and any("transA" in n for n in notes)
+    assert placement["a"] == "fixed" and any("transA" in n for n in notes)
 
 
 def test_unknown_channels_fold_as_scalars():
@@ -170,3 +170,23 @@ def test_unknown_channels_fold_as_scalars():
 def test_unknown_policy_is_a_usage_error():
     with pytest.raises(UsageError, match="fold policy"):
         place(*conv_model(), policy="sometimes")
+
+
+def test_plans_written_with_the_older_names_read_with_todays():
+    # swapper/plan/plan.py docstring: the swapper.plan metadata of models written before the rename held
+    # "source"/"target" fields, placement words "held"/"inner"/"consumers+" and fold "nodes".
+    from swapper.plan.plan import Plan
+
+    old = {"fold": "nodes", "swaps": [{
+        "site_id": "s1", "source": "silu", "source_params": {}, "target": "relu", "target_params": {},
+        "channel_axis": 1, "channels": 2, "a": [1.5, 2.0], "b": [1.0, 1.0], "c": [0.0, 0.0], "d": [0.0, 0.0],
+        "placement": {"a": "inner", "b": "held", "c": "held", "d": "consumers+"}, "notes": [], "form": "Relu",
+        "cost": None}]}
+    plan = Plan.from_dict(old)
+    (swap,) = plan.swaps
+    assert plan.fold == "exact+nodes"
+    assert (swap.function, swap.surrogate, swap.function_params, swap.surrogate_params) == ("silu", "relu", {}, {})
+    assert swap.placement == {"a": "in-surrogate", "b": "fixed", "c": "fixed", "d": "consumers-via-max"}
+    assert swap.free() == ("a", "d")  # fixed parameters stay out of the fit
+    written = plan.to_dict()["swaps"][0]
+    assert "source" not in written and "target" not in written and written["function"] == "silu"

@@ -69,7 +69,7 @@ def _model(text: str, weights: dict[str, np.ndarray], tmp_path: Path):
 
 
 def _dataset(x: np.ndarray) -> Dataset:
-    return Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, targets=None, n=len(x),
+    return Dataset(path=Path("<inline>"), arrays={"X": x}, labels=None, expected=None, n=len(x),
                    dtypes={"X": np.dtype(np.float32)})
 
 
@@ -80,7 +80,7 @@ def _run(model: onnx.ModelProto, feeds: dict, outputs=None) -> list[np.ndarray]:
 
 def _explicit(plan: Plan) -> Plan:
     """The same values with every moved parameter as an explicit node: y = a·g(b·x + c) + d, literally."""
-    swaps = [dataclasses.replace(s, placement={p: "held" if w == "held" else "nodes" for p, w in s.placement.items()})
+    swaps = [dataclasses.replace(s, placement={p: "fixed" if w == "fixed" else "nodes" for p, w in s.placement.items()})
              for s in plan.swaps]
     return Plan("off", swaps)
 
@@ -112,7 +112,7 @@ def _assert_truthful(loaded, result: api.SwapResult, feeds: dict, tmp_path: Path
     prefix = f"swapper/{swap.site_id}/"
     added = [n for n in candidate.graph.node if n.name.startswith(prefix)]
     assert record.nodes_added == len(added)
-    form_ops = get_form(swap.target, swap.form).op_types(swap.target_params)
+    form_ops = get_form(swap.surrogate, swap.form).op_types(swap.surrogate_params)
     for op, params in (("Mul", "ab"), ("Add", "cd")):
         want = sum(placement[p] == "nodes" and not np.all(getattr(swap, p) == NEUTRAL[p]) for p in params)
         assert sum(n.op_type == op for n in added) == want + form_ops.count(op), (op, placement, form_ops)
@@ -146,9 +146,9 @@ def test_max_pool_keeps_a_positive_and_folded(tmp_path):
     loaded, x, _, _ = _maxpool_case(tmp_path)
     result = api.swap(loaded, calib=_dataset(x), to="hard_sigmoid", fold="exact")
     swap = result.plan.swaps[0]
-    assert swap.placement == {"a": "consumers+", "b": "held", "c": "held", "d": "consumers"}
+    assert swap.placement == {"a": "consumers-via-max", "b": "fixed", "c": "fixed", "d": "consumers"}
     # the data ask for a negative a on channel 0: least squares of y on [g(x), 1] (numpy lstsq), b and c held
-    g, _ = functions.get(swap.target).bind(swap.target_params)
+    g, _ = functions.get(swap.surrogate).bind(swap.surrogate_params)
     x0 = x[:, 0].astype(np.float64).ravel()
     silu = x0 / (1.0 + np.exp(-x0))  # source: SiLU(x) = x·sigmoid(x)
     slope = np.linalg.lstsq(np.stack([g(x0), np.ones_like(x0)], axis=1), silu, rcond=None)[0][0]
@@ -178,7 +178,7 @@ def _padded_case(tmp_path):
     # 64 samples x 4x4 positions = 1024 pairs per channel: a power of two, so the mean of a constant is exact
     x = rng.normal(size=(64, 2, 4, 4)).astype(np.float32)
     sites = api.scan(loaded).sites
-    return loaded, x, sites, make_plan(loaded.model, sites, to="hard_swish", fold="nodes")
+    return loaded, x, sites, make_plan(loaded.model, sites, to="hard_swish", fold="exact+nodes")
 
 
 def test_zero_a_is_kept_out_when_d_is_a_node(tmp_path):
@@ -198,13 +198,13 @@ def test_zero_a_is_kept_out_when_d_is_a_node(tmp_path):
     assert np.all(t[:, 0] == 1.0)
     observer = ChannelObserver(3, 1)
     observer.update(h, t)
-    g, dg = swap.surrogate()
+    g, dg = swap.bound_surrogate()
     free = fit_channels(observer, g, init=swap.params(), dg=dg)
     assert free.a[0] == 0.0 and free.d[0] != 0.0
     kept = fit_channels(observer, g, init=swap.params(), dg=dg, nonzero_a=True)
     assert np.all(kept.a != 0.0)
 
-    result = api.swap(loaded, calib=_dataset(x), to="hard_swish", fold="nodes")
+    result = api.swap(loaded, calib=_dataset(x), to="hard_swish", fold="exact+nodes")
     fitted = result.plan.swaps[0]
     assert fitted.placement == swap.placement and np.all(fitted.a != 0.0) and fitted.d[0] != 0.0
     # a stayed in the consumers: their weights changed, and the only parameter node is d's Add

@@ -92,7 +92,7 @@ def test_report_fields_follow_the_documented_schema(runs):
     # source: swapper/report/build.py module docstring, schema swapper.report/1 (every key present, null when not run)
     p = runs["gated"]["json"]
     assert set(p) == {"schema", "created_utc", "tool", "inputs", "plan", "sites", "calibration", "comparison",
-                      "budget", "verdict", "latency", "size", "int8", "search", "caution"}
+                      "budget", "verdict", "latency", "size", "int8", "search", "options", "caution"}
     assert p["schema"] == "swapper.report/1"
     assert p["search"] is None  # --plan all: no automatic plan
     created = datetime.fromisoformat(p["created_utc"])  # ISO 8601
@@ -116,20 +116,21 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert set(plan) == {"fold", "swaps", "skipped", "target", "opset", "conversion", "remaining", "hints"}
     assert plan["fold"] == "exact" and plan["target"] == "ort-cpu"  # README: exact and ort-cpu by default
     assert plan["opset"] == 17 and plan["conversion"] is None  # demo_models/manifest.json: opset 17
-    # README "What gets swapped": pointwise costly sites by default; relu is cheap, gates need --include-gates
+    # README "What gets swapped": hidden costly sites by default; relu is cheap, gates need --include-gates
     assert [s["site_id"] for s in plan["swaps"]] == ["s1", "s2", "s3"]
     assert sorted(s["site_id"] for s in plan["skipped"]) == ["s4", "s5"]
     # README "Targets": on ort-cpu x·Sigmoid(x) fuses to QuickGelu (1.16 in ort-cpu.json); hard_swish's cheapest
     # form there, HardSigmoid then Mul (1.0 + 1.295), does not pay; relu fuses into the Conv (0)
-    assert {s["source"]: (s["target"], s["form"]) for s in plan["swaps"]} == {"silu": ("relu", "Relu")}
+    assert {s["function"]: (s["surrogate"], s["form"]) for s in plan["swaps"]} == {"silu": ("relu", "Relu")}
 
     original = onnx.load(str(runs["gated"]["original"]))
     node_names = {n.name for n in original.graph.node}
     assert [s["site_id"] for s in p["sites"]] == ["s1", "s2", "s3"]
     for s in p["sites"]:
-        assert set(s) == {"site_id", "source", "target", "form", "placement", "nodes_added", "folded_into",
-                          "mse_start", "mse_fit", "level", "bias_corrected", "refit", "notes"}
-        assert (s["source"], s["target"], s["form"]) == ("silu", "relu", "Relu")
+        assert set(s) == {"site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes",
+                          "folded_into", "mse_start", "mse_fit", "level", "bias_corrected", "refit", "notes"}
+        assert set(s["site_nodes"]) == {"original", "written"}
+        assert (s["function"], s["surrogate"], s["form"]) == ("silu", "relu", "Relu")
         assert set(s["placement"]) == {"a", "b", "c", "d"} and all(isinstance(v, str) for v in s["placement"].values())
         assert isinstance(s["nodes_added"], int) and s["nodes_added"] >= 0
         assert set(s["folded_into"]) <= node_names  # folds go into the original's own nodes
@@ -151,12 +152,18 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert c["n"] == 450 and c["task"] == "classification"  # val.npz: 450 rows with labels
     assert c["has_nonfinite"] is False and c["signature_changed"] is False
     assert p["budget"] == {"max_drop_pp": 1.0, "strict": False, "min_agreement": None}  # README defaults
-    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds"}
+    assert set(p["verdict"]) == {"approved", "reason", "rule", "metric", "outputs", "thresholds", "caution"}
+    assert p["verdict"]["caution"] == p["caution"]
+    # options: the swap's settings as given on the command line, the gate's, the command's own
+    assert set(p["options"]) == {"swap", "gate", "run"}
+    assert p["options"]["swap"]["fold"] == "exact" and p["options"]["swap"]["target"] == "ort-cpu"
+    assert p["options"]["gate"]["max_drop_pp"] == 1.0 and p["options"]["run"]["plan"] == "all"
     assert p["verdict"]["approved"] is True and p["verdict"]["metric"] == "top1"  # labels + class scores
     assert "1.00 pp" in p["verdict"]["rule"]  # README: the rule field states the rule with its numbers
 
     lat = p["latency"]
-    assert set(lat) == {"original", "candidate", "ratio", "batch_size", "threads", "target"}
+    assert set(lat) == {"original", "candidate", "ratio", "clock", "batch_size", "threads", "target"}
+    assert lat["clock"] == "thread CPU time"  # one thread (the default): swapper/api.py _timed
     # the swap's timing on its target (ort-cpu by default; conftest's stand-in clock answers 0.9)
     assert lat["target"]["target"] == "ort-cpu" and lat["target"]["ratio"] == pytest.approx(0.9)
     for m in ("original", "candidate"):
@@ -239,6 +246,16 @@ def test_accuracy_figures_match_an_independent_computation(runs):
     assert c["agreement"] == pytest.approx(np.mean(pred_o == pred_c), abs=1e-12)
     iv = c["interval"]
     assert iv["level"] == 0.95 and iv["lo_pp"] <= c["delta_pp"] <= iv["hi_pp"]
+    # the drop people read: original − candidate, its interval the difference's interval mirrored
+    assert c["drop_pp"] == pytest.approx(100 * (accuracy_score(labels, pred_o) - accuracy_score(labels, pred_c)))
+    assert c["drop_interval_pp"] == pytest.approx([-iv["hi_pp"], -iv["lo_pp"]])
+    # the samples that changed class, recomputed from onnxruntime's outputs (argmax per row)
+    moved = np.flatnonzero(pred_o != pred_c)
+    ch = c["changed"]
+    assert ch["count"] == moved.size and ch["discordant"] == n01 + n10  # McNemar's discordant pairs
+    assert [r["index"] for r in ch["samples"]] == moved[:100].tolist()
+    assert all((r["original"], r["candidate"], r["label"]) == (pred_o[r["index"]], pred_c[r["index"]],
+                                                               labels[r["index"]]) for r in ch["samples"])
     # output errors, definitions from swapper/check/stats.py docstring (max |Δ|, RMSE, cosine, SQNR)
     err = c["output_errors"]["logits"]
     diff = (y_c - y_o).astype(np.float64)
@@ -256,7 +273,7 @@ def test_gate_decision_follows_the_readme_rule(runs):
         c, b = p["comparison"], p["budget"]
         drop = 100 * (c["top1_original"] - c["top1_candidate"])
         # README "The gate": point rule, or with --strict the upper end of the 95% interval for the drop
-        upper = -c["interval"]["lo_pp"] if b["strict"] else drop
+        upper = c["drop_interval_pp"][1] if b["strict"] else drop
         assert p["verdict"]["approved"] is (upper <= b["max_drop_pp"] + 1e-9), which
 
 
@@ -302,13 +319,50 @@ def test_html_shows_verdict_and_caution_and_is_self_contained(runs, which, word)
     assert "@import" not in styles and "url(" not in styles.replace("url(data:", "")
 
 
+@pytest.mark.parametrize("which", ["gated", "rejected", "plain"])
+def test_html_puts_the_caution_directly_under_the_verdict(runs, which):
+    page = runs[which]["html"]
+    banner = page.index("<div class='verdict")
+    after = page[page.index("</div>", banner) + len("</div>"):].lstrip()
+    # the next element after the banner is the caution, before any section heading
+    assert after.startswith("<p class='caution'>"), after[:80]
+    assert after.index(runs[which]["json"]["caution"].split(".")[0]) < after.index("<h2>")
+
+
+@pytest.mark.parametrize("which", ["gated", "rejected"])
+def test_html_says_what_was_judged(runs, which):
+    p, page = runs[which]["json"], runs[which]["html"]
+    judged = page[page.index("<h2>What was judged</h2>"):page.index("<h2>Accuracy")]
+    for key in ("original", "validation"):
+        assert p["inputs"][key]["sha256"] in judged and p["inputs"][key]["path"] in judged
+    if which == "rejected":
+        assert "not written" in judged  # a rejected candidate is not on disk: no hash to show
+    assert ">fold<" in judged and ">max_drop_pp<" in judged  # the settings used
+
+
+def test_html_lists_the_samples_that_changed_class(runs):
+    c, page = runs["gated"]["json"]["comparison"], runs["gated"]["html"]
+    ch = c["changed"]
+    assert ch["count"] > 0  # measured: the calibrated relu swap moves a few of the 450 digits
+    section = page[page.index("<h2>Samples that changed class</h2>"):]
+    assert f"{ch['count']} of {c['n']} validation samples" in section
+    assert f"{c['n10']} now wrong, {c['n01']} now right" in section
+    for r in ch["samples"]:
+        assert f"<td class='n'>{r['index']}</td><td class='n'>{r['label']}</td>" in section
+
+
+def test_html_never_prints_a_negative_zero(runs):
+    for which in ("gated", "rejected"):
+        assert "-0.00" not in runs[which]["html"] and "−0.00" not in runs[which]["html"]
+
+
 def test_html_shows_the_measured_figures(runs):
     p, page = runs["gated"]["json"], runs["gated"]["html"]
     c = p["comparison"]
     assert f"{100 * c['top1_original']:.2f}%" in page and f"{100 * c['top1_candidate']:.2f}%" in page
     for s in p["sites"]:
         assert f">{s['site_id']}<" in page
-        assert f"{s['source']} → {s['target']} ({s['form']})" in page  # the form the plan chose and the graph holds
+        assert f"{s['function']} → {s['surrogate']} ({s['form']})" in page  # the form the plan chose and the graph holds
     assert f"planned for {p['plan']['target']} at opset {p['plan']['opset']}" in page
     # plots are embedded as PNG data URIs when the optional matplotlib is installed (report.py docstring)
     if importlib.util.find_spec("matplotlib") is not None:

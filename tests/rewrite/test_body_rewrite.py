@@ -67,7 +67,7 @@ def with_values(plan, seed=0):
         n = swap.channels
         values = {"a": rng.uniform(0.6, 1.4, n), "b": rng.uniform(0.6, 1.4, n), "c": rng.normal(0, 0.2, n),
                   "d": rng.normal(0, 0.2, n)}
-        swap.set_params(**{p: (np.full(n, NEUTRAL[p]) if swap.placement[p] == "held" else v)
+        swap.set_params(**{p: (np.full(n, NEUTRAL[p]) if swap.placement[p] == "fixed" else v)
                            for p, v in values.items()})
     return plan
 
@@ -79,13 +79,13 @@ def surrogate(swap, x, g):
     return a * g(b * x + c) + d
 
 
-@pytest.mark.parametrize("fold", ["off", "nodes", "exact"])
+@pytest.mark.parametrize("fold", ["off", "exact+nodes", "exact"])
 def test_if_branch_sites_rewritten_equal_the_numpy_surrogate(fold):
     model = if_model()
     sites = find_sites(model)
     assert [(s.function, s.body[0][1]) for s in sites] == [("sigmoid", "else_branch"), ("tanh", "then_branch")]
     plan = with_values(make_plan(model, sites, fold=fold))
-    swaps = {s.source: s for s in plan.swaps}
+    swaps = {s.function: s for s in plan.swaps}
     if fold == "exact":  # b, c into the producing Gemm / Conv, a, d into the reading ones, all inside the branch
         assert all(s.placement == {"a": "consumers", "b": "producer", "c": "producer", "d": "consumers"}
                    for s in plan.swaps)
@@ -148,7 +148,7 @@ def test_loop_body_site_rewritten_equals_the_numpy_loop(fold):
     model = as_loaded(parser.parse_model(LOOP_MODEL))
     sites = find_sites(model)
     (site,) = sites
-    assert (site.function, site.body, site.role) == ("tanh", (("Loop_2", "body"),), "pointwise")
+    assert (site.function, site.body, site.role) == ("tanh", (("Loop_2", "body"),), "hidden")
     plan = with_values(make_plan(model, sites, fold=fold), seed=3)
     (swap,) = plan.swaps
     if fold == "exact":
@@ -190,8 +190,8 @@ def test_a_site_reading_an_outer_value_folds_nothing_into_the_enclosing_graph():
     sites = find_sites(model)
     plan = make_plan(model, sites, fold="exact", site_ids=["s1"])
     (swap,) = plan.swaps
-    assert swap.placement["b"] == swap.placement["c"] == "held"
-    assert "b, c held: 'h' is read from an enclosing graph" in swap.notes
+    assert swap.placement["b"] == swap.placement["c"] == "fixed"
+    assert "b, c fixed: 'h' is read from an enclosing graph" in swap.notes
     out = rewrite(model, sites, plan).model
     x = np.ones((2, 3), np.float32)
     np.testing.assert_allclose(run(out, {"x": x, "c": np.array(False)})[0], x @ np.diag([1, 2, 3]), rtol=1e-6)
@@ -211,7 +211,7 @@ def test_a_main_graph_site_whose_input_a_branch_reads_keeps_that_input():
     sites = find_sites(model)
     plan = with_values(make_plan(model, sites, fold="exact", include_outputs=True))
     (swap,) = plan.swaps
-    assert swap.placement["b"] == "held"
+    assert swap.placement["b"] == "fixed"
     assert any("also feeds nodes outside the site" in n for n in swap.notes)
     out = rewrite(model, sites, plan).model
     x = np.linspace(-1, 1, 6, dtype=np.float32).reshape(2, 3)
@@ -253,7 +253,7 @@ def test_sites_in_an_if_inside_a_loop_are_rewritten_in_place(fold):
     sites = find_sites(model)
     assert [(s.function, len(s.body)) for s in sites] == [("sigmoid", 2), ("tanh", 2)]
     plan = with_values(make_plan(model, sites, fold=fold, site_ids=["s1", "s2"]), seed=5)
-    swaps = {s.source: s for s in plan.swaps}
+    swaps = {s.function: s for s in plan.swaps}
     out = rewrite(model, sites, plan).model
     onnx.checker.check_model(out, full_check=True)
     x = RNG.normal(size=(3, 3)).astype(np.float32)
@@ -277,8 +277,8 @@ def test_a_scan_body_site_calibrated_and_rewritten_equals_the_numpy_surrogate_pe
     assert (site.function, site.role, site.body) == ("silu", "output", (("Scan_0", "body"),))
     # x is the body's formal input (the scan row): nothing to fold b, c into
     (exact,) = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="exact").swaps
-    assert exact.placement["b"] == exact.placement["c"] == "held"
-    plan = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="nodes")
+    assert exact.placement["b"] == exact.placement["c"] == "fixed"
+    plan = make_plan(model, [site], site_ids=["s1"], to="hard_swish", fold="exact+nodes")
     xs = (RNG.normal(size=(24, 5, 4)) * 2).astype(np.float32)
     result = calibrate(model, [site], plan, in_memory({"xs": xs}), batch_size=8)
     (fit,) = result.sites

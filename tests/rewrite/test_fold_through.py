@@ -111,7 +111,7 @@ def _plans(model, sites, fold, rng, a_low=0.5):
         n = swap.channels
         values = {"a": rng.uniform(a_low, 1.5, n), "b": rng.uniform(0.5, 1.5, n),
                   "c": rng.normal(0, 0.3, n), "d": rng.normal(0, 0.3, n)}
-        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "held"})
+        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "fixed"})
         twin.set_params(**swap.params())
     return plan, explicit
 
@@ -139,14 +139,14 @@ def _agree(folded, explicit, feeds):
 # ------------------------------------------------------ folds that are exact
 THROUGH = {
     # name: (builder, expected placement of a and d under "exact")
-    "maxpool": (_maxpool, "consumers+", "consumers"),
-    "maxpool_padded": (lambda: _maxpool(pads=1, kernel=3, stride=1), "consumers+", "consumers"),
+    "maxpool": (_maxpool, "consumers-via-max", "consumers"),
+    "maxpool_padded": (lambda: _maxpool(pads=1, kernel=3, stride=1), "consumers-via-max", "consumers"),
     "avgpool": (_avgpool, "consumers", "consumers"),
     "avgpool_pads_excluded": (lambda: _avgpool(pads=1, include=0), "consumers", "consumers"),
-    "avgpool_pads_counted": (lambda: _avgpool(pads=1, include=1), "consumers", "held"),
+    "avgpool_pads_counted": (lambda: _avgpool(pads=1, include=1), "consumers", "fixed"),
     "gap_flatten_gemm": (_gap_flatten_gemm, "consumers", "consumers"),
-    "gmp_reshape_matmul": (_gap_reshape_matmul, "consumers+", "consumers"),
-    "gate": (_gate, "consumers", "held"),
+    "gmp_reshape_matmul": (_gap_reshape_matmul, "consumers-via-max", "consumers"),
+    "gate": (_gate, "consumers", "fixed"),
 }
 
 
@@ -165,8 +165,8 @@ def test_fold_through_equals_explicit_nodes(case, through_loader):
     # exact folding adds only the surrogate itself: no Mul/Add for a or d
     assert folded.records[0].nodes_added == _surrogate_nodes("hard_tanh")
     assert folded.nodes_after == folded.nodes_before - 1 + _surrogate_nodes("hard_tanh")
-    if d_where == "held":  # the note names what stopped d
-        assert any(n.startswith("d held") and ("gate" in n or "padding" in n) for n in swap.notes)
+    if d_where == "fixed":  # the note names what stopped d
+        assert any(n.startswith("d fixed") and ("gate" in n or "padding" in n) for n in swap.notes)
 
 
 @pytest.mark.parametrize("case", ["avgpool_pads_counted", "gate"])
@@ -174,7 +174,7 @@ def test_d_blocked_goes_to_a_node_under_nodes_policy(case, through_loader):
     nodes, inits, outs, extra = THROUGH[case][0]()
     model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
-    plan, explicit = _plans(model, sites, "nodes", np.random.default_rng(10))
+    plan, explicit = _plans(model, sites, "exact+nodes", np.random.default_rng(10))
     assert plan.swaps[0].placement["a"] == "consumers" and plan.swaps[0].placement["d"] == "nodes"
     folded = rewrite(model, sites, plan)
     _agree(folded.model, rewrite(model, sites, explicit).model, _feeds(model))
@@ -189,7 +189,7 @@ def test_negative_a_through_max_pool_is_refused(through_loader):
     sites = find_sites(model)
     plan, _ = _plans(model, sites, "exact", np.random.default_rng(11), a_low=-1.0)
     plan.swaps[0].a[0] = -0.7  # max(-x) = -min(x): the pool does not commute with this channel
-    assert plan.swaps[0].placement["a"] == "consumers+"
+    assert plan.swaps[0].placement["a"] == "consumers-via-max"
     with pytest.raises(UsageError, match="max pool needs a > 0; channel 0"):  # not re-placed as a node
         rewrite(model, sites, plan)
 
@@ -205,7 +205,7 @@ def test_declined_paths_keep_a_and_d_held(build, why, through_loader):
     sites = find_sites(model)
     plan, explicit = _plans(model, sites, "exact", np.random.default_rng(12))
     swap = plan.swaps[0]
-    assert swap.placement["a"] == swap.placement["d"] == "held"
+    assert swap.placement["a"] == swap.placement["d"] == "fixed"
     assert any(why in n for n in swap.notes), swap.notes
     _agree(rewrite(model, sites, plan).model, rewrite(model, sites, explicit).model, _feeds(model))
 
@@ -223,17 +223,17 @@ def test_one_scalar_parameter_set_passes_a_channel_mixing_flatten(through_loader
     _agree(folded.model, rewrite(model, sites, explicit).model, _feeds(model))
 
 
-def test_plan_must_say_consumers_plus_behind_a_max_pool(through_loader):
+def test_plan_must_say_consumers_via_max_behind_a_max_pool(through_loader):
     nodes, inits, outs, extra = _maxpool()
     model = through_loader(conv_tanh(nodes, inits, outs, extra_inputs=extra))
     sites = find_sites(model)
     plan, _ = _plans(model, sites, "exact", np.random.default_rng(13))
     wrong = copy.deepcopy(plan)
     wrong.swaps[0].placement["a"] = "consumers"
-    with pytest.raises(UsageError, match="consumers\\+"):
+    with pytest.raises(UsageError, match="consumers-via-max"):
         rewrite(model, sites, wrong)
     bad = copy.deepcopy(plan)
-    bad.swaps[0].placement["d"] = "consumers+"  # only a can carry the sign condition
+    bad.swaps[0].placement["d"] = "consumers-via-max"  # only a can carry the sign condition
     with pytest.raises(UsageError, match="invalid placement"):
         rewrite(model, sites, bad)
 
@@ -245,14 +245,14 @@ def test_demo_cnn_hard_swish_folds_a_through_pools_and_gate_without_nodes():
     plan = make_plan(loaded.model, sites, to="hard_swish")
     place = {s.site_id: s.placement for s in plan.swaps}
     # s2: SiLU -> MaxPool -> Conv; s3: SiLU -> GlobalAveragePool -> Conv and -> gate Mul -> GAP -> Flatten -> Gemm
-    assert place["s2"]["a"] == "consumers+" and place["s3"]["a"] == "consumers"
-    assert place["s2"]["d"] == "held" and place["s3"]["d"] == "held"  # padded Conv / gate: d stays exact
+    assert place["s2"]["a"] == "consumers-via-max" and place["s3"]["a"] == "consumers"
+    assert place["s2"]["d"] == "fixed" and place["s3"]["d"] == "fixed"  # padded Conv / gate: d stays exact
     rng = np.random.default_rng(0)
     explicit = copy.deepcopy(plan)
     for swap, twin in zip(plan.swaps, explicit.swaps):
         swap.set_params(a=rng.uniform(0.5, 1.5, swap.channels), b=rng.uniform(0.5, 1.5, swap.channels))
         twin.set_params(**swap.params())
-        twin.placement = {p: ("held" if v == "held" else "nodes") for p, v in twin.placement.items()}
+        twin.placement = {p: ("fixed" if v == "fixed" else "nodes") for p, v in twin.placement.items()}
     folded = rewrite(loaded.model, sites, plan)
     removed = sum(len(s.nodes) for s in sites if s.id in place)
     assert folded.nodes_after == folded.nodes_before - removed + len(place) * _surrogate_nodes("hard_swish")

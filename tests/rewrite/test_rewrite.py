@@ -53,7 +53,7 @@ def _site(model, kind, names, x, y, axis, channels, sid="s1"):
     return Site(id=sid, function=kind, params={}, input=x, output=y, nodes=names, form="op",
                 shape=index.shape(x), channel_axis=axis, channels=channels,
                 producer=prod.op_type if prod is not None else None,
-                consumers=tuple(n.op_type for n in index.users(y)), role="pointwise",
+                consumers=tuple(n.op_type for n in index.users(y)), role="hidden",
                 elements=None, cost=0.0, cost_share=0.0)
 
 
@@ -126,7 +126,7 @@ def _formula(site, swap, x):
     shape[axis] = -1
     p = {q: np.asarray(getattr(swap, q), dtype=np.float64).reshape(shape if getattr(swap, q).size > 1 else ())
          for q in PARAMS}
-    return p["a"] * FORMULAS[swap.target](p["b"] * x + p["c"], **swap.target_params) + p["d"]
+    return p["a"] * FORMULAS[swap.surrogate](p["b"] * x + p["c"], **swap.surrogate_params) + p["d"]
 
 
 def _expected(model, site, swap, feeds, out="Y"):
@@ -140,7 +140,7 @@ def _swap(site, target, placement, rng, positive_a=False):
     n = site.channels
 
     def draw(p):
-        if placement[p] == "held":
+        if placement[p] == "fixed":
             return np.full(n, NEUTRAL[p])
         if p in ("a", "b"):
             mag = rng.uniform(0.5, 1.5, n)
@@ -148,8 +148,8 @@ def _swap(site, target, placement, rng, positive_a=False):
         return rng.uniform(-0.5, 0.5, n)
 
     vals = {p: draw(p) for p in PARAMS}
-    return SiteSwap(site_id=site.id, source=site.function, source_params={}, target=target,
-                    target_params=dict(TPARAMS.get(target, {})), channel_axis=site.channel_axis,
+    return SiteSwap(site_id=site.id, function=site.function, function_params={}, surrogate=target,
+                    surrogate_params=dict(TPARAMS.get(target, {})), channel_axis=site.channel_axis,
                     channels=n, placement=dict(placement), **vals)
 
 
@@ -176,7 +176,7 @@ FOLDED = {
     "conv_pad0_group": (lambda: conv_chain("silu", pads2=0, group2=2), "hard_swish",
                         {"a": "consumers", "b": "producer", "c": "producer", "d": "consumers"}),
     "conv_relu": (lambda: conv_chain("silu", pads2=0), "relu",
-                  {"a": "inner", "b": "producer", "c": "producer", "d": "consumers"}),
+                  {"a": "in-surrogate", "b": "producer", "c": "producer", "d": "consumers"}),
     "bn": (lambda: conv_chain("silu", bn=True, pads2=1), "hard_swish",
            {"a": "consumers", "b": "producer", "c": "producer", "d": "nodes"}),
     "gemm": (lambda: gemm_chain("tanh", trans=(0, 1)), "hard_tanh",
@@ -196,7 +196,7 @@ def test_folded_equals_explicit_nodes_and_formula(case):
     model, site = build()
     original = model.SerializeToString()
     rng = np.random.default_rng(7)
-    swap = _swap(site, target, placement, rng, positive_a=placement["a"] == "inner")
+    swap = _swap(site, target, placement, rng, positive_a=placement["a"] == "in-surrogate")
     folded = _checked(model, [site], Plan("exact", [swap]))
     explicit = _checked(model, [site], Plan("off", [_with_placement(swap, {p: "nodes" for p in PARAMS})]))
     feeds = _feeds(model)
@@ -221,7 +221,7 @@ def test_approximate_d_differs_only_at_borders():
     swap = _swap(site, "hard_swish", exact_place, rng)
     swap.d = np.full(site.channels, 0.4)  # a clearly non-zero offset, so the border error is visible
     approx = _checked(model, [site], Plan("approximate", [_with_placement(swap, {**exact_place, "d": "approx"})]))
-    exact = _checked(model, [site], Plan("nodes", [swap]))
+    exact = _checked(model, [site], Plan("exact+nodes", [swap]))
     feeds = _feeds(model)
     ya, ye = run(approx.model, feeds)[0], run(exact.model, feeds)[0]
     # source: ONNX operator spec, Conv: zero padding means a constant input offset d reaches
@@ -244,7 +244,7 @@ def test_zero_a_with_d_as_node_is_refused(scalar_d):
     if scalar_d:
         swap.d = np.array([0.3])
     with pytest.raises(UsageError, match="a != 0; channel 1 "):
-        rewrite(model, [site], Plan("nodes", [swap]))
+        rewrite(model, [site], Plan("exact+nodes", [swap]))
 
 
 def test_folded_relu_adds_no_nodes_and_keeps_model():
@@ -306,7 +306,7 @@ def test_identity_floor_and_two_sites_fold_into_one_layer():
     swaps = []
     for site, target in ((s1, "hard_swish"), (s2, "hard_tanh")):
         placement, _ = decide_placement(index, site, functions.get(target), "exact")
-        assert "held" not in placement.values()
+        assert "fixed" not in placement.values()
         swaps.append(_swap(site, target, placement, rng))
     result = _checked(model, [s1, s2], Plan("exact", swaps))
     assert "mid" in result.records[0].folded_into and "mid" in result.records[1].folded_into
@@ -334,8 +334,8 @@ def test_plan_errors_are_usage_errors():
     swap = _swap(site, "hard_swish", place, np.random.default_rng(0))
     with pytest.raises(UsageError, match="s1"):
         rewrite(model, [site], Plan("exact", [swap]))
-    held = _with_placement(swap, {**place, "d": "held"})
-    with pytest.raises(UsageError, match="held"):
+    held = _with_placement(swap, {**place, "d": "fixed"})
+    with pytest.raises(UsageError, match="fixed"):
         rewrite(model, [site], Plan("exact", [held]))
     swap.site_id = "s9"
     with pytest.raises(UsageError, match="s9"):
@@ -347,7 +347,7 @@ def test_plan_errors_are_usage_errors():
 @given(layer=st.sampled_from(["conv", "conv_bn", "conv_group", "gemm", "matmul", "matmul_nobias"]),
        kind=st.sampled_from(["silu", "tanh", "sigmoid"]),
        target=st.sampled_from(["relu", "hard_swish", "hard_sigmoid", "hard_tanh"]),
-       policy=st.sampled_from(["exact", "nodes", "off"]),
+       policy=st.sampled_from(["exact", "exact+nodes", "off"]),
        pads=st.sampled_from([0, 1]), seed=st.integers(0, 2**16))
 def test_random_chains_match_formula(layer, kind, target, policy, pads, seed):
     if layer.startswith("conv"):
@@ -358,7 +358,7 @@ def test_random_chains_match_formula(layer, kind, target, policy, pads, seed):
     else:
         model, site = matmul_chain(kind, seed=seed, bias1=layer == "matmul")
     placement, notes = decide_placement(GraphIndex.of(model), site, functions.get(target), policy)
-    swap = _swap(site, target, placement, np.random.default_rng(seed), positive_a=placement["a"] == "inner")
+    swap = _swap(site, target, placement, np.random.default_rng(seed), positive_a=placement["a"] == "in-surrogate")
     result = _checked(model, [site], Plan(policy, [swap]))
     feeds = _feeds(model, seed)
     # source: surrogate formula in numpy through the original tail, executed by onnxruntime

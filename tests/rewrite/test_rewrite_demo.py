@@ -33,16 +33,16 @@ def _randomise(plan, seed: int) -> None:
         n = swap.channels
         values = {"a": rng.uniform(0.5, 1.5, n), "b": rng.uniform(0.5, 1.5, n),
                   "c": rng.normal(0, 0.2, n), "d": rng.normal(0, 0.2, n)}
-        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "held"})
+        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "fixed"})
 
 
 def _as_nodes(plan):
     explicit = copy.deepcopy(plan)
     for swap in explicit.swaps:
-        if swap.placement["a"] == "inner":  # a·g(z) = g(a·z) for homogeneous g, a > 0 (the reason it may move inside)
+        if swap.placement["a"] == "in-surrogate":  # a·g(z) = g(a·z) for homogeneous g, a > 0 (the reason it may move inside)
             swap.set_params(b=swap.a * swap.b, c=swap.a * swap.c, a=np.ones(swap.channels))
-        swap.placement = {p: ("held" if v == "held" else "nodes") for p, v in swap.placement.items()}
-        if swap.placement["a"] == "held" and not np.all(swap.a == 1.0):
+        swap.placement = {p: ("fixed" if v == "fixed" else "nodes") for p, v in swap.placement.items()}
+        if swap.placement["a"] == "fixed" and not np.all(swap.a == 1.0):
             swap.placement["a"] = "nodes"
     return explicit
 

@@ -42,10 +42,10 @@ def _randomise(plan, seed: int) -> None:
         n = swap.channels
         values = {"a": rng.uniform(0.5, 1.5, n), "b": rng.uniform(0.5, 1.5, n),
                   "c": rng.normal(0, 0.3, n), "d": rng.normal(0, 0.3, n)}
-        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "held"})
+        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "fixed"})
 
 
-@pytest.mark.parametrize("fold", ["exact", "nodes"])
+@pytest.mark.parametrize("fold", ["exact", "exact+nodes"])
 @pytest.mark.parametrize("surrogate", SURROGATES)
 @pytest.mark.parametrize("name", MODELS)
 def test_each_form_agrees_with_the_default_form(name, surrogate, fold):
@@ -62,7 +62,7 @@ def test_each_form_agrees_with_the_default_form(name, surrogate, fold):
             continue
         other = copy.deepcopy(plan)
         for swap in other.swaps:
-            if all(swap.placement[p] != "held" for p in form.moves):
+            if all(swap.placement[p] != "fixed" for p in form.moves):
                 swap.form = form.name
         if all(s.form == default.name for s in other.swaps):
             continue  # every site holds a parameter this form would move
@@ -74,7 +74,7 @@ def test_each_form_agrees_with_the_default_form(name, surrogate, fold):
         assert set(form.op_types()) <= ops, (form.key, ops)
         np.testing.assert_allclose(_run(result.model, name), reference, rtol=1e-5, atol=2e-5, err_msg=form.key)
         tried += 1
-    # every surrogate here has a second form usable at opset 13+ under --fold nodes
+    # every surrogate here has a second form usable at opset 13+ under --fold exact+nodes
     assert tried or fold == "exact"
 
 
@@ -83,7 +83,7 @@ def test_a_form_that_would_move_a_held_parameter_is_refused():
     loaded = load_model(DEMO / "meter_resnet_silu.onnx")
     sites = find_sites(loaded.model)
     plan = make_plan(loaded.model, sites, to="hard_swish")
-    held = [s for s in plan.swaps if s.placement["a"] == "held"]
+    held = [s for s in plan.swaps if s.placement["a"] == "fixed"]
     assert held
     held[0].form = "Mul-Clip"  # z·Clip(z + 3, 0, 6) needs a/6: a hand edit the placement does not allow
     with pytest.raises(UsageError, match=f"site {held[0].site_id}: form Mul-Clip of hard_swish moves a"):

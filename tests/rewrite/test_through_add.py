@@ -97,7 +97,7 @@ def _plans(model, to: str, fold: str, seed: int = 1, only: str | None = None) ->
         n = swap.channels
         values = {"a": rng.uniform(0.5, 1.5, n), "b": rng.uniform(0.5, 1.5, n),
                   "c": rng.normal(0, 0.3, n), "d": rng.normal(0, 0.3, n)}
-        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "held"})
+        swap.set_params(**{p: values[p] for p in PARAMS if swap.placement[p] != "fixed"})
         twin.set_params(**swap.params())
     return plan, explicit, sites
 
@@ -132,10 +132,10 @@ def test_chain_without_padding_moves_every_parameter_exactly_and_adds_no_node():
     place = {s.site_id: s.placement for s in plan.swaps}
     # s3 and s5 read residual Adds: b, c pass through them; s1 and s3 feed Adds: d passes through them
     for sid in ("s3", "s5"):
-        assert place[sid]["b"] == place[sid]["c"] == "through add" and place[sid]["a"] == "inner"
+        assert place[sid]["b"] == place[sid]["c"] == "through-add" and place[sid]["a"] == "in-surrogate"
     for sid in ("s1", "s3"):
-        assert place[sid]["d"] == "through add"
-    assert all(p != "held" for s in plan.swaps for p in s.placement.values())
+        assert place[sid]["d"] == "through-add"
+    assert all(p != "fixed" for s in plan.swaps for p in s.placement.values())
     result = _assert_exact_and_no_nodes(model, plan, explicit, sites)
     folded = {r.site_id: set(r.folded_into) for r in result.records}
     u2 = next(n.name for n in model.graph.node if n.output[0] == "u2")
@@ -150,9 +150,9 @@ def test_chain_with_zero_padding_holds_d_and_stays_exact():
     model = _model(CHAIN, k=3, pads=1)
     plan, explicit, sites = _plans(model, "relu", "exact")
     place = {s.site_id: s.placement for s in plan.swaps}
-    assert place["s3"]["b"] == place["s3"]["c"] == "through add"
+    assert place["s3"]["b"] == place["s3"]["c"] == "through-add"
     # y1 feeds a zero-padded Conv besides the Add: d would be wrong at the borders, so it is held
-    assert place["s1"]["d"] == "held"
+    assert place["s1"]["d"] == "fixed"
     assert any("no exact bias fold" in n for n in plan.by_site()["s1"].notes)
     _assert_exact_and_no_nodes(model, plan, explicit, sites)
 
@@ -175,7 +175,7 @@ def test_approximate_folds_d_through_the_add_and_reports_the_border_error():
 def test_offset_goes_onward_when_no_operand_has_a_producer(pads):
     model = _model(SUM, k=1 + 2 * pads, pads=pads)
     plan, explicit, sites = _plans(model, "relu", "exact")
-    want = "held" if pads else "through add"  # onward into the Conv reading the sum: exact without padding only
+    want = "fixed" if pads else "through-add"  # onward into the Conv reading the sum: exact without padding only
     assert [s.placement["d"] for s in plan.swaps] == [want, want]
     _assert_exact_and_no_nodes(model, plan, explicit, sites)
 
@@ -185,7 +185,7 @@ def test_non_homogeneous_surrogate_stops_the_scale_not_the_shift():
     plan, explicit, sites = _plans(model, "hard_swish", "exact")
     s3 = plan.by_site()["s3"]
     # hard_swish(s·z) != s·hard_swish(z): the scale cannot pass through s1's output, the shift needs no such thing
-    assert s3.placement["b"] == "held" and s3.placement["c"] == "through add"
+    assert s3.placement["b"] == "fixed" and s3.placement["c"] == "through-add"
     assert any("not positively homogeneous" in n for n in s3.notes)
     result = rewrite(model, sites, plan)
     want = run(rewrite(model, sites, explicit).model, _feeds())[0]
@@ -199,7 +199,7 @@ def test_graph_output_on_the_way_stops_the_add_route():
     model = _model(text, k=1, pads=0)
     plan, explicit, sites = _plans(model, "relu", "exact")
     s3 = plan.by_site()["s3"]
-    assert s3.placement["b"] == s3.placement["c"] == "held"
+    assert s3.placement["b"] == s3.placement["c"] == "fixed"
     assert any("graph output" in n for n in s3.notes)
     result = _assert_exact_and_no_nodes(model, plan, explicit, sites)
     # the Add's value, a graph output, is what the explicit form computes
@@ -214,8 +214,8 @@ def test_non_linear_reader_of_the_upstream_output_stops_the_scale():
     plan, explicit, sites = _plans(model, "relu", "exact", only="silu")
     output = {s.id: s.output for s in sites}
     place = {output[s.site_id]: s.placement for s in plan.swaps}
-    assert place["y3"]["b"] == "held" and place["y3"]["c"] == "through add"  # y1 also feeds a Tanh
-    assert place["y1"]["d"] == "held"
+    assert place["y3"]["b"] == "fixed" and place["y3"]["c"] == "through-add"  # y1 also feeds a Tanh
+    assert place["y1"]["d"] == "fixed"
     result = rewrite(model, sites, plan)
     ours = run(result.model, _feeds(), ["Y", "T"])
     want = run(rewrite(model, sites, explicit).model, _feeds(), ["Y", "T"])
@@ -261,10 +261,10 @@ def test_calibrated_plan_is_what_the_graph_holds(pads, tmp_path):
     data = in_memory({"X": np.random.default_rng(11).normal(size=(96, 3, 5, 5)).astype(np.float32)})
     result = api.swap(tmp_path / "chain.onnx", calib=data, to="relu")
     for swap in result.plan.swaps:
-        if swap.placement["b"] == "through add":
+        if swap.placement["b"] == "through-add":
             assert np.all(swap.b > 0)
     explicit = Plan("off", [
-        type(s)(**{**s.__dict__, "placement": {p: "held" if w == "held" else "nodes" for p, w in s.placement.items()}})
+        type(s)(**{**s.__dict__, "placement": {p: "fixed" if w == "fixed" else "nodes" for p, w in s.placement.items()}})
         for s in result.plan.swaps])
     sites = result.sites
     _assert_exact_and_no_nodes(result.calibration.model, result.plan, explicit, sites)

@@ -37,7 +37,7 @@ def binop(op, a, b, out, swap):
 
 
 def make(nodes, consts=None, const_mode="init", opset=17, elem=TensorProto.FLOAT, outputs=()):
-    """Input X -> nodes -> Y; Z = Y + 1 is the graph output (so a site ending at Y is "pointwise").
+    """Input X -> nodes -> Y; Z = Y + 1 is the graph output (so a site ending at Y is "hidden").
 
     Constants become initializers or Constant nodes (``const_mode``); ``outputs``
     names extra graph outputs (to make an intermediate readable from outside).
@@ -80,7 +80,7 @@ def site_model(model: onnx.ModelProto, site) -> onnx.ModelProto:
     return sub
 
 
-def one_site(model, function, form, params=None, role="pointwise"):
+def one_site(model, function, form, params=None, role="hidden"):
     sites = find_sites(model)
     assert [(s.function, s.form, s.role) for s in sites] == [(function, form, role)], sites
     site = sites[0]

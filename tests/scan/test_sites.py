@@ -51,8 +51,8 @@ def test_squeeze_excite_roles_axes_and_ids():
     assert (silu.channel_axis, silu.channels, silu.shape) == (1, 8, ("N", 8, 5, 5))
     assert (silu.producer, silu.consumers) == ("Conv", ("GlobalAveragePool", "Mul"))
     # the SiLU output is the feature map the SE gate multiplies: gated, not a gate (gate [N,8,1,1] broadcasts)
-    assert silu.role == "pointwise"
-    assert relu.role == "pointwise" and relu.channels == 2
+    assert silu.role == "hidden"
+    assert relu.role == "hidden" and relu.channels == 2
     assert (gate.role, gate.consumers, gate.channels) == ("gate", ("Mul",), 8)
     assert silu.elements == 8 * 5 * 5 and gate.elements == 8  # per sample: dims after the batch
 
@@ -64,7 +64,7 @@ def test_glu_style_gate_and_constant_multiplier():
              nd("Tanh", ["A"], ["T"]), nd("Mul", ["T", "k"], ["Y0"]), nd("Add", ["G", "Y0"], ["Y"])]
     m = build(nodes, [("A", [2, 6]), ("B", [2, 6])], [("Y", [2, 6])], [("k", np.array(3.0, np.float32))])
     roles = {s.function: s.role for s in find_sites(m)}
-    assert roles == {"sigmoid": "gate", "tanh": "pointwise"}  # Mul by a constant is not a gate
+    assert roles == {"sigmoid": "gate", "tanh": "hidden"}  # Mul by a constant is not a gate
 
 
 def test_output_role_and_consumers_marker():
@@ -192,13 +192,13 @@ def demo(name, expected):
 
 
 @pytest.mark.parametrize("name,expected", [
-    demo("meter_cnn_silu.onnx", [("silu", "pointwise"), ("silu", "pointwise"), ("silu", "pointwise"),
-                                 ("relu", "pointwise"), ("sigmoid", "gate")]),
-    demo("meter_gelu_mlp.onnx", [("gelu", "pointwise")] * 2),
-    demo("meter_mlp_tanh_sigmoid.onnx", [("tanh", "pointwise"), ("sigmoid", "pointwise")]),
-    demo("meter_mlp_mish_gelutanh.onnx", [("mish", "pointwise"), ("gelu_tanh", "pointwise")]),
-    demo("meter_resnet_silu.onnx", [("silu", "pointwise")] * 13),
-    demo("status_encoder_gelu.onnx", [("gelu", "pointwise")] * 2),
+    demo("meter_cnn_silu.onnx", [("silu", "hidden"), ("silu", "hidden"), ("silu", "hidden"),
+                                 ("relu", "hidden"), ("sigmoid", "gate")]),
+    demo("meter_gelu_mlp.onnx", [("gelu", "hidden")] * 2),
+    demo("meter_mlp_tanh_sigmoid.onnx", [("tanh", "hidden"), ("sigmoid", "hidden")]),
+    demo("meter_mlp_mish_gelutanh.onnx", [("mish", "hidden"), ("gelu_tanh", "hidden")]),
+    demo("meter_resnet_silu.onnx", [("silu", "hidden")] * 13),
+    demo("status_encoder_gelu.onnx", [("gelu", "hidden")] * 2),
 ])
 def test_demo_models(name, expected):
     # expected sites: demo_models/README.md ("activations as they appear in the graph")

@@ -74,7 +74,7 @@ def test_main_graph_ids_do_not_depend_on_what_bodies_hold():
     assert [(s.id, s.function) for s in busy if not s.body] == main
     inside = [(s.id, s.function, s.role, s.supported) for s in busy if s.body]
     # the branch sites feed the If's output, which a MatMul reads: hidden, not outputs
-    assert inside == [("s3", "softplus", "pointwise", True), ("s4", "tanh", "pointwise", True)]
+    assert inside == [("s3", "softplus", "hidden", True), ("s4", "tanh", "hidden", True)]
 
 
 def test_body_site_reading_an_outer_tensor_takes_its_shape_from_the_enclosing_graph():
@@ -82,7 +82,7 @@ def test_body_site_reading_an_outer_tensor_takes_its_shape_from_the_enclosing_gr
     assert body_site.input == "T" and body_site.shape == (2, 4) and body_site.producer == "Tanh"
 
 
-def test_default_swap_plans_pointwise_body_sites_like_main_graph_ones(tmp_path):
+def test_default_swap_plans_hidden_body_sites_like_main_graph_ones(tmp_path):
     path = tmp_path / "m.onnx"
     onnx.save(if_between(True), path)
     result = api.swap(path)

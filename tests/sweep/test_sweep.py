@@ -62,7 +62,7 @@ def test_the_json_follows_the_documented_schema(payload, tmp_path):
     assert again["schema"] == "swapper.sweep/1" and again == json.loads(json.dumps(payload))
     for s in again["sites"]:  # module docstring: 2 placements x refit off/on per surrogate
         assert {(c["fold"], c["refit"]) for c in s["candidates"]} == {("exact", False), ("exact", True),
-                                                                     ("nodes", False), ("nodes", True)}
+                                                                     ("exact+nodes", False), ("exact+nodes", True)}
     for breaking in (lambda p: p.pop("pareto"), lambda p: p["sites"][0]["candidates"][0].update(status="fine"),
                      lambda p: p["sites"][0]["candidates"][0].update(status="failed", reason=None),
                      lambda p: p["sites"][0]["candidates"][0]["saving"].pop("value"),
@@ -71,6 +71,15 @@ def test_the_json_follows_the_documented_schema(payload, tmp_path):
         breaking(broken)
         with pytest.raises(ValueError):
             schema.validate_sweep(broken)
+
+
+def test_a_sweep_file_with_the_older_words_reads_with_todays(payload, tmp_path):
+    # swapper/sweep/schema.py docstring: files written before the rename say fold "nodes" and "held" placements
+    text = json.dumps(payload).replace('"exact+nodes"', '"nodes"').replace('"fixed"', '"held"')
+    assert '"nodes"' in text
+    (tmp_path / "old.json").write_text(text)
+    again = schema.read_sweep(tmp_path / "old.json")
+    assert again["sites"] == json.loads(json.dumps(payload))["sites"]
 
 
 def test_a_failing_candidate_is_recorded_and_the_sweep_goes_on(graph, monkeypatch):
