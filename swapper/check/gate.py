@@ -33,8 +33,10 @@ with the same 10% relative error: with an error orthogonal to the output,
 Which outputs are judged: ``top1``/``agreement`` the first class-score output
 (with ``--metric`` an embedding may stand in); ``rmse`` the output matching
 ``expected``; ``cosine`` every float output with at least two values per sample;
-``sqnr`` every float output. Every judged output must pass; all outputs are
-reported.
+``sqnr`` every float output. With ``top1``/``agreement``/``rmse`` every other float
+output must also keep its values (the cosine floors, or the SQNR floor for one value
+per sample): a swap may not move an output the deciding metric does not read.
+Every judged output must pass; all outputs are reported.
 """
 from __future__ import annotations
 
@@ -380,6 +382,24 @@ def decide(comparison: Comparison, rule: GateRule | Budget | None = None) -> Ver
             c.notes.append(note)
     judge = {"top1": _top1, "agreement": _agreement, "rmse": _rmse}.get(choice.metric)
     if judge is not None:
-        return judge(c, r.budget, choice.outputs)
+        return _others_hold(c, r, judge(c, r.budget, choice.outputs))
     return (_cosine if choice.metric == "cosine" else _sqnr)(c, r, choice.outputs)
+
+
+def _others_hold(c: Comparison, r: GateRule, verdict: Verdict) -> Verdict:
+    """A class or regression verdict reads one output; every other float output must keep its values too
+    (cosine floors where a sample has several values, the SQNR floor where it has one), or a swap that
+    moves, say, a detector's boxes would pass on its class scores alone."""
+    others = [k for k in c.output_kinds if k.is_float and k.name not in verdict.outputs]
+    if not verdict.approved or not others:
+        return verdict
+    vectors = [k.name for k in others if k.values_per_sample > 1]
+    scalars = [k.name for k in others if k.values_per_sample <= 1]
+    checks = ([_cosine(c, r, vectors)] if vectors else []) + ([_sqnr(c, r, scalars)] if scalars else [])
+    failed = [v.reason for v in checks if not v.approved]
+    rule = verdict.rule + "; and every other float output keeps its values: " + "; ".join(
+        v.rule.removeprefix("approve when each judged output ") for v in checks)
+    thresholds = {**verdict.thresholds, **{k: v for ch in checks for k, v in ch.thresholds.items()}}
+    reason = verdict.reason if not failed else f"{verdict.reason}, but another output moved: {'; '.join(failed)}"
+    return Verdict(not failed, reason, rule, verdict.metric, verdict.outputs + [k.name for k in others], thresholds)
 

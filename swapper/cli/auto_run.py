@@ -45,9 +45,14 @@ def run_sweep(model: Path, *, calib, val, rule: GateRule, options: SwapOptions, 
               console=None, output: Path | None = None, as_json: bool = False, strict_data: bool = False) -> int:
     """`swapper sweep`: the sweep's table (or its JSON on stdout), the JSON file and the Pareto plot."""
     loaded = load_model(model)
-    out = Path(output) if output is not None else default_report_dir(Path(model)) / "sweep.json"
-    check_output_path(out, inputs=[("the input model", Path(model)), ("the calibration set", _path_of(calib)),
-                                   ("the validation set", _path_of(val))])
+    inputs = [("the input model", Path(model)), ("the calibration set", _path_of(calib)),
+              ("the validation set", _path_of(val))]
+    if output is None:  # a new report folder, created when the sweep is written
+        folder = default_report_dir(Path(model))
+        check_report_dir(folder, inputs=inputs)
+        out = folder / "sweep.json"
+    else:
+        out = check_output_path(Path(output), inputs=inputs)
     val_ds = api.load_data(val, loaded, strict=strict_data)
     preflight(loaded.model, val_ds, rule, batch_size=options.batch_size, threads=options.threads)
     payload = api.sweep(loaded, calib=calib, val=val, rule=rule, options=options, settings=settings,

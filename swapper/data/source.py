@@ -42,6 +42,7 @@ from swapper.errors import BadDataError, UsageError
 logger = logging.getLogger(__name__)
 
 TOP_KEYS = ("batch_axis", "constant", "images")
+MAX_IMAGE_SIDE = 8192  # network inputs are far smaller; larger is a typo (common practice, no source)
 MAX_DESCRIPTION_BYTES = 1 << 20  # a description is a few lines; anything longer is not one
 
 
@@ -95,6 +96,8 @@ def _size(value, where: str) -> tuple[int, int]:
         _fail(where, f"size: {value!r} is not height x width (e.g. 48x192 or [48, 192])")
     if h < 1 or w < 1:
         _fail(where, f"size: {value!r} must be positive")
+    if max(h, w) > MAX_IMAGE_SIDE:  # a typo (48x100000) would decode every image to gigabytes of floats
+        _fail(where, f"size: {value!r} has a side above {MAX_IMAGE_SIDE} pixels")
     return h, w
 
 

@@ -9,8 +9,10 @@ Squeeze, Unsqueeze, Flatten, Transpose, DepthToSpace, SpaceToDepth),
 Identity/Dropout, Cast/CastLike, whole-value copies and selections (Concat,
 Split, Slice, Gather*, Expand, Tile, Pad, Where's value inputs) and the
 reductions that summarise values into one of them or their mean (ReduceMax,
-ReduceMin, ReduceMean: a detector reporting the mean of its per-frame
-probabilities still reports the site's values). Pooling layers (MaxPool,
+ReduceMin, ReduceMean, ReduceSum: a detector reporting the mean of its per-frame
+probabilities still reports the site's values), Abs/Neg, Softmax/LogSoftmax,
+Sum/Max/Min/Mean of several tensors, and an affine step by a constant (Add, Sub,
+Mul or Div with an initializer or Constant: a box decoder's y·2 − 0.5). Pooling layers (MaxPool,
 AveragePool, their Global forms) are not followed: in the networks we see they
 start the next stage rather than hand a result out (a judgement call, no
 source). It also
@@ -47,10 +49,14 @@ logger = logging.getLogger(__name__)
 CARRIERS: dict[str, tuple[int, ...] | None] = {
     **dict.fromkeys(("Identity", "Cast", "CastLike", "Reshape", "Squeeze", "Unsqueeze", "Flatten", "Transpose",
                      "DepthToSpace", "SpaceToDepth", "Split", "Slice", "Gather", "GatherElements", "GatherND",
-                     "Expand", "Tile", "Pad", "Dropout", "ReduceMax", "ReduceMin", "ReduceMean"), (0,)),
-    "Concat": None,
+                     "Expand", "Tile", "Pad", "Dropout", "ReduceMax", "ReduceMin", "ReduceMean",
+                     # sign flips, magnitudes, sums and normalisations: the output still shows the site's values
+                     "Abs", "Neg", "ReduceSum", "Softmax", "LogSoftmax"), (0,)),
+    **dict.fromkeys(("Concat", "Sum", "Max", "Min", "Mean"), None),
     "Where": (1, 2),
 }
+# an affine step by a constant (y·2 − 0.5, a box decoder's scale and shift) hands the site's values on too
+AFFINE = ("Add", "Sub", "Mul", "Div")
 # outputs that do not carry values (Dropout's mask)
 NOT_CARRIED: dict[str, tuple[int, ...]] = {"Dropout": (1,)}
 CONTROL_FLOW = ("If", "Loop", "Scan")
@@ -175,6 +181,9 @@ def _next(scope: Scope, tensor: str, found: dict):
             yield from ((scope, out) for k, out in enumerate(user.output) if out and k not in skip)
         elif user.op_type in ("Loop", "Scan"):
             yield from _body_inputs(scope, user, tensor)
+        elif user.op_type in AFFINE and len(user.input) == 2 and \
+                not scope.defining(other := user.input[1 - positions[0]]).index.is_dynamic(other):
+            yield scope, user.output[0]
         elif _is_gate_user(scope, user, tensor):
             found["gate"] = True
     for node, attribute, graph in scope.bodies_here():

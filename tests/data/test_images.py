@@ -208,7 +208,8 @@ def test_image_folder_needs_one_image_input(tmp_path):
 
 @pytest.mark.parametrize("option,needle", [("size=48", "height x width"), ("resize=zoom", "stretch, crop, pad"),
                                            ("mean=0.1,0.2", "needs 1 or 3"), ("scale=1/0", "fraction"),
-                                           ("colour=RGB", "unknown image setting")])
+                                           ("colour=RGB", "unknown image setting"),
+                                           ("size=48x100000", "side above 8192")])  # a typo seen in a trial
 def test_bad_prep_options_name_the_option(tmp_path, option, needle):
     with pytest.raises(UsageError) as e:
         data_source(tmp_path, prep=[option])

@@ -37,13 +37,14 @@ def binop(op, a, b, out, swap):
 
 
 def make(nodes, consts=None, const_mode="init", opset=17, elem=TensorProto.FLOAT, outputs=()):
-    """Input X -> nodes -> Y; Z = Y + 1 is the graph output (so a site ending at Y is "hidden").
+    """Input X -> nodes -> Y; Z = Y² + 1 is the graph output (Pow computes new values, so a site ending at Y
+    is "hidden"; Y + 1 alone would hand Y's values on, swapper/scan/roles.py).
 
     Constants become initializers or Constant nodes (``const_mode``); ``outputs``
     names extra graph outputs (to make an intermediate readable from outside).
     """
     np_type = helper.tensor_dtype_to_np_dtype(elem)
-    consts = {**(consts or {}), "tail_one": 1.0}
+    consts = {**(consts or {}), "tail_one": 1.0, "tail_two": 2.0}
     inits, protos = [], []
     for name, value in sorted(consts.items()):
         tensor = numpy_helper.from_array(np.asarray(value, dtype=np_type), name)
@@ -51,7 +52,7 @@ def make(nodes, consts=None, const_mode="init", opset=17, elem=TensorProto.FLOAT
             inits.append(tensor)
         else:
             protos.append(helper.make_node("Constant", [], [name], value=tensor))
-    protos += nodes + [n("Add", ["Y", "tail_one"], "Z")]
+    protos += nodes + [n("Pow", ["Y", "tail_two"], "Y2"), n("Add", ["Y2", "tail_one"], "Z")]
     graph = helper.make_graph(
         protos, "t", [helper.make_tensor_value_info("X", elem, X_SHAPE)],
         [helper.make_tensor_value_info(o, elem, X_SHAPE) for o in ("Z", *outputs)], inits)

@@ -122,6 +122,34 @@ def test_hidden_site_that_also_reaches_the_output_through_concat_is_an_output():
     assert site.role == "output"
 
 
+@pytest.mark.parametrize("tail", ["box_decoder", "abs", "neg", "sum_one", "max_two", "softmax"])
+def test_values_handed_on_by_sign_scale_and_sum_ops_make_an_output_site(tail):
+    # Cases seen when trying two-headed models: a box head's Sigmoid decoded as σ·2 − 0.5, and single
+    # elementwise ops before an output. Each output is checked in onnxruntime against the site's values
+    # pushed through the op as the ONNX operator spec defines it (numpy), so swapping the site moves it.
+    s = expit(X.astype(np.float64))
+    nodes, inits, want = [nd("Sigmoid", ["X"], ["S"])], [], None
+    if tail == "box_decoder":
+        nodes += [nd("Mul", ["S", "two"], ["M"]), nd("Sub", ["M", "half"], ["Y"])]
+        inits, want = [("two", np.float32(2)), ("half", np.float32(0.5))], 2 * s - 0.5
+    elif tail in ("abs", "neg"):
+        nodes.append(nd(tail.capitalize(), ["S"], ["Y"]))
+        want = s if tail == "abs" else -s
+    elif tail == "sum_one":
+        nodes.append(nd("Sum", ["S"], ["Y"]))
+        want = s
+    elif tail == "max_two":
+        nodes.append(nd("Max", ["S", "X"], ["Y"]))
+        want = np.maximum(s, X)
+    else:
+        nodes.append(nd("Softmax", ["S"], ["Y"], axis=-1))
+        want = np.exp(s) / np.exp(s).sum(-1, keepdims=True)
+    m = build(nodes, [("X", [2, 3, 4])], [("Y", [2, 3, 4])], inits)
+    (site,) = find_sites(m)
+    assert site.role == "output"
+    np.testing.assert_allclose(run(m, X=X)[0], want, rtol=1e-5, atol=1e-6)
+
+
 @pytest.mark.parametrize("tail", ["matmul", "indices"])
 def test_values_that_are_transformed_before_the_output_stay_hidden(tail):
     if tail == "matmul":  # a layer computes new values from the site's

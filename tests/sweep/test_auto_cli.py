@@ -36,6 +36,15 @@ def test_sweep_writes_the_json_and_the_plot(cli, files, tmp_path):
     assert as_json.exit_code == 0 and json.loads(as_json.stdout)["schema"] == "swapper.sweep/1"
 
 
+def test_sweep_without_an_output_writes_a_new_report_folder(cli, files, tmp_path, monkeypatch):
+    # README: without -o the sweep goes to reports/<model>-<UTC time>/sweep.json, a folder it creates
+    monkeypatch.chdir(tmp_path)
+    result = cli("sweep", *_args(files), "--target", "none", "--to", "relu", "--no-refit", "--metric", "sqnr")
+    assert result.exit_code == 0, result.output
+    written = list((tmp_path / "reports").glob("m-*/sweep.json"))
+    assert len(written) == 1 and json.loads(written[0].read_text())["schema"] == "swapper.sweep/1"
+
+
 def _slower_whole_models(models, feeds, **settings):
     # stand-in for the latency measurer: a candidate timed in a site's neighbourhood is faster (0.9), the
     # whole candidate model (its graph output "out") slower (1.05) than the original
