@@ -96,7 +96,10 @@ class SwapOptions:
     function's default), ``site_ids`` (only these sites), ``only`` (only sites
     computing this function), ``include_gates``, ``include_outputs``.
     Placement: ``fold`` (one of FOLD_POLICIES). Calibration: ``mode`` (one of
-    MODES), ``bias_correction``, ``refit_consumers``, ``seed``, ``mask_input``
+    MODES), ``bias_correction``, ``refit_consumers`` (None, the default: refit
+    whenever there is a calibration set, each site's refit kept only where it
+    wins on held-out samples; True: also ask for it, an error without a
+    calibration set; False: never), ``seed``, ``mask_input``
     ("auto": find the attention-mask input by its name, dtype and shape; "none":
     no masking; else the input's name; its zero positions stay out of the
     statistics of [batch, tokens, channels] sites, see swapper/data/token_mask.py). Running:
@@ -116,7 +119,7 @@ class SwapOptions:
     fold: str = "exact"
     mode: str = "sequential"
     bias_correction: bool = True
-    refit_consumers: bool = False
+    refit_consumers: bool | None = None
     seed: int = 0
     mask_input: str = "auto"
     batch_size: int = 64

@@ -56,7 +56,7 @@ def test_words_and_defaults():
     # the CLI's defaults (swapper swap --help) are the object's defaults
     o = SwapOptions()
     assert (o.fold, o.mode, o.bias_correction, o.refit_consumers, o.batch_size, o.threads, o.seed) == \
-        ("exact", "sequential", True, False, 64, 1, 0)
+        ("exact", "sequential", True, None, 64, 1, 0)  # refit: None = with a calibration set, judged per site
     assert (o.target, o.opset, o.choices) == ("ort-cpu", None, None)  # README "Targets": ort-cpu by default
     assert o.cache_bytes() is None and SwapOptions(cache_mb=1.5).cache_bytes() == 3 << 19
 

@@ -69,7 +69,7 @@ def _ladder(results: dict) -> list[str]:
 # Columns of the tool-cost table: (results key, header, format); times in seconds unless scaled.
 COST_COLUMNS = [("plain_pass_s", "plain pass ms", ".3f"), ("record_s", "record s", ".3f"),
                 ("segments_s", "segments s", ".3f"), ("fit_s", "fit s", ".3f"),
-                ("bias_correction_s", "bias corr. s", ".3f"), ("total_s", "total s", ".3f"),
+                ("bias_correction_s", "bias corr. s", ".3f"), ("refit_s", "refit s", ".3f"), ("total_s", "total s", ".3f"),
                 ("ratio_record", "record ×pass", ".1f"), ("ratio_fit", "fit ×pass", ".1f"),
                 ("ratio_total", "total ×pass", ".1f")]
 
@@ -87,23 +87,30 @@ def _cost_cells(cost: dict | None) -> list[str]:
 
 
 def _cost(results: dict) -> list[str]:
-    rows = [[_model_label(m), f["family"]] + _cost_cells(f["cost"]) for m in results["models"] for f in m["families"]]
-    head = ["model", "family"] + [title for _, title, _ in COST_COLUMNS]
-    lines = ["## Tool cost", "", "Sequential + bias-correction calibration over the calibration set, against one "
-             "plain onnxruntime pass of the original over the same set (1 thread, same batch, median of 3).", ""]
+    rows = []
+    for m in results["models"]:
+        for f in m["families"]:
+            rows.append([_model_label(m), f["family"], RUNG_TITLES["sequential_bias"]] + _cost_cells(f["cost"]))
+            if f.get("cost_refit"):
+                rows.append([_model_label(m), f["family"], RUNG_TITLES["refit"]] + _cost_cells(f["cost_refit"]))
+    head = ["model", "family", "rung"] + [title for _, title, _ in COST_COLUMNS]
+    lines = ["## Tool cost", "", "Calibration over the calibration set (sequential + bias correction, and with the "
+             "consumer refit where that rung ran), against one plain onnxruntime pass of the original over the same "
+             "set (1 thread, same batch, median of 3).", ""]
     return lines + _table(head, rows) + _memory(results)
 
 
 def _memory(results: dict) -> list[str]:
     """The memory table, over the models whose memory was measured (a model with nothing to swap has no factors)."""
-    measured = [m for m in results["models"] if m["memory"] and m["memory"]["factors"]]
+    measured = [(m, key) for m in results["models"] for key in ("memory", "memory_refit")
+                if m.get(key) and m[key]["factors"]]
     if not measured:
         return []
-    factors = measured[0]["memory"]["factors"]
+    factors = measured[0][0][measured[0][1]]["factors"]
     rows = []
-    for m in measured:
-        mem = m["memory"]
-        cells = [_model_label(m)]
+    for m, key in measured:
+        mem = m[key]
+        cells = [_model_label(m), RUNG_TITLES["refit" if key == "memory_refit" else "sequential_bias"]]
         for k in mem["factors"]:
             r = mem.get(str(k), {})
             cells.append(f"{r['samples']}: +{r['delta_kib'] / 1024:.1f} MiB, {r['wall_s']:.2f} s"
@@ -111,7 +118,7 @@ def _memory(results: dict) -> list[str]:
         cells += [num(mem["ratio_last_1"], ".3f"), num(mem["peak_ratio_last_1"], ".3f"),
                   num(mem["time_ratio_last_1"], ".2f")]
         rows.append(cells)
-    head = ["model"] + [f"{k}× (samples: peak−baseline, time)" for k in factors] + [
+    head = ["model", "rung"] + [f"{k}× (samples: peak−baseline, time)" for k in factors] + [
         f"mem {factors[-1]}×/1×", f"peak RSS {factors[-1]}×/1×", f"time {factors[-1]}×/1×"]
     return ["Peak memory of calibration, each factor in a fresh process (peak = ru_maxrss, baseline = RSS "
             "right before calibrating).", ""] + _table(head, rows)

@@ -13,7 +13,8 @@ plain dicts for the ``swapper.bench.run/1`` results (see swapper/bench/run.py):
   (naive, local, sequential, sequential + bias correction, + consumer refit);
 - ``plain_pass_seconds``: one onnxruntime pass of the original over the
   calibration set (the yardstick the tool's own cost is divided by);
-- ``tool_cost``: the calibration timings of the sequential + bias rung over it;
+- ``tool_cost``: the calibration timings of the sequential + bias rung (and of
+  the + consumer refit rung) over it;
 - ``speed``: interleaved latency of original, swapped and Identity-floor models;
 - ``int8_original`` / ``int8_view``: the same comparison after int8
   quantization of both models (the int8 original scored once per model).
@@ -56,6 +57,7 @@ class FamilyRun:
     ladder: dict
     swapped: onnx.ModelProto | None = None  # the sequential + bias candidate
     swap_result: api.SwapResult | None = None
+    refit_result: api.SwapResult | None = None  # the + consumer refit rung's swap (its timings)
     notes: list[str] = field(default_factory=list)
 
 
@@ -128,6 +130,8 @@ def quality_ladder(loaded: LoadedModel, calib: Dataset, val: Dataset, *, origina
         ladder[rung] = score
         if rung == "sequential_bias":
             run.swapped, run.swap_result = result.candidate, result
+        elif rung == "refit":
+            run.refit_result = result
         if log:
             log(f"{rung}: {metric} {_fmt(score, metric)} ({time.perf_counter() - t0:.1f}s)")
     ladder["drop_pp"] = {  # original − rung, in points: the one sign convention (a gain is negative)
@@ -161,7 +165,8 @@ def plain_pass_seconds(session: ort.InferenceSession, calib: Dataset, *, batch_s
 
 
 def tool_cost(result: api.SwapResult, plain_s: float) -> dict:
-    """Calibration time of one swap as seconds and as multiples of one plain pass."""
+    """Calibration time of one swap as seconds and as multiples of one plain pass (``refit_s``: the consumer
+    refit's part of ``total_s``, null when it did not run)."""
     t = result.calibration.timings if result.calibration is not None else {}
     total = result.timings.get("calibrate_s")
     cost = {
@@ -170,9 +175,10 @@ def tool_cost(result: api.SwapResult, plain_s: float) -> dict:
         "segments_s": t.get("segments_s"),
         "fit_s": t.get("fit_s"),
         "bias_correction_s": t.get("bias_correction_s"),
+        "refit_s": t.get("refit_s"),
         "total_s": total,
     }
-    for key in ("total", "record", "fit"):
+    for key in ("total", "record", "fit", "refit"):
         v = cost[f"{key}_s"]
         cost[f"ratio_{key}"] = None if v is None or plain_s <= 0 else v / plain_s
     return cost

@@ -4,7 +4,8 @@ Transformation: (model file, calibration set, replication factor) -> one
 fresh interpreter (``python -m swapper.bench.memory SPEC``) that loads the
 model and data, replicates the set lazily (``swapper.data.dataset.replicate``), reads
 its resident set size right before calibrating (``VmRSS`` in
-/proc/self/status), runs the sequential + bias-corrected calibration, then
+/proc/self/status), runs the calibration of the spec's rung (``rung``: the
+sequential + bias-corrected one by default, or ``refit``), then
 reads ``resource.getrusage(RUSAGE_SELF).ru_maxrss`` (KiB on Linux) and prints
 one JSON line. A fresh process per factor means no allocator state, page or
 session cache carries over from one measurement to the next.
@@ -63,7 +64,7 @@ def _child(spec: dict) -> dict:
     t0 = time.perf_counter()
     family = family_options(spec.get("to"), batch_size=spec["batch_size"], **({"target": spec["target"]}
                                                                                 if "target" in spec else {}))
-    api.swap(loaded, calib=ds, options=rung_options("sequential_bias", family))
+    api.swap(loaded, calib=ds, options=rung_options(spec.get("rung", "sequential_bias"), family))
     wall = time.perf_counter() - t0
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
     return {"times": spec["times"], "samples": ds.n, "baseline_kib": baseline, "peak_before_kib": peak_before,
@@ -78,8 +79,12 @@ def measure_memory(spec: dict) -> dict:
     lines = [ln for ln in proc.stdout.splitlines() if ln.startswith("{")]
     if proc.returncode != 0 or not lines:
         tail = (proc.stderr.strip().splitlines() or ["no output"])[-1]
-        raise RuntimeError(f"memory measurement failed ({spec['times']}x): {tail}")
+        raise RuntimeError(f"memory measurement failed ({spec['times']}x{_rung_word(spec)}): {tail}")
     return json.loads(lines[-1])
+
+
+def _rung_word(spec: dict) -> str:
+    return ", +refit" if spec.get("rung") == "refit" else ""
 
 
 def memory_section(spec: dict, factors: list[int], log=None) -> dict:
@@ -93,7 +98,7 @@ def memory_section(spec: dict, factors: list[int], log=None) -> dict:
             row = {"times": times, "error": str(exc)}
         out[str(times)] = row
         if log:
-            log(f"memory {times}x: " + (f"+{row['delta_kib'] / 1024:.1f} MiB, {row['wall_s']:.2f}s"
+            log(f"memory {times}x{_rung_word(spec)}: " + (f"+{row['delta_kib'] / 1024:.1f} MiB, {row['wall_s']:.2f}s"
                                          if "delta_kib" in row else row["error"]))
     return out | memory_ratios(out, factors)
 

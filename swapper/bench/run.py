@@ -36,7 +36,10 @@ results.json, schema ``swapper.bench.run/1``:
     - ``cost`` (sequential + bias rung): ``plain_pass_s`` (one onnxruntime pass of
       the original over the calibration set, median of 3), ``record_s``,
       ``segments_s``, ``fit_s``, ``bias_correction_s``, ``total_s`` (calibration
-      wall time), ``ratio_total``, ``ratio_record``, ``ratio_fit`` (÷ plain pass);
+      wall time), ``ratio_total``, ``ratio_record``, ``ratio_fit`` (÷ plain pass),
+      ``refit_s`` / ``ratio_refit`` (null here);
+    - ``cost_refit``: the same for the + consumer refit rung (``refit_s``: the
+      refit's part of ``total_s``), or null when that rung was not run;
     - ``speed``: batch size (string) -> ``original_ms``, ``swapped_ms``,
       ``floor_ms`` (medians), p10/p90 of original and swapped, ``ratio``
       (swapped/original), ``saving_fraction`` ((orig − swapped)/(orig − floor),
@@ -51,6 +54,8 @@ results.json, schema ``swapper.bench.run/1``:
     ``delta_kib`` (peak − baseline), ``wall_s`` (or ``error``); ``ratio_16_1``
     (delta 16×/1×, null when 16× was not run), ``ratio_last_1``,
     ``peak_ratio_last_1``, ``time_ratio_last_1``; ``base_samples``.
+  - ``memory_refit``: the same for the + consumer refit rung (the default
+    ``swapper swap --calib``), or null when that rung is not run (``--quick``).
 - ``goals``: list of {``goal``, ``where``, ``measured``, ``met`` (bool|null)}: the
   project's own performance goals (:mod:`swapper.bench.goals`).
 
@@ -167,7 +172,8 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
     plan = make_plan(loaded.model, api.scan(loaded).sites, target=api.resolve_target(settings["target"]))
     fams = families_for(plan, quick=settings["quick"])
     entry = {"name": name, "path": str(loaded.path), "synthetic": synthetic, "calib_samples": calib.n,
-             "val_samples": val.n, "sites": [s.site_id for s in plan.swaps], "families": [], "memory": None}
+             "val_samples": val.n, "sites": [s.site_id for s in plan.swaps], "families": [], "memory": None,
+             "memory_refit": None}
     if not fams:
         log(f"{name}: nothing to swap, skipped")
         entry["memory"] = {"factors": [], **memory_ratios({}, [])}
@@ -184,8 +190,12 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
         run = quality_ladder(loaded, calib, val, original=original, rungs=tuple(settings["rungs"]),
                              family=family_options(to, batch_size=batch, seed=SEED, target=settings["target"]),
                              log=flog)
-        fam = {"family": family, "surrogates": {}, "ladder": run.ladder, "cost": None, "speed": {}, "int8": None,
-               "notes": run.notes}
+        fam = {"family": family, "surrogates": {}, "ladder": run.ladder, "cost": None, "cost_refit": None,
+               "speed": {}, "int8": None, "notes": run.notes}
+        if run.refit_result is not None:
+            fam["cost_refit"] = tool_cost(run.refit_result, plain)
+            flog(f"cost with refit: calibration {fam['cost_refit']['total_s']:.3f}s = "
+                 f"{fam['cost_refit']['ratio_total']:.1f}x plain pass")
         entry["families"].append(fam)
         if run.swap_result is None:
             fam["notes"].append("no sequential + bias candidate: cost and speed not measured")
@@ -205,8 +215,11 @@ def _bench_model(name: str, loaded: LoadedModel, calib: Dataset, val: Dataset, *
                     progress=progress)
     spec = {"model": str(loaded.path), "calib": str(calib_path) if calib_path else None, "batch_size": batch,
             "to": fams[0][1], "target": settings["target"], **memory_extra}
-    entry["memory"] = memory_section(spec, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
-    entry["memory"]["base_samples"] = memory_extra.get("base") or calib.n
+    sections = ["memory"] + (["memory_refit"] if "refit" in settings["rungs"] else [])
+    for key in sections:
+        rung = {"rung": "refit"} if key == "memory_refit" else {}
+        entry[key] = memory_section(spec | rung, settings["memory_factors"], log=lambda m: log(f"{name} {m}"))
+        entry[key]["base_samples"] = memory_extra.get("base") or calib.n
     return entry
 
 

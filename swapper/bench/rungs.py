@@ -17,10 +17,10 @@ THREADS = 1  # every benchmark session and swap runs on one onnxruntime thread
 RUNGS = ("naive", "local", "sequential", "sequential_bias", "refit")
 # The calibration settings that make each rung (see rung_options); the naive swap runs without a calibration set.
 RUNG_OPTIONS = {
-    "naive": SwapOptions(),
-    "local": SwapOptions(mode="local", bias_correction=False),
-    "sequential": SwapOptions(mode="sequential", bias_correction=False),
-    "sequential_bias": SwapOptions(mode="sequential", bias_correction=True),
+    "naive": SwapOptions(refit_consumers=False),
+    "local": SwapOptions(mode="local", bias_correction=False, refit_consumers=False),
+    "sequential": SwapOptions(mode="sequential", bias_correction=False, refit_consumers=False),
+    "sequential_bias": SwapOptions(mode="sequential", bias_correction=True, refit_consumers=False),
     "refit": SwapOptions(mode="sequential", bias_correction=True, refit_consumers=True),
 }
 

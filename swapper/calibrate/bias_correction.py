@@ -17,6 +17,11 @@ outputs instead of being derived from batch-norm statistics.
 The layers are those of :func:`swapper.plan.layers.linear_layer` (Conv,
 ConvTranspose, Gemm, MatMul), reached by the same walk placement uses.
 
+A site output that also feeds residual Adds shifts their outputs by E[Δy];
+that shift is cancelled in the Adds' other producers' biases
+(:mod:`swapper.calibrate.add_shift`). :func:`covers_mean` says whether every
+reader of a site output gets its mean back this way.
+
 Two ways to the expectation. When every step and the layer are linear (no
 max pool) E[L(Δ)] = L(E[Δ]): :class:`DeltaSum` collects Σ Δ while the student
 output is computed, the steps run once on E[Δ] and the layer is applied in
@@ -42,11 +47,13 @@ from onnxruntime.capi.onnxruntime_pybind11_state import (
     RuntimeException as OrtRuntimeException,
 )
 
+from swapper.calibrate.add_shift import correct_through_adds
 from swapper.core.conv import conv_geometry, tap_windows
 from swapper.core.graph import GraphIndex, attr
 from swapper.core.session import open_session
 from swapper.core.slices import SliceRunner
 from swapper.core.surgery import all_names, drop_unused, set_const_input
+from swapper.plan.add_folds import add_readers, residual_readers
 from swapper.plan.layers import Layer, Reach, linear_layer, reach_linear
 from swapper.scan.sites import Site
 
@@ -296,8 +303,13 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
     index = GraphIndex.of(work)
     taken = all_names(work)
     corrected, replaced = [], set()
-    reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False)
+    adds = residual_readers(index, site)
+    reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False, skip=adds)
     notes = [f"no bias correction: {why}" for why in dead_ends]
+    if adds:
+        done, more = _through_adds(work, index, site, cached, student, teacher, delta, taken)
+        corrected += done
+        notes += more
     for reach in reached:
         node = reach.node
         layer, why = linear_layer(index, node, reach.tensor)
@@ -329,6 +341,33 @@ def correct_bias(work: onnx.ModelProto, site: Site, cached: SliceRunner, student
     return corrected, notes
 
 
+def covers_mean(index: GraphIndex, site: Site) -> tuple[bool, str]:
+    """Whether :func:`correct_bias` cancels the mean of every change of ``site.output`` wherever it is read.
+
+    True when each reader is a linear layer with a correctable bias (directly or behind pools and
+    reshapes) or a residual Add whose other operand's producer has a constant bias; else False and why.
+    Calibration then fits a fixed d as if it were free: its mean is cancelled downstream either way.
+    """
+    if index.is_graph_output(site.output):
+        return False, f"{site.output!r} is a graph output"
+    adds = residual_readers(index, site)
+    reached, dead_ends = reach_linear(index, site.output, None, None, 1, gates=False, skip=adds)
+    if dead_ends:
+        return False, dead_ends[0]
+    for reach in reached:
+        layer, why = linear_layer(index, reach.node, reach.tensor)
+        why = f"{reach.node.name} {why}" if layer is None else _no_correction(index, layer)
+        if why:
+            return False, why
+    routes, why = add_readers(index, site) if adds else ([], "")
+    for r in routes:
+        pf = r.producer
+        name = pf.bias_node.input[pf.bias_slot] if pf is not None and len(pf.bias_node.input) > pf.bias_slot else ""
+        if not name or index.const(name) is None:
+            return False, f"Add {r.add.name!r}: no operand's producer has a constant bias"
+    return (False, why) if why else (True, "")
+
+
 def _no_correction(index: GraphIndex, layer: Layer) -> str:
     """Why a linear layer's bias is not corrected (no bias, not constant, beta = 0), or "".
 
@@ -345,3 +384,18 @@ def _no_correction(index: GraphIndex, layer: Layer) -> str:
     if layer.kind == "gemm" and float(attr(layer.node, "beta", 1.0)) == 0.0:
         return f"{name} has beta = 0"
     return ""
+
+
+def _through_adds(work: onnx.ModelProto, index: GraphIndex, site: Site, cached: SliceRunner, student: str,
+                  teacher: str, delta: DeltaSum | None, taken: set[str]) -> tuple[list[str], list[str]]:
+    """E[Δy] as one sample (from ``delta``, else one pass over the cache), cancelled through residual Adds."""
+    if delta is not None and delta.n:
+        mean = delta.mean()
+    else:  # Σ (student − teacher) over the cached outputs, one sample's shape
+        total, count = None, 0
+        for _, v in cached.stream(None, [student, teacher]):
+            part = np.subtract(v[student], v[teacher], dtype=np.float64).sum(axis=0, keepdims=True)
+            total = part if total is None else total + part
+            count += v[student].shape[0]
+        mean = total / max(count, 1)
+    return correct_through_adds(work, index, site, mean, taken)

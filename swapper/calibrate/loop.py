@@ -35,6 +35,7 @@ import onnx
 from swapper import functions
 from swapper.calibrate.bias_correction import DeltaSum, correct_bias
 from swapper.calibrate.bodies import observe_bodies
+from swapper.calibrate.site_fit import FitRules, fit_rules, fit_swap
 from swapper.calibrate.tokens import is_token_site, observe, token_selection
 from swapper.core.graph import GraphIndex
 from swapper.core.slices import LastReads, SliceRunner, boundary_reads, row_spans
@@ -43,7 +44,6 @@ from swapper.core.tensor_cache import MEMORY_BUDGET, TensorCache
 from swapper.data.dataset import Dataset, input_batches
 from swapper.data.token_mask import AUTO, TOKEN_CAP, TokenSelection
 from swapper.fit.observe import ChannelObserver
-from swapper.fit.site import fit_channels
 from swapper.options import MODES, check_mode  # noqa: F401 (MODES: re-exported for callers of this module)
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.progress import Silent
@@ -65,6 +65,7 @@ class SiteCalibration:
     x_max: list[float] = field(default_factory=list)
     bias_corrected: list[str] = field(default_factory=list)  # consumer node names
     notes: list[str] = field(default_factory=list)
+    refit: dict | None = None  # the consumer refit's decision (swapper.calibrate.refit_decision), when one ran
 
 
 @dataclass
@@ -143,16 +144,6 @@ def observer_for(swap: SiteSwap, seed: int, reservoir: int, rows: bool = False) 
     ``rows``: it is fed [tokens, channels] rows."""
     axis = (-1 if rows else swap.channel_axis) if swap.channels > 1 else None
     return ChannelObserver(swap.channels, axis, reservoir=reservoir, seed=seed, moments=False)
-
-
-def fit_swap(swap: SiteSwap, observer: ChannelObserver) -> tuple[float, float]:
-    """Fit ``swap``'s free parameters (updated in place) to ``observer``; return the mean mse before and after."""
-    g, dg = swap.bound_surrogate()
-    swap.check()  # a start that breaks what the placement asks of a is refused, not fitted from
-    fitted = fit_channels(observer, g, init=swap.params(), free="".join(swap.free()), dg=dg,
-                          **swap.a_bounds())
-    swap.set_params(a=fitted.a, b=fitted.b, c=fitted.c, d=fitted.d)
-    return float(np.mean(fitted.mse_init)), float(np.mean(fitted.mse))
 
 
 @dataclass
@@ -312,6 +303,7 @@ def calibrate(
     logger.info("%s", tokens_note)
     results: dict[str, SiteCalibration] = {}
     n_batches = -(-dataset.n // batch_size)
+    rules = {sid: fit_rules(index, by_id[sid], swaps[sid], bias_correction) for sid in levels}
 
     with TensorCache(memory_budget=cache_bytes) as cache:
         source = input_batches(dataset, batch_size)
@@ -339,7 +331,7 @@ def calibrate(
                 for sid in group:
                     site = by_id[sid]
                     shifts[sid] = _fit_site(site, swaps[sid], level, sched, cache, dataset.n, batch_size, seed,
-                                            reservoir, bias_correction, results, timings,
+                                            reservoir, bias_correction, results, timings, rules[sid],
                                             tokens if is_token_site(site) else None)
                     advance(1)
 
@@ -348,7 +340,8 @@ def calibrate(
                 for sid in group:
                     done, notes = correct_bias(work, by_id[sid], recorded, sched.student[sid], sched.teacher[sid],
                                                shifts[sid])
-                    results[sid].bias_corrected, results[sid].notes = done, notes
+                    results[sid].bias_corrected = done
+                    results[sid].notes += notes
                 timings["bias_correction_s"] += time.perf_counter() - t0
             for key in sched.last.done(level):
                 cache.discard(key)  # no later level reads it
@@ -371,15 +364,15 @@ def _fit_observed(sid: str, swap: SiteSwap, observer: ChannelObserver, notes: li
     """Fit a body site on what it was observed to see (level 1, as in local mode); an empty observer fits nothing."""
     if observer.n == 0:
         return SiteCalibration(sid, 1, float("nan"), float("nan"), notes=list(notes))
-    mse_start, mse_fit = fit_swap(swap, observer)
+    mse_start, mse_fit, fit_notes = fit_swap(swap, observer)  # plain rules: the body's readers are not weighed
     seen = observer.compute()
     return SiteCalibration(sid, 1, mse_start, mse_fit, x_min=[float(v) for v in seen.min_x],
-                           x_max=[float(v) for v in seen.max_x], notes=list(notes))
+                           x_max=[float(v) for v in seen.max_x], notes=list(notes) + fit_notes)
 
 
 def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: TensorCache, n: int,
               batch_size: int, seed: int, reservoir: int, shift: bool, results: dict, timings: dict,
-              tokens: TokenSelection | None = None):
+              rules: FitRules, tokens: TokenSelection | None = None):
     """Observe, fit and record one site's swapped output; returns its output shift sum (or None).
 
     With ``tokens`` the observer and the shift read only the selected token positions.
@@ -391,10 +384,11 @@ def _fit_site(site: Site, swap: SiteSwap, level: int, sched: _Schedule, cache: T
         stop = min(start + batch_size, n)
         keep = None if tokens is None else tokens.keep(start, stop)
         observe(observer, cache.read(x, start, stop), cache.read(teacher, start, stop), keep)
-    mse_start, mse_fit = fit_swap(swap, observer)
+    mse_start, mse_fit, notes = fit_swap(swap, observer, rules)
     seen = observer.compute()
     results[sid] = SiteCalibration(sid, level, mse_start, mse_fit,
-                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x])
+                                   x_min=[float(v) for v in seen.min_x], x_max=[float(v) for v in seen.max_x],
+                                   notes=notes)
     # the swapped output feeds the next levels' segments (and the bias correction below)
     delta = DeltaSum() if shift else None
     t_shift = 0.0

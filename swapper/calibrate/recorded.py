@@ -43,10 +43,11 @@ from swapper.calibrate.loop import (
     ORIGINAL,
     CalibrationResult,
     SiteCalibration,
-    fit_swap,
     observer_for,
     surrogate_output,
 )
+from swapper.calibrate.site_fit import fit_rules, fit_swap
+from swapper.core.graph import GraphIndex
 from swapper.core.session import open_session
 from swapper.core.slices import SliceRunner, row_spans, segment_model
 from swapper.core.surgery import copy_model
@@ -137,6 +138,7 @@ def calibrate_recorded(original: onnx.ModelProto, sites: list[Site], plan: Plan,
     work = copy_model(original)
     n = recording.samples
     results: dict[str, SiteCalibration] = {}
+    index = GraphIndex.of(work)  # the fit rules read the graph as calibration does
     with TensorCache(memory_budget=cache_bytes) as cache:
         cached = SliceRunner(cache, row_spans(n, batch_size))
         order = sorted(swaps, key=_order)  # the order calibration's level groups take
@@ -148,10 +150,11 @@ def calibrate_recorded(original: onnx.ModelProto, sites: list[Site], plan: Plan,
             for start in range(0, n, batch_size):
                 stop = min(start + batch_size, n)
                 observer.update(np.asarray(x[start:stop]), np.asarray(y[start:stop]))
-            mse_start, mse_fit = fit_swap(swap, observer)
+            rules = fit_rules(index, by_id[sid], swap, bias_correction)
+            mse_start, mse_fit, fit_notes = fit_swap(swap, observer, rules)
             seen = observer.compute()
             results[sid] = SiteCalibration(sid, 1, mse_start, mse_fit, x_min=[float(v) for v in seen.min_x],
-                                           x_max=[float(v) for v in seen.max_x])
+                                           x_max=[float(v) for v in seen.max_x], notes=fit_notes)
             timings["fit_s"] += time.perf_counter() - t0
             if not bias_correction:
                 continue
@@ -172,7 +175,8 @@ def calibrate_recorded(original: onnx.ModelProto, sites: list[Site], plan: Plan,
             site = by_id[sid]
             done, notes = correct_bias(work, site, cached, CANDIDATE + site.output, ORIGINAL + site.output,
                                        shifts[sid])
-            results[sid].bias_corrected, results[sid].notes = done, notes
+            results[sid].bias_corrected = done
+            results[sid].notes += notes
             timings["bias_correction_s"] += time.perf_counter() - t0
         stats = {"bytes_written": cache.bytes_written, "peak_bytes_in_memory": cache.peak_bytes_held,
                  "memory_budget": cache.memory_budget}

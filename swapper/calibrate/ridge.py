@@ -49,6 +49,12 @@ class FoldedGram:
                 Xa[:, -1] = 1.0
                 part.update(Xa, np.asarray(Y[block], dtype=np.float64))
 
+    def without(self, part: int) -> FoldedGram:
+        """A view of the other parts (the same accumulators): the folds once ``part`` is held out."""
+        view = FoldedGram.__new__(FoldedGram)
+        view.dim, view.parts = self.dim, [p for k, p in enumerate(self.parts) if k != part]
+        return view
+
     def total(self, skip: int | None = None) -> GramAccumulator:
         """All folds merged (except ``skip``)."""
         acc = GramAccumulator(self.dim)
@@ -105,6 +111,17 @@ class RidgePath:
 def _scale(acc: GramAccumulator) -> float:
     s = float(np.trace(acc.xtx)) / acc.dim
     return s if s > 0 else 1.0
+
+
+def solve_on_all(gram: FoldedGram, factor: float, prior: np.ndarray) -> np.ndarray:
+    """θ toward ``prior`` on every part of ``gram``, with λ = ``factor`` · mean(diag XᵀX) of all of them."""
+    total = gram.total()
+    return ridge_toward_prior(total, factor * _scale(total), prior)
+
+
+def sse(acc: GramAccumulator, theta: np.ndarray) -> float:
+    """‖X·θ − Y‖² over the rows of ``acc`` (0 when it has none)."""
+    return _sse(acc, theta) if acc.xty is not None else 0.0
 
 
 def _sse(acc: GramAccumulator, theta: np.ndarray) -> float:

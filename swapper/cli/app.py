@@ -180,7 +180,9 @@ def swap(
     fold: Annotated[str, typer.Option(callback=fold_option, help=FOLD_HELP)] = "exact",
     mode: Annotated[str, typer.Option(help="sequential | local calibration.")] = "sequential",
     bias_correction: Annotated[bool, typer.Option("--bias-correction/--no-bias-correction", help="Correct consumer mean shifts.")] = True,
-    refit_consumers: Annotated[bool, typer.Option("--refit-consumers", help="Ridge-refit linear consumers.")] = False,
+    refit_consumers: Annotated[Optional[bool], typer.Option(
+        "--refit-consumers/--no-refit-consumers",
+        help="Ridge-refit linear consumers (default: with --calib, kept per site where held-out samples agree).")] = None,
     mask_input: Annotated[str, typer.Option("--mask-input", help="Attention-mask input whose zero positions token sites' statistics skip: auto (found by name, dtype, shape), none, or the input's name.")] = "auto",
     val: Annotated[Optional[Path], typer.Option(help="Validation set; enables the accuracy gate.")] = None,
     budget: BudgetOpt = 1.0,

@@ -4,7 +4,8 @@ Transformation: an (N, C, spatial...) tensor and a Conv's kernel / pads /
 strides / dilations become the (N·∏out, C·∏kernel) matrix whose rows are the
 receptive fields of the Conv's output positions, in the column order of
 ``W.reshape(M, -1)``; then ``im2col(x) @ W.reshape(M, -1).T`` equals the Conv
-(group = 1, without bias). :func:`conv_geometry` reads that geometry from a
+(group = 1, without bias); :func:`patches_at` gives those rows for chosen
+output positions only. :func:`conv_geometry` reads that geometry from a
 Conv node per the ONNX operator spec (explicit pads or auto_pad);
 :func:`tap_windows` gives the input slices each kernel tap visits, and
 :func:`pads_input` tells whether a Conv or pool pads its input at all.
@@ -85,3 +86,20 @@ def im2col(x: np.ndarray, kernel, strides, dilations, pads_begin, pads_end, out=
         cols[:, :, j] = xp[(slice(None), slice(None)) + window]
     cols = cols.reshape((n, c * taps) + tuple(out))
     return np.moveaxis(cols, 1, -1).reshape(-1, c * taps)
+
+
+def patches_at(x: np.ndarray, kernel, strides, dilations, pads_begin, pads_end, out, samples: np.ndarray,
+               positions: np.ndarray) -> np.ndarray:
+    """The rows of :func:`im2col` for chosen output positions only: (len(samples), C·∏kernel).
+
+    Row r is the receptive field of output position ``positions[r]`` (flat, row-major over ``out``) of sample
+    ``samples[r]``; columns in the order of ``W.reshape(M, -1)``, as in :func:`im2col`.
+    """
+    d = len(kernel)
+    xp = np.pad(x, [(0, 0), (0, 0)] + [(pads_begin[i], pads_end[i]) for i in range(d)])
+    coords = np.unravel_index(np.asarray(positions), tuple(out))
+    cols = np.empty((len(samples), x.shape[1], math.prod(kernel)), dtype=x.dtype)
+    for j, offs in enumerate(itertools.product(*[range(k) for k in kernel])):
+        at = tuple(coords[i] * strides[i] + offs[i] * dilations[i] for i in range(d))
+        cols[:, :, j] = xp[(samples, slice(None)) + at]  # advanced indices first: (rows, C)
+    return cols.reshape(len(samples), -1)

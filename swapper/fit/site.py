@@ -35,6 +35,7 @@ def fit_channels(
     positive_a: bool = False,
     dg: Func | None = None,
     nonzero_a: bool = False,
+    positive_b: bool = False,
     method: str = "binned",
     bins: int = BINS,
 ) -> SiteFit:
@@ -44,7 +45,11 @@ def fit_channels(
     start neutral (a = b = 1, c = d = 0). ``method`` is "binned" (``bins``
     quantile bins per channel) or "full" (see the module docstring). Raises
     ``BadDataError`` when the observer has seen no data. ``positive_a`` keeps
-    a > 0, ``nonzero_a`` keeps a away from 0 (what the placement of the site asks for).
+    a > 0, ``nonzero_a`` keeps a away from 0, ``positive_b`` keeps b > 0 (what
+    the placement of the site asks for). b > 0 is kept by fitting again, with b
+    fixed at its start, the channels whose best fit has b <= 0 (b through a
+    residual Add scales an upstream activation, which only b > 0 can pass); the
+    start must have b > 0.
     """
     check_free(free)
     if method not in METHODS:
@@ -59,15 +64,29 @@ def fit_channels(
         if v.size not in (1, C):
             raise ValueError(f"init[{p!r}] must be a scalar or have {C} values, got {v.size}")
         start[p] = np.broadcast_to(v, (C,))
+    if positive_b and "b" in free and (start["b"] <= 0).any():
+        raise ValueError("positive_b needs a positive initial b on every channel")
     binned = method == "binned" and observer.held > 4 * bins
     X, Y = observer.all_samples(dtype=None if binned else np.float64)
     if not (np.isfinite(X).all() and np.isfinite(Y).all()):
         # e.g. float64 site values beyond float32's range, kept in a float32 reservoir (found by the fuzzer)
         raise BadDataError("site data holds values that are not finite in the precision they are kept in")
     if binned:  # stored precision: bins are sorted as stored and summed in float64
-        out = fit_rows_binned(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, bins=bins, nonzero_a=nonzero_a)
+
+        def fit(X, Y, init, free):
+            return fit_rows_binned(X, Y, g, init=init, free=free, positive_a=positive_a, dg=dg, bins=bins,
+                                   nonzero_a=nonzero_a)
     else:
-        out = fit_rows(X, Y, g, init=start, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
+        def fit(X, Y, init, free):
+            return fit_rows(X, Y, g, init=init, free=free, positive_a=positive_a, dg=dg, nonzero_a=nonzero_a)
+    out = fit(X, Y, start, free)
+    bad = np.flatnonzero(out.b <= 0) if positive_b and "b" in free else np.zeros(0, dtype=int)
+    if bad.size:
+        again = fit(X[bad], Y[bad], {p: v[bad] for p, v in start.items()}, free.replace("b", ""))
+        for p in ("a", "b", "c", "d", "mse"):
+            getattr(out, p)[bad] = getattr(again, p)
+        for i, k in enumerate(bad):
+            out.notes[k] = f"b fixed at its start (the best b was <= 0), {again.notes[i]}"
     logger.debug(
         "fitted %d channels on %d samples each (%s): mse %.3g -> %.3g",
         C, observer.held, "binned" if binned else "full", float(out.mse_init.mean()), float(out.mse.mean()),

@@ -187,17 +187,19 @@ def _param_nodes(placement: dict[str, str], before: bool) -> tuple[str, ...]:
 
 
 def site_options(index: GraphIndex, site: Site, profile: TargetProfile | None, surrogates: list[str], *,
-                 fold: str, opset: int) -> SiteOptions:
+                 fold: str, opset: int, upstream: dict | None = None) -> SiteOptions:
     """Every form of every surrogate in ``surrogates`` at ``site``, priced on ``profile`` (module docstring).
 
     ``opset`` only names the opset the forms are read at (pwl's op list); whether
     a form's opset is available is asked later (:meth:`FormOption.usable`).
+    ``upstream``: the swapped sites decided before in the site's graph
+    (:func:`swapper.plan.placement.decide_placement`).
     """
     after, prefix = _producer(index, site)
     options = []
     for name in surrogates:
         fn = functions.get(name)
-        placement, notes = decide_placement(index, site, fn, fold)
+        placement, notes = decide_placement(index, site, fn, fold, upstream)
         params = functions.surrogate_params(site.function, site.params, name)
         for form in forms_of(name):
             held = [p for p in "abcd" if p in form.moves and placement.get(p) == "fixed"]

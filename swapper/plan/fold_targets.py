@@ -114,9 +114,15 @@ def _check_layer(index: GraphIndex, site: Site, axis: str, width: int, reach: Re
     return ""
 
 
-def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, str]:
-    """The exact b/c fold target for ``site``, or None and the reason there is none."""
-    x = site.input
+def producer_fold(index: GraphIndex, site: Site, tensor: str | None = None,
+                  readers: tuple[str, ...] | None = None) -> tuple[ProducerFold | None, str]:
+    """The exact b/c fold target for ``site``, or None and the reason there is none.
+
+    ``tensor``/``readers``: the layer producing another tensor laid out like the
+    site input (an operand of the residual Add that produces it), read only by
+    the nodes named in ``readers``.
+    """
+    x = site.input if tensor is None else tensor
     node = index.producer.get(x)
     if node is None:  # in a body: its formal input, or a value of an enclosing graph (never folded into)
         where = "a graph input" if x in index.graph_inputs else \
@@ -124,9 +130,9 @@ def producer_fold(index: GraphIndex, site: Site) -> tuple[ProducerFold | None, s
         return None, f"{x!r} is {where}"
     if index.is_graph_output(x):
         return None, f"{x!r} is also a graph output"
-    inside = set(site.nodes)
+    inside = set(site.nodes if readers is None else readers)
     if any(u.name not in inside for u in index.users(x)):
-        return None, f"{x!r} also feeds nodes outside the site"
+        return None, f"{x!r} also feeds nodes outside the site" if readers is None else f"{x!r} has other readers"
     if any(out and out != x for out in node.output):
         return None, f"{node.op_type} {node.name!r} has more than one output"
     if is_op(node, "Conv", "ConvTranspose", "Gemm"):
@@ -180,11 +186,13 @@ def _matmul_add(index: GraphIndex, site: Site, add: onnx.NodeProto) -> tuple[Pro
     return None, f"Add {add.name!r} is not a MatMul followed by a constant bias"
 
 
-def consumer_folds(index: GraphIndex, site: Site) -> tuple[list[ConsumerFold] | None, str]:
+def consumer_folds(index: GraphIndex, site: Site, skip: frozenset = frozenset()
+                   ) -> tuple[list[ConsumerFold] | None, str]:
     """Every linear layer behind ``site.output`` (all paths must end in one that folds), or None and why not.
 
     The layers may sit behind pass-through ops (:func:`swapper.plan.layers.reach_linear`);
-    each fold says whether a needs a >= 0 on its path and what stops d.
+    each fold says whether a needs a >= 0 on its path and what stops d. Readers of
+    the output named in ``skip`` (residual Adds, routed by :mod:`swapper.plan.add_folds`) are left out.
     """
     y = site.output
     if index.is_graph_output(y):
@@ -193,7 +201,7 @@ def consumer_folds(index: GraphIndex, site: Site) -> tuple[list[ConsumerFold] | 
         return None, f"{y!r} has no consumers"
     rank = site_rank(index, site)
     axis = norm_axis(site.channel_axis if per_channel(site) else None, rank)
-    reached, failed = reach_linear(index, y, axis, rank, site.channels or 1)
+    reached, failed = reach_linear(index, y, axis, rank, site.channels or 1, skip=skip)
     if failed:
         return None, failed[0]
     folds = []

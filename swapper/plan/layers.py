@@ -249,13 +249,15 @@ def _step(index: GraphIndex, node: onnx.NodeProto, tensor: str, axis: int | None
 
 
 def reach_linear(index: GraphIndex, start: str, axis: int | None, rank: int | None, channels: int, *,
-                 gates: bool = True, limit: int = 64) -> tuple[list[Reach], list[str]]:
+                 gates: bool = True, limit: int = 64, skip: frozenset = frozenset()
+                 ) -> tuple[list[Reach], list[str]]:
     """The linear layers behind pass-through ops from ``start`` (module docstring), and the dead ends.
 
     ``axis``/``rank``: where per-channel parameters run at ``start`` (axis None:
     one scalar set, so any reshape passes). ``gates``: follow Mul by other
     tensors (a only). A dead end is a reader that is neither, a graph output on
-    the way, or a node reading two carried tensors (x·x is not linear).
+    the way, or a node reading two carried tensors (x·x is not linear). Readers of
+    ``start`` named in ``skip`` are left out (the caller routes them: residual Adds).
     """
     reached: list[Reach] = []
     failed: list[str] = []
@@ -266,7 +268,7 @@ def reach_linear(index: GraphIndex, start: str, axis: int | None, rank: int | No
         if tensor != start and index.is_graph_output(tensor):
             failed.append(f"{tensor!r} (after {steps[-1].node.op_type}) is a graph output")
         for node in {n.name: n for n in index.users(tensor)}.values():  # graph order, each node once
-            if node.name in seen:
+            if node.name in seen or (tensor == start and node.name in skip):
                 continue  # read through two carried tensors: caught below
             seen[node.name] = node
             if is_op(node, *LINEAR):

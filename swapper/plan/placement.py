@@ -11,7 +11,15 @@ Transformation: a site swapped for ``y = a·g(b·x + c) + d`` gets a placement
 - ``"in-surrogate"``      (a) moved inside g: a·g(z) = g(a·z) for a > 0 and positively homogeneous g;
 - ``"nodes"``             an explicit per-channel Mul/Add node (always exact);
 - ``"fixed"``             kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
-- ``"approx"``            (d) pushed into a zero-padded Conv's bias (inexact at the borders).
+- ``"approx"``            (d) pushed into a zero-padded Conv's bias (inexact at the borders);
+- ``"through-add"``       (b, c) x is a residual Add's output: c into the bias of the
+                          Add's exclusive linear producer of one operand, b into every
+                          operand (producers' rows and biases; an upstream swapped site's
+                          pre-activation, its other readers reading through 1/b);
+                          (d) y also feeds residual Adds: d into the linear readers' biases
+                          and, through each Add, into its other operand's exclusive linear
+                          producer or the layers reading its output. The rules and their
+                          maths are in :mod:`swapper.plan.add_folds`.
 
 Plans written before these words (``"held"``, ``"inner"``, ``"consumers+"``) read
 through :func:`canonical_placement`. :data:`LEGEND` is the one-line explanation
@@ -34,6 +42,10 @@ fitter keeps to it and the rewriter only checks it:
   only where the best a is closer to 0 than that (:mod:`swapper.fit.channel`),
   and float32 rounding of (g + d/a)·a is that of a·g + d.
 
+b > 0 ("positive", :func:`b_rule`) for "through-add": the scale may pass
+through an upstream site's activation (g(b·z) = b·g(z) holds for b > 0
+only); it is asked in every case so that it reads from the placement alone.
+
 Values that break the rule (a hand-edited plan) are refused with a
 one-line :class:`~swapper.errors.UsageError` (:func:`check_placement`).
 """
@@ -48,15 +60,27 @@ from swapper.errors import UsageError
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.functions.registry import Function
 from swapper.options import fold_word
+from swapper.plan.add_folds import (
+    THROUGH_ADD,
+    Upstream,
+    add_input,
+    add_readers,
+    residual_operands,
+    residual_readers,
+)
 from swapper.plan.fold_targets import consumer_folds, producer_fold
 from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
 
-PLACEMENTS = ("producer", "consumers", "consumers-via-max", "in-surrogate", "nodes", "fixed", "approx")
-ONLY_FOR = {"consumers-via-max": "a", "in-surrogate": "a", "approx": "d"}  # placements one parameter alone can take
+PLACEMENTS = ("producer", "consumers", "consumers-via-max", "in-surrogate", "nodes", "fixed", "approx", THROUGH_ADD)
+# the parameters each placement can hold (every one for the others)
+ONLY_FOR = {"consumers-via-max": "a", "in-surrogate": "a", "approx": "d", THROUGH_ADD: "bcd", "producer": "bc",
+            "consumers": "ad"}
 IN_CONSUMERS = ("consumers", "consumers-via-max")  # a folded into the consumers' weights
-FOLDING = ("producer", "consumers", "consumers-via-max", "approx", "in-surrogate")  # placements that rewrite layers
+# placements that rewrite layers
+FOLDING = ("producer", "consumers", "consumers-via-max", "approx", "in-surrogate", THROUGH_ADD)
+PRE_SCALED = ("producer", "nodes", THROUGH_ADD)  # where b may live for a to move inside g
 OLD_WORDS = {"held": "fixed", "inner": "in-surrogate", "consumers+": "consumers-via-max"}  # older plans' words
 # What each word means, for a reader of a table of placements (the terminal's swap table, report.html).
 LEGEND = {
@@ -67,6 +91,7 @@ LEGEND = {
     "nodes": "a per-channel Mul or Add node added to the graph",
     "fixed": "kept at 1 (a, b) or 0 (c, d) and not fitted: it has nowhere exact to go",
     "approx": "pushed into a zero-padded Conv's bias: inexact at the image borders",
+    THROUGH_ADD: "folded through a residual Add into the layers on its other side (b kept > 0)",
 }
 
 
@@ -89,6 +114,11 @@ def a_rule(placement: dict) -> str | None:
     return None
 
 
+def b_rule(placement: dict) -> str | None:
+    """What every value of b must satisfy under ``placement``: "positive" or None (module docstring)."""
+    return "positive" if placement.get("b") == THROUGH_ADD else None
+
+
 def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray],
                     surrogate: Function) -> dict[str, str]:
     """``placement`` with every parameter named (a missing one is "fixed"); UsageError if it or the values break it.
@@ -101,17 +131,24 @@ def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray]
     placement = canonical_placement(placement)
     place = {p: placement.get(p, "fixed") for p in PARAMS}
     for p, where in place.items():
-        if where not in PLACEMENTS or ONLY_FOR.get(where, p) != p:
+        if where not in PLACEMENTS or p not in ONLY_FOR.get(where, p):
             raise UsageError(f"site {site_id}: invalid placement {where!r} for {p}")
         if where == "fixed" and not np.all(values[p] == NEUTRAL[p]):
             raise UsageError(f"site {site_id}: {p} is fixed but not neutral ({NEUTRAL[p]})")
     if place["a"] == "in-surrogate":
         if not surrogate.homogeneous:
             raise UsageError(f"site {site_id}: a is placed inside {surrogate.name}, which is not homogeneous")
-        if place["b"] not in ("producer", "nodes"):
-            raise UsageError(f"site {site_id}: a inside g needs b in the producer or as a node")
-    if place["c"] == "producer" and place["b"] == "nodes":
-        raise UsageError(f"site {site_id}: c in the producer with b as a node would shift before scaling")
+        if place["b"] not in PRE_SCALED:
+            raise UsageError(f"site {site_id}: a inside g needs b in the producer, through an add or as a node")
+    if place["c"] in ("producer", THROUGH_ADD) and place["b"] == "nodes":
+        raise UsageError(f"site {site_id}: c {place['c']} with b as a node would shift before scaling")
+    if "producer" in (place["b"], place["c"]) and THROUGH_ADD in (place["b"], place["c"]):
+        raise UsageError(f"site {site_id}: b and c cannot fold into a producer and through an add at once")
+    if b_rule(place) == "positive" and np.any(values["b"] <= 0):
+        bad = np.flatnonzero(values["b"] <= 0)
+        channels = ", ".join(str(i) for i in bad[:5]) + (" ..." if len(bad) > 5 else "")
+        raise UsageError(f"site {site_id}: b through an add needs b > 0; channel {channels} breaks it "
+                         f"(placement {THROUGH_ADD!r}); re-plan instead of editing the values")
     rule, a = a_rule(place), values["a"]
     bad = np.flatnonzero(a <= 0) if rule == "positive" else np.flatnonzero(a == 0) if rule == "nonzero" else []
     if len(bad):
@@ -123,9 +160,13 @@ def check_placement(site_id: str, placement: dict, values: dict[str, np.ndarray]
     return place
 
 
-def decide_placement(index: GraphIndex, site: Site, surrogate: Function, policy: str) \
-        -> tuple[dict[str, str], list[str]]:
-    """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes)."""
+def decide_placement(index: GraphIndex, site: Site, surrogate: Function, policy: str,
+                     upstream: dict[str, Upstream] | None = None) -> tuple[dict[str, str], list[str]]:
+    """Where a, b, c, d of ``site`` live under fold ``policy``, and why (human-readable notes).
+
+    ``upstream``: the swapped sites decided before, by output tensor (:class:`~swapper.plan.add_folds.Upstream`);
+    b may pass through a residual Add into one of them.
+    """
     policy = fold_word(policy)
     if policy == "off":
         return {p: "nodes" for p in PARAMS}, ["fold off: every parameter is an explicit Mul/Add node"]
@@ -140,13 +181,16 @@ def decide_placement(index: GraphIndex, site: Site, surrogate: Function, policy:
         if not prod.can_shift:
             notes.append(f"c {rest}: {prod.reason}")
     else:
-        placement["b"] = placement["c"] = rest
-        notes.append(f"b, c {rest}: {why}")
+        placement["b"], placement["c"] = _through_add_input(index, site, upstream or {}, rest, why, notes)
 
-    cons, cons_why = consumer_folds(index, site)
-    if surrogate.homogeneous and placement["b"] in ("producer", "nodes"):
+    adds = residual_readers(index, site)
+    cons, cons_why = consumer_folds(index, site, skip=adds)
+    if surrogate.homogeneous and placement["b"] in PRE_SCALED:
         placement["a"] = "in-surrogate"
         notes.append(f"a moved inside {surrogate.name} (needs a > 0)")
+    elif cons is not None and adds:
+        placement["a"] = rest
+        notes.append(f"a {rest}: {site.output!r} also feeds the residual Add {', '.join(sorted(adds))}")
     elif cons is not None and any(f.reach.a_positive for f in cons):
         placement["a"] = "consumers-via-max"
         pools = sorted({p for f in cons if f.reach.a_positive for p in f.path})
@@ -157,23 +201,60 @@ def decide_placement(index: GraphIndex, site: Site, surrogate: Function, policy:
         placement["a"] = rest
         notes.append(f"a {rest}: {cons_why}")
 
-    reaches = cons is not None and not any(f.reach.d_block for f in cons)
-    if reaches and all(f.d_exact for f in cons):
-        placement["d"] = "consumers"
-    elif policy == "approximate" and reaches and all(f.d_exact or f.d_approx for f in cons):
-        placement["d"] = "approx"
-        padded = ", ".join(f.layer.node.name for f in cons if not f.d_exact)
-        notes.append(f"d approx: folded into zero-padded Conv bias ({padded}); inexact at the borders")
-    else:
-        placement["d"] = rest
-        if cons is None:
-            notes.append(f"d {rest}: {cons_why}")
-        elif not reaches:
-            notes.append(f"d {rest}: {next(f.reach.d_block for f in cons if f.reach.d_block)}")
-        else:
-            blocked = ", ".join(f"{f.layer.node.op_type} {f.layer.node.name!r}" for f in cons if not f.d_exact)
-            notes.append(f"d {rest}: no exact bias fold into {blocked}")
+    placement["d"] = _offset(index, site, cons, cons_why, adds, policy, rest, notes)
     if a_rule(placement) == "nonzero":
         notes.append("a kept away from 0: d is a node before the consumers that scale by a, so it adds d/a")
     logger.debug("site %s placement %s", site.id, placement)
     return {p: placement[p] for p in PARAMS}, notes
+
+
+def _through_add_input(index: GraphIndex, site: Site, upstream: dict[str, Upstream], rest: str, why: str,
+                       notes: list[str]) -> tuple[str, str]:
+    """(b, c) placements when x has no foldable producer: through a residual Add, or ``rest``."""
+    route, add_why = add_input(index, site, upstream)
+    if route is None:
+        residual = residual_operands(index, index.producer.get(site.input))[0] is not None
+        notes.append(f"b, c {rest}: {add_why if residual else why}")
+        return rest, rest
+    b = THROUGH_ADD if not route.scale_why else rest
+    c = THROUGH_ADD if route.shift is not None else rest
+    if b != THROUGH_ADD:
+        notes.append(f"b {rest}: {route.scale_why}")
+    if b == "nodes" and c == THROUGH_ADD:
+        c = "nodes"  # a shift through the add would come before the b node's scaling
+        notes.append("c nodes: b is a node, and c must be added after it")
+    elif c != THROUGH_ADD:
+        notes.append(f"c {rest}: no operand of Add {route.add.name!r} is an exclusive linear layer with a bias")
+    if THROUGH_ADD in (b, c):
+        into = route.layers() if b == THROUGH_ADD else [route.layers()[route.shift]]
+        which = "b, c" if b == c else ("b" if b == THROUGH_ADD else "c")
+        notes.append(f"{which} through add {route.add.name!r} into {', '.join(into)}"
+                     + (" (needs b > 0)" if b == THROUGH_ADD else ""))
+    return b, c
+
+
+def _offset(index: GraphIndex, site: Site, cons, cons_why: str, adds: frozenset, policy: str, rest: str,
+            notes: list[str]) -> str:
+    """Where d lives: the linear readers of y and, through residual Adds, the layers beside or behind them."""
+    routes, add_why = add_readers(index, site) if adds else ([], "")
+    reaches = cons is not None and not any(f.reach.d_block for f in cons) and not add_why
+    folds = list(cons or []) + [f for r in routes for f in r.onward or []]
+    through = f" and through add into {', '.join(n for r in routes for n in r.layers())}" if routes else ""
+    if reaches and all(f.d_exact for f in folds):
+        if routes:
+            notes.append(f"d into its linear readers{through}")
+        return THROUGH_ADD if routes else "consumers"
+    if policy == "approximate" and reaches and all(f.d_exact or f.d_approx for f in folds):
+        padded = ", ".join(f.layer.node.name for f in folds if not f.d_exact)
+        notes.append(f"d approx: folded into zero-padded Conv bias ({padded}){through}; inexact at the borders")
+        return "approx"
+    if cons is None:
+        notes.append(f"d {rest}: {cons_why}")
+    elif add_why:
+        notes.append(f"d {rest}: {add_why}")
+    elif not reaches:
+        notes.append(f"d {rest}: {next(f.reach.d_block for f in cons if f.reach.d_block)}")
+    else:
+        blocked = ", ".join(f"{f.layer.node.op_type} {f.layer.node.name!r}" for f in folds if not f.d_exact)
+        notes.append(f"d {rest}: no exact bias fold into {blocked}")
+    return rest

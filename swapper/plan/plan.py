@@ -18,7 +18,10 @@ and ``placement`` says where each of a, b, c, d lives in the rewritten graph:
 - ``"in-surrogate"``      (a only) moved inside g, allowed when g is positively homogeneous and a > 0;
 - ``"nodes"``             emitted as per-channel Mul/Add nodes (adds nodes, always exact);
 - ``"fixed"``             kept at its neutral value (1 for a, b; 0 for c, d); the fitter may not move it;
-- ``"approx"``            (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders).
+- ``"approx"``            (d only) pushed into a zero-padded Conv's bias (no nodes, inexact at borders);
+- ``"through-add"``       (b, c) carried through the residual Add that produces x into its
+                          operands' layers (b > 0); (d) into y's linear readers and through the
+                          residual Adds reading y (:mod:`swapper.plan.add_folds`).
 
 Each swap names the function it replaces (``SiteSwap.function``) and the
 surrogate written instead (``SiteSwap.surrogate``). Plans written before these
@@ -49,7 +52,7 @@ import numpy as np
 
 from swapper.functions.params import NEUTRAL, PARAMS
 from swapper.options import fold_word
-from swapper.plan.placement import a_rule, canonical_placement, check_placement
+from swapper.plan.placement import a_rule, b_rule, canonical_placement, check_placement
 
 logger = logging.getLogger(__name__)
 
@@ -91,6 +94,11 @@ class SiteSwap:
         """
         rule = a_rule(self.placement)
         return {"positive_a": rule == "positive", "nonzero_a": rule == "nonzero"}
+
+    def fit_bounds(self) -> dict[str, bool]:
+        """Every option the fitter takes from the placement: :meth:`a_bounds` and ``positive_b``
+        (b > 0 for "through-add", :func:`swapper.plan.placement.b_rule`)."""
+        return {**self.a_bounds(), "positive_b": b_rule(self.placement) == "positive"}
 
     def check(self) -> dict[str, str]:
         """The placement with every parameter named; UsageError if the current values break it
@@ -251,6 +259,7 @@ def make_plan(
     from swapper.core.graph import GraphIndex
     from swapper.core.model_io import MAX_OPSET
     from swapper.errors import UsageError
+    from swapper.plan.add_folds import Upstream
     from swapper.plan.bodies import SiteGraphs
     from swapper.plan.choose import choose, chosen_line, opset_hints, site_options
 
@@ -272,6 +281,8 @@ def make_plan(
     opset = index.opset
     name = None if target is None else target.name
     swaps, skipped, remaining, hints = [], [], [], {}
+    # swapped sites decided so far, by graph (main graph or one body) and output: b may pass into them
+    upstreams: dict[tuple, dict[str, Upstream]] = {}
     for site in sites:
         explicit = bool(site_ids) or site.id in pinned
         lacking = [] if target is None else _lacking(graphs.index_for(site), site, target)
@@ -309,7 +320,9 @@ def make_plan(
         if not order or (fn.is_cheap and forced is None and not lacking):
             skip(f"no default surrogate for {site.function}; name one with --to")
             continue
-        opts = site_options(graphs.index_for(site), site, target, order, fold=site_fold or fold, opset=opset)
+        upstream = upstreams.setdefault(site.body, {})
+        opts = site_options(graphs.index_for(site), site, target, order, fold=site_fold or fold, opset=opset,
+                            upstream=upstream)
         choice = choose(opts, order, opset, forced=forced, form=form)
         if target is not None and forced is None:
             for k, op in opset_hints(opts, order, opset, min(target.opset_max, MAX_OPSET), choice):
@@ -322,6 +335,7 @@ def make_plan(
             notes.append(chosen_line(opts, option))
         swaps.append(_site_swap(site, option, notes, None if target is None else
                                 {"original": opts.original.cost, "candidate": option.cost}))
+        upstream[site.output] = Upstream(site, dict(option.placement), functions.get(option.surrogate).homogeneous)
     plan = Plan(fold=fold, swaps=swaps, skipped=skipped, target=name, opset=opset, remaining=remaining,
                 hints=[f"{op} needs opset {k}; this model is opset {opset}; rerun with --opset {k} "
                        f"(sites {', '.join(ids)})" for (k, op), ids in sorted(hints.items())])
@@ -360,5 +374,8 @@ def _site_swap(site, option, notes: list[str], cost: dict | None) -> SiteSwap:
     # the start keeps to what the placement asks of a, as every later fit does
     start = _starting_params(site.function, site.params, option.surrogate, tparams, "".join(swap.free()),
                              **swap.a_bounds())
+    if swap.fit_bounds()["positive_b"] and start[1] <= 0:  # and b > 0 where b passes through an add
+        start = _starting_params(site.function, site.params, option.surrogate, tparams,
+                                 "".join(p for p in swap.free() if p != "b"), **swap.a_bounds())
     swap.set_params(**{p: np.full(channels, v) for p, v in zip(PARAMS, start)})
     return swap

@@ -17,11 +17,14 @@ when a part did not run):
 - ``sites``: one entry per swapped site: ``site_id, function, surrogate, form``
   (the emission form written), ``placement {a,b,c,d}`` (words of
   swapper/plan/placement.py: producer, consumers, consumers-via-max,
-  in-surrogate, nodes, fixed, approx), ``nodes_added`` (how many nodes the graph
+  in-surrogate, nodes, fixed, approx, through-add), ``nodes_added`` (how many nodes the graph
   gained at the site: the nodes written there minus the original's nodes they
   replace, 0 when it gained none, also when it shrank), ``site_nodes``
   ``{"original", "written"}`` (both counts), ``folded_into, mse_start, mse_fit,
-  level, bias_corrected, notes`` (mse values null without calibration).
+  level, bias_corrected, refit, notes`` (mse values null without calibration;
+  ``refit``: ``{refitted, held_out_samples, mse_current, mse_refit,
+  consumers}``, the consumer refit's decision for the site, or null when none
+  was weighed).
 - ``calibration``: ``{"samples", "tokens", "timings_s", "sites"}`` (``tokens``: which attention mask the
   statistics of token-shaped sites honoured and how many tokens they read, or why none; per-site fit details,
   with the recorded input range ``x_min`` / ``x_max`` per channel) or null.
@@ -119,7 +122,7 @@ TOP_KEYS = ("schema", "created_utc", "tool", "inputs", "plan", "sites", "calibra
 
 
 SITE_KEYS = ("site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes", "folded_into",
-             "mse_start", "mse_fit", "level", "bias_corrected", "notes")
+             "mse_start", "mse_fit", "level", "bias_corrected", "refit", "notes")
 
 
 def _versions() -> dict:
@@ -181,6 +184,7 @@ def site_rows(plan, records, calibration) -> list[dict]:
             "mse_start": fit.mse_start if fit else None, "mse_fit": fit.mse_fit if fit else None,
             "level": fit.level if fit else None,
             "bias_corrected": list(fit.bias_corrected) if fit else [],
+            "refit": dict(fit.refit) if fit and fit.refit else None,
             # plan, rewrite and fit may each record the same fact; keep the first of each, in order
             "notes": list(dict.fromkeys(list(s.notes) + (list(rec.notes) if rec else [])
                                         + (list(fit.notes) if fit else []))),

@@ -228,11 +228,12 @@ def render_html(payload: dict) -> str:
         rows = [[s["site_id"], f"{s['function']} → {s['surrogate']}" + (f" ({s['form']})" if s.get("form") else ""),
                  " ".join(f"{k}:{s['placement'].get(k, '-')}" for k in "abcd"),
                  "–" if not s.get("site_nodes") else f"{s['site_nodes']['original']} → {s['site_nodes']['written']}",
-                 num(s["mse_start"]), num(s["mse_fit"]), "; ".join(s["notes"])] for s in payload["sites"]]
+                 num(s["mse_start"]), num(s["mse_fit"]), _refit(s.get("refit")), "; ".join(s["notes"])]
+                for s in payload["sites"]]
         legend = "".join(f"<li>{_e(line)}</li>" for line in placement_legend(payload["sites"]))
         parts.append("<h2>Swapped sites</h2>" + _table(
             ["site", "function → surrogate", "where a b c d live", "nodes (original → swapped)", "MSE start",
-             "MSE fitted", "notes"], rows, numeric={4, 5})
+             "MSE fitted", "consumer refit (held-out MSE current → refitted)", "notes"], rows, numeric={4, 5})
             + "<p><small>Where a, b, c, d of y = a·g(b·x + c) + d live:</small></p><ul><small>" + legend
             + "</small></ul><p><small>nodes: the site's nodes in the original → in the swapped model.</small></p>")
     plan = payload.get("plan") or {}
@@ -257,3 +258,13 @@ def render_html(payload: dict) -> str:
     parts.append(f"<p class='foot'>swapper {_e(tool['swapper'])}, onnxruntime {_e(tool['onnxruntime'])}, "
                  f"onnx {_e(tool['onnx'])}; created {_e(payload['created_utc'])}.</p></body></html>")
     return "\n".join(parts)
+
+
+def _refit(refit: dict | None) -> str:
+    """The site's consumer refit decision with its held-out figures, or "-" when none was weighed."""
+    if not refit:
+        return "-"
+    word = "taken" if refit["refitted"] else "not taken"
+    if refit.get("mse_current") is None:
+        return word
+    return f"{word}: {refit['mse_current']:.4g} → {refit['mse_refit']:.4g} ({refit['held_out_samples']} samples)"

@@ -41,13 +41,16 @@ def sites_table(sites: list[Site], title: str) -> Table:
 
 def swap_table(rows: list[dict]) -> Table:
     """The per-site summaries of :func:`swapper.report.build.site_rows` as a terminal table, its words
-    explained beneath it (the placement words it uses, the nodes column)."""
+    explained beneath it (the placement words it uses, the nodes column, the refit column)."""
     legend = ["a, b, c, d of y = a·g(b·x + c) + d live where the table says:"]
     legend += [f"  {line}" for line in placement_legend(rows)]
     legend.append("nodes: the site's nodes in the original → in the swapped model")
+    legend.append("refit: whether the consumer refit was kept, and its consumers' MSE on held-out samples "
+                  "(current → refitted)")
     table = Table(title="swapped sites", title_justify="left", caption=Text("\n".join(legend)),
                   caption_justify="left")
-    for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes", "mse start", "mse fitted"):
+    for col in ("site", "function → surrogate", "a", "b", "c", "d", "nodes", "mse start", "mse fitted",
+                "refit (held-out mse)"):
         table.add_column(col)
     for r in rows:
         nodes = r.get("site_nodes")
@@ -58,6 +61,7 @@ def swap_table(rows: list[dict]) -> Table:
             "-" if not nodes else f"{nodes['original']} → {nodes['written']}",
             "-" if r["mse_start"] is None else f"{r['mse_start']:.3g}",
             "-" if r["mse_fit"] is None else f"{r['mse_fit']:.3g}",
+            _refit_cell(r.get("refit")),
         )
         table.add_row(*(Text(str(c)) for c in cells))
     return table
@@ -65,6 +69,16 @@ def swap_table(rows: list[dict]) -> Table:
 
 def skipped_lines(plan: Plan) -> list[str]:
     return [f"left {s.site_id} ({s.function}): {s.reason}" for s in plan.skipped]
+
+
+def _refit_cell(refit: dict | None) -> str:
+    """"yes 0.26 → 0.15" / "no 0.12 → 0.13": the site's consumer refit and its held-out figures."""
+    if not refit:
+        return "-"
+    word = "yes" if refit["refitted"] else "no"
+    if refit.get("mse_current") is None:
+        return word
+    return f"{word} {refit['mse_current']:.3g} → {refit['mse_refit']:.3g}"
 
 
 def target_lines(plan: Plan) -> list[str]:

@@ -7,7 +7,11 @@ is applied first) and each of a, b, c, d is placed exactly as the plan says: fol
 of ``x`` (its output channels scaled/shifted), folded into the linear layers
 that read ``y``, directly or behind pools/reshapes/gates (their input-channel
 weights scaled, ``W·d`` added to their bias; "consumers-via-max" = behind a max pool),
-moved inside ``g`` (homogeneous g), or emitted as per-channel Mul/Add nodes.
+moved inside ``g`` (homogeneous g), carried through residual Adds into the
+layers around them ("through-add", :mod:`swapper.rewrite.transport`; sites are
+carried out in graph order so those folds compose), or emitted as per-channel
+Mul/Add nodes. An "approx" d reports the border error of each zero-padded Conv
+it enters (:func:`swapper.rewrite.folding.border_note`).
 The rewriter never moves a parameter: a plan whose values break what its
 placement asks (:func:`swapper.plan.placement.check_placement`, e.g. a < 0
 behind a max pool), or whose folds the graph does not allow, is refused with
@@ -25,35 +29,33 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import onnx
-from onnx import helper, numpy_helper
+from onnx import helper
 
 from swapper import functions
 from swapper.core.emit import Emitter
-from swapper.core.graph import GraphIndex, attr
+from swapper.core.graph import GraphIndex
 from swapper.core.surgery import (
     all_names,
     copy_model,
-    copy_name,
-    input_at,
-    rewire,
     site_positions,
     splice,
     used_names,
 )
 from swapper.errors import BadModelError, UsageError
 from swapper.functions.forms import Form, default_form, get_form
-from swapper.functions.params import NEUTRAL, PARAMS
+from swapper.functions.params import PARAMS
+from swapper.plan.add_folds import THROUGH_ADD, residual_readers
 from swapper.plan.fold_targets import (
-    ConsumerFold,
-    ProducerFold,
     consumer_folds,
     producer_fold,
     site_rank,
 )
-from swapper.plan.placement import FOLDING, IN_CONSUMERS, check_placement
+from swapper.plan.placement import FOLDING, IN_CONSUMERS, canonical_placement, check_placement
 from swapper.plan.plan import Plan, SiteSwap
 from swapper.rewrite.bodies import floor_with_bodies, has_body_swaps, node_count, rewrite_bodies
-from swapper.rewrite.folding import input_offset, input_scale, scale_shift_output
+from swapper.rewrite.folding import border_note
+from swapper.rewrite.transport import Transport
+from swapper.rewrite.weights import Weights, apply_consumer, apply_producer, is_neutral
 from swapper.scan.sites import Site
 
 logger = logging.getLogger(__name__)
@@ -82,96 +84,6 @@ class RewriteResult:
     records: list[SiteRecord]
 
 
-# ------------------------------------------------------------- weight copies
-class _Weights:
-    """Folded copies of weight tensors, in float64 until written out.
-
-    Each (node, input) that gets folded is rewired once to a fresh tensor that
-    only it reads (named by :func:`swapper.core.surgery.copy_name`, added by
-    :func:`swapper.core.surgery.splice`); later folds into the same input update
-    that copy, so two sites folding into one layer compose.
-    """
-
-    def __init__(self, index: GraphIndex, taken: set[str]):
-        self.index = index
-        self.taken = taken
-        self.values: dict[str, np.ndarray] = {}
-        self.dtypes: dict[str, np.dtype] = {}
-
-    def read(self, node: onnx.NodeProto, slot: int) -> np.ndarray | None:
-        name = input_at(node, slot)
-        if not name:
-            return None
-        if name in self.values:
-            return self.values[name].copy()
-        value = self.index.const(name)
-        return None if value is None else value.astype(np.float64)
-
-    def dtype(self, node: onnx.NodeProto, slot: int) -> np.dtype:
-        """dtype of the tensor in ``slot``; a missing bias takes the weight's (slot 1) dtype."""
-        name = input_at(node, slot)
-        if name in self.dtypes:
-            return self.dtypes[name]
-        value = self.index.const(name) if name else None
-        if value is None:
-            return self.dtype(node, 1) if slot != 1 else np.dtype(np.float32)
-        return value.dtype
-
-    def write(self, node: onnx.NodeProto, slot: int, value: np.ndarray, em: Emitter) -> None:
-        """Set input ``slot`` of ``node``; its first write rewires it to a new tensor under ``em``'s prefix."""
-        name = input_at(node, slot)
-        if name in self.values:
-            self.values[name] = np.asarray(value, dtype=np.float64)
-            return
-        dtype = self.dtype(node, slot)
-        new = copy_name(node, slot, self.taken, em.prefix)
-        rewire(node, slot, new)
-        self.values[new] = np.asarray(value, dtype=np.float64)
-        self.dtypes[new] = np.dtype(dtype)
-
-    def tensors(self) -> list[onnx.TensorProto]:
-        return [numpy_helper.from_array(self.values[n].astype(self.dtypes[n]), n) for n in sorted(self.values)]
-
-
-def _neutral(p: str, v: np.ndarray) -> bool:
-    return bool(np.all(v == NEUTRAL[p]))
-
-
-def _apply_producer(w: _Weights, pf: ProducerFold, b: np.ndarray, c: np.ndarray, em: Emitter) -> list[str]:
-    """Fold b (scale) and c (shift) into the layer that produces x. Returns the touched node names."""
-    node, bias_node = pf.node, pf.bias_node
-    bias = None if bias_node is None else w.read(bias_node, pf.bias_slot)
-    new_w, new_bias = scale_shift_output(pf.kind, node, w.read(node, 1), bias, b, c)
-    touched = []
-    if not _neutral("b", b):
-        w.write(node, 1, new_w, em)
-        touched.append(node.name)
-    if bias_node is not None and (not _neutral("c", c) or (bias is not None and not _neutral("b", b))):
-        w.write(bias_node, pf.bias_slot, new_bias, em)
-        touched.append(bias_node.name)
-    return touched
-
-
-def _apply_consumer(w: _Weights, f: ConsumerFold, a: np.ndarray | None, d: np.ndarray | None,
-                    em: Emitter) -> list[str]:
-    """Fold y -> a·y + d into one linear consumer. d uses the weights before the a scaling."""
-    layer = f.layer
-    node = layer.node
-    weight = w.read(node, 1)
-    touched = []
-    if d is not None:
-        offset = input_offset(layer.kind, node, weight, d)
-        if layer.kind == "gemm":  # C is scaled by beta inside Gemm
-            offset = offset / float(attr(node, "beta", 1.0))
-        bias = w.read(layer.bias_node, layer.bias_slot)
-        w.write(layer.bias_node, layer.bias_slot, (0.0 if bias is None else bias) + offset, em)
-        touched.append(layer.bias_node.name)
-    if a is not None:
-        w.write(node, 1, input_scale(layer.kind, node, weight, a), em)
-        touched.append(node.name)
-    return touched
-
-
 # ----------------------------------------------------------- one site swap
 def _vectors(swap: SiteSwap) -> dict[str, np.ndarray]:
     vals = {p: np.asarray(getattr(swap, p), dtype=np.float64).ravel() for p in PARAMS}
@@ -198,23 +110,24 @@ def _param_shape(index: GraphIndex, site: Site, swap: SiteSwap, n: int) -> tuple
     return (n,) + (1,) * (rank - 1 - axis)
 
 
-def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap, em: Emitter,
-               analysis: tuple | None) -> SiteRecord:
+def _swap_site(index: GraphIndex, weights: Weights, site: Site, swap: SiteSwap, em: Emitter,
+               analysis: tuple | None, transport: Transport) -> SiteRecord:
     """Emit one site's surrogate into ``em`` and fold its parameters as the plan places them; ``analysis`` is
-    ``(producer_fold(...), consumer_folds(...))`` taken before any weight was rewired (None when the
-    plan folds nothing of this site). Raises UsageError where the plan cannot be carried out as it stands."""
+    ``(producer_fold(...), consumer_folds(...), residual Adds reading y)`` taken before any weight was
+    rewired (None when the plan folds nothing of this site); ``transport`` carries "through-add" folds.
+    Raises UsageError where the plan cannot be carried out as it stands."""
     fn = functions.get(swap.surrogate)
     form = _form(swap, index.opset)
     vals = _vectors(swap)
     place = check_placement(site.id, swap.placement, vals, fn)  # also what the values of a must satisfy
     vals = form.emitted_values(vals, swap.surrogate_params)  # the values the form's own E(z) needs
-    moved = [p for p in PARAMS if place[p] == "fixed" and not _neutral(p, vals[p])]
+    moved = [p for p in PARAMS if place[p] == "fixed" and not is_neutral(p, vals[p])]
     if moved:
         raise UsageError(f"site {site.id}: form {form.name} of {fn.name} moves {', '.join(moved)}, which the "
                          "plan holds; re-plan for this form")
     if place["a"] == "in-surrogate":  # a·g(z) = g(a·z) for a > 0
         vals["b"], vals["c"], vals["a"] = vals["b"] * vals["a"], vals["c"] * vals["a"], np.ones(1)
-    need = {p: not _neutral(p, vals[p]) for p in PARAMS}
+    need = {p: not is_neutral(p, vals[p]) for p in PARAMS}
     n = max(v.size for v in vals.values())
     np_dtype = helper.tensor_dtype_to_np_dtype(index.dtypes.get(site.input, onnx.TensorProto.FLOAT))
 
@@ -225,13 +138,17 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         return em.const(np.broadcast_to(v, (n,)).reshape(_param_shape(index, site, swap, n)), p, np_dtype)
 
     folded: list[str] = []
+    notes = list(swap.notes)
     in_b, in_c = place["b"] == "producer" and need["b"], place["c"] == "producer" and need["c"]
     if in_b or in_c:
         pf, why = analysis[0]
         if pf is None or (in_c and not pf.can_shift):
             raise UsageError(f"site {site.id}: plan folds b/c into the producer but {why or pf.reason}")
-        folded += _apply_producer(weights, pf, vals["b"] if in_b else np.ones(1),
+        folded += apply_producer(weights, pf, vals["b"] if in_b else np.ones(1),
                                   vals["c"] if in_c else np.zeros(1), em)
+    thru_b, thru_c = place["b"] == THROUGH_ADD and need["b"], place["c"] == THROUGH_ADD and need["c"]
+    if thru_b or thru_c:
+        folded += transport.fold_input(site.id, vals["b"] if thru_b else None, vals["c"] if thru_c else None, em)
     x = site.input
     if place["b"] == "nodes" and need["b"]:
         x = em.node("Mul", [x, const("b", vals["b"])])
@@ -239,7 +156,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         x = em.node("Add", [x, const("c", vals["c"])])
 
     a_cons = place["a"] in IN_CONSUMERS and need["a"]
-    d_cons = place["d"] in ("consumers", "approx") and need["d"]
+    d_cons = place["d"] in ("consumers", "approx", THROUGH_ADD) and need["d"]
     a_node, d_node = place["a"] == "nodes" and need["a"], place["d"] == "nodes" and need["d"]
     # The consumers will scale the Add's output by a: emit d/a so they see a·g + d (a != 0 is checked above).
     d_emit = np.divide(vals["d"], vals["a"], out=np.zeros(n)) if a_cons and d_node else vals["d"]
@@ -247,14 +164,21 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
         folds, why = analysis[1]
         if folds is None:
             raise UsageError(f"site {site.id}: plan folds a/d into the consumers but {why}")
-        ok = (lambda f: f.d_exact) if place["d"] == "consumers" else (lambda f: f.d_exact or f.d_approx)
-        if d_cons and not all(ok(f) and not f.reach.d_block for f in folds):
+        if a_cons and analysis[2]:
+            raise UsageError(f"site {site.id}: a cannot fold into the consumers: the residual Add "
+                             f"{', '.join(sorted(analysis[2]))} reads the output too")
+        ok = (lambda f: f.d_exact) if place["d"] != "approx" else (lambda f: f.d_exact or f.d_approx)
+        if d_cons and not all(ok(f) and not f.reach.d_block for f in folds + transport.onward(site.id)):
             raise UsageError(f"site {site.id}: d cannot fold into every consumer's bias")
         if a_cons and place["a"] == "consumers" and any(f.reach.a_positive for f in folds):
             raise UsageError(f"site {site.id}: a reaches its consumers through a max pool; place it as consumers-via-max")
         for f in folds:
-            folded += _apply_consumer(weights, f, vals["a"] if a_cons else None,
+            folded += apply_consumer(weights, f, vals["a"] if a_cons else None,
                                       vals["d"] if d_cons else None, em)
+        if d_cons and place["d"] != "consumers":
+            folded += transport.fold_offset(site.id, vals["d"], em)
+        if d_cons and place["d"] == "approx":
+            notes += [border_note(index, f, vals["d"]) for f in folds + transport.onward(site.id) if not f.d_exact]
 
     g_out = em.fresh("g") if (a_node or d_node) else site.output
     form.emit(em, x, g_out, dict(swap.surrogate_params))
@@ -265,7 +189,7 @@ def _swap_site(index: GraphIndex, weights: _Weights, site: Site, swap: SiteSwap,
     if not em.nodes or em.nodes[-1].output[0] != site.output:
         raise BadModelError(f"site {site.id}: emitter for {fn.name} did not write {site.output!r}")
     return SiteRecord(site.id, site.function, swap.surrogate, place, sorted(set(folded)), len(em.nodes),
-                      list(swap.notes), form.name, nodes_replaced=len(site.nodes))
+                      notes, form.name, nodes_replaced=len(site.nodes))
 
 
 def _form(swap: SiteSwap, opset: int) -> Form:
@@ -304,20 +228,31 @@ def rewrite(model: onnx.ModelProto, sites: list[Site], plan: Plan) -> RewriteRes
     positions = site_positions(out, chosen)
     used_before = used_names(out)
     taken = all_names(out)
-    weights = _Weights(index, taken)
+    weights = Weights(index, taken)
     # Analyse on the untouched copy (folds rewire weights to new tensors), and only the sites whose
     # plan folds something: an all-"nodes" plan (refit's) needs no analysis at all.
-    analyses = {s.site_id: (producer_fold(index, by_id[s.site_id]), consumer_folds(index, by_id[s.site_id]))
-                for s in plan.swaps if set(s.placement.values()) & set(FOLDING)}
-    inserts, emitted, records = {}, [], []
-    for swap in plan.swaps:
+    analyses = {}
+    for s in plan.swaps:
+        if set(s.placement.values()) & set(FOLDING):
+            site = by_id[s.site_id]
+            adds = residual_readers(index, site)
+            analyses[s.site_id] = (producer_fold(index, site), consumer_folds(index, site, skip=adds), adds)
+    # graph order: a scale passed upstream through an add lands after that site's own folds
+    ordered = sorted(plan.swaps, key=lambda s: min(positions.get(s.site_id) or [0]))
+    transport = Transport(index, weights, [(by_id[s.site_id], canonical_placement(
+                              {p: s.placement.get(p, "fixed") for p in PARAMS}),
+                                            functions.get(s.surrogate).homogeneous) for s in ordered],
+                          {sid: a[0] for sid, a in analyses.items()})
+    inserts, emitted, records = {}, [], {}
+    for swap in ordered:
         site = by_id[swap.site_id]
         if swap.function != site.function:
             raise UsageError(f"site {site.id}: plan says {swap.function}, model has {site.function}")
         em = Emitter(prefix=f"swapper/{site.id}", opset=index.opset, taken=taken, dtype=_site_dtype(index, site))
-        records.append(_swap_site(index, weights, site, swap, em, analyses.get(site.id)))
+        records[site.id] = _swap_site(index, weights, site, swap, em, analyses.get(site.id), transport)
         inserts[site.id] = list(em.nodes)
         emitted.extend(em.initializers)
+    records = [records[s.site_id] for s in plan.swaps]
     splice(out, chosen, positions, inserts, emitted + weights.tensors(), used_before)
     _stamp_plan(out, plan)
     logger.info("rewrote %d sites: %d -> %d nodes", len(records), len(model.graph.node), len(out.graph.node))

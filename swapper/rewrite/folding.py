@@ -1,4 +1,9 @@
-"""The arithmetic of folding surrogate parameters into linear layers' weights and biases."""
+"""The arithmetic of folding surrogate parameters into linear layers' weights and biases.
+
+Also the price of an inexact fold: :func:`border_error` measures what folding an
+input offset d into a zero-padded Conv's bias (W·d) gets wrong at the borders,
+where the Conv reads padding zeros instead of d (ONNX operator spec, Conv).
+"""
 from __future__ import annotations
 
 import logging
@@ -6,7 +11,8 @@ import logging
 import numpy as np
 import onnx
 
-from swapper.core.graph import attr
+from swapper.core.conv import conv_geometry, tap_windows
+from swapper.core.graph import GraphIndex, attr
 
 logger = logging.getLogger(__name__)
 
@@ -88,3 +94,42 @@ def input_offset(kind: str, node: onnx.NodeProto, w: np.ndarray, d: np.ndarray) 
     if kind == "matmul":
         return np.broadcast_to(d, (w.shape[0],)) @ w
     raise ValueError(f"no offset fold for consumer kind {kind}")
+
+
+def border_error(node: onnx.NodeProto, w: np.ndarray, d: np.ndarray, spatial: tuple[int, ...]) -> np.ndarray:
+    """Conv(pad0(y + d)) − (Conv(pad0(y)) + W·d) per output channel and position: (M, out...).
+
+    The Conv is linear, so this is Conv of the constant map d (zero padded) minus
+    W·d, whatever y is: zero where a window lies inside the input, −Σ W·d over
+    the taps that read padding elsewhere. ``spatial``: the input's spatial size.
+    """
+    kernel = tuple(w.shape[2:])
+    begin, end, strides, dilations, out = conv_geometry(node, kernel, tuple(spatial))
+    group = int(attr(node, "group", 1))
+    m, c_g = w.shape[0], w.shape[1]
+    const = np.broadcast_to(np.asarray(d, dtype=np.float64).reshape(-1, *([1] * len(spatial))),
+                            (c_g * group,) + tuple(spatial))
+    xp = np.pad(const, [(0, 0)] + list(zip(begin, end)))
+    outs = np.zeros((m,) + tuple(out))
+    wf = w.astype(np.float64).reshape(m, c_g, -1)
+    ch = _grouped(np.arange(c_g * group, dtype=np.float64), m, c_g, group).astype(int)  # input channel per (o, j)
+    for t, window in enumerate(tap_windows(kernel, strides, dilations, out)):
+        taps = xp[(slice(None),) + window]  # (C, out...)
+        outs += np.einsum("oj,oj...->o...", wf[:, :, t], taps[ch])
+    return outs - input_offset("conv", node, w.astype(np.float64), d).reshape((m,) + (1,) * len(out))
+
+
+def border_note(index: GraphIndex, fold, d: np.ndarray) -> str:
+    """One line on what folding d into the zero-padded Conv of ``fold`` (a ConsumerFold) gets wrong."""
+    node = fold.layer.node
+    shape = index.shape(fold.reach.tensor)
+    if shape is None or not all(isinstance(v, int) for v in shape[2:]):
+        return f"d approx into Conv {node.name!r}: border error unknown (input shape unknown)"
+    err = np.abs(border_error(node, fold.layer.weight, np.broadcast_to(d, (fold.layer.widths()[0],)), shape[2:]))
+    ref = np.abs(input_offset("conv", node, fold.layer.weight.astype(np.float64),
+                              np.broadcast_to(d, (fold.layer.widths()[0],))))
+    hit = err.max(axis=0) > 1e-12 * max(float(ref.max(initial=0.0)), 1e-30)
+    return (f"d approx into Conv {node.name!r}: border error up to {float(err.max(initial=0.0)):.3g} "
+            f"(mean {float(err.mean()):.3g}) on {int(hit.sum())} of {hit.size} output positions, "
+            f"against |W·d| up to {float(ref.max(initial=0.0)):.3g}")
+

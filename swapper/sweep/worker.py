@@ -159,8 +159,9 @@ def _run_group(job: SweepJob, group: list[dict]) -> list[dict]:
             if spec["refit"]:
                 from swapper.calibrate.refit import refit_consumers
 
+                # as swap refits (swapper.api.swap): layers producing graph outputs are left alone
                 refit = refit_consumers(ctx.model, calibration.model, ctx.sites, calibration.plan, ctx.calib,
-                                        batch_size=job.batch_size, seed=job.seed, threads=job.threads)
+                                        batch_size=job.batch_size, seed=job.seed, threads=job.threads, outputs=False)
                 result = refit.apply_to(calibration)
             candidate = rewrite(result.model, ctx.sites, result.plan).model
             comparison = compare(ctx.reference, candidate, ctx.val, batch_size=job.batch_size)

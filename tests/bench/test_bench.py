@@ -25,11 +25,11 @@ TOP = {"schema", "created_utc", "machine", "settings", "models", "goals"}
 MACHINE = {"cpu", "cores", "python", "onnxruntime", "numpy"}
 SETTINGS = {"command", "quick", "repeats", "batch_size", "latency_batches", "threads", "graph_optimization",
             "memory_factors", "rungs", "family_rule", "target", "scale"}
-MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory"}
-FAMILY = {"family", "surrogates", "ladder", "cost", "speed", "int8", "notes"}
+MODEL = {"name", "path", "synthetic", "calib_samples", "val_samples", "sites", "families", "memory", "memory_refit"}
+FAMILY = {"family", "surrogates", "ladder", "cost", "cost_refit", "speed", "int8", "notes"}
 LADDER = {"metric", "original", "naive", "local", "sequential", "sequential_bias", "refit", "drop_pp", "n"}
-COST = {"plain_pass_s", "record_s", "segments_s", "fit_s", "bias_correction_s", "total_s", "ratio_total",
-        "ratio_record", "ratio_fit"}
+COST = {"plain_pass_s", "record_s", "segments_s", "fit_s", "bias_correction_s", "refit_s", "total_s", "ratio_total",
+        "ratio_record", "ratio_fit", "ratio_refit"}
 SPEED = {"original_ms", "swapped_ms", "floor_ms", "ratio", "saving_fraction", "note"}
 INT8 = {"metric", "original", "swapped", "drop_pp", "speed"}
 MEMORY = {"factors", "method", "ratio_16_1", "ratio_last_1", "peak_ratio_last_1", "time_ratio_last_1", "base_samples"}
@@ -79,7 +79,8 @@ def test_quick_bench_writes_every_documented_field(quick_run):
     assert len(model["families"]) == 1  # --quick keeps one family
     fam = model["families"][0]
     assert FAMILY <= set(fam) and LADDER <= set(fam["ladder"]) and COST <= set(fam["cost"])
-    assert fam["ladder"]["refit"] is None  # --quick drops the refit rung
+    assert fam["ladder"]["refit"] is None  # --quick drops the refit rung, and so its cost and memory
+    assert fam["cost_refit"] is None and model["memory_refit"] is None and fam["cost"]["refit_s"] is None
     for rung in ("original", "naive", "local", "sequential", "sequential_bias"):
         assert 0.0 <= fam["ladder"][rung] <= 1.0
         if rung != "original":  # the drop is original − rung, in points (bench/run.py docstring)
@@ -165,7 +166,7 @@ def test_cost_table_shows_dashes_for_a_family_without_cost(tmp_path):
     # a family whose ladder left no sequential + bias candidate has "cost": null (swapper/bench/run.py docstring)
     model = _model_entry("m", [_family("relu", cost=None)], [1, 2])
     lines = _tool_cost_section(tmp_path, [model])
-    row = next(line for line in lines if line.startswith("| m | relu |"))
+    row = next(line for line in lines if line.startswith("| m | relu | seq+bias |"))
     assert row.count("–") == len(COST_COLUMNS)
 
 
@@ -174,7 +175,34 @@ def test_memory_table_skips_a_model_with_nothing_to_swap(tmp_path):
     skipped = _model_entry("nothing", [], [])
     measured = _model_entry("m", [], [1, 4])
     lines = _tool_cost_section(tmp_path, [skipped, measured])
-    assert any(line.startswith("| model | 1× ") and "mem 4×/1×" in line for line in lines)
-    assert any(line.startswith("| m | 10: +2.0 MiB") for line in lines)
+    assert any(line.startswith("| model | rung | 1× ") and "mem 4×/1×" in line for line in lines)
+    assert any(line.startswith("| m | seq+bias | 10: +2.0 MiB") for line in lines)
     assert not any(line.startswith("| nothing |") for line in lines)
     assert not [line for line in _tool_cost_section(tmp_path, [skipped]) if "MiB" in line or "×/1×" in line]
+
+
+def test_refit_rung_cost_and_memory_get_rows_and_a_target(tmp_path):
+    from types import SimpleNamespace
+
+    from swapper.bench.goals import MAX_REFIT_COST_RATIO, check_goals
+    from swapper.bench.measure import tool_cost
+
+    # the refit rung's swap: its timings as api.swap returns them (calibrate_s holds the refit's refit_s)
+    result = SimpleNamespace(timings={"calibrate_s": 6.0}, calibration=SimpleNamespace(timings={
+        "record_s": 0.5, "segments_s": 0.5, "fit_s": 1.0, "bias_correction_s": 0.5, "refit_s": 3.5}))
+    cost = tool_cost(result, plain_s=0.5)
+    assert COST <= set(cost)
+    # ratios are the seconds over the plain pass (6.0 / 0.5, 3.5 / 0.5)
+    assert cost["ratio_total"] == 12.0 and cost["ratio_refit"] == 7.0 and cost["refit_s"] == 3.5
+    fam = _family("relu", cost=dict(cost, refit_s=None, ratio_refit=None)) | {"cost_refit": cost}
+    model = _model_entry("m", [fam], [1, 4])
+    model["memory_refit"] = dict(model["memory"], ratio_last_1=1.5, time_ratio_last_1=4.0)
+    lines = _tool_cost_section(tmp_path, [model])
+    refit_row = next(line for line in lines if line.startswith("| m | relu | +refit |"))
+    assert "3.500" in refit_row and "12.0" in refit_row
+    assert any(line.startswith("| m | +refit | 10: +2.0 MiB") for line in lines)
+    rows = check_goals({"models": [model | {"synthetic": True}]})
+    refit = next(r for r in rows if "consumer refit" in r["goal"] and "memory" not in r["goal"])
+    assert refit["met"] is (12.0 <= MAX_REFIT_COST_RATIO) and "12.0x" in refit["measured"]
+    mem = next(r for r in rows if r["goal"].startswith("peak memory") and "refit" in r["goal"])
+    assert mem["met"] is False  # 1.5 is over the +10%

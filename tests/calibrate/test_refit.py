@@ -159,7 +159,9 @@ def test_refit_after_sequential_calibration_two_levels():
     # of this chain gave 0.146 -> 0.112, 0.128 -> 0.112, 0.160 -> 0.135)
     assert mse_refit < 0.95 * mse_calibrated, (mse_calibrated, mse_refit)
     notes = {s.site_id: " ".join(s.notes) for s in calibration.sites}
-    assert "refit Conv 'conv2'" in notes["s1"] and "'conv3'" in notes["s2"], notes
+    assert "refit candidate Conv 'conv2'" in notes["s1"] and "'conv3'" in notes["s2"], notes
+    # each site's refit was weighed on samples held out from the ridge fit, and taken
+    assert all(s.refit["refitted"] and s.refit["mse_refit"] < s.refit["mse_current"] for s in calibration.sites)
     # s2 sits downstream of the refitted conv2: its a, b, c, d were re-fitted on the new inputs
     assert "re-fitted on the refitted upstream layers" in notes["s2"], notes
     onnx.checker.check_model(out, full_check=True)  # source: ONNX checker
@@ -230,6 +232,35 @@ def test_gram_memory_does_not_grow_with_the_dataset():
     np.testing.assert_allclose(four.total().xtx, 4 * one.total().xtx, rtol=1e-9)
     # numpy's peak allocation is per batch, not per data set (common practice, no source: 1.5x slack)
     assert peak_four < 1.5 * peak_one + 1e6, (peak_one, peak_four)
+
+
+def test_capped_conv_rows_are_true_patch_and_output_pairs():
+    """Over the row cap, each sample gives cap // samples of its positions; the rows stay exact pairs."""
+    import copy
+
+    model = conv_chain()
+    sites, plan = _poor_plan(model, "relu")
+    consumers, _ = find_consumers(GraphIndex.of(model), sites[0], set())
+    unswapped = copy.deepcopy(plan)
+    unswapped.swaps = []  # the candidate is the original: X is the SiLU output conv2 reads, Y what conv2 gives
+    x = np.random.default_rng(3).normal(size=(30, 2, 7, 7))
+    folds = np.arange(30) % 4
+    grams = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=5)
+    total = grams["conv2"].total()
+    assert total.n == 30 * 10  # 10 of the 49 positions of each sample
+    # least squares on the sampled rows gives conv2 back: its weights and bias, as onnxruntime computed Y with them
+    theta = np.linalg.lstsq(total.xtx, total.xty, rcond=None)[0]
+    w2 = numpy_helper.to_array(next(t for t in model.graph.initializer if t.name == "W2")).astype(np.float64)
+    b2 = numpy_helper.to_array(next(t for t in model.graph.initializer if t.name == "B2")).astype(np.float64)
+    np.testing.assert_allclose(theta[:-1], w2.reshape(4, -1).T, atol=1e-4)
+    np.testing.assert_allclose(theta[-1], b2, atol=1e-4)
+    # the same seed draws the same rows; another seed others
+    again = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=5)["conv2"].total()
+    other = accumulate_level(model, model, sites, unswapped, consumers, _dataset(x), 4, folds, 8, 1, Silent(), "t",
+                             row_cap=30 * 10, seed=6)["conv2"].total()
+    assert np.array_equal(again.xtx, total.xtx) and not np.array_equal(other.xtx, total.xtx)
 
 
 # ------------------------------------------------------------- end to end

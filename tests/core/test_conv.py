@@ -13,7 +13,7 @@ from onnx import helper
 from onnx.reference import ReferenceEvaluator
 from testkit import float_model, init, run
 
-from swapper.core.conv import conv_geometry, im2col
+from swapper.core.conv import conv_geometry, im2col, patches_at
 
 
 @settings(max_examples=30, deadline=None)
@@ -52,3 +52,10 @@ def test_im2col_conv_matches_onnxruntime(data):
     got = rows @ w.reshape(m, -1).T.astype(np.float64) + b
     got = np.moveaxis(got.reshape([2] + out + [m]), -1, 1)
     np.testing.assert_allclose(got, ref, rtol=1e-4, atol=1e-4)
+    # chosen positions only: the same Conv outputs at those positions (same reference)
+    count = int(np.prod(out))
+    samples = rng.integers(0, 2, size=5)
+    positions = rng.integers(0, count, size=5)
+    part = patches_at(x.astype(np.float64), kernel, s, dl, begin, end, out, samples, positions)
+    want = ref.reshape(2, m, count)[samples, :, positions]
+    np.testing.assert_allclose(part @ w.reshape(m, -1).T.astype(np.float64) + b, want, rtol=1e-4, atol=1e-4)

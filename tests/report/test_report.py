@@ -128,7 +128,7 @@ def test_report_fields_follow_the_documented_schema(runs):
     assert [s["site_id"] for s in p["sites"]] == ["s1", "s2", "s3"]
     for s in p["sites"]:
         assert set(s) == {"site_id", "function", "surrogate", "form", "placement", "nodes_added", "site_nodes",
-                          "folded_into", "mse_start", "mse_fit", "level", "bias_corrected", "notes"}
+                          "folded_into", "mse_start", "mse_fit", "level", "bias_corrected", "refit", "notes"}
         assert set(s["site_nodes"]) == {"original", "written"}
         assert (s["function"], s["surrogate"], s["form"]) == ("silu", "relu", "Relu")
         assert set(s["placement"]) == {"a", "b", "c", "d"} and all(isinstance(v, str) for v in s["placement"].values())
