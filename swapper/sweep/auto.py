@@ -69,7 +69,8 @@ def check_matches(payload: dict, *, sha256: str | None, target: str | None, metr
 
 
 def _fmt(x) -> str:
-    return "n/a" if x is None else f"{x:.3g}"
+    """Three significant digits; -0.0 (a zero cost written as a negated zero) shows as 0."""
+    return "n/a" if x is None else f"{x + 0.0:.3g}"
 
 
 def site_outcomes(payload: dict, result: SearchResult, required: dict[str, dict]) -> list[dict]:
@@ -78,6 +79,7 @@ def site_outcomes(payload: dict, result: SearchResult, required: dict[str, dict]
     first = result.first.chosen if result.first is not None else {}
     front = set(payload["pareto"])
     unit = payload["metric"]["unit"]
+    saving_unit = "ms" if payload["target"]["costs_from"] == "measured" else "cost units"
     out = []
     for site in payload["sites"]:
         sid = site["site_id"]
@@ -89,7 +91,8 @@ def site_outcomes(payload: dict, result: SearchResult, required: dict[str, dict]
         if sid in result.chosen:
             chosen = result.chosen[sid].key
             o = result.chosen[sid]
-            why = f"chosen: saves {_fmt(o.saving)} at a cost of {_fmt(o.cost)} ({unit}) when swapped alone"
+            why = (f"chosen: saves {_fmt(o.saving)} ({saving_unit}) at a cost of {_fmt(o.cost)} ({unit}) "
+                   "when swapped alone")
         elif sid in required:
             chosen = required[sid]["id"]
             why = "required: the target cannot run the site's own ops; its least costly candidate"
