@@ -69,6 +69,8 @@ def run_sweep(model: Path, *, calib, val, rule: GateRule, options: SwapOptions, 
         console.print(f"  {run['candidates']} candidates ({run['failed']} failed) in {run['total_s']:.1f} s on "
                       f"{run['workers']} worker(s) ({run['backend']}); the original's site tensors recorded once "
                       f"in {run['record_s']:.2f} s", highlight=False)
+        for note in payload.get("notes", []):
+            console.print(f"note: {note}", highlight=False, markup=False)
         console.print(f"sweep: {out}" + (f"\nplot: {png}" if png else ""), highlight=False)
     return EXIT_OK
 
@@ -109,6 +111,8 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
         console.print(f"sweep: {run['candidates']} candidates at {len(auto.sweep['sites'])} sites "
                       f"({run['failed']} failed), {run['total_s']:.1f} s on {run['workers']} worker(s)"
                       + (f" (from {sweep_file})" if given is not None else ""), highlight=False)
+        for note in auto.sweep.get("notes", []):
+            console.print(f"note: {note}", highlight=False, markup=False)
         for s in auto.sites:
             console.print(f"  {s['site_id']}: {s['chosen'] or '-'}  {s['why']}", highlight=False)
         for i, a in enumerate(auto.search.attempts, 1):

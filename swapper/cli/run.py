@@ -105,10 +105,11 @@ def _print_check(console, result: api.CheckResult) -> None:
     if on is not None:
         if "ratio" in on:
             say(f"  on {on['target']}: candidate {on['ratio']:.3f}× the original")
-        lacking = on.get("lacking_ops", {}).get("candidate")
-        if lacking:
-            say(f"  ops {on['target']} cannot run, still in the candidate: "
-                + ", ".join(f"{op} ×{k}" for op, k in lacking.items()))
+        if "lacking_ops" in on:  # a declared target: which ops each model has that it cannot run
+            def ops(counts):
+                return ", ".join(f"{op} ×{k}" for op, k in counts.items()) or "none"
+            say(f"  ops {on['target']} cannot run: original {ops(on['lacking_ops'].get('original') or {})}; "
+                f"candidate {ops(on['lacking_ops'].get('candidate') or {})}")
     if result.int8:
         q = result.int8["comparison"]
         ratio = "not measured" if result.int8["latency"] is None else f"{result.int8['latency']['ratio']:.2f}"

@@ -28,7 +28,7 @@ def sites_table(sites: list[Site], title: str) -> Table:
     for col in ("id", "function", "form", "role", "channels", "shape", "producer → consumers", "cost share"):
         table.add_column(col, justify="right" if col in ("channels", "cost share") else "left")
     for s in sites:
-        shape = "×".join("?" if d in (None, "") or isinstance(d, str) else str(d) for d in (s.shape or ()))
+        shape = "×".join("?" if d in (None, "") or isinstance(d, str) or d < 0 else str(d) for d in (s.shape or ()))
         flow = f"{s.producer or 'input'} → {', '.join(s.consumers) or '-'}"
         role = s.role if s.supported else f"{s.role}; not swappable: {s.reason}"
         if s.body and s.supported:  # where a body site sits (an unswappable one's reason names its body)
@@ -99,7 +99,7 @@ def unrun_lines(calibration) -> list[str]:
             if any("did not run on any calibration batch" in n for n in c.notes)]
     if not idle:
         return []
-    line = (f"warning: {', '.join(idle)} sit in a body no calibration batch ran: they keep their starting "
+    line = (f"warning: {', '.join(idle)} {'sits' if len(idle) == 1 else 'sit'} in a body no calibration batch ran: they keep their starting "
             "parameters, and validation data like it does not run them either")
     return [line]
 

@@ -253,7 +253,10 @@ def sweep(model: onnx.ModelProto, sites: list[Site], calib: DataSource | Dataset
         "pareto": pareto_front(points),
         "notes": [],
     }
-    notes: list[str] = []
+    in_bodies = [site.id for site in sites if getattr(site, "body", ()) and site.supported]
+    notes: list[str] = [] if not in_bodies else [
+        f"not swept: {', '.join(in_bodies)} inside If/Loop/Scan bodies (the sweep records the main graph only); "
+        "`swapper swap --plan all` swaps them"]
     payload = json_safe(payload, notes, "sweep")
     payload["notes"] += notes
     validate_sweep(payload)

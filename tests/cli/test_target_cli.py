@@ -127,6 +127,7 @@ def test_check_reports_the_target(cli, models, tmp_path):
     entry = json.loads((tmp_path / "r" / "report.json").read_text())["latency"]["target"]
     # npu-int8 cannot run Div or Erf (the erf-GELU of the original); the hard_swish candidate has neither
     assert entry["lacking_ops"] == {"original": {"Div": 2, "Erf": 2}, "candidate": {}}
+    assert "ops npu-int8 cannot run: original Div ×2, Erf ×2; candidate none" in result.stdout  # said, not only filed
     result = cli("check", models / "meter_gelu_mlp.onnx", cand, "--val", VAL, "--target", "ort-cpu-int8",
                  "--calib", CALIB, "--report", tmp_path / "r8")
     entry = json.loads((tmp_path / "r8" / "report.json").read_text())["latency"]["target"]
