@@ -121,8 +121,11 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
                           + (f"; dropping {a.dropped}" if a.dropped else ""), highlight=False)
     if auto.swap is None:
         if console is not None:
-            console.print(f"nothing pays on {target} within the budget: {auto.reason}; no model written",
+            reason = auto.reason if auto.sweep["sites"] else \
+                "no site was eligible to sweep (`swapper scan` lists the sites and their roles)"
+            console.print(f"nothing pays on {target} within the budget: {reason}; no model written",
                           highlight=False, markup=False)
+            _say_lacking(console, loaded.model, options.target)
         return EXIT_OK
     result, check, timing = auto.swap, auto.check, auto.timing
     candidate = result.candidate
@@ -161,6 +164,21 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
     if console is not None:
         console.print(f"report: {paths[1]}", highlight=False, markup=False)
     return EXIT_OK if approved else EXIT_REJECTED
+
+
+def _say_lacking(console, model, target) -> None:
+    """On a declared target, name the ops of the unchanged model it cannot run, and where to look next."""
+    from swapper.check.on_target import lacking_ops
+
+    profile = api.resolve_target(target)
+    if profile is None or profile.costs_from == "measured":
+        return
+    lacking = lacking_ops(model, profile)
+    if lacking:
+        console.print(f"  the model keeps ops {profile.name} cannot run: "
+                      + ", ".join(f"{op} ×{k}" for op, k in lacking.items())
+                      + "; `swapper swap --plan all` says why each such site stays (gates need --include-gates; "
+                      "a form whose b, c cannot fold needs --fold exact+nodes)", highlight=False, markup=False)
 
 
 def _path_of(source) -> Path | None:

@@ -111,3 +111,31 @@ def test_a_model_with_nothing_to_swap_says_so_in_one_line(cli, tmp_path):
                  "--metric", "sqnr")
     assert result.exit_code == 0, result.output
     assert [line for line in result.stdout.splitlines() if line.startswith("nothing pays")] and not out.exists()
+
+
+def test_nothing_swept_on_a_declared_target_names_the_ops_it_cannot_run(cli, tmp_path):
+    # found in a trial: on mcu-int8 a HardSigmoid the target cannot run stayed and the line said only that
+    # nothing pays. mcu-int8 marks HardSigmoid unsupported (swapper/targets/builtin/mcu-int8.json).
+    from onnx import helper, numpy_helper
+
+    rng = np.random.default_rng(0)
+    nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"]), helper.make_node("Add", ["h", "x2"], ["a"]),
+             helper.make_node("HardSigmoid", ["a"], ["g"]), helper.make_node("Gemm", ["g", "w2", "b2"], ["logits"])]
+    inits = [numpy_helper.from_array(v.astype(np.float32), k) for k, v in
+             {"w1": rng.normal(size=(8, 16)), "b1": np.zeros(16), "x2": rng.normal(size=(1, 16)),
+              "w2": rng.normal(size=(16, 4)), "b2": np.zeros(4)}.items()]
+    graph = helper.make_graph(nodes, "g", [helper.make_tensor_value_info("x", onnx.TensorProto.FLOAT, ["N", 8])],
+                              [helper.make_tensor_value_info("logits", onnx.TensorProto.FLOAT, ["N", 4])], inits)
+    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
+    model.ir_version = 8
+    onnx.save(model, tmp_path / "m.onnx")
+    x = rng.normal(size=(64, 8)).astype(np.float32)
+    np.savez(tmp_path / "c.npz", x=x)
+    np.savez(tmp_path / "v.npz", x=x, labels=np.zeros(64, np.int64))
+    result = cli("swap", tmp_path / "m.onnx", "-o", tmp_path / "o.onnx", "--calib", tmp_path / "c.npz",
+                 "--val", tmp_path / "v.npz", "--target", "mcu-int8", "--budget", "100")
+    assert result.exit_code == 0, result.output
+    # the Clip form cannot place b, c behind this Add: no zero-node candidate, so nothing is swept
+    assert "no site was eligible to sweep" in result.stdout
+    assert "the model keeps ops mcu-int8 cannot run: HardSigmoid ×1" in result.stdout
+    assert not (tmp_path / "o.onnx").exists()
