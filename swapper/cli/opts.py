@@ -72,7 +72,7 @@ BUDGET_HELP = ("The allowance, read by the metric that decides: top1: the larges
                "in percentage points; agreement: top-1 agreement with the original must be at least 100 - BUDGET "
                "percent; rmse: the candidate's RMSE may exceed the original's by BUDGET percent of it. cosine and "
                "sqnr do not read it (--min-cosine, --min-sqnr).")
-BudgetOpt = Annotated[float, typer.Option(callback=finite, help=BUDGET_HELP)]
+BudgetOpt = Annotated[float, typer.Option(min=0, callback=finite, help=BUDGET_HELP)]
 STRICT_HELP = ("top1: judge the upper end of the 95% interval for the drop instead of the measured drop "
                "(non-inferiority).")
 MinAgreementOpt = Annotated[Optional[float], typer.Option(callback=finite, help="Also require this top-1 agreement (0..1).")]
