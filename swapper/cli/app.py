@@ -216,24 +216,9 @@ def swap(
 
     try:
         plan = plan_word(plan, val, calib)
-        if plan == "auto":
-            from swapper.cli.auto_run import run_auto_swap
-
-            if no_calibrate or calib is None:
-                raise UsageError("--plan auto calibrates every candidate: give --calib (or use --plan all)")
-            calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
-            rule = gate_rule(budget, strict, min_agreement, metric, min_cosine, min_cosine_p5, min_sqnr)
-            options = SwapOptions(
-                site_ids=split_ids(sites), only=only, include_gates=include_gates, include_outputs=include_outputs,
-                fold=fold, mode=mode, bias_correction=bias_correction, seed=seed, batch_size=batch_size,
-                threads=threads, cache_mb=cache_mb, target=target_name(target), opset=opset,
-                mask_input=mask_input)
-            code = run_auto_swap(model, output, calib=calib, val=val, rule=rule, options=options,
-                                 settings=sweep_settings(jobs, scheduler, to), console=out, sweep_file=sweep_file,
-                                 force=force, report=report, strict_data=strict_data,
-                                 latency_runs=0 if no_latency else latency_runs)
-            raise typer.Exit(code)
-        if sweep_file is not None:
+        if plan == "auto" and (no_calibrate or calib is None):
+            raise UsageError("--plan auto calibrates every candidate: give --calib (or use --plan all)")
+        if plan != "auto" and sweep_file is not None:
             raise UsageError("--sweep feeds the automatic plan: add --plan auto (and --val)")
         calib, val = (data_source_of(p, data_spec, batch_axis, constant, prep) for p in (calib, val))
         if calib is None and not no_calibrate:
@@ -249,9 +234,18 @@ def swap(
             mask_input=mask_input, batch_size=batch_size, threads=threads, cache_mb=cache_mb,
             target=target_name(target), opset=opset,
         )
-        code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
-                        strict_data=strict_data, force=force, int8=int8, report=report,
-                        latency_runs=0 if no_latency else latency_runs)
+        latency = 0 if no_latency else latency_runs
+        if plan == "auto":
+            from swapper.cli.auto_run import run_auto_swap
+
+            # the sweep tries the surrogates (--to narrows its settings) and decides the refit per site
+            code = run_auto_swap(model, output, calib=calib, val=val, rule=rule,
+                                 options=options.replace(to=None, refit_consumers=None),
+                                 settings=sweep_settings(jobs, scheduler, to), console=out, sweep_file=sweep_file,
+                                 force=force, report=report, strict_data=strict_data, latency_runs=latency)
+        else:
+            code = run_swap(model, output, options=options, console=out, calib=calib, val=val, rule=rule,
+                            strict_data=strict_data, force=force, int8=int8, report=report, latency_runs=latency)
     except SwapperError as exc:
         _fail(exc)
     raise typer.Exit(code)
