@@ -309,14 +309,9 @@ def _open_pair(original: onnx.ModelProto, candidate: onnx.ModelProto, threads: i
 
 def _timed(sessions: dict, feeds: dict, threads: int, repeats: int, progress, what: str = "timing latency") -> dict:
     """Per-model latency (LatencyStats fields) of the two sessions, plus candidate/original ratio of medians."""
-    import time
+    from swapper.check.latency import clock_for, measure_latency
 
-    from swapper.check.latency import measure_latency
-
-    # One intra-op thread computes on the calling thread: its CPU time does not grow while other processes
-    # hold a shared CPU, wall time does (check/on_target.py measured wall ratios 0.35-0.94 for one pair).
-    clock, clock_name = (time.thread_time_ns, "thread CPU time") if threads == 1 else \
-        (time.perf_counter_ns, "wall time")
+    clock, clock_name = clock_for(threads)  # the target timing's clock, so the two figures agree
     with progress.task(what, repeats) as advance:
         timed = measure_latency(sessions, feeds, threads=threads, repeats=repeats, advance=advance, clock=clock)
     ratio = timed["candidate"].median_ms / timed["original"].median_ms

@@ -86,6 +86,17 @@ def time_interleaved(
     return durations
 
 
+def clock_for(threads: int) -> tuple[Callable[[], int], str]:
+    """The clock and its name for timing onnxruntime calls on ``threads`` intra-op threads.
+
+    With one thread onnxruntime computes on the calling thread, so its CPU time
+    (``time.thread_time_ns``) is the model's work and does not grow while other
+    processes hold a shared core (check/on_target.py gives measured ratios);
+    with more threads, wall time.
+    """
+    return (time.thread_time_ns, "thread CPU time") if threads == 1 else (time.perf_counter_ns, "wall time")
+
+
 def _feeds_for(name: str, session: ort.InferenceSession, feeds: Mapping[str, np.ndarray]) -> dict:
     wanted = [i.name for i in session.get_inputs()]
     missing = [i for i in wanted if i not in feeds]

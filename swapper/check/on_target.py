@@ -23,7 +23,6 @@ names the ops of a model such a target marks as unsupported.
 from __future__ import annotations
 
 import logging
-import time
 from collections import Counter
 from collections.abc import Iterable, Mapping
 from dataclasses import asdict, dataclass
@@ -32,7 +31,7 @@ import numpy as np
 import onnx
 
 from swapper.check.int8 import quantize_int8
-from swapper.check.latency import LatencyStats, measure_latency
+from swapper.check.latency import LatencyStats, clock_for, measure_latency
 from swapper.data.dataset import input_specs
 from swapper.errors import UsageError
 from swapper.targets.profile import TargetProfile
@@ -126,8 +125,7 @@ def time_on_target(original: onnx.ModelProto, candidate: onnx.ModelProto, profil
         batches = list(calib_batches) if calib_batches is not None else [dict(feeds)]
         per_channel = profile.measurement.quantization.per_channel is not False
         models = {k: quantize_int8(m, iter(batches), per_channel=per_channel) for k, m in models.items()}
-    clock, clock_name = (time.thread_time_ns, "thread CPU time") if threads == 1 else \
-        (time.perf_counter_ns, "wall time")
+    clock, clock_name = clock_for(threads)
     timed = measure_latency(models, feeds, threads=threads, warmup=warmup, repeats=repeats,
                             graph_optimization=level, clock=clock)
     batch = int(next(iter(feeds.values())).shape[0]) if feeds else 0
