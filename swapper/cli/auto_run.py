@@ -15,7 +15,7 @@ from pathlib import Path
 from swapper import api
 from swapper.autoplan import auto_swap
 from swapper.check.gate import GateRule, preflight
-from swapper.cli.run import print_check, progress_for, record_in_model
+from swapper.cli.run import load_with_places, print_check, progress_for, record_in_model
 from swapper.core.files import check_report_dir
 from swapper.core.model_io import atomic_write_bytes, check_output_path, load_model, save_model, saved_size
 from swapper.errors import EXIT_OK, EXIT_REJECTED, BadDataError, CannotJudge, SwapperError
@@ -80,16 +80,9 @@ def run_auto_swap(model: Path, output: Path, *, calib, val, rule: GateRule, opti
                   report: Path | None = None, strict_data: bool = False, latency_runs: int = 10) -> int:
     """`swapper swap --plan auto`: the fastest plan within the gate, verified; nothing written when nothing pays."""
     path = Path(model)
-    inputs = [("the input model", path), ("the calibration set", _path_of(calib)),
-              ("the validation set", _path_of(val))]
-    # before any work: a bad output path or report folder is bad input, found in a second, not after the sweep
     folder = report or default_report_dir(path)
-    check_output_path(output, inputs=inputs)
-    check_report_dir(folder, inputs=inputs + [("the output model", output)])
-    loaded = load_model(path)
-    inputs += loaded.files()
-    check_output_path(output, inputs=inputs)  # its external data files are known now
-    check_report_dir(folder, inputs=inputs + [("the output model", output)])
+    loaded, inputs = load_with_places(path, output, folder, [
+        ("the input model", path), ("the calibration set", _path_of(calib)), ("the validation set", _path_of(val))])
     calib_ds = api.load_data(calib, loaded, strict=strict_data)
     val_ds = api.load_data(val, loaded, strict=strict_data)
     try:

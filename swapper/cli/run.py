@@ -164,6 +164,26 @@ def run_check(original: Path, candidate: Path, val: Path, *, console=None, budge
     return EXIT_OK if result.verdict.approved else EXIT_REJECTED
 
 
+def load_with_places(model: Path | LoadedModel, output: Path, folder: Path | None,
+                     inputs: list) -> tuple[LoadedModel, list]:
+    """Load ``model`` between two checks of the output model path and the report folder (None: no report).
+
+    Before any work, so a bad place is found in a second and not after calibration or a sweep: neither may be
+    unwritable or overwrite one of ``inputs`` ((role, path) pairs), and, once the model is loaded, one of its
+    external data files. Returns the model and every input the run reads.
+    """
+    def check(reads: list) -> None:
+        check_output_path(output, inputs=reads)
+        if folder is not None:
+            check_report_dir(folder, inputs=reads + [("the output model", output)])
+
+    check(inputs)
+    loaded = model if isinstance(model, LoadedModel) else load_model(model)
+    inputs = inputs + loaded.files()
+    check(inputs)  # its external data files are known now
+    return loaded, inputs
+
+
 def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | None = None, console=None,
              calib: Path | None = None, val: Path | None = None, budget: float = 1.0, strict: bool = False,
              min_agreement: float | None = None, force: bool = False, int8: bool = False,
@@ -178,18 +198,10 @@ def run_swap(model: Path | LoadedModel, output: Path, *, options: SwapOptions | 
     """
     options = options or SwapOptions()
     path = model.path if isinstance(model, LoadedModel) else Path(model)
-    inputs = [("the input model", path), ("the calibration set", calib), ("the validation set", val)]
-    # before any work: a bad output path or report folder is bad input, found in a second, not after calibration
-    check_output_path(output, inputs=inputs)
     folder = (report or default_report_dir(path)) if val is not None or report is not None else None
-    if folder is not None:
-        check_report_dir(folder, inputs=inputs + [("the output model", output)])
+    loaded, inputs = load_with_places(model, output, folder, [("the input model", path), ("the calibration set", calib),
+                                                              ("the validation set", val)])
     rule = rule or GateRule(Budget(max_drop_pp=budget, strict=strict, min_agreement=min_agreement))
-    loaded = model if isinstance(model, LoadedModel) else load_model(path)
-    inputs += loaded.files()
-    check_output_path(output, inputs=inputs)  # its external data files are known now
-    if folder is not None:
-        check_report_dir(folder, inputs=inputs + [("the output model", output)])
     calib_ds = api.load_data(calib, loaded, strict=strict_data) if calib is not None else None
     val_ds = api.load_data(val, loaded, strict=strict_data) if val is not None else None
     _print_notes(console, calib_ds, val_ds)
