@@ -151,12 +151,23 @@ class ChannelObserver:
             return
         # the batch's moments are complete (and checked finite) before anything is merged,
         # so a bad batch leaves the observer as it was
+        self._check_storable(x3, y3)
         if self.moments:
             self._merge_batch(*self._batch_moments(x3, y3))
         else:
             self._merge_range(x3, y3)
         self._update_reservoir(x3, y3)
         self.n += m
+
+    def _check_storable(self, x3: np.ndarray, y3: np.ndarray) -> None:
+        """Values the reservoir's narrower float type cannot hold (float64 sites kept as float32) would become
+        inf there; refuse them here, once per batch and only when the types differ (found by the fuzzer)."""
+        if self.dtype.kind != "f" or all(t.dtype.kind != "f" or t.dtype.itemsize <= self.dtype.itemsize
+                                         for t in (x3, y3)):
+            return
+        limit = np.finfo(self.dtype).max
+        if max(np.abs(x3).max(), np.abs(y3).max()) > limit:
+            raise BadDataError(f"site data holds values that are not finite in {self.dtype} (beyond {limit:.3g})")
 
     def _blocks(self, shape: tuple[int, int, int]):
         """Index ranges (i0, i1, k0, k1) tiling (before, after) in blocks of about BLOCK values per channel set."""

@@ -68,9 +68,6 @@ def fit_channels(
         raise ValueError("positive_b needs a positive initial b on every channel")
     binned = method == "binned" and observer.held > 4 * bins
     X, Y = observer.all_samples(dtype=None if binned else np.float64)
-    if not (np.isfinite(X).all() and np.isfinite(Y).all()):
-        # e.g. float64 site values beyond float32's range, kept in a float32 reservoir (found by the fuzzer)
-        raise BadDataError("site data holds values that are not finite in the precision they are kept in")
     if binned:  # stored precision: bins are sorted as stored and summed in float64
 
         def fit(X, Y, init, free):

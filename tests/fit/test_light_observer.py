@@ -70,6 +70,7 @@ def test_values_beyond_the_kept_precision_are_bad_data_not_a_crash():
     obs = ChannelObserver(2, 1, reservoir=64, seed=0, moments=False, dtype=np.float32)
     x = np.ones((8, 2), dtype=np.float64)
     x[3, 1] = 1e39  # finite in float64, inf once kept as float32
-    obs.update(x, np.tanh(x))
     with pytest.raises(BadDataError, match="not finite"):
+        obs.update(x, np.tanh(x))  # refused where it is kept, before any fit reads it
         fit_channels(obs, np.tanh, free="abcd")
+    assert obs.n == 0  # the bad batch left the observer as it was
