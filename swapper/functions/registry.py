@@ -160,18 +160,21 @@ ALTERNATIVES: dict[str, tuple[str, ...]] = {
     **{s: ("relu", "leaky_relu", "relu6") for s in ("silu", "swish", "gelu", "gelu_tanh", "quick_gelu", "mish")},
     "sigmoid": ("hard_tanh", "relu6"), "tanh": ("hard_sigmoid", "relu6"), "softsign": ("hard_sigmoid", "relu6"),
     **{s: ("leaky_relu", "relu6") for s in ("softplus", "elu", "selu", "celu")},
+    # cheap itself, but on a target where Relu fuses into the layer before it and its own ops do not, dearer
+    "hard_swish": ("relu", "relu6", "leaky_relu"),
 }
 
 
 def candidates(source: str) -> list[str]:
     """The surrogates tried for ``source``, in order: its default, then its alternatives.
 
-    A cheap function is its own only candidate (re-emitted in another form
-    where a target lacks its op); a function without a default has none.
+    A cheap function is its own first candidate (re-emitted in another form
+    where a target lacks its op or runs another form faster), then its alternatives;
+    a function without a default has none.
     """
     fn = get(source)
     if fn.is_cheap:
-        return [source]
+        return [source, *ALTERNATIVES.get(source, ())]
     default = DEFAULT_SURROGATE.get(source)
     return [] if default is None else list(dict.fromkeys([default, *ALTERNATIVES.get(source, ())]))
 

@@ -305,7 +305,10 @@ def make_plan(
             skip(f"no registry entry for {site.function}")
             continue
         forced, form, site_fold = pinned.get(site.id, (to, None, None))
-        if fn.is_cheap and not (explicit or lacking):
+        # a cheap function with alternatives (hard-swish: four ops where Relu fuses into the Conv) is priced on
+        # a target like any other; without a target, or without alternatives, it stays
+        priced = target is not None and bool(functions.ALTERNATIVES.get(site.function))
+        if fn.is_cheap and not (explicit or lacking or priced):
             skip(f"{site.function} is already cheap")
             continue
         notes = [f"swapped although a {site.role}: {', '.join(lacking)} cannot run on {name}"] \
@@ -317,7 +320,7 @@ def make_plan(
             skip("graph output; use --include-outputs")
             continue
         order = [forced] if forced else functions.candidates(site.function)
-        if not order or (fn.is_cheap and forced is None and not lacking):
+        if not order or (fn.is_cheap and forced is None and not (lacking or priced)):
             skip(f"no default surrogate for {site.function}; name one with --to")
             continue
         upstream = upstreams.setdefault(site.body, {})

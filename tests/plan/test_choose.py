@@ -273,3 +273,33 @@ def test_an_unsupported_gate_is_swapped_with_a_note(tmp_path):
     # on the unedited profile the gate is left, as without a target
     plan = _plan(GATE, tmp_path, "mcu-int8")
     assert not plan.swaps and "gate" in plan.skipped[0].reason and not plan.remaining
+
+
+# hard-swish as a Keras-style converter writes it: x·Clip(x + 3, 0, 6)·(1/6), between two 1x1 Convs
+CONV_CLIP_HSWISH = """
+<ir_version: 8, opset_import: ["" : 13]>
+conv_hswish (float[N, 2, 4, 4] X) => (float[N, 2, 4, 4] Y) {
+    H = Conv <kernel_shape = [1, 1]> (X, W1, B1)
+    three = Constant <value = float {3.0}> ()
+    zero = Constant <value = float {0.0}> ()
+    six = Constant <value = float {6.0}> ()
+    sixth = Constant <value = float {0.16666667}> ()
+    P = Add(H, three)
+    R = Clip(P, zero, six)
+    M = Mul(H, R)
+    T = Mul(M, sixth)
+    Y = Conv <kernel_shape = [1, 1]> (T, W2, B2)
+}
+"""
+
+
+def test_a_cheap_function_written_in_many_ops_is_priced_on_a_target(tmp_path):
+    # Found trying a converter's model: its four-op hard-swish sites were "already cheap" on ort-cpu although
+    # the measured profile prices those ops above what the candidates cost (Relu fuses into the Conv)
+    cpu = raw("ort-cpu")
+    four_ops = op(cpu, "Add") + op(cpu, "Clip") + 2 * op(cpu, "Mul")
+    (swap,) = _plan(CONV_CLIP_HSWISH, tmp_path, "ort-cpu").swaps
+    assert swap.cost["original"] == pytest.approx(four_ops) and swap.cost["candidate"] < swap.cost["original"]
+    # without a target the registry's label stands: hard_swish is a surrogate, kept as it is
+    plan = _plan(CONV_CLIP_HSWISH, tmp_path, None)
+    assert not plan.swaps and plan.skipped[0].reason == "hard_swish is already cheap"
